@@ -1,0 +1,50 @@
+/*
+ * errors.h - the one table of worth error codes.
+ *
+ * Every failure inside worthd, the client library and the learning core is one
+ * of these codes.  0 is success; errors are negative and never renumbered.  The
+ * second column is the stable snake_case name sent on the wire in
+ * {"ok":false,"error":{"code":NAME,...}}: clients match on it, so a name, once
+ * released, is never changed or reused.  The third column is a default
+ * human-readable message; call sites add detail in a caller-provided buffer.
+ */
+#ifndef WORTH_ERRORS_H
+#define WORTH_ERRORS_H
+
+/* X(ENUM_SUFFIX, value, wire_name, message) */
+#define WORTH_ERRORS(X)                                                                            \
+    X(OK, 0, "ok", "success")                                                                      \
+    X(BAD_JSON, -1, "bad_json", "request is not valid JSON")                                       \
+    X(UNKNOWN_OP, -2, "unknown_op", "unknown operation")                                           \
+    X(BAD_REQUEST, -3, "bad_request", "a required field is missing or has the wrong type")         \
+    X(NO_SUCH_MODEL, -4, "no_such_model", "no model of that name")                                 \
+    X(MODEL_EXISTS, -5, "model_exists", "a model of that name already exists")                     \
+    X(BAD_DIMENSION, -6, "bad_dimension", "vector has the wrong length")                           \
+    X(BAD_NUMBER, -7, "bad_number", "value is NaN, infinite or not a number")                      \
+    X(BAD_PARAM, -8, "bad_param", "parameter out of its allowed range")                            \
+    X(TOO_LARGE, -9, "too_large", "request exceeds a configured limit")                            \
+    X(TRUNCATED, -10, "truncated", "payload ended before its declared length")                     \
+    X(UNAUTHORIZED, -11, "unauthorized", "authenticate first")                                     \
+    X(LINE_TOO_LONG, -12, "line_too_long", "request line exceeds the maximum length")              \
+    X(TOO_MANY_SOURCES, -13, "too_many_sources", "model has no free slot for another source")      \
+    X(CORRUPT, -14, "corrupt", "stored state failed its format or checksum check")                 \
+    X(MISMATCH, -15, "mismatch", "stored state belongs to a different configuration")              \
+    X(NUMERIC, -16, "numeric", "numerical failure (singular or non-finite result)")                \
+    X(NO_MEMORY, -17, "no_memory", "out of memory")                                                \
+    X(IO, -18, "io", "input/output error")                                                         \
+    X(INTERNAL, -19, "internal", "internal error")                                                 \
+    X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")
+
+enum worth_err {
+#define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),
+    WORTH_ERRORS(WORTH_ERR_ENUM)
+#undef WORTH_ERR_ENUM
+};
+
+/* Stable wire name of code, e.g. "bad_dimension"; "unknown_error" for a code not in the table. */
+const char *worth_err_name(int code);
+
+/* Default message of code; never NULL, static storage. */
+const char *worth_strerror(int code);
+
+#endif /* WORTH_ERRORS_H */
