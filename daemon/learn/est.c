@@ -1,0 +1,439 @@
+/*
+ * est.c - the estimator interface: validation, dispatch, counters, format.
+ *
+ * Owns each estimator's weights and common counters; the kind's own state
+ * hangs off e->k.  Runs on the thread that owns the estimator (a model's
+ * learner).  It must never let an invalid input reach a kind's update: every
+ * check happens here, before anything is modified, so a rejected call leaves
+ * the estimator bit-identical.
+ *
+ * Saved state layout (all little-endian):
+ *   u32 magic "WEST", u32 format version, u32 kind, u32 reserved,
+ *   u64 n, u64 sources, the parameters, the common counters, the weights,
+ *   the kind's state, and last a u32 CRC-32 of everything before it.
+ */
+#include "est.h"
+
+#include <cblas.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <string.h>
+
+#include "est_impl.h"
+#include "mem.h"
+#include "worth/errors.h"
+
+#define EST_MAGIC 0x54534557u /* "WEST" */
+/* Weight of the exponentially weighted TD error: about 1000 transitions. */
+#define TD_EW_KEEP (1.0 - 1.0 / 1000.0)
+
+static const char *const kind_names[EST_KIND_COUNT] = {
+    "td", "td_n", "td_lambda", "mc", "rls_td", "lstd", "replay",
+};
+
+static const struct est_ops *const kind_ops[EST_KIND_COUNT] = {
+    &est_td_ops,  &est_tdn_ops,  &est_tdlambda_ops, &est_mc_ops,
+    &est_rls_ops, &est_lstd_ops, &est_replay_ops,
+};
+
+static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
+{
+    if (err && errlen) {
+        va_list ap;
+        va_start(ap, fmt);
+        vsnprintf(err, errlen, fmt, ap);
+        va_end(ap);
+    }
+    return code;
+}
+
+const char *est_kind_name(enum est_kind kind)
+{
+    return (unsigned)kind < EST_KIND_COUNT ? kind_names[kind] : NULL;
+}
+
+int est_kind_parse(const char *name)
+{
+    for (int i = 0; i < EST_KIND_COUNT; i++)
+        if (strcmp(name, kind_names[i]) == 0)
+            return i;
+    return -1;
+}
+
+void est_params_default(enum est_kind kind, est_params_t *p)
+{
+    memset(p, 0, sizeof *p);
+    p->kind = kind;
+    p->alpha = 0.01;
+    p->init = 0.0;
+    p->lambda = kind == EST_TD_LAMBDA ? 0.9 : 0.0;
+    p->nstep = 4;
+    p->horizon = 0;
+    p->max_episode = 100000;
+    p->forget = 1.0;
+    p->delta = 100.0;
+    p->guard = EST_GUARD_REGULARISE;
+    p->trace_cap = 0.0;
+    p->ridge = 1e-6;
+    p->refit_every = 100;
+    p->capacity = 10000;
+    p->batch = 32;
+    p->steps_per_obs = 1;
+    p->decay = 0.0;
+    p->tol = 1e-4;
+    p->seed = 1;
+}
+
+static int check_params(const est_params_t *p, size_t n, size_t sources, char *err, size_t len)
+{
+    if ((unsigned)p->kind >= EST_KIND_COUNT)
+        return fail(err, len, WORTH_E_BAD_PARAM, "unknown estimator kind");
+    if (n < 1)
+        return fail(err, len, WORTH_E_BAD_PARAM, "feature count must be >= 1");
+    if (sources < 1 || sources > EST_MAX_SOURCES)
+        return fail(err, len, WORTH_E_BAD_PARAM, "sources must be 1..%d", EST_MAX_SOURCES);
+    if (!isfinite(p->init))
+        return fail(err, len, WORTH_E_BAD_PARAM, "init must be finite");
+    switch (p->kind) {
+    case EST_TD:
+    case EST_TD_N:
+    case EST_TD_LAMBDA:
+    case EST_MC:
+    case EST_REPLAY:
+        if (!(p->alpha > 0) || !isfinite(p->alpha))
+            return fail(err, len, WORTH_E_BAD_PARAM, "alpha must be a finite number > 0");
+        break;
+    default:
+        break;
+    }
+    if ((p->kind == EST_TD_LAMBDA || p->kind == EST_RLS_TD || p->kind == EST_LSTD) &&
+        !(p->lambda >= 0 && p->lambda <= 1))
+        return fail(err, len, WORTH_E_BAD_PARAM, "lambda must be in [0, 1]");
+    if (p->kind == EST_TD_N && (p->nstep < 1 || p->nstep > 100000))
+        return fail(err, len, WORTH_E_BAD_PARAM, "n must be 1..100000");
+    if (p->kind == EST_MC) {
+        if (p->horizon > 1000000)
+            return fail(err, len, WORTH_E_BAD_PARAM, "horizon must be 0..1000000");
+        if (p->horizon == 0 && (p->max_episode < 1 || p->max_episode > 10000000))
+            return fail(err, len, WORTH_E_BAD_PARAM, "max_episode must be 1..10000000");
+    }
+    if (p->kind == EST_RLS_TD || p->kind == EST_LSTD) {
+        if (!(p->forget > 0 && p->forget <= 1))
+            return fail(err, len, WORTH_E_BAD_PARAM, "forget (mu) must be in (0, 1]");
+    }
+    if (p->kind == EST_RLS_TD) {
+        if (!(p->delta > 0) || !isfinite(p->delta))
+            return fail(err, len, WORTH_E_BAD_PARAM, "delta must be a finite number > 0");
+        if (p->guard != EST_GUARD_REGULARISE && p->guard != EST_GUARD_TRACE &&
+            p->guard != EST_GUARD_NONE)
+            return fail(err, len, WORTH_E_BAD_PARAM, "guard must be regularise, trace or none");
+        if (!(p->trace_cap >= 0) || !isfinite(p->trace_cap))
+            return fail(err, len, WORTH_E_BAD_PARAM, "trace_cap must be finite and >= 0");
+    }
+    if (p->kind == EST_LSTD) {
+        if (!(p->ridge >= 0) || !isfinite(p->ridge))
+            return fail(err, len, WORTH_E_BAD_PARAM, "ridge must be finite and >= 0");
+        if (p->refit_every < 1)
+            return fail(err, len, WORTH_E_BAD_PARAM, "refit_every must be >= 1");
+    }
+    if (p->kind == EST_REPLAY) {
+        if (p->capacity < 1 || p->capacity > 100000000)
+            return fail(err, len, WORTH_E_BAD_PARAM, "capacity must be 1..100000000");
+        if (p->batch < 1 || p->batch > p->capacity)
+            return fail(err, len, WORTH_E_BAD_PARAM, "batch must be 1..capacity");
+        if (p->steps_per_obs > 1000)
+            return fail(err, len, WORTH_E_BAD_PARAM, "steps_per_obs must be 0..1000");
+        if (!(p->decay >= 0) || !isfinite(p->decay))
+            return fail(err, len, WORTH_E_BAD_PARAM, "decay must be finite and >= 0");
+        if (!(p->tol > 0) || !isfinite(p->tol))
+            return fail(err, len, WORTH_E_BAD_PARAM, "tol must be a finite number > 0");
+    }
+    /* Memory the dense matrices imply, checked before anything is allocated. */
+    if ((p->kind == EST_RLS_TD || p->kind == EST_LSTD) && n > 8192)
+        return fail(err, len, WORTH_E_TOO_LARGE,
+                    "%s keeps an n x n matrix: n = %zu exceeds its limit 8192", kind_names[p->kind],
+                    n);
+    if (p->kind == EST_REPLAY && (double)p->capacity * (2.0 * n + 1) * 8 > 4e9)
+        return fail(err, len, WORTH_E_TOO_LARGE, "replay buffer would exceed 4 GB");
+    return 0;
+}
+
+int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, char *err,
+            size_t errlen)
+{
+    int rc = check_params(p, n, sources, err, errlen);
+    if (rc)
+        return rc;
+    struct est *e = mem_calloc(1, sizeof *e);
+    e->p = *p;
+    e->ops = kind_ops[p->kind];
+    e->n = n;
+    e->nsrc = sources;
+    e->w = mem_alloc(n * sizeof *e->w);
+    for (size_t i = 0; i < n; i++)
+        e->w[i] = p->init;
+    e->ops->init(e);
+    *out = e;
+    return 0;
+}
+
+void est_free(struct est *e)
+{
+    if (!e)
+        return;
+    e->ops->free(e);
+    mem_free(e->w);
+    mem_free(e);
+}
+
+void est_reset(struct est *e)
+{
+    for (size_t i = 0; i < e->n; i++)
+        e->w[i] = e->p.init;
+    e->updates = e->guarded = 0;
+    e->td_last = e->td_ms = e->td_wsum = 0.0;
+    e->ops->reset(e);
+}
+
+double est_dot(size_t n, const double *a, const double *b)
+{
+    return cblas_ddot((int)n, a, 1, b, 1);
+}
+
+void est_axpy(size_t n, double a, const double *x, double *y)
+{
+    cblas_daxpy((int)n, a, x, 1, y, 1);
+}
+
+static int finite_vec(const double *v, size_t n)
+{
+    for (size_t i = 0; i < n; i++)
+        if (!isfinite(v[i]))
+            return 0;
+    return 1;
+}
+
+int est_observe(struct est *e, size_t src, const double *phi, double r, const double *phi_next,
+                double g, int terminal)
+{
+    if (src >= e->nsrc)
+        return WORTH_E_BAD_PARAM;
+    if (!(g >= 0 && g <= 1))
+        return WORTH_E_BAD_PARAM;
+    if (!isfinite(r) || !finite_vec(phi, e->n))
+        return WORTH_E_BAD_NUMBER;
+    if (!terminal && (!phi_next || !finite_vec(phi_next, e->n)))
+        return phi_next ? WORTH_E_BAD_NUMBER : WORTH_E_BAD_PARAM;
+
+    double v = est_dot(e->n, e->w, phi);
+    double vn = terminal ? 0.0 : est_dot(e->n, e->w, phi_next);
+    double delta = r + g * vn - v;
+    e->guarded += (uint64_t)e->ops->observe(e, src, phi, r, terminal ? NULL : phi_next, g,
+                                            terminal != 0, v, vn);
+    e->updates++;
+    e->td_last = delta;
+    e->td_ms = TD_EW_KEEP * e->td_ms + delta * delta;
+    e->td_wsum = TD_EW_KEEP * e->td_wsum + 1.0;
+    return 0;
+}
+
+int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx, est_train_t *rep)
+{
+    memset(rep, 0, sizeof *rep);
+    if (!e->ops->train)
+        return WORTH_E_UNSUPPORTED;
+    return e->ops->train(e, passes, progress, ctx, rep);
+}
+
+double est_value(const struct est *e, const double *phi)
+{
+    return est_dot(e->n, e->w, phi);
+}
+
+int est_sd(const struct est *e, const double *phi, double *sd)
+{
+    if (!e->ops->sd)
+        return WORTH_E_UNSUPPORTED;
+    return e->ops->sd(e, phi, sd);
+}
+
+const double *est_weights(const struct est *e)
+{
+    return e->w;
+}
+
+size_t est_features(const struct est *e)
+{
+    return e->n;
+}
+
+const est_params_t *est_params(const struct est *e)
+{
+    return &e->p;
+}
+
+void est_stats(const struct est *e, est_stats_t *out)
+{
+    memset(out, 0, sizeof *out);
+    out->updates = e->updates;
+    out->guarded = e->guarded;
+    out->td_last = e->td_last;
+    out->td_rms = e->td_wsum > 0 ? sqrt(e->td_ms / e->td_wsum) : 0.0;
+    if (e->ops->stats)
+        e->ops->stats(e, out);
+}
+
+/* Parameters go into the header so that a checkpoint cannot be loaded into a differently
+ * configured estimator. */
+static void put_params(ser_w *w, const est_params_t *p)
+{
+    ser_put_f64(w, p->alpha);
+    ser_put_f64(w, p->init);
+    ser_put_f64(w, p->lambda);
+    ser_put_u32(w, p->nstep);
+    ser_put_u32(w, p->horizon);
+    ser_put_u32(w, p->max_episode);
+    ser_put_f64(w, p->forget);
+    ser_put_f64(w, p->delta);
+    ser_put_u32(w, (uint32_t)p->guard);
+    ser_put_f64(w, p->trace_cap);
+    ser_put_f64(w, p->ridge);
+    ser_put_u32(w, p->refit_every);
+    ser_put_u32(w, p->capacity);
+    ser_put_u32(w, p->batch);
+    ser_put_u32(w, p->steps_per_obs);
+    ser_put_f64(w, p->decay);
+    ser_put_f64(w, p->tol);
+    ser_put_u64(w, p->seed);
+}
+
+static void save_all(const struct est *e, ser_w *w)
+{
+    ser_put_u32(w, EST_MAGIC);
+    ser_put_u32(w, EST_FORMAT_VERSION);
+    ser_put_u32(w, (uint32_t)e->p.kind);
+    ser_put_u32(w, 0);
+    ser_put_u64(w, e->n);
+    ser_put_u64(w, e->nsrc);
+    put_params(w, &e->p);
+    ser_put_u64(w, e->updates);
+    ser_put_u64(w, e->guarded);
+    ser_put_f64(w, e->td_last);
+    ser_put_f64(w, e->td_ms);
+    ser_put_f64(w, e->td_wsum);
+    ser_put_f64v(w, e->w, e->n);
+    e->ops->save(e, w);
+}
+
+int est_save(const struct est *e, uint8_t *buf, size_t cap, size_t *len)
+{
+    ser_w w = {buf, cap, 0};
+    save_all(e, &w);
+    size_t body = w.len;
+    *len = body + 4;
+    if (!buf || *len > cap)
+        return WORTH_E_TOO_LARGE;
+    uint32_t crc = ser_crc32(buf, body);
+    ser_put_u32(&w, crc);
+    return 0;
+}
+
+static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, size_t errlen)
+{
+    ser_r r = {buf, len - 4, 0, 0};
+    ser_get_u32(&r); /* magic and version were checked by the caller */
+    ser_get_u32(&r);
+    ser_get_u32(&r);
+    ser_get_u32(&r);
+    ser_get_u64(&r);
+    ser_get_u64(&r);
+    /* Compare the parameters byte for byte with ours. */
+    uint8_t mine[256], theirs[256];
+    ser_w pw = {mine, sizeof mine, 0};
+    put_params(&pw, &e->p);
+    CHECK(ser_fits(&pw));
+    ser_get_bytes(&r, theirs, pw.len);
+    if (r.err)
+        return fail(err, errlen, WORTH_E_CORRUPT, "state is shorter than its header");
+    if (memcmp(mine, theirs, pw.len) != 0)
+        return fail(err, errlen, WORTH_E_MISMATCH, "state was saved with other parameters");
+    e->updates = ser_get_u64(&r);
+    e->guarded = ser_get_u64(&r);
+    e->td_last = ser_get_f64(&r);
+    e->td_ms = ser_get_f64(&r);
+    e->td_wsum = ser_get_f64(&r);
+    ser_get_f64v(&r, e->w, e->n);
+    e->ops->load(e, &r);
+    if (r.err || r.pos != r.len)
+        return fail(err, errlen, WORTH_E_CORRUPT, "state has the wrong length for its kind");
+    return 0;
+}
+
+int est_load(struct est *e, const uint8_t *buf, size_t len, char *err, size_t errlen)
+{
+    if (len < 40 + 4)
+        return fail(err, errlen, WORTH_E_CORRUPT, "state too short (%zu bytes)", len);
+    ser_r h = {buf, len, 0, 0};
+    uint32_t magic = ser_get_u32(&h), version = ser_get_u32(&h), kind = ser_get_u32(&h);
+    ser_get_u32(&h);
+    uint64_t n = ser_get_u64(&h), nsrc = ser_get_u64(&h);
+    if (magic != EST_MAGIC)
+        return fail(err, errlen, WORTH_E_CORRUPT, "not an estimator state (bad magic)");
+    ser_r t = {buf + len - 4, 4, 0, 0};
+    if (ser_get_u32(&t) != ser_crc32(buf, len - 4))
+        return fail(err, errlen, WORTH_E_CORRUPT, "estimator state fails its checksum");
+    if (version != EST_FORMAT_VERSION)
+        return fail(err, errlen, WORTH_E_CORRUPT, "state format version %u, this build reads %d",
+                    version, EST_FORMAT_VERSION);
+    if (kind != (uint32_t)e->p.kind)
+        return fail(err, errlen, WORTH_E_MISMATCH, "state is of kind %s, estimator is %s",
+                    kind < EST_KIND_COUNT ? kind_names[kind] : "?", kind_names[e->p.kind]);
+    if (n != e->n || nsrc != e->nsrc)
+        return fail(err, errlen, WORTH_E_MISMATCH,
+                    "state has %llu features and %llu sources, estimator %zu and %zu",
+                    (unsigned long long)n, (unsigned long long)nsrc, e->n, e->nsrc);
+
+    /* Keep a copy of the current state so that a failure leaves e unchanged. */
+    size_t blen = 0;
+    est_save(e, NULL, 0, &blen);
+    uint8_t *backup = mem_alloc(blen);
+    CHECK(est_save(e, backup, blen, &blen) == 0);
+    int rc = load_body(e, buf, len, err, errlen);
+    if (rc) {
+        est_reset(e);
+        CHECK(load_body(e, backup, blen, NULL, 0) == 0);
+    }
+    mem_free(backup);
+    return rc;
+}
+
+void est_put_opt(ser_w *w, const double *v, size_t n)
+{
+    ser_put_u32(w, v != NULL);
+    if (v)
+        ser_put_f64v(w, v, n);
+}
+
+void est_get_opt(ser_r *r, double **v, size_t n)
+{
+    uint32_t present = ser_get_u32(r);
+    if (r->err)
+        return;
+    if (present > 1) {
+        r->err = 1;
+        return;
+    }
+    if (!present) {
+        mem_free(*v);
+        *v = NULL;
+        return;
+    }
+    if (n * 8 > r->len - r->pos) { /* refuse before allocating for a lying length */
+        r->err = 1;
+        return;
+    }
+    if (!*v)
+        *v = mem_alloc(n * sizeof **v);
+    ser_get_f64v(r, *v, n);
+}

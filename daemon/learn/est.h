@@ -1,0 +1,170 @@
+/*
+ * est.h - linear value estimators behind one interface.
+ *
+ * An estimator holds weights w of a linear value function V(x) = w . phi(x)
+ * and updates them from transitions given in feature space: phi = phi(x),
+ * phi_next = phi(x_next), reward r and the discount g of that transition
+ * (gamma, or gamma_per_s^dt).  A terminal transition means V(x_next) = 0: its
+ * phi_next is ignored, and traces and buffers of its source are reset.
+ *
+ * Transitions come from up to `sources` independent streams (units of a fleet).
+ * Traces, n-step and Monte Carlo buffers are kept per source, so interleaved
+ * streams do not corrupt each other.  A source's buffers are allocated the
+ * first time it is seen; after that, est_observe allocates nothing.
+ *
+ * Not thread-safe: one thread updates an estimator.  est_value and est_sd are
+ * const and may run concurrently with each other but not with an update.
+ * Every estimator is deterministic: the same parameters, seed and transitions
+ * give bit-identical weights, and save -> load -> continue gives the same bits
+ * as never stopping.
+ */
+#ifndef WORTH_EST_H
+#define WORTH_EST_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+struct est;
+
+/* Version of the byte format written by est_save. */
+#define EST_FORMAT_VERSION 1
+/* Most sources one estimator keeps separate state for. */
+#define EST_MAX_SOURCES 1024
+
+enum est_kind {
+    EST_TD,        /* semi-gradient TD(0) */
+    EST_TD_N,      /* n-step semi-gradient TD */
+    EST_TD_LAMBDA, /* true online TD(lambda), dutch traces (van Seijen & Sutton 2014) */
+    EST_MC,        /* gradient Monte Carlo, episodic or truncated at a horizon */
+    EST_RLS_TD,    /* RLS-TD(lambda), instrumental-variable form, forgetting factor */
+    EST_LSTD,      /* batch LSTD(lambda) with ridge, LU solve */
+    EST_REPLAY,    /* semi-gradient TD over mini-batches from a bounded replay buffer */
+    EST_KIND_COUNT
+};
+
+enum est_guard {
+    EST_GUARD_REGULARISE, /* rls_td: regularised forgetting (Gunnarsson 1996); the default */
+    EST_GUARD_TRACE,      /* rls_td: forget only while trace(P) stays under trace_cap */
+    EST_GUARD_NONE        /* rls_td: plain exponential forgetting (winds up) */
+};
+
+/*
+ * Plain data: parameters of every kind; each kind reads its own fields.
+ * est_params_default() fills the documented defaults.
+ */
+typedef struct est_params_t {
+    enum est_kind kind;
+    double alpha;           /* step size, > 0 (td, td_n, td_lambda, mc, replay); 0.01 */
+    double init;            /* initial value of every weight; 0 */
+    double lambda;          /* trace decay in [0,1] (td_lambda 0.9, rls_td 0, lstd 0) */
+    unsigned nstep;         /* td_n: steps n >= 1; 4 */
+    unsigned horizon;       /* mc: 0 = episodic, else truncated return over H steps; 0 */
+    unsigned max_episode;   /* mc episodic: buffered steps per source before truncating; 100000 */
+    double forget;          /* rls_td: mu in (0,1]; lstd: decay of A and b in (0,1]; 1 */
+    double delta;           /* rls_td: P0 = delta * I, > 0; 100 */
+    enum est_guard guard;   /* rls_td wind-up guard when forget < 1; EST_GUARD_REGULARISE */
+    double trace_cap;       /* rls_td, guard trace: bound on trace(P), 0 = n * delta; 0 */
+    double ridge;           /* lstd: eps >= 0 added to A's diagonal at solve time; 1e-6 */
+    unsigned refit_every;   /* lstd: solve after this many transitions, >= 1; 100 */
+    unsigned capacity;      /* replay: buffer size in transitions, >= 1; 10000 */
+    unsigned batch;         /* replay: mini-batch size >= 1; 32 */
+    unsigned steps_per_obs; /* replay: background mini-batch steps per transition; 1 */
+    double decay;           /* replay: alpha_k = alpha / (1 + k / decay); 0 = constant; 0 */
+    double tol;             /* replay: converged when a pass changes |w| by < tol; 1e-4 */
+    uint64_t seed;          /* replay: RNG seed; 1 */
+} est_params_t;
+
+/* Plain data: counters and figures of one estimator. */
+typedef struct est_stats_t {
+    uint64_t updates; /* transitions observed */
+    uint64_t guarded; /* updates skipped or damped by a numerical guard */
+    uint64_t refits;  /* lstd: solves; replay: mini-batch steps */
+    double td_last;   /* last TD error r + g V(x') - V(x), weights before the update */
+    double td_rms;    /* RMS TD error, exponentially weighted over ~1000 transitions */
+    double trace_p;   /* rls_td: trace(P); otherwise 0 */
+} est_stats_t;
+
+/* Plain data: result of est_train. */
+typedef struct est_train_t {
+    unsigned passes; /* passes run (replay) or 1 (lstd refit) */
+    double change;   /* |w_after - w_before| / |w_before| of the last pass */
+    int converged;   /* 1 when change < tol */
+} est_train_t;
+
+/* Called after each training pass; ctx is borrowed. */
+typedef void (*est_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
+
+/* Lifecycle */
+
+/* Fills p with the defaults of kind. */
+void est_params_default(enum est_kind kind, est_params_t *p);
+/* Returns the wire name of kind ("td", "td_n", ...), or NULL. */
+const char *est_kind_name(enum est_kind kind);
+/* Returns the kind named name, or -1. */
+int est_kind_parse(const char *name);
+
+/*
+ * Builds an estimator for n features and `sources` source slots into *out
+ * (owned by the caller, free with est_free).  Returns 0, or WORTH_E_BAD_PARAM /
+ * WORTH_E_TOO_LARGE with a message in err; *out is untouched on error.
+ */
+int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, char *err,
+            size_t errlen);
+void est_free(struct est *e);
+/* Returns the estimator to its freshly built state. */
+void est_reset(struct est *e);
+
+/* Operate */
+
+/*
+ * Learns from one transition of source src (< sources).  phi and phi_next are
+ * n doubles (borrowed); phi_next may be NULL when terminal.  Returns 0, or
+ * WORTH_E_BAD_NUMBER / WORTH_E_BAD_PARAM (src or g out of range, g not in
+ * [0,1]) with the estimator unchanged.  Inputs are checked for finiteness.
+ */
+int est_observe(struct est *e, size_t src, const double *phi, double r, const double *phi_next,
+                double g, int terminal);
+
+/*
+ * Runs up to passes training passes: replay trains over its buffer and stops
+ * early once converged; lstd refits (passes ignored).  Other kinds return
+ * WORTH_E_UNSUPPORTED.  progress may be NULL.  Fills *rep.
+ */
+int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx,
+              est_train_t *rep);
+
+/* Query */
+
+/* Returns w . phi (phi: n doubles, borrowed). */
+double est_value(const struct est *e, const double *phi);
+/*
+ * Writes the standard deviation of the value at phi to *sd: rls_td only,
+ * sqrt(s2 * phi'P phi) with s2 the running residual variance.  Returns 0 or
+ * WORTH_E_UNSUPPORTED.
+ */
+int est_sd(const struct est *e, const double *phi, double *sd);
+/* Returns the n weights (borrowed, valid until the next update). */
+const double *est_weights(const struct est *e);
+size_t est_features(const struct est *e);
+const est_params_t *est_params(const struct est *e);
+void est_stats(const struct est *e, est_stats_t *out);
+
+/* Persistence */
+
+/*
+ * Serialises the whole state (weights, matrices, traces, buffers, RNG,
+ * counters) into buf (cap bytes, borrowed).  Writes the needed size to *len;
+ * returns 0, or WORTH_E_TOO_LARGE when cap is short (call with buf NULL to size).
+ * The bytes carry a header (format version, kind, sizes, parameters) and a
+ * CRC-32.
+ */
+int est_save(const struct est *e, uint8_t *buf, size_t cap, size_t *len);
+/*
+ * Restores the state written by est_save into e, built with the same
+ * parameters and sizes.  Returns 0; WORTH_E_CORRUPT (bad magic, version,
+ * length or checksum) or WORTH_E_MISMATCH (other kind, sizes or parameters),
+ * with a message in err and e unchanged.
+ */
+int est_load(struct est *e, const uint8_t *buf, size_t len, char *err, size_t errlen);
+
+#endif /* WORTH_EST_H */

@@ -1,0 +1,65 @@
+/*
+ * est_impl.h - what the estimator kinds share with est.c; not a public header.
+ *
+ * est.c validates every input, computes V(x) and V(x') with the weights before
+ * the update, keeps the common counters and the byte format's header and
+ * checksum; each kind (td.c, tdn.c, tdlambda.c, mc.c, rls.c, lstd.c,
+ * replay.c) supplies only its update rule and its own state.
+ */
+#ifndef WORTH_EST_IMPL_H
+#define WORTH_EST_IMPL_H
+
+#include "est.h"
+#include "ser.h"
+
+struct est_ops {
+    /* Allocates and initialises the kind's state in e->k; e->w is already set. */
+    void (*init)(struct est *e);
+    void (*free)(struct est *e);
+    /* Back to the state right after init (weights are reset by est.c). */
+    void (*reset)(struct est *e);
+    /*
+     * One transition; inputs are valid.  v = w.phi and vn = w.phi_next (0 when
+     * terminal) use the weights before this update.  Returns 1 when a
+     * numerical guard skipped or damped the update, else 0.
+     */
+    int (*observe)(struct est *e, size_t src, const double *phi, double r, const double *phin,
+                   double g, int terminal, double v, double vn);
+    /* Optional: NULL means unsupported. */
+    int (*sd)(const struct est *e, const double *phi, double *sd);
+    int (*train)(struct est *e, unsigned passes, est_progress_fn cb, void *ctx, est_train_t *rep);
+    /* Kind state after the common part; load may set r->err on bad data. */
+    void (*save)(const struct est *e, ser_w *w);
+    void (*load)(struct est *e, ser_r *r);
+    /* Optional: fills kind-specific stats (trace_p, refits). */
+    void (*stats)(const struct est *e, est_stats_t *s);
+};
+
+struct est {
+    est_params_t p;
+    const struct est_ops *ops;
+    size_t n;    /* features */
+    size_t nsrc; /* source slots */
+    double *w;   /* n weights */
+    uint64_t updates;
+    uint64_t guarded;
+    double td_last;
+    double td_ms;   /* exponentially weighted mean square of the TD error */
+    double td_wsum; /* its weight sum, for the start-up bias correction */
+    void *k;        /* kind state, owned */
+};
+
+extern const struct est_ops est_td_ops, est_tdn_ops, est_tdlambda_ops, est_mc_ops, est_rls_ops,
+    est_lstd_ops, est_replay_ops;
+
+/* Dot product of n doubles (BLAS ddot). */
+double est_dot(size_t n, const double *a, const double *b);
+/* y += a * x over n doubles (BLAS daxpy). */
+void est_axpy(size_t n, double a, const double *x, double *y);
+
+/* Writes a flag and, when present, n doubles of a lazily allocated per-source vector. */
+void est_put_opt(ser_w *w, const double *v, size_t n);
+/* Reads what est_put_opt wrote into *v, allocating it (n doubles) when present. */
+void est_get_opt(ser_r *r, double **v, size_t n);
+
+#endif /* WORTH_EST_IMPL_H */

@@ -1,0 +1,133 @@
+/*
+ * model.h - one value model: a feature map, a discount and several estimators
+ * fed from the same transitions.
+ *
+ * The daemon's unit of work.  model_observe validates a transition completely
+ * before anything is changed (so a rejected transition leaves the model
+ * bit-identical), evaluates phi(x) and phi(x_next) once into workspaces
+ * allocated at creation, and feeds every estimator.  Not thread-safe: one
+ * learner thread owns a model.  model_value is const and takes the caller's
+ * workspace, so queries on other threads only need a consistent copy.
+ */
+#ifndef WORTH_MODEL_H
+#define WORTH_MODEL_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "est.h"
+#include "feat.h"
+
+struct model;
+
+/* Longest estimator or source name, in bytes, without the NUL. */
+#define MODEL_NAME_MAX 63
+/* Most estimators one model runs side by side. */
+#define MODEL_MAX_EST 16
+/* Source slots when the spec gives none. */
+#define MODEL_DEFAULT_SOURCES 16
+/* Version of the byte format written by model_save. */
+#define MODEL_FORMAT_VERSION 1
+
+/* Plain data: a model's configuration.  Pointers are borrowed during model_new. */
+typedef struct model_spec_t {
+    feat_spec_t feat;
+    double gamma;            /* discount per step, in [0, 1] */
+    double gamma_per_s;      /* discount per second in (0, 1] for transitions with dt; 0 = none */
+    size_t n_est;            /* 1..MODEL_MAX_EST */
+    const est_params_t *est; /* n_est parameter sets */
+    const char *const *est_names; /* n_est unique names, 1..MODEL_NAME_MAX bytes */
+    size_t primary;               /* index of the primary estimator */
+    size_t max_sources;           /* source slots, 0 = MODEL_DEFAULT_SOURCES */
+} model_spec_t;
+
+/*
+ * Plain data: one transition as received.  Pointers are borrowed.  Set dt_s
+ * to NAN when the transition has no interval: 0 is a valid interval (g = 1
+ * with a per-second discount).  A terminal transition's x_next is ignored for
+ * learning, but when given it must still be well-formed: a malformed field is
+ * refused, never silently dropped.
+ */
+typedef struct model_obs_t {
+    const double *x;
+    size_t x_len;
+    double r;
+    const double *x_next; /* may be NULL when terminal */
+    size_t x_next_len;
+    int terminal;
+    const char *source; /* NULL: the default source */
+    double dt_s;        /* sample interval in seconds; NAN when absent */
+} model_obs_t;
+
+/* Plain data: model-wide counters. */
+typedef struct model_counts_t {
+    uint64_t applied; /* transitions applied */
+    uint64_t clipped; /* input components clipped to their declared range */
+    size_t sources;   /* source slots in use */
+} model_counts_t;
+
+/* Lifecycle */
+
+/*
+ * Builds a model into *out (owned, free with model_free).  Returns 0, or
+ * WORTH_E_BAD_PARAM / WORTH_E_TOO_LARGE with a message in err.
+ */
+int model_new(const model_spec_t *spec, struct model **out, char *err, size_t errlen);
+void model_free(struct model *m);
+/* Every estimator and counter back to its initial state; sources forgotten. */
+void model_reset(struct model *m);
+
+/* Operate */
+
+/*
+ * Checks t without changing anything.  Returns 0, WORTH_E_BAD_DIMENSION,
+ * WORTH_E_BAD_NUMBER, WORTH_E_BAD_PARAM or WORTH_E_TOO_MANY_SOURCES with a
+ * message in err.
+ */
+int model_check(const struct model *m, const model_obs_t *t, char *err, size_t errlen);
+/* model_check, then learns from t in every estimator.  Same returns. */
+int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errlen);
+/* Runs est_train on estimator i; returns as est_train, or WORTH_E_BAD_PARAM for a bad i. */
+int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
+                est_train_t *rep);
+
+/* Query */
+
+size_t model_dims(const struct model *m);
+size_t model_features(const struct model *m);
+size_t model_n_est(const struct model *m);
+size_t model_primary(const struct model *m);
+/* Returns the name of estimator i (borrowed). */
+const char *model_est_name(const struct model *m, size_t i);
+/* Returns the index of the estimator named name, or -1. */
+int model_est_find(const struct model *m, const char *name);
+/* Returns estimator i (borrowed; the model keeps ownership). */
+const struct est *model_est(const struct model *m, size_t i);
+const struct feat *model_feat(const struct model *m);
+void model_counts(const struct model *m, model_counts_t *out);
+/* Doubles of workspace model_value needs. */
+size_t model_work_size(const struct model *m);
+/*
+ * Evaluates x (len doubles) under every estimator: values[i] for estimator i
+ * (n_est doubles, caller's), sd[i] its standard deviation or NAN when it has
+ * none (may be NULL).  work: model_work_size doubles.  Returns 0,
+ * WORTH_E_BAD_DIMENSION or WORTH_E_BAD_NUMBER.
+ */
+int model_value(const struct model *m, const double *x, size_t len, double *values, double *sd,
+                double *work);
+
+/* Persistence */
+
+/*
+ * Serialises every estimator, the source table and the counters into buf
+ * (cap bytes); *len gets the size.  Returns 0 or WORTH_E_TOO_LARGE (call with
+ * buf NULL to size).  Carries a header and a CRC-32.
+ */
+int model_save(const struct model *m, uint8_t *buf, size_t cap, size_t *len);
+/*
+ * Restores what model_save wrote, into a model built from the same spec.
+ * Returns 0, WORTH_E_CORRUPT or WORTH_E_MISMATCH with m unchanged.
+ */
+int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_t errlen);
+
+#endif /* WORTH_MODEL_H */

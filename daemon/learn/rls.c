@@ -1,0 +1,255 @@
+/*
+ * rls.c - RLS-TD(lambda) with a forgetting factor (Bradtke & Barto 1996;
+ * Xu, He & Hu 2002), instrumental-variable form.
+ *
+ * With d = phi - g*phi' (phi' = 0 when terminal) and instrument z, the trace
+ * of the source (z = g_prev*lambda*z + phi):
+ *   k = P z / (mu + d'P z);  w += k (r - d'w);  P = (P - k d'P) / mu.
+ * This is Sherman-Morrison applied to A = sum z d' (+ I/delta), so with mu = 1
+ * and w0 = 0 the weights equal ridge LSTD(lambda) with eps = 1/delta after
+ * every step, and they converge to the TD fixed point, not to the
+ * Bellman-residual minimiser.  P is not symmetric: it is stored in full,
+ * row-major, and updated with dgemv, dgemv (transposed) and dger.
+ *
+ * Guards.
+ * 1. Wind-up.  With mu < 1, directions of P that the data does not excite grow
+ *    like mu^-t until they overflow.  Two remedies, chosen by `guard`:
+ *    - "regularise" (the default): regularised forgetting (Gunnarsson 1996,
+ *      "Combining tracking and regularization in recursive least squares
+ *      identification", IEEE CDC).  The information matrix R = P^-1 evolves
+ *      as R = mu R + (1-mu) R0 + z d' with R0 = I/delta, so the prior is never
+ *      forgotten and unexcited directions of P settle near delta instead of
+ *      growing, while excited directions still forget at rate mu (the
+ *      estimator keeps tracking).  (1-mu) R0 is full rank; it is spread over
+ *      the coordinates one per step, c = n(1-mu)/delta on e_i, i = t mod n,
+ *      each a rank-1 pseudo-measurement "w_i = init" applied by
+ *      Sherman-Morrison.  O(n^2) extra per step.
+ *    - "trace": forget only as far as trace(P) stays under trace_cap (default
+ *      n*delta, the prior's trace): mu_t = clamp(trace(P)/trace_cap, mu, 1).
+ *      Cheap, but once unexcited directions fill the cap it stops forgetting
+ *      everywhere, so tracking is lost; kept for comparison.
+ *    Neither acts when mu = 1, which keeps the LSTD identity exact.  Steps a
+ *    guard damps are counted as guarded.
+ * 2. Gain denominator.  The step is Sherman-Morrison on A + z d', valid for
+ *    any mu_t + d'P z != 0.  With the instrument (z != d) the denominator can
+ *    legitimately be negative (A passes through a singular matrix on its way
+ *    to the data's A), so a sign change is applied, not skipped: skipping it
+ *    would lose the transition and break the LSTD identity.  Only a
+ *    denominator within 1e-6*mu_t of zero (the update would be unbounded) or
+ *    not finite leaves w and P alone (the trace still advances) and is
+ *    counted as guarded.  The pseudo-measurement of the regularised guard has
+ *    the same check on 1 + c P_ii.
+ *
+ * Uncertainty: sd(x) = sqrt(s2 * phi'P phi), s2 the mu-weighted mean of the
+ * squared a-priori residual r - d'w (the TD error).  phi'P phi is clamped at 0
+ * because the instrumental P need not be positive definite.
+ *
+ * O(n^2) per transition, workspaces allocated at creation; owning thread only.
+ */
+#include <cblas.h>
+#include <math.h>
+#include <string.h>
+
+#include "est_impl.h"
+#include "mem.h"
+
+struct slot {
+    double *z;
+    double g_prev;
+};
+
+struct rls {
+    double *P;           /* n x n, row-major */
+    double *pz, *u, *d;  /* workspaces, n each */
+    double cap;          /* trace cap of the guard */
+    double s2_sum, s2_w; /* running residual variance: sum of mu-weighted e^2 and weights */
+    uint64_t reg_i;      /* regularised guard: next coordinate to regularise */
+    struct slot *s;      /* nsrc */
+};
+
+static void init_p(struct est *e, struct rls *m)
+{
+    size_t n = e->n;
+    memset(m->P, 0, n * n * sizeof *m->P);
+    for (size_t i = 0; i < n; i++)
+        m->P[i * n + i] = e->p.delta;
+}
+
+static void rls_init(struct est *e)
+{
+    size_t n = e->n;
+    struct rls *m = mem_calloc(1, sizeof *m);
+    m->P = mem_alloc(n * n * sizeof *m->P);
+    m->pz = mem_calloc(n, sizeof *m->pz);
+    m->u = mem_calloc(n, sizeof *m->u);
+    m->d = mem_calloc(n, sizeof *m->d);
+    m->cap = e->p.trace_cap > 0 ? e->p.trace_cap : (double)n * e->p.delta;
+    m->s = mem_calloc(e->nsrc, sizeof *m->s);
+    e->k = m;
+    init_p(e, m);
+}
+
+static void rls_reset(struct est *e)
+{
+    struct rls *m = e->k;
+    init_p(e, m);
+    m->s2_sum = m->s2_w = 0.0;
+    m->reg_i = 0;
+    for (size_t i = 0; i < e->nsrc; i++) {
+        mem_free(m->s[i].z);
+        memset(&m->s[i], 0, sizeof m->s[i]);
+    }
+}
+
+static void rls_free(struct est *e)
+{
+    rls_reset(e);
+    struct rls *m = e->k;
+    mem_free(m->P);
+    mem_free(m->pz);
+    mem_free(m->u);
+    mem_free(m->d);
+    mem_free(m->s);
+    mem_free(m);
+}
+
+static double trace(const double *P, size_t n)
+{
+    double t = 0.0;
+    for (size_t i = 0; i < n; i++)
+        t += P[i * n + i];
+    return t;
+}
+
+/*
+ * Regularised forgetting: one pseudo-measurement w_i = init with weight
+ * c = n(1-mu)/delta on coordinate i = t mod n.  Returns 1 when skipped.
+ */
+static int regularise(struct est *e, struct rls *m)
+{
+    size_t n = e->n, i = (size_t)(m->reg_i++ % n);
+    int ni = (int)n;
+    double c = (double)n * (1.0 - e->p.forget) / e->p.delta;
+    double den = 1.0 + c * m->P[i * n + i];
+    if (!(fabs(den) > 1e-6) || !isfinite(den))
+        return 1;
+    cblas_dcopy(ni, m->P + i, ni, m->pz, 1);   /* column i */
+    cblas_dcopy(ni, m->P + i * n, 1, m->u, 1); /* row i */
+    double gain = c / den;
+    est_axpy(n, gain * (e->p.init - e->w[i]), m->pz, e->w);
+    cblas_dger(CblasRowMajor, ni, ni, -gain, m->pz, 1, m->u, 1, m->P, ni);
+    return 0;
+}
+
+static int rls_observe(struct est *e, size_t src, const double *phi, double r, const double *phin,
+                       double g, int terminal, double v, double vn)
+{
+    struct rls *m = e->k;
+    struct slot *s = &m->s[src];
+    size_t n = e->n;
+    int ni = (int)n, guarded = 0;
+    double mu = e->p.forget;
+    if (!s->z)
+        s->z = mem_calloc(n, sizeof *s->z);
+
+    /* Instrument (eligibility trace) and regressor. */
+    double gl = s->g_prev * e->p.lambda;
+    for (size_t i = 0; i < n; i++)
+        s->z[i] = gl * s->z[i] + phi[i];
+    if (terminal)
+        memcpy(m->d, phi, n * sizeof *m->d);
+    else
+        for (size_t i = 0; i < n; i++)
+            m->d[i] = phi[i] - g * phin[i];
+
+    double mu_t = mu;
+    if (e->p.guard == EST_GUARD_TRACE && mu < 1.0) {
+        double q = trace(m->P, n) / m->cap;
+        mu_t = q > 1.0 ? 1.0 : (q > mu ? q : mu);
+        guarded = mu_t != mu;
+    }
+
+    cblas_dgemv(CblasRowMajor, CblasNoTrans, ni, ni, 1.0, m->P, ni, s->z, 1, 0.0, m->pz, 1);
+    double den = mu_t + est_dot(n, m->d, m->pz);
+    double err = r - (v - g * vn); /* r - d'w: the TD error under the current weights */
+    if (!(fabs(den) > 1e-6 * mu_t) || !isfinite(den)) {
+        guarded = 1;
+    } else {
+        cblas_dgemv(CblasRowMajor, CblasTrans, ni, ni, 1.0, m->P, ni, m->d, 1, 0.0, m->u, 1);
+        cblas_dscal(ni, 1.0 / den, m->pz, 1); /* pz is now the gain k */
+        est_axpy(n, err, m->pz, e->w);
+        if (mu_t != 1.0)
+            cblas_dscal(ni * ni, 1.0 / mu_t, m->P, 1);
+        cblas_dger(CblasRowMajor, ni, ni, -1.0 / mu_t, m->pz, 1, m->u, 1, m->P, ni);
+    }
+    if (e->p.guard == EST_GUARD_REGULARISE && mu < 1.0)
+        guarded |= regularise(e, m);
+    m->s2_sum = mu * m->s2_sum + err * err;
+    m->s2_w = mu * m->s2_w + 1.0;
+
+    if (terminal) {
+        memset(s->z, 0, n * sizeof *s->z);
+        s->g_prev = 0.0;
+    } else {
+        s->g_prev = g;
+    }
+    return guarded;
+}
+
+static int rls_sd(const struct est *e, const double *phi, double *sd)
+{
+    const struct rls *m = e->k;
+    size_t n = e->n;
+    double q = 0.0;
+    for (size_t i = 0; i < n; i++) {
+        if (phi[i] == 0.0)
+            continue;
+        q += phi[i] * est_dot(n, m->P + i * n, phi);
+    }
+    double s2 = m->s2_w > 0 ? m->s2_sum / m->s2_w : 0.0;
+    *sd = sqrt(s2 * (q > 0 ? q : 0.0));
+    return 0;
+}
+
+static void rls_stats(const struct est *e, est_stats_t *st)
+{
+    const struct rls *m = e->k;
+    st->trace_p = trace(m->P, e->n);
+}
+
+static void rls_save(const struct est *e, ser_w *w)
+{
+    const struct rls *m = e->k;
+    ser_put_f64v(w, m->P, e->n * e->n);
+    ser_put_f64(w, m->s2_sum);
+    ser_put_f64(w, m->s2_w);
+    ser_put_u64(w, m->reg_i);
+    for (size_t i = 0; i < e->nsrc; i++) {
+        est_put_opt(w, m->s[i].z, e->n);
+        ser_put_f64(w, m->s[i].g_prev);
+    }
+}
+
+static void rls_load(struct est *e, ser_r *r)
+{
+    struct rls *m = e->k;
+    ser_get_f64v(r, m->P, e->n * e->n);
+    m->s2_sum = ser_get_f64(r);
+    m->s2_w = ser_get_f64(r);
+    m->reg_i = ser_get_u64(r);
+    for (size_t i = 0; i < e->nsrc && !r->err; i++) {
+        est_get_opt(r, &m->s[i].z, e->n);
+        m->s[i].g_prev = ser_get_f64(r);
+    }
+}
+
+const struct est_ops est_rls_ops = {
+    .init = rls_init,
+    .free = rls_free,
+    .reset = rls_reset,
+    .observe = rls_observe,
+    .sd = rls_sd,
+    .save = rls_save,
+    .load = rls_load,
+    .stats = rls_stats,
+};
