@@ -284,6 +284,24 @@ void est_stats(const struct est *e, est_stats_t *out)
         e->ops->stats(e, out);
 }
 
+size_t est_snap_size(const struct est *e)
+{
+    return e->n + (e->ops->snap_size ? e->ops->snap_size(e) : 0);
+}
+
+void est_snap(const struct est *e, double *out)
+{
+    memcpy(out, e->w, e->n * sizeof *out);
+    if (e->ops->snap)
+        e->ops->snap(e, out + e->n);
+}
+
+double est_snap_value(const struct est *e, const double *snap, const double *phi, double *sd)
+{
+    *sd = e->ops->snap_sd ? e->ops->snap_sd(e, snap + e->n, phi) : NAN;
+    return est_dot(e->n, snap, phi);
+}
+
 /* Parameters go into the header so that a checkpoint cannot be loaded into a differently
  * configured estimator. */
 static void put_params(ser_w *w, const est_params_t *p)

@@ -149,6 +149,19 @@ size_t est_features(const struct est *e);
 const est_params_t *est_params(const struct est *e);
 void est_stats(const struct est *e, est_stats_t *out);
 
+/* Published snapshots: what a query thread needs, copied out by the owner */
+
+/* Returns the doubles a value snapshot of e takes: w, and for rls_td s2 and P. */
+size_t est_snap_size(const struct est *e);
+/* Writes e's value snapshot (est_snap_size doubles) into out (borrowed). */
+void est_snap(const struct est *e, double *out);
+/*
+ * Returns the value of phi under snap, a snapshot taken from e, and writes its
+ * sd (NAN when the kind has none) to *sd.  Reads only e's immutable fields
+ * (kind, sizes), so it may run while e's owner updates e.
+ */
+double est_snap_value(const struct est *e, const double *snap, const double *phi, double *sd);
+
 /* Persistence */
 
 /*

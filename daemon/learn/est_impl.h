@@ -31,6 +31,10 @@ struct est_ops {
     /* Kind state after the common part; load may set r->err on bad data. */
     void (*save)(const struct est *e, ser_w *w);
     void (*load)(struct est *e, ser_r *r);
+    /* Optional: extra snapshot doubles after w, their writer and the sd they give. */
+    size_t (*snap_size)(const struct est *e);
+    void (*snap)(const struct est *e, double *out);
+    double (*snap_sd)(const struct est *e, const double *extra, const double *phi);
     /* Optional: fills kind-specific stats (trace_p, refits). */
     void (*stats)(const struct est *e, est_stats_t *s);
 };

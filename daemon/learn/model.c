@@ -238,6 +238,11 @@ size_t model_primary(const struct model *m)
     return m->primary;
 }
 
+size_t model_max_sources(const struct model *m)
+{
+    return m->max_sources;
+}
+
 const char *model_est_name(const struct model *m, size_t i)
 {
     return i < m->n_est ? m->names[i] : NULL;
@@ -286,6 +291,40 @@ int model_value(const struct model *m, const double *x, size_t len, double *valu
         values[i] = est_value(m->est[i], phi);
         if (sd && est_sd(m->est[i], phi, &sd[i]) != 0)
             sd[i] = NAN;
+    }
+    return 0;
+}
+
+size_t model_snap_size(const struct model *m)
+{
+    size_t total = 0;
+    for (size_t i = 0; i < m->n_est; i++)
+        total += est_snap_size(m->est[i]);
+    return total;
+}
+
+void model_snap(const struct model *m, double *out)
+{
+    for (size_t i = 0; i < m->n_est; i++) {
+        est_snap(m->est[i], out);
+        out += est_snap_size(m->est[i]);
+    }
+}
+
+int model_snap_value(const struct model *m, const double *snap, const double *x, size_t len,
+                     double *values, double *sd, double *work)
+{
+    if (len != m->dims)
+        return WORTH_E_BAD_DIMENSION;
+    if (!finite_vec(x, len))
+        return WORTH_E_BAD_NUMBER;
+    double *phi = work, s;
+    feat_eval(m->feat, x, phi, work + m->n);
+    for (size_t i = 0; i < m->n_est; i++) {
+        values[i] = est_snap_value(m->est[i], snap, phi, &s);
+        if (sd)
+            sd[i] = s;
+        snap += est_snap_size(m->est[i]);
     }
     return 0;
 }

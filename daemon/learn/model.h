@@ -97,6 +97,8 @@ size_t model_dims(const struct model *m);
 size_t model_features(const struct model *m);
 size_t model_n_est(const struct model *m);
 size_t model_primary(const struct model *m);
+/* Returns the number of source slots. */
+size_t model_max_sources(const struct model *m);
 /* Returns the name of estimator i (borrowed). */
 const char *model_est_name(const struct model *m, size_t i);
 /* Returns the index of the estimator named name, or -1. */
@@ -115,6 +117,20 @@ size_t model_work_size(const struct model *m);
  */
 int model_value(const struct model *m, const double *x, size_t len, double *values, double *sd,
                 double *work);
+
+/* Published snapshots (see est_snap) */
+
+/* Returns the doubles a snapshot of every estimator's query state takes. */
+size_t model_snap_size(const struct model *m);
+/* Writes that snapshot into out (borrowed). Owner thread only. */
+void model_snap(const struct model *m, double *out);
+/*
+ * model_value, answered from snap (a model_snap of m) instead of the live
+ * estimators.  Reads only m's immutable parts (feature map, sizes), so a query
+ * thread may call it while the learner updates m.
+ */
+int model_snap_value(const struct model *m, const double *snap, const double *x, size_t len,
+                     double *values, double *sd, double *work);
 
 /* Persistence */
 

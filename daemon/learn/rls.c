@@ -196,19 +196,46 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     return guarded;
 }
 
-static int rls_sd(const struct est *e, const double *phi, double *sd)
+/* sd from a residual variance s2 and a row-major P: sqrt(s2 * max(0, phi'P phi)). */
+static double sd_of(size_t n, double s2, const double *P, const double *phi)
 {
-    const struct rls *m = e->k;
-    size_t n = e->n;
     double q = 0.0;
     for (size_t i = 0; i < n; i++) {
         if (phi[i] == 0.0)
             continue;
-        q += phi[i] * est_dot(n, m->P + i * n, phi);
+        q += phi[i] * est_dot(n, P + i * n, phi);
     }
-    double s2 = m->s2_w > 0 ? m->s2_sum / m->s2_w : 0.0;
-    *sd = sqrt(s2 * (q > 0 ? q : 0.0));
+    return sqrt(s2 * (q > 0 ? q : 0.0));
+}
+
+static double s2_of(const struct rls *m)
+{
+    return m->s2_w > 0 ? m->s2_sum / m->s2_w : 0.0;
+}
+
+static int rls_sd(const struct est *e, const double *phi, double *sd)
+{
+    const struct rls *m = e->k;
+    *sd = sd_of(e->n, s2_of(m), m->P, phi);
     return 0;
+}
+
+/* Snapshot after w: s2, then P. */
+static size_t rls_snap_size(const struct est *e)
+{
+    return 1 + e->n * e->n;
+}
+
+static void rls_snap(const struct est *e, double *out)
+{
+    const struct rls *m = e->k;
+    out[0] = s2_of(m);
+    memcpy(out + 1, m->P, e->n * e->n * sizeof *out);
+}
+
+static double rls_snap_sd(const struct est *e, const double *extra, const double *phi)
+{
+    return sd_of(e->n, extra[0], extra + 1, phi);
 }
 
 static void rls_stats(const struct est *e, est_stats_t *st)
@@ -249,6 +276,9 @@ const struct est_ops est_rls_ops = {
     .reset = rls_reset,
     .observe = rls_observe,
     .sd = rls_sd,
+    .snap_size = rls_snap_size,
+    .snap = rls_snap,
+    .snap_sd = rls_snap_sd,
     .save = rls_save,
     .load = rls_load,
     .stats = rls_stats,

@@ -870,10 +870,41 @@ static void mismatched_state_is_refused(void **state)
     model_free(a);
 }
 
+/* A published snapshot answers exactly as the live estimators did when it was taken. */
+static void snapshot_answers_like_the_model(void **state)
+{
+    (void)state;
+    struct model *m = build_std();
+    feed(m, 0, 40);
+    double *snap = malloc(model_snap_size(m) * sizeof *snap);
+    double *work = malloc(model_work_size(m) * sizeof *work);
+    model_snap(m, snap);
+    double x[2] = {0.3, 4.0}, live[2], live_sd[2], from[2], from_sd[2];
+    assert_int_equal(model_value(m, x, 2, live, live_sd, work), 0);
+    assert_int_equal(model_snap_value(m, snap, x, 2, from, from_sd, work), 0);
+    for (int i = 0; i < 2; i++) {
+        assert_memory_equal(&live[i], &from[i], sizeof(double));
+        if (isnan(live_sd[i]))
+            assert_true(isnan(from_sd[i]));
+        else
+            assert_near(from_sd[i], live_sd[i], 0);
+    }
+    /* Learning more changes the model, not the snapshot. */
+    feed(m, 40, 40);
+    double again[2];
+    assert_int_equal(model_snap_value(m, snap, x, 2, again, from_sd, work), 0);
+    assert_memory_equal(again, from, sizeof again);
+    assert_int_equal(model_snap_value(m, snap, x, 1, again, NULL, work), WORTH_E_BAD_DIMENSION);
+    free(snap);
+    free(work);
+    model_free(m);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(built_model_answers_queries),
+        cmocka_unit_test(snapshot_answers_like_the_model),
         cmocka_unit_test(bad_transitions_leave_the_model_unchanged),
         cmocka_unit_test(model_check_accepts_without_changing),
         cmocka_unit_test(bad_specs_are_refused),
