@@ -1,0 +1,46 @@
+/*
+ * spec.h - a model.create request turned into a model_spec_t.
+ *
+ * Parsed on the loop thread from the request's cJSON tree.  The result owns
+ * every array the model_spec_t points into, and a canonical JSON text of the
+ * spec with every default filled in (for model.get and, later, for the
+ * models table).  Nothing here allocates from the request's cJSON arena: the
+ * result outlives the request.
+ */
+#ifndef WORTH_SPEC_H
+#define WORTH_SPEC_H
+
+#include <cjson/cJSON.h>
+#include <stddef.h>
+
+#include "model.h"
+
+/* Plain data, owned by the caller of spec_parse; free with spec_free. */
+typedef struct spec_t {
+    char name[MODEL_NAME_MAX + 1]; /* the model's name */
+    model_spec_t m;                /* points into the arrays below */
+    double *lo, *hi;               /* dims each */
+    feat_basis_t *bases;           /* m.feat.nbases */
+    est_params_t *est;             /* m.n_est */
+    char (*est_names)[MODEL_NAME_MAX + 1];
+    const char **est_name_ptrs; /* m.est_names points here */
+    char *canonical;            /* owned JSON text of the spec, defaults filled in */
+} spec_t;
+
+/*
+ * Parses the fields of a model.create request (req, borrowed: the whole
+ * request object; "op" and "id" are ignored) into *out (owned by the caller,
+ * free with spec_free).  Checks types and ranges that model_new would not
+ * report clearly, unknown fields in bases and estimators, and names.  Returns
+ * 0 or a negative worth error (bad_request, bad_number, bad_param,
+ * bad_dimension, too_large) with a message in err; *out is untouched on error.
+ * model_new may still refuse the spec (too_large feature counts): its error
+ * is the caller's to report.
+ */
+int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen);
+void spec_free(spec_t *s);
+
+/* Returns 1 when name is a valid model name: 1..63 bytes of [A-Za-z0-9._-]. */
+int spec_name_ok(const char *name);
+
+#endif /* WORTH_SPEC_H */
