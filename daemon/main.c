@@ -1,0 +1,176 @@
+/*
+ * main.c - worthd: options, signals, start-up checks, then the loop.
+ *
+ * Runs on the main thread, which becomes the loop thread.  Reads the token
+ * file (never logging the token), ignores SIGPIPE (a client that goes away
+ * must not kill the daemon), and pins OpenBLAS to one thread per learner.
+ */
+#include <errno.h>
+#include <getopt.h>
+#include <signal.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+
+#include "mem.h"
+#include "say.h"
+#include "server.h"
+
+#ifndef WORTH_VERSION
+#define WORTH_VERSION "0.0.0"
+#endif
+
+/* From OpenBLAS; declared here to keep cblas.h out of the daemon shell. */
+void openblas_set_num_threads(int n);
+
+static const char usage[] =
+    "usage: worthd [options]\n"
+    "\n"
+    "Learns the value of a running policy from the transitions a plant gateway\n"
+    "sends, and answers value queries (see schema/protocol.md).\n"
+    "\n"
+    "options:\n"
+    "  --socket PATH       Unix socket to listen on (default ./worthd.sock, mode 0660)\n"
+    "  --listen HOST:PORT  also listen on TCP; a non-loopback address needs --token-file\n"
+    "  --token-file FILE   TCP clients must send {\"op\":\"auth\",\"token\":...} first\n"
+    "  --log-level LEVEL   error, warn, info (default) or debug; logs go to stderr\n"
+    "  --max-line BYTES    longest request line (default 1048576)\n"
+    "  --max-batch N       most transitions in one batch or bulk (default 65536)\n"
+    "  --queue N           records each model's queue holds (default 262144, >= max-batch)\n"
+    "  --max-models N      most models one daemon holds (default 256)\n"
+    "  --help              this text\n"
+    "  --version           print the version\n"
+    "\n"
+    "Estimates are advisory: never use them in a safety function.\n";
+
+/* Parses a positive integer option; exits with status 2 on a bad value. */
+static size_t parse_size(const char *name, const char *v, size_t lo, size_t hi)
+{
+    char *end;
+    errno = 0;
+    unsigned long long n = strtoull(v, &end, 10);
+    if (errno || *end || !*v || v[0] == '-' || n < lo || n > hi) {
+        fprintf(stderr, "worthd: --%s must be an integer %zu..%zu, not \"%s\"\n", name, lo, hi, v);
+        exit(2);
+    }
+    return (size_t)n;
+}
+
+/* Reads the token from path (trailing whitespace removed); exits with status 2 on failure. */
+static char *read_token(const char *path)
+{
+    FILE *f = fopen(path, "r");
+    if (!f) {
+        fprintf(stderr, "worthd: cannot read --token-file %s: %s\n", path, strerror(errno));
+        exit(2);
+    }
+    char buf[1024];
+    size_t n = fread(buf, 1, sizeof buf - 1, f);
+    int big = !feof(f);
+    fclose(f);
+    buf[n] = 0;
+    while (n > 0 &&
+           (buf[n - 1] == '\n' || buf[n - 1] == '\r' || buf[n - 1] == ' ' || buf[n - 1] == '\t'))
+        buf[--n] = 0;
+    if (big || n < 8) {
+        fprintf(stderr, "worthd: --token-file %s must hold a token of 8..1000 bytes\n", path);
+        exit(2);
+    }
+    struct stat st;
+    if (stat(path, &st) == 0 && (st.st_mode & 0077))
+        fprintf(stderr, "worthd: warning: --token-file %s is readable by group or others\n", path);
+    return mem_strdup(buf);
+}
+
+int main(int argc, char **argv)
+{
+    server_opts_t o = {
+        .socket_path = "./worthd.sock",
+        .listen = NULL,
+        .token = NULL,
+        .max_line = 1u << 20,
+        .max_batch = 65536,
+        .queue = 262144,
+        .max_models = 256,
+    };
+    int queue_set = 0;
+    static const struct option longopts[] = {
+        {"socket", required_argument, NULL, 's'},
+        {"listen", required_argument, NULL, 'l'},
+        {"token-file", required_argument, NULL, 't'},
+        {"log-level", required_argument, NULL, 'v'},
+        {"max-line", required_argument, NULL, 'L'},
+        {"max-batch", required_argument, NULL, 'b'},
+        {"queue", required_argument, NULL, 'q'},
+        {"max-models", required_argument, NULL, 'm'},
+        {"help", no_argument, NULL, 'h'},
+        {"version", no_argument, NULL, 'V'},
+        {NULL, 0, NULL, 0},
+    };
+    char *token = NULL;
+    int c;
+    while ((c = getopt_long(argc, argv, "", longopts, NULL)) != -1) {
+        switch (c) {
+        case 's':
+            o.socket_path = optarg;
+            break;
+        case 'l':
+            o.listen = optarg;
+            break;
+        case 't':
+            token = read_token(optarg);
+            o.token = token;
+            break;
+        case 'v': {
+            int lv = say_parse_level(optarg);
+            if (lv < 0) {
+                fprintf(stderr, "worthd: --log-level must be error, warn, info or debug\n");
+                return 2;
+            }
+            say_set_level((enum say_level)lv);
+            break;
+        }
+        case 'L':
+            o.max_line = parse_size("max-line", optarg, 256, 1u << 30);
+            break;
+        case 'b':
+            o.max_batch = parse_size("max-batch", optarg, 1, 1u << 24);
+            break;
+        case 'q':
+            o.queue = parse_size("queue", optarg, 1, 1u << 26);
+            queue_set = 1;
+            break;
+        case 'm':
+            o.max_models = parse_size("max-models", optarg, 1, 65536);
+            break;
+        case 'h':
+            fputs(usage, stdout);
+            return 0;
+        case 'V':
+            printf("worthd %s\n", WORTH_VERSION);
+            return 0;
+        default:
+            fputs(usage, stderr);
+            return 2;
+        }
+    }
+    if (optind < argc) {
+        fprintf(stderr, "worthd: unexpected argument \"%s\"\n%s", argv[optind], usage);
+        return 2;
+    }
+    if (o.queue < o.max_batch) {
+        if (queue_set) {
+            fprintf(stderr, "worthd: --queue (%zu) must be at least --max-batch (%zu)\n", o.queue,
+                    o.max_batch);
+            return 2;
+        }
+        o.queue = o.max_batch;
+    }
+    signal(SIGPIPE, SIG_IGN);
+    openblas_set_num_threads(1);
+    say_info("worthd %s starting", WORTH_VERSION);
+    int status = server_run(&o);
+    mem_free(token);
+    return status;
+}

@@ -1,0 +1,661 @@
+/*
+ * server.c - worthd's libuv loop: listeners, connections, framing, wake-ups.
+ *
+ * The loop thread owns every handle here.  It splits each connection's input
+ * into lines of at most max_line bytes and gives them to the protocol layer,
+ * at most LINES_PER_PUMP per turn (the rest wait for the idle handle, so one
+ * busy client cannot starve the others).  Replies are written at once with
+ * uv_try_write; only what the socket does not take is copied and queued.
+ *
+ * A connection stops reading while: its unsent replies exceed WRITE_HIGH
+ * (until they drain to WRITE_LOW), its request is parked for queue space,
+ * it waits for a learner's reply, or it has unhandled lines in the backlog.
+ * Learners report through one uv_async handle (coalescing, so every wake-up
+ * drains the whole outbox and retries every parked connection).
+ *
+ * Invariants.
+ * 1. A connection is freed only in its uv_close callback.
+ * 2. A line is consumed from the input buffer only when the protocol has
+ *    handled it (not when it parked it).
+ * 3. Bytes after a bulk header belong to the bulk payload until it is
+ *    complete; a payload cut short by EOF applies nothing.
+ * It must never do disk I/O or O(n^2) work per transition.
+ */
+#include "server.h"
+
+#include <arpa/inet.h>
+#include <errno.h>
+#include <netinet/in.h>
+#include <pthread.h>
+#include <signal.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/socket.h>
+#include <sys/stat.h>
+#include <sys/un.h>
+#include <unistd.h>
+#include <uv.h>
+
+#include "arena.h"
+#include "mem.h"
+#include "proto.h"
+#include "say.h"
+
+/* Lines handled per connection before yielding to others. */
+#define LINES_PER_PUMP 64
+/* Stop reading from a client whose unsent replies exceed this; resume below WRITE_LOW. */
+#define WRITE_HIGH (4u << 20)
+#define WRITE_LOW  (1u << 20)
+/* Input buffer: initial size and read size. */
+#define IN_START   65536
+#define READ_CHUNK 65536
+
+struct conn {
+    union {
+        uv_handle_t h;
+        uv_stream_t s;
+        uv_pipe_t pipe;
+        uv_tcp_t tcp;
+    } u;
+    struct server *srv;
+    uint64_t id;
+    struct conn *prev, *next; /* every live connection */
+    char *in;
+    size_t in_len, in_off, in_cap;
+    unsigned char *bulk;
+    size_t bulk_need, bulk_have, bulk_cap;
+    int in_bulk;
+    int reading, waiting, parked, backlog, eof, closing, close_after;
+    size_t unsent; /* bytes queued in uv_write requests */
+    proto_conn_t pc;
+};
+
+struct wreq {
+    uv_write_t req;
+    struct conn *c;
+    size_t len;
+    char data[];
+};
+
+struct server {
+    const server_opts_t *o;
+    uv_loop_t loop;
+    uv_pipe_t unix_listener;
+    uv_tcp_t tcp_listener;
+    int have_unix, have_tcp;
+    uv_signal_t sigint, sigterm;
+    uv_async_t wake;
+    uv_idle_t idle;
+    int idle_on;
+    struct conn *conns;
+    uint64_t next_id;
+    size_t n_conns;
+    struct proto *proto;
+    int stopping;
+
+    /* Outbox: learner events, filled by learner threads under mu. */
+    pthread_mutex_t mu;
+    learner_event_t *events;
+    size_t n_events, cap_events;
+    learner_event_t *draining; /* loop-side copy */
+    size_t cap_draining;
+};
+
+static void pump(struct conn *c);
+static void update_reading(struct conn *c);
+static void on_idle(uv_idle_t *h);
+
+/* ---- connection helpers used by the protocol -------------------------------------------- */
+
+uint64_t conn_id(const struct conn *c)
+{
+    return c->id;
+}
+
+struct proto_conn *conn_proto(struct conn *c)
+{
+    return &c->pc;
+}
+
+struct conn *server_conn(struct server *s, uint64_t id)
+{
+    for (struct conn *c = s->conns; c; c = c->next)
+        if (c->id == id && !c->closing)
+            return c;
+    return NULL;
+}
+
+static void on_close(uv_handle_t *h)
+{
+    struct conn *c = h->data;
+    struct server *s = c->srv;
+    if (c->prev)
+        c->prev->next = c->next;
+    else
+        s->conns = c->next;
+    if (c->next)
+        c->next->prev = c->prev;
+    s->n_conns--;
+    say_debug("connection %llu closed", (unsigned long long)c->id);
+    mem_free(c->in);
+    mem_free(c->bulk);
+    mem_free(c);
+}
+
+static void conn_close(struct conn *c)
+{
+    if (c->closing)
+        return;
+    c->closing = 1;
+    if (c->reading)
+        uv_read_stop(&c->u.s);
+    c->reading = 0;
+    uv_close(&c->u.h, on_close);
+}
+
+static void on_write(uv_write_t *req, int status)
+{
+    struct wreq *w = (struct wreq *)req;
+    struct conn *c = w->c;
+    c->unsent -= w->len;
+    mem_free(w);
+    if (status < 0 && status != UV_ECANCELED) {
+        say_debug("connection %llu: write failed: %s", (unsigned long long)c->id,
+                  uv_strerror(status));
+        conn_close(c);
+        return;
+    }
+    if (c->closing)
+        return;
+    if (c->close_after && c->unsent == 0) {
+        conn_close(c);
+        return;
+    }
+    if (c->unsent < WRITE_LOW)
+        update_reading(c);
+}
+
+void conn_send(struct conn *c, const char *buf, size_t len)
+{
+    if (c->closing)
+        return;
+    size_t done = 0;
+    if (c->unsent == 0) {
+        uv_buf_t b = uv_buf_init((char *)buf, (unsigned)len);
+        int n = uv_try_write(&c->u.s, &b, 1);
+        if (n > 0)
+            done = (size_t)n;
+        else if (n < 0 && n != UV_EAGAIN) {
+            say_debug("connection %llu: write failed: %s", (unsigned long long)c->id,
+                      uv_strerror(n));
+            conn_close(c);
+            return;
+        }
+    }
+    if (done == len)
+        return;
+    size_t rest = len - done;
+    struct wreq *w = mem_alloc(sizeof *w + rest);
+    w->c = c;
+    w->len = rest;
+    memcpy(w->data, buf + done, rest);
+    uv_buf_t b = uv_buf_init(w->data, (unsigned)rest);
+    int rc = uv_write(&w->req, &c->u.s, &b, 1, on_write);
+    if (rc < 0) {
+        mem_free(w);
+        conn_close(c);
+        return;
+    }
+    c->unsent += rest;
+    if (c->unsent > WRITE_HIGH)
+        update_reading(c);
+}
+
+void conn_close_after_reply(struct conn *c)
+{
+    c->close_after = 1;
+    if (c->unsent == 0)
+        conn_close(c);
+    else
+        update_reading(c);
+}
+
+void conn_expect_bulk(struct conn *c, size_t nbytes)
+{
+    c->in_bulk = 1;
+    c->bulk_need = nbytes;
+    c->bulk_have = 0;
+    if (c->bulk_cap < nbytes) {
+        mem_free(c->bulk);
+        c->bulk = mem_alloc(nbytes);
+        c->bulk_cap = nbytes;
+    }
+}
+
+void conn_wait(struct conn *c)
+{
+    c->waiting = 1;
+}
+
+void conn_resume(struct conn *c)
+{
+    c->waiting = 0;
+    pump(c);
+}
+
+/* ---- reading and framing ----------------------------------------------------------------- */
+
+static void on_alloc(uv_handle_t *h, size_t suggested, uv_buf_t *buf)
+{
+    (void)suggested;
+    struct conn *c = h->data;
+    if (c->in_off > 0 && (c->in_off == c->in_len || c->in_cap - c->in_len < READ_CHUNK)) {
+        memmove(c->in, c->in + c->in_off, c->in_len - c->in_off);
+        c->in_len -= c->in_off;
+        c->in_off = 0;
+    }
+    size_t limit = c->srv->o->max_line + READ_CHUNK + 2;
+    if (c->in_cap - c->in_len < READ_CHUNK && c->in_cap < limit) {
+        size_t cap = c->in_cap * 2;
+        if (cap > limit)
+            cap = limit;
+        c->in = mem_realloc(c->in, cap);
+        c->in_cap = cap;
+    }
+    size_t room = c->in_cap - c->in_len;
+    *buf = uv_buf_init(c->in + c->in_len, (unsigned)(room > READ_CHUNK ? READ_CHUNK : room));
+}
+
+static void on_read(uv_stream_t *st, ssize_t n, const uv_buf_t *buf)
+{
+    (void)buf;
+    struct conn *c = st->data;
+    if (n > 0) {
+        c->in_len += (size_t)n;
+    } else if (n < 0) {
+        if (n != UV_EOF)
+            say_debug("connection %llu: read: %s", (unsigned long long)c->id, uv_strerror((int)n));
+        c->eof = 1;
+        uv_read_stop(st);
+        c->reading = 0;
+    }
+    pump(c);
+}
+
+static void update_reading(struct conn *c)
+{
+    struct server *s = c->srv;
+    int want = !c->closing && !c->close_after && !c->eof && !c->waiting && !c->parked &&
+               !c->backlog && !s->stopping && c->unsent < WRITE_HIGH;
+    /* A full input buffer without a complete line is handled by pump (line_too_long). */
+    if (want && !c->reading) {
+        if (uv_read_start(&c->u.s, on_alloc, on_read) == 0)
+            c->reading = 1;
+    } else if (!want && c->reading) {
+        uv_read_stop(&c->u.s);
+        c->reading = 0;
+    }
+}
+
+static void pump(struct conn *c)
+{
+    struct server *s = c->srv;
+    int lines = 0;
+    c->backlog = 0;
+    while (!c->closing && !c->close_after && !c->waiting && !c->parked) {
+        if (c->in_bulk) {
+            size_t take = c->bulk_need - c->bulk_have, avail = c->in_len - c->in_off;
+            if (take > avail)
+                take = avail;
+            memcpy(c->bulk + c->bulk_have, c->in + c->in_off, take);
+            c->bulk_have += take;
+            c->in_off += take;
+            if (c->bulk_have < c->bulk_need) {
+                if (c->eof) {
+                    c->in_bulk = 0;
+                    proto_bulk_truncated(s->proto, c, c->bulk_have);
+                    conn_close_after_reply(c);
+                }
+                break;
+            }
+            if (proto_bulk(s->proto, c, c->bulk, c->bulk_need) == PROTO_PARK) {
+                c->parked = 1;
+                break;
+            }
+            c->in_bulk = 0;
+            continue;
+        }
+        char *start = c->in + c->in_off;
+        size_t avail = c->in_len - c->in_off;
+        char *nl = memchr(start, '\n', avail);
+        size_t len = nl ? (size_t)(nl - start) : avail;
+        if (len > s->o->max_line) {
+            proto_line_too_long(s->proto, c);
+            conn_close_after_reply(c);
+            break;
+        }
+        if (!nl && !(c->eof && avail > 0))
+            break; /* wait for the rest of the line */
+        size_t eaten = nl ? len + 1 : len;
+        if (len > 0 && start[len - 1] == '\r')
+            len--;
+        int blank = 1;
+        for (size_t i = 0; i < len && blank; i++)
+            blank = start[i] == ' ' || start[i] == '\t';
+        if (!blank && proto_line(s->proto, c, start, len) == PROTO_PARK) {
+            c->parked = 1;
+            break;
+        }
+        c->in_off += eaten;
+        if (++lines >= LINES_PER_PUMP) {
+            c->backlog = 1;
+            break;
+        }
+    }
+    if (c->eof && !c->closing && !c->close_after && !c->waiting && !c->parked && !c->backlog &&
+        !c->in_bulk)
+        conn_close_after_reply(c); /* the client finished: close once replies are out */
+    if (c->backlog && !s->idle_on) {
+        uv_idle_start(&s->idle, on_idle);
+        s->idle_on = 1;
+    }
+    update_reading(c);
+}
+
+static void on_idle(uv_idle_t *h)
+{
+    struct server *s = h->data;
+    int more = 0;
+    for (struct conn *c = s->conns; c; c = c->next)
+        if (c->backlog && !c->closing) {
+            pump(c);
+            more |= c->backlog;
+        }
+    if (!more) {
+        uv_idle_stop(&s->idle);
+        s->idle_on = 0;
+    }
+}
+
+/* ---- learner wake-ups -------------------------------------------------------------------- */
+
+static void post_event(void *ctx, const learner_event_t *ev)
+{
+    struct server *s = ctx;
+    pthread_mutex_lock(&s->mu);
+    if (s->n_events == s->cap_events) {
+        s->cap_events = s->cap_events ? 2 * s->cap_events : 64;
+        s->events = mem_realloc(s->events, s->cap_events * sizeof *s->events);
+    }
+    s->events[s->n_events++] = *ev;
+    pthread_mutex_unlock(&s->mu);
+    uv_async_send(&s->wake);
+}
+
+static void wake_loop(void *ctx)
+{
+    struct server *s = ctx;
+    uv_async_send(&s->wake);
+}
+
+static void on_wake(uv_async_t *h)
+{
+    struct server *s = h->data;
+    if (s->stopping)
+        return;
+    /* Take the whole outbox at once: uv_async_send coalesces. */
+    pthread_mutex_lock(&s->mu);
+    size_t n = s->n_events;
+    if (n > s->cap_draining) {
+        mem_free(s->draining);
+        s->draining = mem_alloc(s->cap_events * sizeof *s->draining);
+        s->cap_draining = s->cap_events;
+    }
+    if (n)
+        memcpy(s->draining, s->events, n * sizeof *s->events);
+    s->n_events = 0;
+    pthread_mutex_unlock(&s->mu);
+    for (size_t i = 0; i < n; i++)
+        proto_event(s->proto, s, &s->draining[i]);
+    /* Space may have been freed: retry every parked connection. */
+    for (struct conn *c = s->conns; c; c = c->next)
+        if (c->parked && !c->closing) {
+            c->parked = 0;
+            pump(c);
+        }
+}
+
+/* ---- listeners --------------------------------------------------------------------------- */
+
+static void on_connection(uv_stream_t *listener, int status)
+{
+    struct server *s = listener->data;
+    if (status < 0) {
+        say_warn("accept: %s", uv_strerror(status));
+        return;
+    }
+    int tcp = listener == (uv_stream_t *)&s->tcp_listener;
+    struct conn *c = mem_calloc(1, sizeof *c);
+    c->srv = s;
+    c->id = ++s->next_id;
+    if (tcp)
+        uv_tcp_init(&s->loop, &c->u.tcp);
+    else
+        uv_pipe_init(&s->loop, &c->u.pipe, 0);
+    c->u.h.data = c;
+    c->next = s->conns;
+    if (s->conns)
+        s->conns->prev = c;
+    s->conns = c;
+    s->n_conns++;
+    c->in = mem_alloc(IN_START);
+    c->in_cap = IN_START;
+    proto_conn_init(&c->pc, tcp && s->o->token != NULL);
+    int rc = uv_accept(listener, &c->u.s);
+    if (rc < 0) {
+        say_warn("accept: %s", uv_strerror(rc));
+        conn_close(c);
+        return;
+    }
+    if (tcp)
+        uv_tcp_nodelay(&c->u.tcp, 1);
+    say_debug("connection %llu opened (%s)", (unsigned long long)c->id, tcp ? "tcp" : "unix");
+    update_reading(c);
+}
+
+/* Returns 1 when something accepts connections at path (a live daemon), 0 when nothing does. */
+static int unix_socket_live(const char *path)
+{
+    int fd = socket(AF_UNIX, SOCK_STREAM, 0);
+    if (fd < 0)
+        return 0;
+    struct sockaddr_un a;
+    memset(&a, 0, sizeof a);
+    a.sun_family = AF_UNIX;
+    snprintf(a.sun_path, sizeof a.sun_path, "%s", path);
+    int live = connect(fd, (struct sockaddr *)&a, sizeof a) == 0;
+    close(fd);
+    return live;
+}
+
+static int listen_unix(struct server *s)
+{
+    const char *path = s->o->socket_path;
+    struct sockaddr_un probe;
+    if (strlen(path) >= sizeof probe.sun_path) {
+        say_error("socket path %s is longer than %zu bytes", path, sizeof probe.sun_path - 1);
+        return -1;
+    }
+    struct stat st;
+    if (lstat(path, &st) == 0) {
+        if (!S_ISSOCK(st.st_mode)) {
+            say_error("%s exists and is not a socket; refusing to replace it", path);
+            return -1;
+        }
+        if (unix_socket_live(path)) {
+            say_error("another daemon is listening on %s", path);
+            return -1;
+        }
+        say_warn("removing stale socket %s left by an earlier run", path);
+        unlink(path);
+    }
+    uv_pipe_init(&s->loop, &s->unix_listener, 0);
+    s->unix_listener.data = s;
+    s->have_unix = 1;
+    /* Mode 0660: uv_pipe_chmod cannot express it, so set the umask around bind. */
+    mode_t old = umask(0117);
+    int rc = uv_pipe_bind(&s->unix_listener, path);
+    umask(old);
+    if (rc == 0)
+        rc = uv_listen((uv_stream_t *)&s->unix_listener, 511, on_connection);
+    if (rc < 0) {
+        say_error("cannot listen on %s: %s", path, uv_strerror(rc));
+        return -1;
+    }
+    say_info("listening on %s (unix, mode 0660)", path);
+    return 0;
+}
+
+/* Parses HOST:PORT or [V6]:PORT into addr; returns 0, or -1. */
+static int parse_hostport(const char *spec, struct sockaddr_storage *addr, int *loopback)
+{
+    char host[256];
+    const char *colon = strrchr(spec, ':');
+    if (!colon || colon == spec || !colon[1])
+        return -1;
+    size_t hl = (size_t)(colon - spec);
+    if (hl >= sizeof host)
+        return -1;
+    memcpy(host, spec, hl);
+    host[hl] = 0;
+    char *end;
+    long port = strtol(colon + 1, &end, 10);
+    if (*end || port < 1 || port > 65535)
+        return -1;
+    if (host[0] == '[' && hl >= 2 && host[hl - 1] == ']') {
+        host[hl - 1] = 0;
+        struct sockaddr_in6 *a6 = (struct sockaddr_in6 *)addr;
+        if (uv_ip6_addr(host + 1, (int)port, a6) != 0)
+            return -1;
+        *loopback = memcmp(&a6->sin6_addr, &in6addr_loopback, sizeof in6addr_loopback) == 0;
+        return 0;
+    }
+    if (strcmp(host, "localhost") == 0)
+        snprintf(host, sizeof host, "127.0.0.1");
+    struct sockaddr_in *a4 = (struct sockaddr_in *)addr;
+    if (uv_ip4_addr(host, (int)port, a4) != 0)
+        return -1;
+    *loopback = (ntohl(a4->sin_addr.s_addr) >> 24) == 127;
+    return 0;
+}
+
+static int listen_tcp(struct server *s)
+{
+    struct sockaddr_storage addr;
+    int loopback = 0;
+    memset(&addr, 0, sizeof addr);
+    if (parse_hostport(s->o->listen, &addr, &loopback) != 0) {
+        say_error("--listen %s: expected HOST:PORT with a numeric address", s->o->listen);
+        return -1;
+    }
+    if (!loopback && !s->o->token) {
+        say_error("refusing to listen on %s, a non-loopback address, without --token-file",
+                  s->o->listen);
+        return -1;
+    }
+    uv_tcp_init(&s->loop, &s->tcp_listener);
+    s->tcp_listener.data = s;
+    s->have_tcp = 1;
+    int rc = uv_tcp_bind(&s->tcp_listener, (struct sockaddr *)&addr, 0);
+    if (rc == 0)
+        rc = uv_listen((uv_stream_t *)&s->tcp_listener, 511, on_connection);
+    if (rc < 0) {
+        say_error("cannot listen on %s: %s", s->o->listen, uv_strerror(rc));
+        return -1;
+    }
+    say_info("listening on %s (tcp%s)", s->o->listen, s->o->token ? ", token required" : "");
+    return 0;
+}
+
+/* ---- start and stop ---------------------------------------------------------------------- */
+
+static void stop(struct server *s, const char *why)
+{
+    if (s->stopping)
+        return;
+    s->stopping = 1;
+    say_info("%s: stopping; applying everything accepted", why);
+    if (s->have_unix) {
+        uv_close((uv_handle_t *)&s->unix_listener, NULL);
+        unlink(s->o->socket_path);
+    }
+    if (s->have_tcp)
+        uv_close((uv_handle_t *)&s->tcp_listener, NULL);
+    for (struct conn *c = s->conns; c; c = c->next)
+        update_reading(c);
+    proto_shutdown(s->proto);
+    for (struct conn *c = s->conns; c; c = c->next)
+        conn_close(c);
+    uv_close((uv_handle_t *)&s->sigint, NULL);
+    uv_close((uv_handle_t *)&s->sigterm, NULL);
+    uv_close((uv_handle_t *)&s->wake, NULL);
+    uv_close((uv_handle_t *)&s->idle, NULL);
+}
+
+static void on_signal(uv_signal_t *h, int signum)
+{
+    stop(h->data, signum == SIGINT ? "SIGINT" : "SIGTERM");
+}
+
+int server_run(const server_opts_t *opts)
+{
+    struct server *s = mem_calloc(1, sizeof *s);
+    s->o = opts;
+    int status = 1;
+    CHECK(uv_loop_init(&s->loop) == 0);
+    pthread_mutex_init(&s->mu, NULL);
+    arena_install(4u << 20);
+    s->proto = proto_new(opts, post_event, wake_loop, s);
+
+    uv_async_init(&s->loop, &s->wake, on_wake);
+    s->wake.data = s;
+    uv_idle_init(&s->loop, &s->idle);
+    s->idle.data = s;
+    uv_signal_init(&s->loop, &s->sigint);
+    uv_signal_init(&s->loop, &s->sigterm);
+    s->sigint.data = s->sigterm.data = s;
+    uv_signal_start(&s->sigint, on_signal, SIGINT);
+    uv_signal_start(&s->sigterm, on_signal, SIGTERM);
+
+    if (listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0)) {
+        status = 0;
+    } else {
+        s->stopping = 1;
+        if (s->have_unix) {
+            uv_close((uv_handle_t *)&s->unix_listener, NULL);
+            unlink(opts->socket_path);
+        }
+        if (s->have_tcp)
+            uv_close((uv_handle_t *)&s->tcp_listener, NULL);
+        uv_close((uv_handle_t *)&s->sigint, NULL);
+        uv_close((uv_handle_t *)&s->sigterm, NULL);
+        uv_close((uv_handle_t *)&s->wake, NULL);
+        uv_close((uv_handle_t *)&s->idle, NULL);
+    }
+    uv_run(&s->loop, UV_RUN_DEFAULT);
+    int rc = uv_loop_close(&s->loop);
+    if (rc != 0) {
+        say_error("event loop did not close cleanly: %s", uv_strerror(rc));
+        status = 1;
+    }
+    proto_free(s->proto);
+    arena_uninstall();
+    pthread_mutex_destroy(&s->mu);
+    mem_free(s->events);
+    mem_free(s->draining);
+    mem_free(s);
+    if (status == 0)
+        say_info("stopped");
+    return status;
+}

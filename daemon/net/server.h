@@ -1,0 +1,58 @@
+/*
+ * server.h - worthd's event loop: listeners, connections, framing.
+ *
+ * The loop thread owns every socket.  It splits input into lines (at most
+ * max_line bytes each), hands each to the protocol (proto.h), collects the
+ * binary payload of a bulk request, and writes replies: at once when the
+ * socket takes them, queued otherwise.  It stops reading from a client whose
+ * unsent replies pile up, whose request waits for queue space (parked), or
+ * whose request waits for a learner's answer; it handles at most a fixed
+ * number of lines per read callback so one client cannot starve the others.
+ */
+#ifndef WORTH_SERVER_H
+#define WORTH_SERVER_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+struct server;
+struct conn;
+struct proto_conn;
+
+/* Plain data: the daemon's configuration (strings borrowed for the server's life). */
+typedef struct server_opts_t {
+    const char *socket_path; /* Unix socket path */
+    const char *listen;      /* "HOST:PORT" for TCP, or NULL */
+    const char *token;       /* required by TCP clients when set; never logged */
+    size_t max_line;         /* bytes of one request line */
+    size_t max_batch;        /* transitions in one batch or bulk */
+    size_t queue;            /* records in each model's queue (>= max_batch) */
+    size_t max_models;       /* models one daemon holds */
+} server_opts_t;
+
+/*
+ * Runs the daemon until SIGINT or SIGTERM.  Returns the process exit status:
+ * 0 after a clean stop (everything accepted has been applied), 1 when it
+ * could not start (the reason is logged).
+ */
+int server_run(const server_opts_t *opts);
+
+/* For the protocol layer, on the loop thread: */
+
+/* Queues len bytes (one or more whole lines, borrowed) for the client. */
+void conn_send(struct conn *c, const char *buf, size_t len);
+/* Returns the connection's unique id (never reused while the daemon runs). */
+uint64_t conn_id(const struct conn *c);
+/* Returns the protocol's per-connection state. */
+struct proto_conn *conn_proto(struct conn *c);
+/* Closes the connection once everything queued so far is written. */
+void conn_close_after_reply(struct conn *c);
+/* The next nbytes of input are a bulk payload, handed whole to proto_bulk. */
+void conn_expect_bulk(struct conn *c, size_t nbytes);
+/* Stops handling this connection's input until conn_resume (awaiting an answer). */
+void conn_wait(struct conn *c);
+void conn_resume(struct conn *c);
+/* Returns the live connection with that id, or NULL. */
+struct conn *server_conn(struct server *s, uint64_t id);
+
+#endif /* WORTH_SERVER_H */

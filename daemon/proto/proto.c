@@ -1,0 +1,1099 @@
+/*
+ * proto.c - requests of protocol v1 (schema/protocol.md) and the model registry.
+ *
+ * Loop thread only.  Every request is parsed into a cJSON tree allocated from
+ * the arena (arena.h), validated completely, then answered; the arena is
+ * reset when the request is done, so no cJSON pointer survives a request.
+ * Replies are formatted by hand into one growable buffer (no allocation once
+ * it has reached its high-water mark), numbers with 17 significant digits so
+ * they round-trip, non-finite numbers as null.
+ *
+ * It must never: block (a full queue parks the request), apply part of a
+ * batch or bulk (validate all, then commit all), answer a request out of
+ * order on its connection (a train request holds the connection until its
+ * reply), or log a token.
+ */
+#include "proto.h"
+
+#include <cjson/cJSON.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <string.h>
+
+#include "arena.h"
+#include "mem.h"
+#include "say.h"
+#include "spec.h"
+#include "worth/errors.h"
+
+#if !defined(__BYTE_ORDER__) || __BYTE_ORDER__ != __ORDER_LITTLE_ENDIAN__
+#error "bulk records are little-endian doubles; this build assumes a little-endian host"
+#endif
+
+#ifndef WORTH_VERSION
+#define WORTH_VERSION "0.0.0"
+#endif
+
+/* Largest number of training passes one request may ask for. */
+#define MAX_PASSES 100000
+
+struct out {
+    char *b;
+    size_t len, cap;
+};
+
+struct proto {
+    const server_opts_t *o;
+    struct learner **models; /* registry, o->max_models slots, first n used */
+    size_t n;
+    struct learner **dropped; /* stopped, awaiting LEV_EXITED */
+    size_t n_dropped, cap_dropped;
+    learner_post_fn post;
+    learner_wake_fn wake;
+    void *ctx;
+    struct out out;
+    /* Per-request scratch, sized for the largest model (grown on create). */
+    double *vals, *sds;
+    const char **srcs; /* max_batch source names of a batch */
+    char err[512];
+};
+
+/* ---- output ---------------------------------------------------------------------------- */
+
+static void out_need(struct out *o, size_t more)
+{
+    if (o->len + more <= o->cap)
+        return;
+    size_t cap = o->cap ? o->cap : 4096;
+    while (cap < o->len + more)
+        cap *= 2;
+    o->b = mem_realloc(o->b, cap);
+    o->cap = cap;
+}
+
+static void out_raw(struct out *o, const char *s, size_t n)
+{
+    out_need(o, n);
+    memcpy(o->b + o->len, s, n);
+    o->len += n;
+}
+
+static void out_s(struct out *o, const char *s)
+{
+    out_raw(o, s, strlen(s));
+}
+
+static void out_fmt(struct out *o, const char *fmt, ...) __attribute__((format(printf, 2, 3)));
+static void out_fmt(struct out *o, const char *fmt, ...)
+{
+    va_list ap;
+    va_start(ap, fmt);
+    out_need(o, 64);
+    int n = vsnprintf(o->b + o->len, o->cap - o->len, fmt, ap);
+    va_end(ap);
+    if (n >= 0 && (size_t)n >= o->cap - o->len) {
+        out_need(o, (size_t)n + 1);
+        va_start(ap, fmt);
+        vsnprintf(o->b + o->len, o->cap - o->len, fmt, ap);
+        va_end(ap);
+    }
+    if (n > 0)
+        o->len += (size_t)n;
+}
+
+/* A double as JSON: 17 significant digits, null when not finite. */
+static void out_num(struct out *o, double v)
+{
+    if (isfinite(v))
+        out_fmt(o, "%.17g", v);
+    else
+        out_s(o, "null");
+}
+
+/* A string as a JSON string literal. */
+static void out_str(struct out *o, const char *s)
+{
+    out_need(o, 2);
+    o->b[o->len++] = '"';
+    for (const unsigned char *p = (const unsigned char *)s; *p; p++) {
+        if (*p == '"' || *p == '\\') {
+            char esc[2] = {'\\', (char)*p};
+            out_raw(o, esc, 2);
+        } else if (*p < 0x20) {
+            out_fmt(o, "\\u%04x", *p);
+        } else {
+            out_raw(o, (const char *)p, 1);
+        }
+    }
+    out_raw(o, "\"", 1);
+}
+
+/* Starts a reply object, with the request's id when it had one. */
+static void out_begin(struct out *o, int ok, const char *id)
+{
+    o->len = 0;
+    out_s(o, ok ? "{\"ok\":true" : "{\"ok\":false");
+    if (id) {
+        out_s(o, ",\"id\":");
+        out_s(o, id);
+    }
+}
+
+static void out_end(struct out *o, struct conn *c)
+{
+    out_raw(o, "}\n", 2);
+    conn_send(c, o->b, o->len);
+}
+
+static void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
+                        const char *fmt, ...) __attribute__((format(printf, 6, 7)));
+static void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
+                        const char *fmt, ...)
+{
+    char msg[600];
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(msg, sizeof msg, fmt, ap);
+    va_end(ap);
+    struct out *o = &p->out;
+    out_begin(o, 0, id);
+    out_s(o, ",\"error\":{\"code\":");
+    out_str(o, worth_err_name(code));
+    out_s(o, ",\"message\":");
+    out_str(o, msg);
+    if (index >= 0)
+        out_fmt(o, ",\"index\":%ld", index);
+    out_s(o, "}");
+    out_end(o, c);
+}
+
+/* ---- registry -------------------------------------------------------------------------- */
+
+static struct learner *find_model(struct proto *p, const char *name, size_t *at)
+{
+    for (size_t i = 0; i < p->n; i++)
+        if (strcmp(learner_name(p->models[i]), name) == 0) {
+            if (at)
+                *at = i;
+            return p->models[i];
+        }
+    return NULL;
+}
+
+/* ---- request fields -------------------------------------------------------------------- */
+
+/* A request being handled: its tree, id text and connection. */
+struct req {
+    struct proto *p;
+    struct conn *c;
+    cJSON *root;
+    const char *id; /* printed id, or NULL */
+};
+
+#define FAIL(rq, code, ...) reply_error((rq)->p, (rq)->c, (rq)->id, (code), -1, __VA_ARGS__)
+/* FAIL, then the value a request handler returns when it has answered. */
+#define fail_done(rq, code, ...) (FAIL(rq, code, __VA_ARGS__), PROTO_DONE)
+
+static const cJSON *field(const cJSON *obj, const char *name)
+{
+    return cJSON_GetObjectItemCaseSensitive(obj, name);
+}
+
+/* Returns 1 when obj has two members of the same name (cJSON keeps both). */
+static int dup_key(const cJSON *obj, const char **which)
+{
+    for (const cJSON *a = obj->child; a; a = a->next)
+        for (const cJSON *b = a->next; b; b = b->next)
+            if (a->string && b->string && strcmp(a->string, b->string) == 0) {
+                *which = a->string;
+                return 1;
+            }
+    return 0;
+}
+
+/* Returns 1 unless obj has a member not in the NULL-terminated list allowed. */
+static int only_keys(const cJSON *obj, const char *const *allowed, const char **bad)
+{
+    for (const cJSON *a = obj->child; a; a = a->next) {
+        int ok = 0;
+        for (const char *const *k = allowed; *k && !ok; k++)
+            ok = a->string && strcmp(a->string, *k) == 0;
+        if (!ok) {
+            *bad = a->string ? a->string : "";
+            return 0;
+        }
+    }
+    return 1;
+}
+
+/* The required string field name; replies bad_request and returns NULL when absent. */
+static const char *need_string(struct req *rq, const char *name)
+{
+    const cJSON *f = field(rq->root, name);
+    if (!cJSON_IsString(f) || !f->valuestring) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"%s\" must be a string", name);
+        return NULL;
+    }
+    return f->valuestring;
+}
+
+/* Looks up the model named by the request's "model"; replies and returns NULL on failure. */
+static struct learner *need_model(struct req *rq)
+{
+    const char *name = need_string(rq, "model");
+    if (!name)
+        return NULL;
+    struct learner *l = find_model(rq->p, name, NULL);
+    if (!l)
+        FAIL(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
+    return l;
+}
+
+/*
+ * Reads an optional number; returns 1 (value in *v, or *v untouched when
+ * absent) or 0 with code and message set.
+ */
+static int opt_number(const cJSON *obj, const char *name, double *v, int *code, char *err,
+                      size_t errlen, const char *where)
+{
+    const cJSON *f = field(obj, name);
+    if (!f)
+        return 1;
+    if (!cJSON_IsNumber(f) || !isfinite(f->valuedouble)) {
+        *code = WORTH_E_BAD_NUMBER;
+        snprintf(err, errlen, "%s\"%s\" must be a finite number", where, name);
+        return 0;
+    }
+    *v = f->valuedouble;
+    return 1;
+}
+
+/* Copies a JSON array of exactly n finite numbers into out. */
+static int get_vector(const cJSON *arr, size_t n, double *out, const char *name, int *code,
+                      char *err, size_t errlen, const char *where)
+{
+    if (!cJSON_IsArray(arr)) {
+        *code = WORTH_E_BAD_REQUEST;
+        snprintf(err, errlen, "%s\"%s\" must be an array of numbers", where, name);
+        return 0;
+    }
+    size_t k = 0;
+    for (const cJSON *e = arr->child; e; e = e->next, k++) {
+        if (k >= n)
+            break;
+        if (!cJSON_IsNumber(e) || !isfinite(e->valuedouble)) {
+            *code = WORTH_E_BAD_NUMBER;
+            snprintf(err, errlen, "%s%s[%zu] is not a finite number", where, name, k);
+            return 0;
+        }
+        out[k] = e->valuedouble;
+    }
+    size_t len = (size_t)cJSON_GetArraySize(arr);
+    if (len != n) {
+        *code = WORTH_E_BAD_DIMENSION;
+        snprintf(err, errlen, "%s\"%s\" has %zu values, the model has %zu", where, name, len, n);
+        return 0;
+    }
+    return 1;
+}
+
+/*
+ * Parses one transition object into slot r of model l.  where prefixes error
+ * messages ("" or "batch[3]: ").  Returns 0 or a worth code with err set;
+ * *src gets the source name (borrowed from the tree; NULL = default).
+ */
+static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *r, const char **src,
+                     char *err, size_t errlen, const char *where)
+{
+    static const char *const keys_batch[] = {"x",      "r", "x_next", "terminal",
+                                             "source", "t", "dt",     NULL};
+    static const char *const keys_top[] = {"op",       "id",     "model", "x",  "r", "x_next",
+                                           "terminal", "source", "t",     "dt", NULL};
+    size_t d = model_dims(learner_model(l));
+    int code = 0;
+    const char *bad;
+    if (!cJSON_IsObject(o)) {
+        snprintf(err, errlen, "%sa transition must be an object", where);
+        return WORTH_E_BAD_REQUEST;
+    }
+    if (dup_key(o, &bad)) {
+        snprintf(err, errlen, "%s\"%s\" appears twice", where, bad);
+        return WORTH_E_BAD_REQUEST;
+    }
+    if (!only_keys(o, top ? keys_top : keys_batch, &bad)) {
+        snprintf(err, errlen, "%sunknown field \"%.64s\"", where, bad);
+        return WORTH_E_BAD_REQUEST;
+    }
+    const cJSON *term = field(o, "terminal");
+    if (term && !cJSON_IsBool(term)) {
+        snprintf(err, errlen, "%s\"terminal\" must be true or false", where);
+        return WORTH_E_BAD_REQUEST;
+    }
+    r->type = LREC_OBS;
+    r->terminal = cJSON_IsTrue(term);
+    const cJSON *x = field(o, "x"), *xn = field(o, "x_next"), *rw = field(o, "r");
+    if (!x) {
+        snprintf(err, errlen, "%s\"x\" is required", where);
+        return WORTH_E_BAD_REQUEST;
+    }
+    if (!get_vector(x, d, r->v, "x", &code, err, errlen, where))
+        return code;
+    if (!rw) {
+        snprintf(err, errlen, "%s\"r\" is required", where);
+        return WORTH_E_BAD_REQUEST;
+    }
+    if (!opt_number(o, "r", &r->r, &code, err, errlen, where))
+        return code;
+    if (xn) {
+        if (!get_vector(xn, d, r->v + d, "x_next", &code, err, errlen, where))
+            return code;
+    } else if (!r->terminal) {
+        snprintf(err, errlen, "%s\"x_next\" is required unless terminal", where);
+        return WORTH_E_BAD_REQUEST;
+    }
+    double t = 0;
+    r->dt_s = NAN;
+    if (!opt_number(o, "t", &t, &code, err, errlen, where) ||
+        !opt_number(o, "dt", &r->dt_s, &code, err, errlen, where))
+        return code;
+    if (!isnan(r->dt_s) && r->dt_s < 0) {
+        snprintf(err, errlen, "%s\"dt\" must be >= 0", where);
+        return WORTH_E_BAD_NUMBER;
+    }
+    const cJSON *s = field(o, "source");
+    *src = NULL;
+    r->src[0] = 0;
+    if (s) {
+        if (!cJSON_IsString(s) || !s->valuestring) {
+            snprintf(err, errlen, "%s\"source\" must be a string", where);
+            return WORTH_E_BAD_REQUEST;
+        }
+        if (strlen(s->valuestring) > MODEL_NAME_MAX) {
+            snprintf(err, errlen, "%s\"source\" is longer than %d bytes", where, MODEL_NAME_MAX);
+            return WORTH_E_BAD_PARAM;
+        }
+        *src = s->valuestring;
+        snprintf(r->src, sizeof r->src, "%s", s->valuestring);
+    }
+    r->est = r->passes = 0;
+    r->conn_id = 0;
+    return 0;
+}
+
+/* ---- requests -------------------------------------------------------------------------- */
+
+static int do_hello(struct req *rq)
+{
+    struct out *o = &rq->p->out;
+    out_begin(o, 1, rq->id);
+    out_fmt(o, ",\"server\":\"worthd\",\"version\":\"%s\",\"protocol\":%d", WORTH_VERSION,
+            PROTO_VERSION);
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+/* Constant-time comparison: the time taken does not depend on where the strings differ. */
+static int token_equal(const char *a, const char *b)
+{
+    size_t la = strlen(a), lb = strlen(b);
+    volatile unsigned char diff = (unsigned char)(la != lb);
+    for (size_t i = 0; i < lb; i++)
+        diff |= (unsigned char)(a[i % (la ? la : 1)] ^ b[i]);
+    return diff == 0 && la == lb;
+}
+
+static int do_auth(struct req *rq)
+{
+    proto_conn_t *pc = conn_proto(rq->c);
+    const cJSON *t = field(rq->root, "token");
+    const char *want = rq->p->o->token;
+    if (!want) {
+        pc->authed = 1; /* nothing to check: accept, as a client may always send auth */
+    } else if (cJSON_IsString(t) && t->valuestring && token_equal(t->valuestring, want)) {
+        pc->authed = 1;
+    } else {
+        say_warn("connection %llu: authentication failed", (unsigned long long)conn_id(rq->c));
+        FAIL(rq, WORTH_E_UNAUTHORIZED, "wrong or missing token");
+        conn_close_after_reply(rq->c);
+        return PROTO_DONE;
+    }
+    out_begin(&rq->p->out, 1, rq->id);
+    out_end(&rq->p->out, rq->c);
+    return PROTO_DONE;
+}
+
+static void ensure_scratch(struct proto *p, size_t n_est)
+{
+    (void)n_est;
+    if (!p->vals) {
+        p->vals = mem_calloc(MODEL_MAX_EST, sizeof *p->vals);
+        p->sds = mem_calloc(MODEL_MAX_EST, sizeof *p->sds);
+    }
+}
+
+static int do_create(struct req *rq)
+{
+    struct proto *p = rq->p;
+    spec_t *s = NULL;
+    int rc = spec_parse(rq->root, &s, p->err, sizeof p->err);
+    if (rc)
+        return fail_done(rq, rc, "%s", p->err);
+    if (find_model(p, s->name, NULL)) {
+        FAIL(rq, WORTH_E_MODEL_EXISTS, "a model named \"%s\" exists", s->name);
+        spec_free(s);
+        return PROTO_DONE;
+    }
+    if (p->n >= p->o->max_models) {
+        FAIL(rq, WORTH_E_TOO_LARGE, "the daemon holds its limit of %zu models", p->o->max_models);
+        spec_free(s);
+        return PROTO_DONE;
+    }
+    struct model *m = NULL;
+    rc = model_new(&s->m, &m, p->err, sizeof p->err);
+    if (rc) {
+        FAIL(rq, rc, "%s", p->err);
+        spec_free(s);
+        return PROTO_DONE;
+    }
+    char *canonical = s->canonical;
+    s->canonical = NULL;
+    struct learner *l = learner_new(s->name, canonical, m, p->o->queue, p->post, p->wake, p->ctx);
+    p->models[p->n++] = l;
+    ensure_scratch(p, model_n_est(m));
+    say_info("model %s created: %zu dims, %zu features, %zu estimators", s->name, model_dims(m),
+             model_features(m), model_n_est(m));
+    struct out *o = &p->out;
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"model\":");
+    out_str(o, s->name);
+    out_fmt(o, ",\"features\":%zu", model_features(m));
+    out_end(o, rq->c);
+    spec_free(s);
+    return PROTO_DONE;
+}
+
+static void out_est_names(struct out *o, const struct model *m)
+{
+    out_s(o, "[");
+    for (size_t i = 0; i < model_n_est(m); i++) {
+        if (i)
+            out_s(o, ",");
+        out_str(o, model_est_name(m, i));
+    }
+    out_s(o, "]");
+}
+
+static int do_list(struct req *rq)
+{
+    struct proto *p = rq->p;
+    struct out *o = &p->out;
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"models\":[");
+    for (size_t i = 0; i < p->n; i++) {
+        const struct model *m = learner_model(p->models[i]);
+        learner_stats_t st;
+        learner_stats(p->models[i], &st);
+        out_s(o, i ? ",{\"model\":" : "{\"model\":");
+        out_str(o, learner_name(p->models[i]));
+        out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m),
+                model_features(m));
+        out_est_names(o, m);
+        out_fmt(o, ",\"received\":%llu,\"applied\":%llu}", (unsigned long long)st.received,
+                (unsigned long long)st.applied);
+    }
+    out_s(o, "]");
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+static int do_get(struct req *rq)
+{
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    const struct model *m = learner_model(l);
+    learner_stats_t st;
+    learner_stats(l, &st);
+    struct out *o = &rq->p->out;
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"model\":");
+    out_str(o, learner_name(l));
+    out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m), model_features(m));
+    out_est_names(o, m);
+    out_s(o, ",\"primary\":");
+    out_str(o, model_est_name(m, model_primary(m)));
+    out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"spec\":", (unsigned long long)st.received,
+            (unsigned long long)st.applied);
+    out_s(o, learner_spec(l));
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+static int do_drop(struct req *rq)
+{
+    struct proto *p = rq->p;
+    const char *name = need_string(rq, "model");
+    if (!name)
+        return PROTO_DONE;
+    size_t at = 0;
+    struct learner *l = find_model(p, name, &at);
+    if (!l)
+        return fail_done(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
+    p->models[at] = p->models[--p->n];
+    learner_stop(l, 1);
+    if (p->n_dropped == p->cap_dropped) {
+        p->cap_dropped = p->cap_dropped ? 2 * p->cap_dropped : 8;
+        p->dropped = mem_realloc(p->dropped, p->cap_dropped * sizeof *p->dropped);
+    }
+    p->dropped[p->n_dropped++] = l;
+    say_info("model %s dropped", name);
+    out_begin(&p->out, 1, rq->id);
+    out_end(&p->out, rq->c);
+    return PROTO_DONE;
+}
+
+/* Parks the request until l frees space; nothing has been changed. */
+static int park(struct learner *l)
+{
+    learner_want_space(l);
+    return PROTO_PARK;
+}
+
+static int do_observe(struct req *rq)
+{
+    struct proto *p = rq->p;
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    const cJSON *batch = field(rq->root, "batch");
+    if (!batch) {
+        if (learner_space(l) < 1)
+            return park(l);
+        learner_rec_t *r = learner_slot(l, 0);
+        const char *src = NULL;
+        int rc = parse_obs(l, rq->root, 1, r, &src, p->err, sizeof p->err, "");
+        if (!rc)
+            rc = learner_sources_fit(l, &src, 1, p->err, sizeof p->err);
+        if (rc)
+            return fail_done(rq, rc, "%s", p->err);
+        uint64_t seq = learner_commit(l, 1);
+        out_begin(&p->out, 1, rq->id);
+        out_fmt(&p->out, ",\"seq\":%llu", (unsigned long long)seq);
+        out_end(&p->out, rq->c);
+        return PROTO_DONE;
+    }
+    static const char *const keys[] = {"op", "id", "model", "batch", NULL};
+    const char *bad;
+    if (!only_keys(rq->root, keys, &bad))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" beside \"batch\"", bad);
+    if (!cJSON_IsArray(batch))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"batch\" must be an array");
+    size_t k = (size_t)cJSON_GetArraySize(batch);
+    if (k == 0)
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"batch\" is empty");
+    if (k > p->o->max_batch)
+        return fail_done(rq, WORTH_E_TOO_LARGE, "batch of %zu exceeds the limit %zu", k,
+                         p->o->max_batch);
+    if (learner_space(l) < k)
+        return park(l);
+    size_t i = 0;
+    for (const cJSON *e = batch->child; e; e = e->next, i++) {
+        char where[32];
+        snprintf(where, sizeof where, "batch[%zu]: ", i);
+        int rc = parse_obs(l, e, 0, learner_slot(l, i), &p->srcs[i], p->err, sizeof p->err, where);
+        if (rc) {
+            reply_error(p, rq->c, rq->id, rc, (long)i, "%s", p->err);
+            return PROTO_DONE;
+        }
+    }
+    int rc = learner_sources_fit(l, p->srcs, k, p->err, sizeof p->err);
+    if (rc)
+        return fail_done(rq, rc, "%s", p->err);
+    uint64_t seq = learner_commit(l, k);
+    out_begin(&p->out, 1, rq->id);
+    out_fmt(&p->out, ",\"seq\":%llu,\"count\":%zu", (unsigned long long)seq, k);
+    out_end(&p->out, rq->c);
+    return PROTO_DONE;
+}
+
+static int do_bulk_header(struct req *rq)
+{
+    struct proto *p = rq->p;
+    proto_conn_t *pc = conn_proto(rq->c);
+    /* Errors here close the connection: the payload that follows cannot be skipped safely. */
+    struct learner *l = need_model(rq);
+    if (!l) {
+        conn_close_after_reply(rq->c);
+        return PROTO_DONE;
+    }
+    static const char *const keys[] = {"op", "id", "model", "count", "source", "dt", NULL};
+    const char *bad;
+    const cJSON *cnt = field(rq->root, "count"), *s = field(rq->root, "source");
+    double dt = NAN;
+    int code = 0;
+    if (!only_keys(rq->root, keys, &bad)) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in observe.bulk", bad);
+    } else if (!cJSON_IsNumber(cnt) || cnt->valuedouble != floor(cnt->valuedouble) ||
+               cnt->valuedouble < 1) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"count\" must be an integer >= 1");
+    } else if (cnt->valuedouble > (double)p->o->max_batch) {
+        FAIL(rq, WORTH_E_TOO_LARGE, "bulk of %.0f exceeds the limit %zu", cnt->valuedouble,
+             p->o->max_batch);
+    } else if (s && (!cJSON_IsString(s) || strlen(s->valuestring) > MODEL_NAME_MAX)) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"source\" must be a string of at most %d bytes",
+             MODEL_NAME_MAX);
+    } else if (!opt_number(rq->root, "dt", &dt, &code, p->err, sizeof p->err, "") ||
+               (!isnan(dt) && dt < 0)) {
+        FAIL(rq, code ? code : WORTH_E_BAD_NUMBER, "\"dt\" must be a finite number >= 0");
+    } else {
+        snprintf(pc->model, sizeof pc->model, "%s", learner_name(l));
+        pc->count = (size_t)cnt->valuedouble;
+        snprintf(pc->source, sizeof pc->source, "%s", s ? s->valuestring : "");
+        pc->dt_s = dt;
+        pc->has_id = rq->id != NULL;
+        if (rq->id)
+            snprintf(pc->id, sizeof pc->id, "%s", rq->id);
+        size_t d = model_dims(learner_model(l));
+        conn_expect_bulk(rq->c, pc->count * (2 * d + 2) * sizeof(double));
+        return PROTO_DONE;
+    }
+    conn_close_after_reply(rq->c);
+    return PROTO_DONE;
+}
+
+int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_t len)
+{
+    proto_conn_t *pc = conn_proto(c);
+    const char *id = pc->has_id ? pc->id : NULL;
+    struct learner *l = find_model(p, pc->model, NULL);
+    if (!l) {
+        reply_error(p, c, id, WORTH_E_NO_SUCH_MODEL, -1, "model \"%s\" was dropped", pc->model);
+        return PROTO_DONE;
+    }
+    size_t d = model_dims(learner_model(l)), k = pc->count, rec = 2 * d + 2;
+    CHECK(len == k * rec * sizeof(double));
+    if (learner_space(l) < k)
+        return park(l);
+    const char *src = pc->source[0] ? pc->source : NULL;
+    int rc = learner_sources_fit(l, &src, 1, p->err, sizeof p->err);
+    if (rc) {
+        reply_error(p, c, id, rc, -1, "%s", p->err);
+        return PROTO_DONE;
+    }
+    for (size_t i = 0; i < k; i++) {
+        learner_rec_t *r = learner_slot(l, i);
+        const unsigned char *q = data + i * rec * sizeof(double);
+        double term;
+        memcpy(r->v, q, d * sizeof(double));
+        memcpy(&r->r, q + d * sizeof(double), sizeof(double));
+        memcpy(r->v + d, q + (d + 1) * sizeof(double), d * sizeof(double));
+        memcpy(&term, q + (2 * d + 1) * sizeof(double), sizeof(double));
+        int finite = isfinite(r->r);
+        for (size_t j = 0; j < 2 * d && finite; j++)
+            finite = isfinite(r->v[j]);
+        if (!finite) {
+            reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i,
+                        "record %zu holds a NaN or infinite value", i);
+            return PROTO_DONE;
+        }
+        if (term != 0.0 && term != 1.0) {
+            reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i,
+                        "record %zu: terminal must be 0 or 1", i);
+            return PROTO_DONE;
+        }
+        r->type = LREC_OBS;
+        r->terminal = term == 1.0;
+        r->dt_s = pc->dt_s;
+        memcpy(r->src, pc->source, sizeof r->src);
+        r->est = r->passes = 0;
+        r->conn_id = 0;
+    }
+    uint64_t seq = learner_commit(l, k);
+    out_begin(&p->out, 1, id);
+    out_fmt(&p->out, ",\"seq\":%llu,\"count\":%zu", (unsigned long long)seq, k);
+    out_end(&p->out, c);
+    return PROTO_DONE;
+}
+
+void proto_bulk_truncated(struct proto *p, struct conn *c, size_t got)
+{
+    proto_conn_t *pc = conn_proto(c);
+    say_warn("connection %llu: bulk for model %s ended after %zu bytes; nothing applied",
+             (unsigned long long)conn_id(c), pc->model, got);
+    reply_error(p, c, pc->has_id ? pc->id : NULL, WORTH_E_TRUNCATED, -1,
+                "connection ended after %zu bytes of the bulk payload; nothing applied", got);
+}
+
+void proto_line_too_long(struct proto *p, struct conn *c)
+{
+    reply_error(p, c, NULL, WORTH_E_LINE_TOO_LONG, -1, "request line exceeds %zu bytes",
+                p->o->max_line);
+}
+
+/* The primary estimator's sd, else the first estimator's that has one. */
+static double pick_sd(const struct model *m, const double *sd)
+{
+    size_t pr = model_primary(m);
+    if (!isnan(sd[pr]))
+        return sd[pr];
+    for (size_t i = 0; i < model_n_est(m); i++)
+        if (!isnan(sd[i]))
+            return sd[i];
+    return NAN;
+}
+
+static int do_value(struct req *rq)
+{
+    struct proto *p = rq->p;
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    const struct model *m = learner_model(l);
+    size_t d = model_dims(m), ne = model_n_est(m);
+    long pick = -1;
+    const cJSON *es = field(rq->root, "estimator");
+    if (es) {
+        if (!cJSON_IsString(es))
+            return fail_done(rq, WORTH_E_BAD_REQUEST, "\"estimator\" must be a string");
+        pick = model_est_find(m, es->valuestring);
+        if (pick < 0)
+            return fail_done(rq, WORTH_E_BAD_PARAM, "model has no estimator \"%.64s\"",
+                             es->valuestring);
+    }
+    const cJSON *x = field(rq->root, "x"), *xs = field(rq->root, "xs");
+    double xv[FEAT_MAX_DIMS];
+    uint64_t seq = 0;
+    int code = 0;
+    if ((x != NULL) == (xs != NULL))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "give exactly one of \"x\" and \"xs\"");
+    struct out *o = &p->out;
+    if (x) {
+        if (!get_vector(x, d, xv, "x", &code, p->err, sizeof p->err, ""))
+            return fail_done(rq, code, "%s", p->err);
+        learner_value(l, xv, d, p->vals, p->sds, &seq);
+        out_begin(o, 1, rq->id);
+        out_s(o, ",\"value\":");
+        if (pick >= 0) {
+            out_num(o, p->vals[pick]);
+            out_s(o, ",\"sd\":");
+            out_num(o, p->sds[pick]);
+        } else {
+            out_num(o, p->vals[model_primary(m)]);
+            out_s(o, ",\"estimators\":{");
+            for (size_t i = 0; i < ne; i++) {
+                if (i)
+                    out_s(o, ",");
+                out_str(o, model_est_name(m, i));
+                out_s(o, ":");
+                out_num(o, p->vals[i]);
+            }
+            out_s(o, "},\"sd\":");
+            out_num(o, pick_sd(m, p->sds));
+        }
+        out_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
+        out_end(o, rq->c);
+        return PROTO_DONE;
+    }
+    if (!cJSON_IsArray(xs))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"xs\" must be an array of states");
+    size_t k = (size_t)cJSON_GetArraySize(xs);
+    if (k > p->o->max_batch)
+        return fail_done(rq, WORTH_E_TOO_LARGE, "%zu states exceed the limit %zu", k,
+                         p->o->max_batch);
+    /* Validate every state before answering any. */
+    size_t i = 0;
+    for (const cJSON *e = xs->child; e; e = e->next, i++) {
+        char where[32];
+        snprintf(where, sizeof where, "xs[%zu]: ", i);
+        if (!get_vector(e, d, xv, "x", &code, p->err, sizeof p->err, where)) {
+            reply_error(p, rq->c, rq->id, code, (long)i, "%s", p->err);
+            return PROTO_DONE;
+        }
+    }
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"values\":[");
+    i = 0;
+    for (const cJSON *e = xs->child; e; e = e->next, i++) {
+        get_vector(e, d, xv, "x", &code, p->err, sizeof p->err, "");
+        uint64_t s = 0;
+        learner_value(l, xv, d, p->vals, p->sds, &s);
+        seq = i == 0 ? s : (s < seq ? s : seq);
+        if (i)
+            out_s(o, ",");
+        out_num(o, p->vals[pick >= 0 ? (size_t)pick : model_primary(m)]);
+    }
+    out_fmt(o, "],\"seq\":%llu", (unsigned long long)seq);
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+static int do_train(struct req *rq)
+{
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    const struct model *m = learner_model(l);
+    const char *name = need_string(rq, "estimator");
+    if (!name)
+        return PROTO_DONE;
+    int e = model_est_find(m, name);
+    if (e < 0)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "model has no estimator \"%.64s\"", name);
+    enum est_kind kind = est_params(model_est(m, (size_t)e))->kind;
+    if (kind != EST_REPLAY && kind != EST_LSTD)
+        return fail_done(rq, WORTH_E_UNSUPPORTED,
+                         "estimator \"%s\" (%s) does not train; replay and "
+                         "lstd do",
+                         name, est_kind_name(kind));
+    double passes = 10;
+    const cJSON *ps = field(rq->root, "passes");
+    if (ps) {
+        if (!cJSON_IsNumber(ps))
+            return fail_done(rq, WORTH_E_BAD_REQUEST, "\"passes\" must be a number");
+        passes = ps->valuedouble;
+        if (passes != floor(passes) || passes < 1 || passes > MAX_PASSES)
+            return fail_done(rq, WORTH_E_BAD_PARAM, "\"passes\" must be an integer 1..%d",
+                             MAX_PASSES);
+    }
+    if (learner_space(l) < 1)
+        return park(l);
+    learner_rec_t *r = learner_slot(l, 0);
+    memset(r, 0, sizeof *r);
+    r->type = LREC_TRAIN;
+    r->est = (uint32_t)e;
+    r->passes = (uint32_t)passes;
+    r->conn_id = conn_id(rq->c);
+    proto_conn_t *pc = conn_proto(rq->c);
+    pc->has_id = rq->id != NULL;
+    if (rq->id)
+        snprintf(pc->id, sizeof pc->id, "%s", rq->id);
+    learner_commit(l, 1);
+    conn_wait(rq->c); /* its progress and reply come before anything else on this connection */
+    return PROTO_DONE;
+}
+
+static int do_stats(struct req *rq)
+{
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    const struct model *m = learner_model(l);
+    learner_stats_t st;
+    learner_stats(l, &st);
+    struct out *o = &rq->p->out;
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"model\":");
+    out_str(o, learner_name(l));
+    out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"queue\":%zu,\"clipped\":%llu,\"sources\":%zu",
+            (unsigned long long)st.received, (unsigned long long)st.applied, st.queued,
+            (unsigned long long)st.counts.clipped, st.counts.sources);
+    out_s(o, ",\"estimators\":{");
+    for (size_t i = 0; i < model_n_est(m); i++) {
+        const est_stats_t *e = &st.est[i];
+        enum est_kind kind = est_params(model_est(m, i))->kind;
+        if (i)
+            out_s(o, ",");
+        out_str(o, model_est_name(m, i));
+        out_s(o, ":{\"kind\":");
+        out_str(o, est_kind_name(kind));
+        out_fmt(o, ",\"updates\":%llu,\"guarded\":%llu", (unsigned long long)e->updates,
+                (unsigned long long)e->guarded);
+        out_s(o, ",\"td_rms\":");
+        out_num(o, e->td_rms);
+        out_s(o, ",\"td_last\":");
+        out_num(o, e->td_last);
+        if (kind == EST_RLS_TD) {
+            out_s(o, ",\"trace_p\":");
+            out_num(o, e->trace_p);
+        }
+        if (kind == EST_LSTD)
+            out_fmt(o, ",\"refits\":%llu", (unsigned long long)e->refits);
+        if (kind == EST_REPLAY)
+            out_fmt(o, ",\"steps\":%llu", (unsigned long long)e->refits);
+        out_s(o, ",\"last_update\":");
+        out_num(o, st.last_update);
+        out_s(o, "}");
+    }
+    out_s(o, "}");
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+/* ---- dispatch -------------------------------------------------------------------------- */
+
+static const struct {
+    const char *op;
+    int (*fn)(struct req *rq);
+} ops[] = {
+    {"hello", do_hello},         {"auth", do_auth},
+    {"model.create", do_create}, {"model.list", do_list},
+    {"model.get", do_get},       {"model.drop", do_drop},
+    {"observe", do_observe},     {"observe.bulk", do_bulk_header},
+    {"value", do_value},         {"train", do_train},
+    {"stats", do_stats},
+};
+
+int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
+{
+    struct req rq = {p, c, NULL, NULL};
+    int res = PROTO_DONE;
+    const char *end = NULL;
+    rq.root = cJSON_ParseWithLengthOpts(line, len, &end, 0);
+    int trailing = 0;
+    if (rq.root && end) {
+        for (const char *q = end; q < line + len && !trailing; q++)
+            trailing = !(*q == ' ' || *q == '\t' || *q == '\r');
+    }
+    if (!rq.root || !cJSON_IsObject(rq.root) || trailing) {
+        reply_error(p, c, NULL, WORTH_E_BAD_JSON, -1,
+                    !rq.root   ? "the line is not valid JSON"
+                    : trailing ? "text follows the JSON object"
+                               : "a request must be a JSON object");
+        goto out;
+    }
+    const cJSON *idf = field(rq.root, "id");
+    char *idtext = NULL;
+    if (idf) {
+        if (!cJSON_IsNumber(idf) && !cJSON_IsString(idf)) {
+            reply_error(p, c, NULL, WORTH_E_BAD_REQUEST, -1, "\"id\" must be a number or a string");
+            goto out;
+        }
+        idtext = cJSON_PrintUnformatted(idf);
+        if (!idtext || strlen(idtext) > PROTO_ID_MAX) {
+            reply_error(p, c, NULL, WORTH_E_BAD_REQUEST, -1, "\"id\" is longer than %d bytes",
+                        PROTO_ID_MAX);
+            goto out;
+        }
+        rq.id = idtext;
+    }
+    const char *dup;
+    if (dup_key(rq.root, &dup)) {
+        FAIL(&rq, WORTH_E_BAD_REQUEST, "\"%.64s\" appears twice", dup);
+        goto out;
+    }
+    const cJSON *opf = field(rq.root, "op");
+    if (!cJSON_IsString(opf) || !opf->valuestring) {
+        FAIL(&rq, WORTH_E_BAD_REQUEST, "\"op\" must be a string");
+        goto out;
+    }
+    proto_conn_t *pc = conn_proto(c);
+    if (pc->needs_auth && !pc->authed && strcmp(opf->valuestring, "auth") != 0) {
+        FAIL(&rq, WORTH_E_UNAUTHORIZED, "authenticate first: {\"op\":\"auth\",\"token\":...}");
+        goto out;
+    }
+    size_t i;
+    for (i = 0; i < sizeof ops / sizeof ops[0]; i++)
+        if (strcmp(ops[i].op, opf->valuestring) == 0)
+            break;
+    if (i == sizeof ops / sizeof ops[0]) {
+        FAIL(&rq, WORTH_E_UNKNOWN_OP, "unknown op \"%.64s\"", opf->valuestring);
+        goto out;
+    }
+    res = ops[i].fn(&rq);
+out:
+    cJSON_Delete(rq.root);
+    arena_reset();
+    return res;
+}
+
+/* ---- learner events -------------------------------------------------------------------- */
+
+void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
+{
+    if (ev->kind == LEV_EXITED) {
+        for (size_t i = 0; i < p->n_dropped; i++)
+            if (p->dropped[i] == ev->l) {
+                p->dropped[i] = p->dropped[--p->n_dropped];
+                learner_free(ev->l);
+                return;
+            }
+        return; /* a registered learner ends only at shutdown, which joins it itself */
+    }
+    struct conn *c = server_conn(s, ev->conn_id);
+    if (!c)
+        return; /* the client left; the work was done all the same */
+    proto_conn_t *pc = conn_proto(c);
+    const char *id = pc->has_id ? pc->id : NULL;
+    struct out *o = &p->out;
+    if (ev->kind == LEV_PROGRESS) {
+        o->len = 0;
+        out_s(o, "{");
+        if (id) {
+            out_s(o, "\"id\":");
+            out_s(o, id);
+            out_s(o, ",");
+        }
+        out_fmt(o, "\"progress\":{\"pass\":%u,\"of\":%u,\"change\":", ev->pass, ev->of);
+        out_num(o, ev->change);
+        out_s(o, "}");
+        out_end(o, c);
+        return;
+    }
+    if (ev->rc) {
+        reply_error(p, c, id, ev->rc, -1, "training did not run: %s", worth_strerror(ev->rc));
+    } else {
+        out_begin(o, 1, id);
+        out_fmt(o, ",\"passes\":%u,\"change\":", ev->pass);
+        out_num(o, ev->change);
+        out_s(o, ev->converged ? ",\"converged\":true" : ",\"converged\":false");
+        out_end(o, c);
+    }
+    conn_resume(c);
+}
+
+/* ---- lifecycle ------------------------------------------------------------------------- */
+
+struct proto *proto_new(const server_opts_t *opts, learner_post_fn post, learner_wake_fn wake,
+                        void *ctx)
+{
+    struct proto *p = mem_calloc(1, sizeof *p);
+    p->o = opts;
+    p->models = mem_calloc(opts->max_models, sizeof *p->models);
+    p->srcs = mem_calloc(opts->max_batch, sizeof *p->srcs);
+    p->post = post;
+    p->wake = wake;
+    p->ctx = ctx;
+    ensure_scratch(p, MODEL_MAX_EST);
+    out_need(&p->out, 65536);
+    return p;
+}
+
+void proto_conn_init(proto_conn_t *pc, int needs_auth)
+{
+    memset(pc, 0, sizeof *pc);
+    pc->needs_auth = needs_auth;
+    pc->dt_s = NAN;
+}
+
+void proto_shutdown(struct proto *p)
+{
+    for (size_t i = 0; i < p->n; i++)
+        learner_stop(p->models[i], 0);
+    for (size_t i = 0; i < p->n; i++) {
+        learner_join(p->models[i]);
+        learner_stats_t st;
+        learner_stats(p->models[i], &st);
+        say_info("model %s: applied %llu of %llu accepted", learner_name(p->models[i]),
+                 (unsigned long long)st.applied, (unsigned long long)st.received);
+    }
+    for (size_t i = 0; i < p->n_dropped; i++)
+        learner_join(p->dropped[i]);
+}
+
+void proto_free(struct proto *p)
+{
+    if (!p)
+        return;
+    for (size_t i = 0; i < p->n; i++)
+        learner_free(p->models[i]);
+    for (size_t i = 0; i < p->n_dropped; i++)
+        learner_free(p->dropped[i]);
+    mem_free(p->models);
+    mem_free(p->dropped);
+    mem_free(p->srcs);
+    mem_free(p->vals);
+    mem_free(p->sds);
+    mem_free(p->out.b);
+    mem_free(p);
+}

@@ -1,0 +1,67 @@
+/*
+ * proto.h - the request protocol of worthd (schema/protocol.md), version 1.
+ *
+ * Runs on the loop thread: parses each request line with cJSON (allocating
+ * from the per-request arena), validates it completely, and either answers at
+ * once, commits transitions to a model's queue, or hands a train request to
+ * the model's learner and answers when the learner reports back.  Owns the
+ * model registry.  It never blocks: when a model's queue has no room, the
+ * request is parked (PROTO_PARK) and handled again when the learner frees
+ * space.
+ */
+#ifndef WORTH_PROTO_H
+#define WORTH_PROTO_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "learner.h"
+#include "model.h"
+#include "server.h"
+
+struct proto;
+
+/* Protocol version spoken. */
+#define PROTO_VERSION 1
+/* Longest request id, printed as JSON. */
+#define PROTO_ID_MAX 256
+
+/* Results of proto_line and proto_bulk. */
+enum { PROTO_DONE = 0, PROTO_PARK = 1 };
+
+/* Plain data: per-connection protocol state, embedded in each connection. */
+typedef struct proto_conn {
+    int needs_auth; /* TCP listener with a token */
+    int authed;
+    char model[MODEL_NAME_MAX + 1];  /* pending bulk: target model */
+    size_t count;                    /* pending bulk: records */
+    char source[MODEL_NAME_MAX + 1]; /* pending bulk: source ("" = default) */
+    double dt_s;                     /* pending bulk: NAN when absent */
+    char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
+    int has_id;
+} proto_conn_t;
+
+/* Lifecycle */
+
+/* Returns the protocol state for a daemon with opts (borrowed for its life). */
+struct proto *proto_new(const server_opts_t *opts, learner_post_fn post, learner_wake_fn wake,
+                        void *ctx);
+/* Stops every learner after it has applied its queue, joins them and logs their counts. */
+void proto_shutdown(struct proto *p);
+void proto_free(struct proto *p);
+
+/* Operate (loop thread) */
+
+void proto_conn_init(proto_conn_t *pc, int needs_auth);
+/* Handles one request line (len bytes without the newline, borrowed). */
+int proto_line(struct proto *p, struct conn *c, const char *line, size_t len);
+/* Handles the complete payload of the pending bulk request of c. */
+int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_t len);
+/* The connection ended inside a bulk payload: nothing of it is applied. */
+void proto_bulk_truncated(struct proto *p, struct conn *c, size_t got);
+/* A line exceeded max_line: answers line_too_long (the server then closes). */
+void proto_line_too_long(struct proto *p, struct conn *c);
+/* Handles an event a learner posted (delivered on the loop thread). */
+void proto_event(struct proto *p, struct server *s, const learner_event_t *ev);
+
+#endif /* WORTH_PROTO_H */
