@@ -312,8 +312,8 @@ static long mirror_find(const struct learner *l, const char *name)
     return -1;
 }
 
-int learner_sources_fit(struct learner *l, const char *const *names, size_t k, char *err,
-                        size_t errlen)
+int learner_sources_fit(struct learner *l, const char *const *names, size_t k, size_t *bad,
+                        char *err, size_t errlen)
 {
     /* New names in this request, counted once each; requests rarely carry more than one. */
     size_t fresh = 0;
@@ -327,6 +327,8 @@ int learner_sources_fit(struct learner *l, const char *const *names, size_t k, c
         if (!seen && l->n_src + ++fresh > l->max_src) {
             snprintf(err, errlen, "source \"%s\" would exceed the model's %zu source slots", s,
                      l->max_src);
+            if (bad)
+                *bad = i;
             return WORTH_E_TOO_MANY_SOURCES;
         }
     }

@@ -97,10 +97,11 @@ learner_rec_t *learner_slot(struct learner *l, size_t i);
 /*
  * Checks that the k source names (borrowed; NULL means the default source)
  * would fit in the model's source slots.  Returns 0 or WORTH_E_TOO_MANY_SOURCES
- * with a message in err.
+ * with a message in err and the index of the first name that does not fit in
+ * *bad (may be NULL).
  */
-int learner_sources_fit(struct learner *l, const char *const *names, size_t k, char *err,
-                        size_t errlen);
+int learner_sources_fit(struct learner *l, const char *const *names, size_t k, size_t *bad,
+                        char *err, size_t errlen);
 /*
  * Commits the first k filled slots.  Returns the seq of the last transition
  * in them (transitions are numbered from 1 per model).

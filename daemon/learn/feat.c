@@ -28,6 +28,8 @@ struct basis {
     size_t count;      /* features this basis contributes */
     unsigned char *ex; /* poly: count x D exponents; fourier: count x D coefficients */
     double *offset;    /* tiles: tilings x D offsets in normalised units */
+    uint32_t *nz_at;   /* fourier: term k's non-zero coefficients are nz[nz_at[k]..nz_at[k+1]) */
+    uint32_t *nz;      /* fourier: index j*(order+1) + c into the cos/sin table */
 };
 
 struct feat {
@@ -198,6 +200,24 @@ static void gen_fourier(unsigned char *cur, size_t d, size_t dim, unsigned order
     cur[dim] = 0;
 }
 
+/* Lists each Fourier term's non-zero coefficients, so evaluation skips the zeros. */
+static void sparse_fourier(struct basis *b, size_t d)
+{
+    size_t total = 0, k1 = b->p.order + 1;
+    for (size_t k = 0; k < b->count * d; k++)
+        total += b->ex[k] != 0;
+    b->nz_at = mem_alloc((b->count + 1) * sizeof *b->nz_at);
+    b->nz = mem_alloc((total ? total : 1) * sizeof *b->nz);
+    size_t at = 0;
+    for (size_t k = 0; k < b->count; k++) {
+        b->nz_at[k] = (uint32_t)at;
+        for (size_t j = 0; j < d; j++)
+            if (b->ex[k * d + j])
+                b->nz[at++] = (uint32_t)(j * k1 + b->ex[k * d + j]);
+    }
+    b->nz_at[b->count] = (uint32_t)at;
+}
+
 int feat_new(const feat_spec_t *spec, struct feat **out, char *err, size_t errlen)
 {
     size_t d = spec->dims;
@@ -265,6 +285,9 @@ int feat_new(const feat_spec_t *spec, struct feat **out, char *err, size_t errle
             gen_fourier(cur, d, 0, b->p.order, 0, b->p.couple ? b->p.couple : (unsigned)d, b->ex,
                         &k);
             CHECK(k == b->count);
+            sparse_fourier(b, d);
+            if (2 * d * (b->p.order + 1) > extra)
+                extra = 2 * d * (b->p.order + 1);
             break;
         case FEAT_RBF:
             if (d * b->p.centers > extra)
@@ -301,6 +324,8 @@ void feat_free(struct feat *f)
     for (size_t i = 0; i < f->nbases; i++) {
         mem_free(f->b[i].ex);
         mem_free(f->b[i].offset);
+        mem_free(f->b[i].nz_at);
+        mem_free(f->b[i].nz);
     }
     mem_free(f->b);
     mem_free(f->lo);
@@ -360,15 +385,35 @@ static void eval_basis(const struct basis *b, size_t d, const double *u, double 
         }
         return;
     }
-    case FEAT_FOURIER:
+    case FEAT_FOURIER: {
+        /*
+         * cos(pi c.u) is the real part of the product over dimensions of
+         * e^{i pi c_j u_j}.  Per dimension one cos and one sin give
+         * e^{i pi u_j}; its powers 0..order follow by complex multiplication.
+         * Each term then costs a few multiplications instead of a cos.
+         */
+        size_t k1 = b->p.order + 1;
+        for (size_t j = 0; j < d; j++) {
+            double *t = tab + 2 * j * k1, c1 = cos(PI * u[j]), s1 = sin(PI * u[j]);
+            t[0] = 1.0;
+            t[1] = 0.0;
+            for (size_t k = 1; k < k1; k++) {
+                t[2 * k] = t[2 * k - 2] * c1 - t[2 * k - 1] * s1;
+                t[2 * k + 1] = t[2 * k - 2] * s1 + t[2 * k - 1] * c1;
+            }
+        }
         for (size_t k = 0; k < b->count; k++) {
-            const unsigned char *c = b->ex + k * d;
-            double s = 0.0;
-            for (size_t j = 0; j < d; j++)
-                s += c[j] * u[j];
-            phi[k] = cos(PI * s);
+            double re = 1.0, im = 0.0;
+            for (uint32_t e = b->nz_at[k]; e < b->nz_at[k + 1]; e++) {
+                const double *z = tab + 2 * (size_t)b->nz[e];
+                double r2 = re * z[0] - im * z[1];
+                im = re * z[1] + im * z[0];
+                re = r2;
+            }
+            phi[k] = re;
         }
         return;
+    }
     case FEAT_RBF: {
         /* Separable: exp(-|u-m|^2 / 2w^2) is the product of per-dimension factors. */
         unsigned c = b->p.centers;

@@ -141,13 +141,46 @@ static int regularise(struct est *e, struct rls *m)
     return 0;
 }
 
+/*
+ * The fused kernel: one pass over P (row-major) gives both pz = P z and
+ * u = P' d, where dgemv twice would read P twice.  The simd pragma lets the
+ * compiler vectorise the row dot product (a reduction), which plain -O2 may
+ * not reorder; the order is fixed per build, so results stay deterministic.
+ */
+static void products(size_t n, const double *P, const double *z, const double *d, double *pz,
+                     double *u)
+{
+    memset(u, 0, n * sizeof *u);
+    for (size_t i = 0; i < n; i++) {
+        const double *row = P + i * n;
+        double acc = 0.0, di = d[i];
+#pragma omp simd reduction(+ : acc)
+        for (size_t j = 0; j < n; j++) {
+            acc += row[j] * z[j];
+            u[j] += di * row[j];
+        }
+        pz[i] = acc;
+    }
+}
+
+/* P = (P - k u') * inv_mu in one pass (dscal and dger would take two). */
+static void downdate(size_t n, double *P, const double *k, const double *u, double inv_mu)
+{
+    for (size_t i = 0; i < n; i++) {
+        double *row = P + i * n, ki = k[i] * inv_mu;
+#pragma omp simd
+        for (size_t j = 0; j < n; j++)
+            row[j] = row[j] * inv_mu - ki * u[j];
+    }
+}
+
 static int rls_observe(struct est *e, size_t src, const double *phi, double r, const double *phin,
                        double g, int terminal, double v, double vn)
 {
     struct rls *m = e->k;
     struct slot *s = &m->s[src];
     size_t n = e->n;
-    int ni = (int)n, guarded = 0;
+    int guarded = 0;
     double mu = e->p.forget;
     if (!s->z)
         s->z = mem_calloc(n, sizeof *s->z);
@@ -169,18 +202,16 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
         guarded = mu_t != mu;
     }
 
-    cblas_dgemv(CblasRowMajor, CblasNoTrans, ni, ni, 1.0, m->P, ni, s->z, 1, 0.0, m->pz, 1);
+    products(n, m->P, s->z, m->d, m->pz, m->u);
     double den = mu_t + est_dot(n, m->d, m->pz);
     double err = r - (v - g * vn); /* r - d'w: the TD error under the current weights */
     if (!(fabs(den) > 1e-6 * mu_t) || !isfinite(den)) {
         guarded = 1;
     } else {
-        cblas_dgemv(CblasRowMajor, CblasTrans, ni, ni, 1.0, m->P, ni, m->d, 1, 0.0, m->u, 1);
-        cblas_dscal(ni, 1.0 / den, m->pz, 1); /* pz is now the gain k */
+        for (size_t i = 0; i < n; i++)
+            m->pz[i] /= den; /* pz is now the gain k */
         est_axpy(n, err, m->pz, e->w);
-        if (mu_t != 1.0)
-            cblas_dscal(ni * ni, 1.0 / mu_t, m->P, 1);
-        cblas_dger(CblasRowMajor, ni, ni, -1.0 / mu_t, m->pz, 1, m->u, 1, m->P, ni);
+        downdate(n, m->P, m->pz, m->u, 1.0 / mu_t);
     }
     if (e->p.guard == EST_GUARD_REGULARISE && mu < 1.0)
         guarded |= regularise(e, m);

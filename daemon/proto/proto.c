@@ -574,7 +574,7 @@ static int do_observe(struct req *rq)
         const char *src = NULL;
         int rc = parse_obs(l, rq->root, 1, r, &src, p->err, sizeof p->err, "");
         if (!rc)
-            rc = learner_sources_fit(l, &src, 1, p->err, sizeof p->err);
+            rc = learner_sources_fit(l, &src, 1, NULL, p->err, sizeof p->err);
         if (rc)
             return fail_done(rq, rc, "%s", p->err);
         uint64_t seq = learner_commit(l, 1);
@@ -607,9 +607,12 @@ static int do_observe(struct req *rq)
             return PROTO_DONE;
         }
     }
-    int rc = learner_sources_fit(l, p->srcs, k, p->err, sizeof p->err);
-    if (rc)
-        return fail_done(rq, rc, "%s", p->err);
+    size_t bad_at = 0;
+    int rc = learner_sources_fit(l, p->srcs, k, &bad_at, p->err, sizeof p->err);
+    if (rc) {
+        reply_error(p, rq->c, rq->id, rc, (long)bad_at, "batch[%zu]: %s", bad_at, p->err);
+        return PROTO_DONE;
+    }
     uint64_t seq = learner_commit(l, k);
     out_begin(&p->out, 1, rq->id);
     out_fmt(&p->out, ",\"seq\":%llu,\"count\":%zu", (unsigned long long)seq, k);
@@ -676,7 +679,7 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
     if (learner_space(l) < k)
         return park(l);
     const char *src = pc->source[0] ? pc->source : NULL;
-    int rc = learner_sources_fit(l, &src, 1, p->err, sizeof p->err);
+    int rc = learner_sources_fit(l, &src, 1, NULL, p->err, sizeof p->err);
     if (rc) {
         reply_error(p, c, id, rc, -1, "%s", p->err);
         return PROTO_DONE;
@@ -886,7 +889,8 @@ static int do_stats(struct req *rq)
     out_s(o, ",\"model\":");
     out_str(o, learner_name(l));
     out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"queue\":%zu,\"clipped\":%llu,\"sources\":%zu",
-            (unsigned long long)st.received, (unsigned long long)st.applied, st.queued,
+            (unsigned long long)st.received, (unsigned long long)st.applied,
+            (size_t)(st.received - st.applied),
             (unsigned long long)st.counts.clipped, st.counts.sources);
     out_s(o, ",\"estimators\":{");
     for (size_t i = 0; i < model_n_est(m); i++) {

@@ -210,7 +210,7 @@ static int get_double(const cJSON *it, const char *path, double *out, char *err,
 static int get_int(const cJSON *it, const char *path, double lo, double hi, uint64_t *out,
                    char *err, size_t errlen)
 {
-    double v;
+    double v = 0;
     int rc = get_double(it, path, &v, err, errlen);
     if (rc)
         return rc;
@@ -237,9 +237,9 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
                      void *dst, char *err, size_t errlen)
 {
     char *p = (char *)dst + f->off;
-    uint64_t u;
+    uint64_t u = 0;
     double d;
-    const char *s;
+    const char *s = NULL;
     int rc;
     switch (f->type) {
     case F_DOUBLE:
@@ -366,7 +366,7 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
             return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
         if ((rc = check_keys(b, basis_fields, NBASISF, path, err, errlen)))
             return rc;
-        const char *name;
+        const char *name = NULL;
         snprintf(fp, sizeof fp, "%s.basis", path);
         if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(b, "basis"), fp, &name, err, errlen)))
             return rc;
@@ -416,7 +416,7 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
             return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
         if ((rc = check_keys(e, est_fields, NESTF, path, err, errlen)))
             return rc;
-        const char *name, *kname;
+        const char *name = NULL, *kname = NULL; /* set before use; -O3 cannot see it */
         snprintf(fp, sizeof fp, "%s.name", path);
         if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(e, "name"), fp, &name, err, errlen)))
             return rc;
@@ -613,8 +613,8 @@ int spec_name_ok(const char *name)
 static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
 {
     int rc;
-    const char *name;
-    uint64_t u;
+    const char *name = NULL;
+    uint64_t u = 0;
     double d;
     const cJSON *it;
 
