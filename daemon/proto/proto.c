@@ -359,7 +359,7 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *
         return code;
     if (!isnan(r->dt_s) && r->dt_s < 0) {
         snprintf(err, errlen, "%s\"dt\" must be >= 0", where);
-        return WORTH_E_BAD_NUMBER;
+        return WORTH_E_BAD_PARAM;
     }
     const cJSON *s = field(o, "source");
     *src = NULL;
@@ -637,18 +637,21 @@ static int do_bulk_header(struct req *rq)
     int code = 0;
     if (!only_keys(rq->root, keys, &bad)) {
         FAIL(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in observe.bulk", bad);
-    } else if (!cJSON_IsNumber(cnt) || cnt->valuedouble != floor(cnt->valuedouble) ||
-               cnt->valuedouble < 1) {
-        FAIL(rq, WORTH_E_BAD_REQUEST, "\"count\" must be an integer >= 1");
+    } else if (!cJSON_IsNumber(cnt)) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"count\" must be a number");
+    } else if (cnt->valuedouble != floor(cnt->valuedouble) || cnt->valuedouble < 1) {
+        FAIL(rq, WORTH_E_BAD_PARAM, "\"count\" must be an integer >= 1");
     } else if (cnt->valuedouble > (double)p->o->max_batch) {
         FAIL(rq, WORTH_E_TOO_LARGE, "bulk of %.0f exceeds the limit %zu", cnt->valuedouble,
              p->o->max_batch);
-    } else if (s && (!cJSON_IsString(s) || strlen(s->valuestring) > MODEL_NAME_MAX)) {
-        FAIL(rq, WORTH_E_BAD_REQUEST, "\"source\" must be a string of at most %d bytes",
-             MODEL_NAME_MAX);
-    } else if (!opt_number(rq->root, "dt", &dt, &code, p->err, sizeof p->err, "") ||
-               (!isnan(dt) && dt < 0)) {
-        FAIL(rq, code ? code : WORTH_E_BAD_NUMBER, "\"dt\" must be a finite number >= 0");
+    } else if (s && !cJSON_IsString(s)) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"source\" must be a string");
+    } else if (s && strlen(s->valuestring) > MODEL_NAME_MAX) {
+        FAIL(rq, WORTH_E_BAD_PARAM, "\"source\" is longer than %d bytes", MODEL_NAME_MAX);
+    } else if (!opt_number(rq->root, "dt", &dt, &code, p->err, sizeof p->err, "")) {
+        FAIL(rq, code, "%s", p->err);
+    } else if (!isnan(dt) && dt < 0) {
+        FAIL(rq, WORTH_E_BAD_PARAM, "\"dt\" must be >= 0");
     } else {
         snprintf(pc->model, sizeof pc->model, "%s", learner_name(l));
         pc->count = (size_t)cnt->valuedouble;
@@ -701,8 +704,8 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
             return PROTO_DONE;
         }
         if (term != 0.0 && term != 1.0) {
-            reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i,
-                        "record %zu: terminal must be 0 or 1", i);
+            reply_error(p, c, id, WORTH_E_BAD_PARAM, (long)i, "record %zu: terminal must be 0 or 1",
+                        i);
             return PROTO_DONE;
         }
         r->type = LREC_OBS;
@@ -890,8 +893,8 @@ static int do_stats(struct req *rq)
     out_str(o, learner_name(l));
     out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"queue\":%zu,\"clipped\":%llu,\"sources\":%zu",
             (unsigned long long)st.received, (unsigned long long)st.applied,
-            (size_t)(st.received - st.applied),
-            (unsigned long long)st.counts.clipped, st.counts.sources);
+            (size_t)(st.received - st.applied), (unsigned long long)st.counts.clipped,
+            st.counts.sources);
     out_s(o, ",\"estimators\":{");
     for (size_t i = 0; i < model_n_est(m); i++) {
         const est_stats_t *e = &st.est[i];

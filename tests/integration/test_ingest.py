@@ -16,7 +16,7 @@ import time
 import numpy as np
 import pytest
 
-from conftest import Client, daemon_path, is_closed_error
+from conftest import Client, Daemon, daemon_path, is_closed_error
 
 
 # Boyan's chain ---------------------------------------------------------------------------------
@@ -288,6 +288,94 @@ def test_stats_consistent_under_load(daemon):
     assert c.wait_applied("busy", n * rounds, timeout=60)["queue"] == 0
 
 
+def heavy_model(c, name, centers):
+    """A model whose learner is slow: rbf centers^2 features, lstd and rls_td (O(n^2) each)."""
+    c.ok({"op": "model.create", "model": name, "dims": 2, "gamma": 0.9,
+          "ranges": [[0, 1], [0, 1]],
+          "features": [{"basis": "rbf", "centers": centers, "width": 0.2}],
+          "estimators": [{"name": "lstd", "kind": "lstd"}, {"name": "rls", "kind": "rls_td"}]})
+
+
+def test_small_queue_backpressure(daemon):
+    # --queue 10: producers wait for room; nothing is refused or lost, queries go on.
+    d = daemon("--max-batch", 10, "--queue", 10)
+    c = d.client()
+    heavy_model(c, "q", 10)
+    per, producers = 60, 3
+    seqs, errors = [], []
+
+    def produce(i):
+        try:
+            p = Client(d.sock)
+            tr = {"x": [i / 3, 0.5], "r": 1.0, "x_next": [0.5, 0.5], "source": f"s{i}"}
+            for k in range(per):
+                if k % 2:
+                    rep = p.call({"op": "observe", "model": "q", "batch": [tr] * 10}, timeout=30)
+                    assert rep.get("ok") is True and rep["count"] == 10, rep
+                    seqs.extend(range(rep["seq"] - 9, rep["seq"] + 1))
+                else:
+                    rep = p.call(dict(tr, op="observe", model="q"), timeout=30)
+                    assert rep.get("ok") is True, rep
+                    seqs.append(rep["seq"])
+            p.close()
+        except BaseException as e:
+            errors.append(f"producer {i}: {e!r}")
+
+    threads = [threading.Thread(target=produce, args=(i,)) for i in range(producers)]
+    for t in threads:
+        t.start()
+    q = d.client()
+    deadline = time.monotonic() + 60
+    for _ in range(10_000):
+        if not any(t.is_alive() for t in threads) or time.monotonic() > deadline:
+            break
+        t0 = time.monotonic()
+        assert q.ok({"op": "value", "model": "q", "x": [0.5, 0.5]}, timeout=5)["seq"] >= 0
+        assert time.monotonic() - t0 < 2
+    for t in threads:
+        t.join(60)
+    assert not any(t.is_alive() for t in threads) and not errors, errors
+    total = producers * (per // 2) * 11
+    assert sorted(seqs) == list(range(1, total + 1))
+    assert c.wait_applied("q", total, timeout=60)["applied"] == total
+
+
+def test_drop_with_backlog(daemon):
+    d = daemon()
+    c = d.client()
+    heavy_model(c, "slow", 16)
+    n = 50_000
+    rng = np.random.default_rng(3)
+    x = rng.uniform(size=(n + 1, 2))
+    c.send({"op": "observe.bulk", "model": "slow", "count": n})
+    c.send_raw(np.column_stack([x[:-1], np.ones(n), x[1:], np.zeros(n)]).astype("<f8").tobytes())
+    assert c.recv(30) == {"ok": True, "seq": n, "count": n}
+    # queries never wait for the backlog
+    t0 = time.monotonic()
+    rep = c.ok({"op": "value", "model": "slow", "x": [0.5, 0.5]})
+    assert time.monotonic() - t0 < 1.0
+    st0 = c.stats("slow")
+    time.sleep(0.2)
+    st1 = c.stats("slow")
+    assert rep["seq"] <= st0["applied"] <= st1["applied"] < n, (rep, st0, st1)
+    rate = max(st1["applied"] - st0["applied"], 1) / 0.2
+    left = (n - st1["applied"]) / rate
+    print(f"backlog at drop: {n - st1['applied']} transitions, about {left:.1f} s of learning")
+    # drop discards what is still queued: it does not wait for it
+    t0 = time.monotonic()
+    assert c.call({"op": "model.drop", "model": "slow"}, timeout=30) == {"ok": True}
+    took = time.monotonic() - t0
+    if left > 1.0:
+        assert took < left / 2, f"model.drop took {took:.2f} s with {left:.1f} s of backlog"
+    c.err({"op": "stats", "model": "slow"}, "no_such_model")
+    assert c.ok({"op": "model.list"})["models"] == []
+    # the name is free; the new model starts from nothing
+    heavy_model(c, "slow", 4)
+    assert c.call({"op": "observe", "model": "slow", "x": [0.5, 0.5], "r": 1,
+                   "terminal": True}) == {"ok": True, "seq": 1}
+    assert c.wait_applied("slow", 1)["applied"] == 1
+
+
 # Shutdown under load ---------------------------------------------------------------------------
 
 def test_sigterm_during_ingest(daemon):
@@ -462,6 +550,23 @@ def test_stale_socket_replaced(daemon, sockdir):
     d = daemon(sock=path)
     d.client().assert_open()
     assert stat.S_IMODE(os.stat(path).st_mode) == 0o660
+
+
+def test_default_socket_path(tmp_path):
+    # protocol.md: default ./worthd.sock, mode 0660
+    if len(str(tmp_path)) > 90:
+        pytest.skip("tmp_path too long for a socket path")
+    d = Daemon([daemon_path()], tmp_path / "worthd.sock", str(tmp_path), 0)
+    try:
+        d.wait_ready()
+        assert stat.S_IMODE(os.stat(d.sock).st_mode) == 0o660
+        c = d.client()
+        c.assert_open()
+        c.close()
+    finally:
+        rc, killed = d.stop()
+    assert not killed and rc == 0, (rc, d.tail())
+    assert not d.stdout
 
 
 def test_second_daemon_same_socket_refuses(daemon):

@@ -475,10 +475,12 @@ def test_value_seq_equals_applied(c):
 # train --------------------------------------------------------------------------------------
 
 def read_train(c, passes, rid=None, timeout=30):
-    """Reads progress lines then the final reply of a train request; returns (progress, final)."""
+    """Reads progress lines then the final reply of a train request, all within timeout
+    seconds; returns (progress, final)."""
     progress = []
+    deadline = time.monotonic() + timeout
     for _ in range(passes + 2):
-        rep = c.recv(timeout)
+        rep = c.recv(max(deadline - time.monotonic(), 0.001))
         if "ok" in rep:
             return progress, rep
         assert set(rep) == ({"progress"} if rid is None else {"id", "progress"}), rep
