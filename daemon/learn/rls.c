@@ -147,7 +147,18 @@ static int regularise(struct est *e, struct rls *m)
  * compiler vectorise the row dot product (a reduction), which plain -O2 may
  * not reorder; the order is fixed per build, so results stay deterministic.
  */
-static void products(size_t n, const double *P, const double *z, const double *d, double *pz,
+/*
+ * x86-64: build the two O(n^2) kernels twice, for AVX2+FMA and for the
+ * baseline, and let the loader pick (GCC's target_clones, an ifunc): Debian
+ * builds for the baseline, but these loops are where RLS-TD spends its time.
+ */
+#if defined(__x86_64__) && defined(__GNUC__) && !defined(__clang__)
+#define KERNEL __attribute__((target_clones("arch=x86-64-v3", "default")))
+#else
+#define KERNEL
+#endif
+
+KERNEL static void products(size_t n, const double *P, const double *z, const double *d, double *pz,
                      double *u)
 {
     memset(u, 0, n * sizeof *u);
@@ -164,7 +175,7 @@ static void products(size_t n, const double *P, const double *z, const double *d
 }
 
 /* P = (P - k u') * inv_mu in one pass (dscal and dger would take two). */
-static void downdate(size_t n, double *P, const double *k, const double *u, double inv_mu)
+KERNEL static void downdate(size_t n, double *P, const double *k, const double *u, double inv_mu)
 {
     for (size_t i = 0; i < n; i++) {
         double *row = P + i * n, ki = k[i] * inv_mu;

@@ -6,6 +6,7 @@ Starts worthd on a temporary socket, creates a model with 8 state dimensions and
 rls_td, streams N transitions as observe.bulk frames of B records, and reports
 transitions per second from the first byte sent until stats shows all applied.
 Usage: ingest.py WORTHD [N] [B] [ESTIMATORS]   (ESTIMATORS e.g. td,rls_td)
+FORGET=0.999 in the environment sets rls_td's forgetting factor (default 1).
 """
 import json
 import os
@@ -44,7 +45,7 @@ def main():
         est = [{"name": k, "kind": k} for k in kinds]
         for e in est:
             if e["kind"] == "rls_td":
-                e["forget"] = float(os.environ.get("FORGET", "0.999"))
+                e["forget"] = float(os.environ.get("FORGET", "1"))
         r = call({"op": "model.create", "model": "bench", "dims": d, "gamma": 0.99,
                   "ranges": [[0, 1]] * d,
                   "features": [{"basis": "bias"}, {"basis": "fourier", "order": 8, "couple": 1}],
