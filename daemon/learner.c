@@ -2,31 +2,39 @@
  * learner.c - a model's queue, learner thread and published snapshot.
  *
  * Owns the model, the record ring, the two snapshot buffers and the thread.
- * The loop thread produces records (head) and reads the front snapshot; the
- * learner thread consumes records (tail), owns the model's mutable state and
- * writes the back snapshot.  It must never let the loop thread touch the
- * model's mutable state, and never drop an accepted record.
+ * Three parties share the ring, each with its own cursor:
+ *   the loop thread fills slots at head (learner_slot, learner_commit);
+ *   the writer thread appends [durable, head) to the log and, after COMMIT,
+ *   advances durable (learner_pending, learner_set_durable);
+ *   the learner thread applies [tail, durable) to the model.
+ * So a record is learnt only once it is in the log, and the model is always
+ * the log's replay.  The learner must never let the loop touch the model's
+ * mutable state, and never drop an accepted record.
  *
  * Invariants.
- * 1. head and tail only grow; head - tail <= cap; both change under mu.
- * 2. Records in [tail, head) are read by the learner only; slots outside it
- *    are written by the loop only.
- * 3. Seqs: record k (from 0) of the model's life is transition k + 1;
- *    `received` counts committed transitions, `applied` learnt ones.
- * 4. The front snapshot is read only under snap_mu; the swap is under snap_mu,
- *    so a reader never sees a half-written snapshot.
+ * 1. tail <= durable <= head, each only grows, head - tail <= cap; all three
+ *    change under mu.
+ * 2. Slots in [tail, head) are written by nobody; the loop writes only
+ *    beyond head, the writer only rewrites a record's type to LREC_DEAD (and
+ *    a rollback's plan) before advancing durable past it.
+ * 3. Seqs: the loop numbers transitions from 1 per model, never reusing one,
+ *    also across restarts (recovery starts from the log's last seq).
+ * 4. The front snapshot is read only under snap_mu; the swap is under snap_mu.
  */
 #include "learner.h"
 
 #include <math.h>
 #include <pthread.h>
+#include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
 #include <time.h>
 
+#include "db.h"
 #include "mem.h"
 #include "say.h"
 #include "worth/errors.h"
+#include "writer.h"
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
@@ -46,25 +54,31 @@ struct learner {
     char *spec_json;
     struct model *m;
     size_t dims, n_est;
+    learner_opts_t o;
+    int64_t db_id; /* written by the writer before the first durable advance */
 
     /* Queue (invariants 1-3). */
     pthread_mutex_t mu;
     pthread_cond_t cond;
     unsigned char *ring;
     size_t cap, stride;
-    uint64_t head, tail;
+    uint64_t head, durable, tail;
     int stop, discard, want_space;
-    uint64_t received; /* loop thread only */
+    uint64_t seq;      /* loop thread: last seq given out */
+    uint64_t training; /* loop thread: last training ordinal given out */
 
-    /* Loop-side mirror of the model's source table (assigned in the same order). */
+    /* Loop-side mirror of the model's source table (a superset: rollbacks free no slot). */
     char (*src)[MODEL_NAME_MAX + 1];
     size_t n_src, max_src;
+
+    /* Learner thread only. */
+    uint64_t applied_seq, model_training, since_checkpoint;
 
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
     struct snap snaps[2];
     int front;
-    double *qwork, *qvals, *qsd; /* loop-thread query workspace */
+    double *qwork; /* loop-thread query workspace */
 
     pthread_t thread;
     int joined;
@@ -93,11 +107,11 @@ static learner_rec_t *rec_at(struct learner *l, uint64_t k)
 }
 
 /* Fills the back snapshot from the model and swaps it to the front.  Learner thread. */
-static void publish(struct learner *l, uint64_t applied, double last_update)
+static void publish(struct learner *l, double last_update)
 {
     struct snap *b = &l->snaps[1 - l->front];
     model_snap(l->m, b->data);
-    b->applied = applied;
+    b->applied = l->applied_seq;
     model_counts(l->m, &b->counts);
     for (size_t i = 0; i < l->n_est; i++)
         est_stats(model_est(l->m, i), &b->est[i]);
@@ -105,6 +119,33 @@ static void publish(struct learner *l, uint64_t applied, double last_update)
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
     pthread_mutex_unlock(&l->snap_mu);
+}
+
+/* Posts a reply for conn_id: rc 0 with text the fields after "ok":true, else the message. */
+static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, ...)
+    __attribute__((format(printf, 4, 5)));
+static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, ...)
+{
+    char buf[512];
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(buf, sizeof buf, fmt, ap);
+    va_end(ap);
+    learner_event_t ev = {.kind = LEV_REPLY, .l = l, .conn_id = conn_id, .rc = rc};
+    ev.text = mem_strdup(buf);
+    l->post(l->ctx, &ev);
+}
+
+/* Serialises the model and hands it to the writer. */
+static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
+{
+    size_t len = 0;
+    model_save(l->m, NULL, 0, &len);
+    uint8_t *blob = mem_alloc(len);
+    CHECK(model_save(l->m, blob, len, &len) == 0);
+    writer_store_checkpoint(l->o.writer, l, l->applied_seq, l->model_training, label, blob, len,
+                            conn_id);
+    l->since_checkpoint = 0;
 }
 
 struct train_ctx {
@@ -124,9 +165,52 @@ static void on_pass(void *ctx, unsigned pass, unsigned of, double change)
     t->l->post(t->l->ctx, &ev);
 }
 
+/* Restores the checkpoint of a rollback plan and replays the log after it. */
+static void rollback(struct learner *l, learner_rec_t *r)
+{
+    learner_plan_t *p = r->job;
+    char err[256];
+    if (p->rc) {
+        reply(l, r->conn_id, p->rc, "%s", p->err);
+        return;
+    }
+    if (model_load(l->m, p->blob, p->blob_len, err, sizeof err) != 0) {
+        say_error("model %s: checkpoint %lld cannot be restored: %s", l->name,
+                  (long long)p->checkpoint, err);
+        reply(l, r->conn_id, WORTH_E_CORRUPT, "checkpoint %lld cannot be restored: %s",
+              (long long)p->checkpoint, err);
+        return;
+    }
+    uint64_t replayed = 0, last_training = p->cp_training;
+    if (p->replay) {
+        sqlite3 *ro = NULL;
+        db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
+        int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err);
+        if (rc == 0)
+            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, err,
+                           sizeof err);
+        sqlite3_close(ro);
+        if (rc) {
+            say_error("model %s: replay after rollback failed: %s", l->name, err);
+            reply(l, r->conn_id, WORTH_E_IO, "restored checkpoint %lld but the replay failed: %s",
+                  (long long)p->checkpoint, err);
+            l->model_training = last_training;
+            return;
+        }
+    }
+    l->model_training = last_training;
+    say_info("model %s: rolled back to checkpoint %lld (seq %llu): %llu undone, %llu replayed",
+             l->name, (long long)p->checkpoint, (unsigned long long)p->cp_seq,
+             (unsigned long long)p->undone, (unsigned long long)replayed);
+    reply(l, r->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replayed\":%llu",
+          (long long)p->checkpoint, (unsigned long long)p->cp_seq, (unsigned long long)p->undone,
+          (unsigned long long)replayed);
+}
+
 static void apply(struct learner *l, learner_rec_t *r)
 {
-    if (r->type == LREC_OBS) {
+    switch (r->type) {
+    case LREC_OBS: {
         model_obs_t o = {
             .x = r->v,
             .x_len = l->dims,
@@ -144,35 +228,61 @@ static void apply(struct learner *l, learner_rec_t *r)
             say_error("model %s: accepted transition refused: %s", l->name, err);
             CHECK(rc == 0);
         }
+        l->applied_seq = r->seq;
+        l->since_checkpoint++;
+        if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every)
+            checkpoint(l, NULL, 0);
         return;
     }
-    est_train_t rep = {0, 0, 0};
-    struct train_ctx t = {l, r->conn_id};
-    int rc = model_train(l->m, r->est, r->passes, on_pass, &t, &rep);
-    learner_event_t ev = {.kind = LEV_TRAINED,
-                          .l = l,
-                          .conn_id = r->conn_id,
-                          .rc = rc,
-                          .pass = rep.passes,
-                          .of = r->passes,
-                          .change = rep.change,
-                          .converged = rep.converged};
-    l->post(l->ctx, &ev);
+    case LREC_TRAIN: {
+        est_train_t rep = {0, 0, 0};
+        struct train_ctx t = {l, r->conn_id};
+        int rc = model_train(l->m, r->est, r->passes, on_pass, &t, &rep);
+        l->model_training = r->ordinal;
+        learner_event_t ev = {.kind = LEV_TRAINED,
+                              .l = l,
+                              .conn_id = r->conn_id,
+                              .rc = rc,
+                              .pass = rep.passes,
+                              .of = r->passes,
+                              .change = rep.change,
+                              .converged = rep.converged};
+        l->post(l->ctx, &ev);
+        return;
+    }
+    case LREC_CHECKPOINT:
+        checkpoint(l, r->est ? r->src : NULL, r->conn_id);
+        return;
+    case LREC_ROLLBACK:
+        rollback(l, r);
+        l->applied_seq = r->seq;
+        l->since_checkpoint = 0;
+        mem_free(r->job->blob);
+        mem_free(r->job);
+        r->job = NULL;
+        return;
+    case LREC_DEAD:
+        if (r->seq > l->applied_seq)
+            l->applied_seq = r->seq;
+        return;
+    }
 }
 
 static void *run(void *arg)
 {
     struct learner *l = arg;
-    uint64_t applied = 0, last_pub = mono_ns();
+    uint64_t last_pub = mono_ns();
     double last_update = 0;
     int dirty = 0;
     for (;;) {
         pthread_mutex_lock(&l->mu);
-        while (l->head == l->tail && !l->stop)
+        while (l->durable == l->tail && !(l->stop && (l->discard || l->head == l->tail)))
             pthread_cond_wait(&l->cond, &l->mu);
         if (l->stop && (l->discard || l->head == l->tail)) {
-            /* Discarded train requests still get their one reply. */
-            for (uint64_t k = l->tail; k < l->head; k++) {
+            uint64_t from = l->tail, to = l->head;
+            pthread_mutex_unlock(&l->mu);
+            /* Dropped: requests still queued get their one reply. */
+            for (uint64_t k = from; k < to; k++) {
                 learner_rec_t *r = rec_at(l, k);
                 if (r->type == LREC_TRAIN) {
                     learner_event_t ev = {.kind = LEV_TRAINED,
@@ -180,59 +290,68 @@ static void *run(void *arg)
                                           .conn_id = r->conn_id,
                                           .rc = WORTH_E_NO_SUCH_MODEL};
                     l->post(l->ctx, &ev);
+                } else if (r->type == LREC_CHECKPOINT || r->type == LREC_ROLLBACK) {
+                    reply(l, r->conn_id, WORTH_E_NO_SUCH_MODEL, "model %s was dropped", l->name);
                 }
             }
-            l->tail = l->head;
-            pthread_mutex_unlock(&l->mu);
             break;
         }
-        uint64_t from = l->tail, to = l->head;
+        uint64_t from = l->tail, to = l->durable;
         pthread_mutex_unlock(&l->mu);
         if (to - from > CHUNK)
             to = from + CHUNK;
 
-        for (uint64_t k = from; k < to; k++) {
-            learner_rec_t *r = rec_at(l, k);
-            apply(l, r);
-            applied += r->type == LREC_OBS;
-        }
+        for (uint64_t k = from; k < to; k++)
+            apply(l, rec_at(l, k));
         last_update = wall_s();
         dirty = 1;
 
         pthread_mutex_lock(&l->mu);
         l->tail = to;
-        int empty = l->head == l->tail, wake = l->want_space;
+        int empty = l->durable == l->tail, wake = l->want_space;
         l->want_space = 0;
         pthread_mutex_unlock(&l->mu);
         uint64_t now = mono_ns();
         if (empty || now - last_pub >= PUBLISH_NS) {
-            publish(l, applied, last_update);
+            publish(l, last_update);
             last_pub = now;
             dirty = 0;
         }
         if (wake)
             l->wake(l->ctx);
     }
+    if (!l->discard && l->since_checkpoint > 0)
+        checkpoint(l, NULL, 0); /* the clean-shutdown checkpoint */
     if (dirty)
-        publish(l, applied, last_update);
+        publish(l, last_update);
     learner_event_t ev = {.kind = LEV_EXITED, .l = l};
     l->post(l->ctx, &ev);
     return NULL;
 }
 
-struct learner *learner_new(const char *name, char *spec_json, struct model *m, size_t queue_cap,
-                            learner_post_fn post, learner_wake_fn wake, void *ctx)
+struct learner *learner_new(const char *name, char *spec_json, struct model *m,
+                            const learner_opts_t *o, learner_post_fn post, learner_wake_fn wake,
+                            void *ctx)
 {
     struct learner *l = mem_calloc(1, sizeof *l);
     snprintf(l->name, sizeof l->name, "%s", name);
     l->spec_json = spec_json;
     l->m = m;
+    l->o = *o;
     l->dims = model_dims(m);
     l->n_est = model_n_est(m);
-    l->cap = queue_cap;
+    l->cap = o->queue_cap;
     l->stride = (sizeof(learner_rec_t) + 2 * l->dims * sizeof(double) + 7) & ~(size_t)7;
     l->ring = mem_calloc(l->cap, l->stride);
+    l->seq = l->applied_seq = o->seq;
+    l->training = o->training;
+    l->model_training = o->model_training;
     l->max_src = model_max_sources(m);
+    l->src = mem_calloc(l->max_src, sizeof *l->src);
+    model_counts_t c;
+    model_counts(m, &c);
+    for (size_t i = 0; i < c.sources; i++)
+        snprintf(l->src[l->n_src++], sizeof l->src[0], "%s", model_source_name(m, i));
     l->post = post;
     l->wake = wake;
     l->ctx = ctx;
@@ -242,12 +361,8 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m, 
     size_t ss = model_snap_size(m);
     for (int i = 0; i < 2; i++)
         l->snaps[i].data = mem_calloc(ss, sizeof(double));
-    model_snap(m, l->snaps[0].data); /* the initial weights answer until the first publish */
-    for (size_t i = 0; i < l->n_est; i++)
-        est_stats(model_est(m, i), &l->snaps[0].est[i]);
+    publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
-    l->qvals = mem_calloc(l->n_est, sizeof(double));
-    l->qsd = mem_calloc(l->n_est, sizeof(double));
     CHECK(pthread_create(&l->thread, NULL, run, l) == 0);
     return l;
 }
@@ -275,14 +390,20 @@ void learner_free(struct learner *l)
         return;
     learner_stop(l, 1);
     learner_join(l);
+    /* Plans of rollbacks never reached. */
+    for (uint64_t k = l->tail; k < l->head; k++) {
+        learner_rec_t *r = rec_at(l, k);
+        if (r->type == LREC_ROLLBACK && r->job) {
+            mem_free(r->job->blob);
+            mem_free(r->job);
+        }
+    }
     pthread_mutex_destroy(&l->mu);
     pthread_cond_destroy(&l->cond);
     pthread_mutex_destroy(&l->snap_mu);
     for (int i = 0; i < 2; i++)
         mem_free(l->snaps[i].data);
     mem_free(l->qwork);
-    mem_free(l->qvals);
-    mem_free(l->qsd);
     mem_free(l->ring);
     mem_free(l->src);
     mem_free(l->spec_json);
@@ -337,23 +458,23 @@ int learner_sources_fit(struct learner *l, const char *const *names, size_t k, s
 
 uint64_t learner_commit(struct learner *l, size_t k)
 {
-    if (!l->src)
-        l->src = mem_calloc(l->max_src, sizeof *l->src);
     for (size_t i = 0; i < k; i++) {
         learner_rec_t *r = rec_at(l, l->head + i);
         if (r->type == LREC_OBS) {
-            l->received++;
+            r->seq = ++l->seq;
             if (mirror_find(l, r->src) < 0) {
                 CHECK(l->n_src < l->max_src);
                 memcpy(l->src[l->n_src++], r->src, sizeof l->src[0]);
             }
+        } else {
+            r->seq = l->seq;
         }
     }
     pthread_mutex_lock(&l->mu);
     l->head += k;
-    pthread_cond_signal(&l->cond);
     pthread_mutex_unlock(&l->mu);
-    return l->received;
+    writer_kick(l->o.writer);
+    return l->seq;
 }
 
 void learner_want_space(struct learner *l)
@@ -361,6 +482,48 @@ void learner_want_space(struct learner *l)
     pthread_mutex_lock(&l->mu);
     l->want_space = 1;
     pthread_mutex_unlock(&l->mu);
+}
+
+uint64_t learner_last_seq(const struct learner *l)
+{
+    return l->seq;
+}
+
+uint64_t learner_next_training(struct learner *l)
+{
+    return ++l->training;
+}
+
+void learner_pending(struct learner *l, uint64_t *from, uint64_t *to)
+{
+    pthread_mutex_lock(&l->mu);
+    *from = l->durable;
+    *to = l->head;
+    pthread_mutex_unlock(&l->mu);
+}
+
+learner_rec_t *learner_rec(struct learner *l, uint64_t k)
+{
+    return rec_at(l, k);
+}
+
+void learner_set_durable(struct learner *l, uint64_t to)
+{
+    pthread_mutex_lock(&l->mu);
+    if (to > l->durable)
+        l->durable = to;
+    pthread_cond_signal(&l->cond);
+    pthread_mutex_unlock(&l->mu);
+}
+
+int64_t learner_db_id(const struct learner *l)
+{
+    return l->db_id;
+}
+
+void learner_set_db_id(struct learner *l, int64_t id)
+{
+    l->db_id = id;
 }
 
 const char *learner_name(const struct learner *l)
@@ -399,7 +562,7 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     memcpy(out->est, s->est, sizeof out->est);
     out->last_update = s->last_update;
     pthread_mutex_unlock(&l->snap_mu);
-    out->received = l->received;
+    out->received = l->seq;
     pthread_mutex_lock(&l->mu);
     out->queued = (size_t)(l->head - l->tail);
     pthread_mutex_unlock(&l->mu);

@@ -32,6 +32,11 @@ static const char usage[] =
     "\n"
     "options:\n"
     "  --socket PATH       Unix socket to listen on (default ./worthd.sock, mode 0660)\n"
+    "  --db PATH           SQLite database: log, models, checkpoints (default ./worthd.db)\n"
+    "  --sync MODE         full (default): an acknowledged transition survives power loss;\n"
+    "                      normal: it survives a crash of worthd, not of the machine\n"
+    "  --checkpoint-every N  automatic checkpoint every N transitions (default 100000; 0: off)\n"
+    "  --keep N            unlabelled checkpoints kept per model (default 10)\n"
     "  --listen HOST:PORT  also listen on TCP; a non-loopback address needs --token-file\n"
     "  --token-file FILE   TCP clients must send {\"op\":\"auth\",\"token\":...} first\n"
     "  --log-level LEVEL   error, warn, info (default) or debug; logs go to stderr\n"
@@ -93,6 +98,10 @@ int main(int argc, char **argv)
         .max_batch = 65536,
         .queue = 262144,
         .max_models = 256,
+        .db_path = "./worthd.db",
+        .sync_full = 1,
+        .checkpoint_every = 100000,
+        .keep = 10,
     };
     int queue_set = 0;
     static const struct option longopts[] = {
@@ -104,6 +113,10 @@ int main(int argc, char **argv)
         {"max-batch", required_argument, NULL, 'b'},
         {"queue", required_argument, NULL, 'q'},
         {"max-models", required_argument, NULL, 'm'},
+        {"db", required_argument, NULL, 'd'},
+        {"sync", required_argument, NULL, 'y'},
+        {"checkpoint-every", required_argument, NULL, 'c'},
+        {"keep", required_argument, NULL, 'k'},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -143,6 +156,25 @@ int main(int argc, char **argv)
             break;
         case 'm':
             o.max_models = parse_size("max-models", optarg, 1, 65536);
+            break;
+        case 'd':
+            o.db_path = optarg;
+            break;
+        case 'y':
+            if (strcmp(optarg, "full") == 0)
+                o.sync_full = 1;
+            else if (strcmp(optarg, "normal") == 0)
+                o.sync_full = 0;
+            else {
+                fprintf(stderr, "worthd: --sync must be full or normal\n");
+                return 2;
+            }
+            break;
+        case 'c':
+            o.checkpoint_every = parse_size("checkpoint-every", optarg, 0, 1ull << 40);
+            break;
+        case 'k':
+            o.keep = (unsigned)parse_size("keep", optarg, 1, 1000000);
             break;
         case 'h':
             fputs(usage, stdout);

@@ -238,6 +238,11 @@ size_t model_primary(const struct model *m)
     return m->primary;
 }
 
+const char *model_source_name(const struct model *m, size_t i)
+{
+    return i < m->n_sources ? m->sources[i] : NULL;
+}
+
 size_t model_max_sources(const struct model *m)
 {
     return m->max_sources;

@@ -97,6 +97,8 @@ size_t model_dims(const struct model *m);
 size_t model_features(const struct model *m);
 size_t model_n_est(const struct model *m);
 size_t model_primary(const struct model *m);
+/* Returns the name of source slot i (< counts.sources; borrowed), "" for the default. */
+const char *model_source_name(const struct model *m, size_t i);
 /* Returns the number of source slots. */
 size_t model_max_sources(const struct model *m);
 /* Returns the name of estimator i (borrowed). */

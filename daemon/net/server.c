@@ -38,9 +38,12 @@
 #include <uv.h>
 
 #include "arena.h"
+#include "db.h"
 #include "mem.h"
 #include "proto.h"
+#include "recover.h"
 #include "say.h"
+#include "writer.h"
 
 /* Lines handled per connection before yielding to others. */
 #define LINES_PER_PUMP 64
@@ -92,6 +95,7 @@ struct server {
     uint64_t next_id;
     size_t n_conns;
     struct proto *proto;
+    struct writer *writer;
     int stopping;
 
     /* Outbox: learner events, filled by learner threads under mu. */
@@ -118,6 +122,15 @@ struct proto_conn *conn_proto(struct conn *c)
     return &c->pc;
 }
 
+void server_each_conn(struct server *s, void (*fn)(struct conn *c, void *ctx), void *ctx)
+{
+    for (struct conn *c = s->conns, *next; c; c = next) {
+        next = c->next;
+        if (!c->closing)
+            fn(c, ctx);
+    }
+}
+
 struct conn *server_conn(struct server *s, uint64_t id)
 {
     for (struct conn *c = s->conns; c; c = c->next)
@@ -137,6 +150,7 @@ static void on_close(uv_handle_t *h)
     if (c->next)
         c->next->prev = c->prev;
     s->n_conns--;
+    proto_conn_free(s->proto, &c->pc);
     say_debug("connection %llu closed", (unsigned long long)c->id);
     mem_free(c->in);
     mem_free(c->bulk);
@@ -241,7 +255,8 @@ void conn_wait(struct conn *c)
 void conn_resume(struct conn *c)
 {
     c->waiting = 0;
-    pump(c);
+    if (!c->srv->stopping) /* at shutdown nothing new is accepted */
+        pump(c);
 }
 
 /* ---- reading and framing ----------------------------------------------------------------- */
@@ -399,11 +414,9 @@ static void wake_loop(void *ctx)
     uv_async_send(&s->wake);
 }
 
-static void on_wake(uv_async_t *h)
+/* Delivers every event the learners and the writer posted.  Loop thread. */
+static void drain_events(struct server *s)
 {
-    struct server *s = h->data;
-    if (s->stopping)
-        return;
     /* Take the whole outbox at once: uv_async_send coalesces. */
     pthread_mutex_lock(&s->mu);
     size_t n = s->n_events;
@@ -418,6 +431,14 @@ static void on_wake(uv_async_t *h)
     pthread_mutex_unlock(&s->mu);
     for (size_t i = 0; i < n; i++)
         proto_event(s->proto, s, &s->draining[i]);
+}
+
+static void on_wake(uv_async_t *h)
+{
+    struct server *s = h->data;
+    if (s->stopping)
+        return;
+    drain_events(s);
     /* Space may have been freed: retry every parked connection. */
     for (struct conn *c = s->conns; c; c = c->next)
         if (c->parked && !c->closing) {
@@ -594,7 +615,13 @@ static void stop(struct server *s, const char *why)
         uv_close((uv_handle_t *)&s->tcp_listener, NULL);
     for (struct conn *c = s->conns; c; c = c->next)
         update_reading(c);
+    /* Learners apply everything accepted (the writer still commits it), checkpoint, end. */
     proto_shutdown(s->proto);
+    writer_event(s->writer, NULL, "stop", "{}");
+    writer_free(s->writer); /* finishes every queued job and record, closes the database */
+    s->writer = NULL;
+    /* Deliver what the learners and the writer posted last (final replies, acks). */
+    drain_events(s);
     for (struct conn *c = s->conns; c; c = c->next)
         conn_close(c);
     uv_close((uv_handle_t *)&s->sigint, NULL);
@@ -613,10 +640,28 @@ int server_run(const server_opts_t *opts)
     struct server *s = mem_calloc(1, sizeof *s);
     s->o = opts;
     int status = 1;
+    char err[1024];
     CHECK(uv_loop_init(&s->loop) == 0);
     pthread_mutex_init(&s->mu, NULL);
     arena_install(4u << 20);
-    s->proto = proto_new(opts, post_event, wake_loop, s);
+
+    int lock = db_lock(opts->db_path, err, sizeof err);
+    sqlite3 *db = NULL;
+    if (lock < 0 || db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0) {
+        say_error("%s", err);
+        arena_uninstall();
+        uv_loop_close(&s->loop);
+        pthread_mutex_destroy(&s->mu);
+        mem_free(s);
+        if (lock >= 0)
+            close(lock);
+        return 1;
+    }
+    say_info("database %s (WAL, synchronous=%s)", opts->db_path,
+             opts->sync_full ? "FULL" : "NORMAL");
+    writer_opts_t wo = {.keep = opts->keep, .group_max = 4096};
+    s->writer = writer_new(db, &wo, post_event, s);
+    s->proto = proto_new(opts, s->writer, post_event, wake_loop, s);
 
     uv_async_init(&s->loop, &s->wake, on_wake);
     s->wake.data = s;
@@ -628,20 +673,19 @@ int server_run(const server_opts_t *opts)
     uv_signal_start(&s->sigint, on_signal, SIGINT);
     uv_signal_start(&s->sigterm, on_signal, SIGTERM);
 
-    if (listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0)) {
+    /* Recover before listening: nobody connects to a half-restored daemon. */
+    int ready =
+        recover_models(db, s->proto, s->writer, post_event, wake_loop, s, err, sizeof err) == 0;
+    if (!ready)
+        say_error("%s", err);
+    writer_start(s->writer);
+    writer_event(s->writer, NULL, "start", "{}");
+
+    if (ready && listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0)) {
         status = 0;
     } else {
-        s->stopping = 1;
-        if (s->have_unix) {
-            uv_close((uv_handle_t *)&s->unix_listener, NULL);
-            unlink(opts->socket_path);
-        }
-        if (s->have_tcp)
-            uv_close((uv_handle_t *)&s->tcp_listener, NULL);
-        uv_close((uv_handle_t *)&s->sigint, NULL);
-        uv_close((uv_handle_t *)&s->sigterm, NULL);
-        uv_close((uv_handle_t *)&s->wake, NULL);
-        uv_close((uv_handle_t *)&s->idle, NULL);
+        stop(s, "start-up failed");
+        status = 1;
     }
     uv_run(&s->loop, UV_RUN_DEFAULT);
     int rc = uv_loop_close(&s->loop);
@@ -649,12 +693,14 @@ int server_run(const server_opts_t *opts)
         say_error("event loop did not close cleanly: %s", uv_strerror(rc));
         status = 1;
     }
+    writer_free(s->writer);
     proto_free(s->proto);
     arena_uninstall();
     pthread_mutex_destroy(&s->mu);
     mem_free(s->events);
     mem_free(s->draining);
     mem_free(s);
+    close(lock);
     if (status == 0)
         say_info("stopped");
     return status;

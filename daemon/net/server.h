@@ -21,13 +21,17 @@ struct proto_conn;
 
 /* Plain data: the daemon's configuration (strings borrowed for the server's life). */
 typedef struct server_opts_t {
-    const char *socket_path; /* Unix socket path */
-    const char *listen;      /* "HOST:PORT" for TCP, or NULL */
-    const char *token;       /* required by TCP clients when set; never logged */
-    size_t max_line;         /* bytes of one request line */
-    size_t max_batch;        /* transitions in one batch or bulk */
-    size_t queue;            /* records in each model's queue (>= max_batch) */
-    size_t max_models;       /* models one daemon holds */
+    const char *socket_path;   /* Unix socket path */
+    const char *listen;        /* "HOST:PORT" for TCP, or NULL */
+    const char *token;         /* required by TCP clients when set; never logged */
+    size_t max_line;           /* bytes of one request line */
+    size_t max_batch;          /* transitions in one batch or bulk */
+    size_t queue;              /* records in each model's queue (>= max_batch) */
+    size_t max_models;         /* models one daemon holds */
+    const char *db_path;       /* SQLite database */
+    int sync_full;             /* synchronous=FULL (else NORMAL) */
+    uint64_t checkpoint_every; /* automatic checkpoint period in transitions; 0 = off */
+    unsigned keep;             /* unlabelled checkpoints kept per model */
 } server_opts_t;
 
 /*
@@ -52,6 +56,8 @@ void conn_expect_bulk(struct conn *c, size_t nbytes);
 /* Stops handling this connection's input until conn_resume (awaiting an answer). */
 void conn_wait(struct conn *c);
 void conn_resume(struct conn *c);
+/* Calls fn for every open connection (fn may close it). */
+void server_each_conn(struct server *s, void (*fn)(struct conn *c, void *ctx), void *ctx);
 /* Returns the live connection with that id, or NULL. */
 struct conn *server_conn(struct server *s, uint64_t id);
 

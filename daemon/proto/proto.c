@@ -43,11 +43,28 @@ struct out {
     size_t len, cap;
 };
 
+/*
+ * A model as the loop sees it: its learner and how far its log is durable.
+ * A dropped model's slot lives on until its learner has exited, the writer
+ * has released it and no waiting reply refers to it.
+ */
+struct slot {
+    struct learner *l;
+    uint64_t durable; /* last seq committed */
+    uint64_t failed;  /* last seq whose commit failed */
+    char why[200];    /* the reason of the last failure */
+    int gone;         /* dropped */
+    int exited, released;
+    unsigned refs; /* waiting replies that refer to it */
+};
+
 struct proto {
     const server_opts_t *o;
-    struct learner **models; /* registry, o->max_models slots, first n used */
+    struct writer *w;
+    struct server *srv;
+    struct slot **models; /* registry, o->max_models entries, first n used */
     size_t n;
-    struct learner **dropped; /* stopped, awaiting LEV_EXITED */
+    struct slot **dropped; /* dropped, not yet freed */
     size_t n_dropped, cap_dropped;
     learner_post_fn post;
     learner_wake_fn wake;
@@ -140,10 +157,65 @@ static void out_begin(struct out *o, int ok, const char *id)
     }
 }
 
+/* Appends bytes to the connection's ack buffer; returns their offset. */
+static size_t ack_text(proto_conn_t *pc, const char *b, size_t n)
+{
+    if (pc->ack_len + n > pc->ack_cap) {
+        pc->ack_cap = (pc->ack_len + n) * 2;
+        pc->ackbuf = mem_realloc(pc->ackbuf, pc->ack_cap);
+    }
+    memcpy(pc->ackbuf + pc->ack_len, b, n);
+    pc->ack_len += n;
+    return pc->ack_len - n;
+}
+
+/* Queues a reply behind the waiting ones: ready now (slot NULL) or once slot is durable to seq. */
+static void ack_push(proto_conn_t *pc, struct slot *slot, uint64_t seq, const char *b, size_t n,
+                     const char *id)
+{
+    if (pc->n_acks == pc->cap_acks) {
+        pc->cap_acks = pc->cap_acks ? 2 * pc->cap_acks : 16;
+        pc->acks = mem_realloc(pc->acks, pc->cap_acks * sizeof *pc->acks);
+    }
+    struct proto_ack *a = &pc->acks[pc->n_acks++];
+    a->slot = slot;
+    a->seq = seq;
+    a->off = ack_text(pc, b, n);
+    a->len = n;
+    a->id_len = id ? strlen(id) : 0;
+    a->id_off = id ? ack_text(pc, id, a->id_len) : 0;
+    if (slot)
+        slot->refs++;
+}
+
+/* Sends a finished reply line, after any that still wait on this connection. */
+static void send_line(struct conn *c, const char *b, size_t n)
+{
+    proto_conn_t *pc = conn_proto(c);
+    if (pc->ack_head == pc->n_acks)
+        conn_send(c, b, n);
+    else
+        ack_push(pc, NULL, 0, b, n, NULL);
+}
+
 static void out_end(struct out *o, struct conn *c)
 {
     out_raw(o, "}\n", 2);
-    conn_send(c, o->b, o->len);
+    send_line(c, o->b, o->len);
+}
+
+/* Formats an error reply line into p->out. */
+static void format_error(struct proto *p, const char *id, int code, long index, const char *msg)
+{
+    struct out *o = &p->out;
+    out_begin(o, 0, id);
+    out_s(o, ",\"error\":{\"code\":");
+    out_str(o, worth_err_name(code));
+    out_s(o, ",\"message\":");
+    out_str(o, msg);
+    if (index >= 0)
+        out_fmt(o, ",\"index\":%ld", index);
+    out_s(o, "}}\n");
 }
 
 static void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
@@ -156,29 +228,129 @@ static void reply_error(struct proto *p, struct conn *c, const char *id, int cod
     va_start(ap, fmt);
     vsnprintf(msg, sizeof msg, fmt, ap);
     va_end(ap);
-    struct out *o = &p->out;
-    out_begin(o, 0, id);
-    out_s(o, ",\"error\":{\"code\":");
-    out_str(o, worth_err_name(code));
-    out_s(o, ",\"message\":");
-    out_str(o, msg);
-    if (index >= 0)
-        out_fmt(o, ",\"index\":%ld", index);
-    out_s(o, "}");
-    out_end(o, c);
+    format_error(p, id, code, index, msg);
+    send_line(c, p->out.b, p->out.len);
 }
 
 /* ---- registry -------------------------------------------------------------------------- */
 
-static struct learner *find_model(struct proto *p, const char *name, size_t *at)
+static struct slot *find_slot(struct proto *p, const char *name, size_t *at)
 {
     for (size_t i = 0; i < p->n; i++)
-        if (strcmp(learner_name(p->models[i]), name) == 0) {
+        if (strcmp(learner_name(p->models[i]->l), name) == 0) {
             if (at)
                 *at = i;
             return p->models[i];
         }
     return NULL;
+}
+
+static struct learner *find_model(struct proto *p, const char *name, size_t *at)
+{
+    struct slot *sl = find_slot(p, name, at);
+    return sl ? sl->l : NULL;
+}
+
+/* The slot of learner l, live or dropped. */
+static struct slot *slot_of(struct proto *p, const struct learner *l)
+{
+    for (size_t i = 0; i < p->n; i++)
+        if (p->models[i]->l == l)
+            return p->models[i];
+    for (size_t i = 0; i < p->n_dropped; i++)
+        if (p->dropped[i]->l == l)
+            return p->dropped[i];
+    return NULL;
+}
+
+static struct slot *new_slot(struct learner *l, uint64_t durable)
+{
+    struct slot *sl = mem_calloc(1, sizeof *sl);
+    sl->l = l;
+    sl->durable = durable;
+    return sl;
+}
+
+/* Frees a dropped slot once nothing refers to it any more. */
+static void maybe_free_dropped(struct proto *p, struct slot *sl)
+{
+    if (!sl->gone || !sl->exited || !sl->released || sl->refs)
+        return;
+    for (size_t i = 0; i < p->n_dropped; i++)
+        if (p->dropped[i] == sl) {
+            p->dropped[i] = p->dropped[--p->n_dropped];
+            break;
+        }
+    learner_free(sl->l);
+    mem_free(sl);
+}
+
+/* Sends every reply at the front of c's queue that is ready. */
+static void flush_acks(struct proto *p, struct conn *c)
+{
+    proto_conn_t *pc = conn_proto(c);
+    while (pc->ack_head < pc->n_acks) {
+        struct proto_ack *a = &pc->acks[pc->ack_head];
+        struct slot *sl = a->slot;
+        if (!sl) {
+            conn_send(c, pc->ackbuf + a->off, a->len);
+        } else {
+            char id[PROTO_ID_MAX + 1];
+            memcpy(id, pc->ackbuf + a->id_off, a->id_len);
+            id[a->id_len] = 0;
+            const char *idp = a->id_len ? id : NULL;
+            if (a->seq == 0) { /* marked failed */
+                format_error(p, idp, WORTH_E_IO, -1, sl->why);
+                conn_send(c, p->out.b, p->out.len);
+            } else if (sl->durable >= a->seq) {
+                conn_send(c, pc->ackbuf + a->off, a->len);
+            } else if (sl->gone) {
+                format_error(p, idp, WORTH_E_NO_SUCH_MODEL, -1,
+                             "the model was dropped before these transitions were durable");
+                conn_send(c, p->out.b, p->out.len);
+            } else {
+                break;
+            }
+            sl->refs--;
+            maybe_free_dropped(p, sl);
+        }
+        pc->ack_head++;
+    }
+    if (pc->ack_head == pc->n_acks)
+        pc->n_acks = pc->ack_head = pc->ack_len = 0;
+}
+
+static void flush_one(struct conn *c, void *ctx)
+{
+    flush_acks(ctx, c);
+}
+
+struct fail_ctx {
+    struct proto *p;
+    struct slot *sl;
+    uint64_t upto;
+};
+
+/* Marks the replies waiting for sl's seqs in (durable, upto] as failed. */
+static void fail_one(struct conn *c, void *ctx)
+{
+    struct fail_ctx *f = ctx;
+    proto_conn_t *pc = conn_proto(c);
+    for (size_t i = pc->ack_head; i < pc->n_acks; i++) {
+        struct proto_ack *a = &pc->acks[i];
+        if (a->slot == f->sl && a->seq > f->sl->durable && a->seq <= f->upto)
+            a->seq = 0;
+    }
+    flush_acks(f->p, c);
+}
+
+/* Queues the reply in p->out to be sent once sl's log is durable up to seq. */
+static void send_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq,
+                         const char *id)
+{
+    proto_conn_t *pc = conn_proto(c);
+    ack_push(pc, sl, seq, p->out.b, p->out.len, id);
+    flush_acks(p, c);
 }
 
 /* ---- request fields -------------------------------------------------------------------- */
@@ -308,8 +480,8 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *
 {
     static const char *const keys_batch[] = {"x",      "r", "x_next", "terminal",
                                              "source", "t", "dt",     NULL};
-    static const char *const keys_top[] = {"op",       "id",     "model", "x",  "r", "x_next",
-                                           "terminal", "source", "t",     "dt", NULL};
+    static const char *const keys_top[] = {"op",       "id",     "model", "x",  "r",   "x_next",
+                                           "terminal", "source", "t",     "dt", "ack", NULL};
     size_t d = model_dims(learner_model(l));
     int code = 0;
     const char *bad;
@@ -352,9 +524,9 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *
         snprintf(err, errlen, "%s\"x_next\" is required unless terminal", where);
         return WORTH_E_BAD_REQUEST;
     }
-    double t = 0;
+    r->t_s = NAN;
     r->dt_s = NAN;
-    if (!opt_number(o, "t", &t, &code, err, errlen, where) ||
+    if (!opt_number(o, "t", &r->t_s, &code, err, errlen, where) ||
         !opt_number(o, "dt", &r->dt_s, &code, err, errlen, where))
         return code;
     if (!isnan(r->dt_s) && r->dt_s < 0) {
@@ -378,7 +550,41 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *
     }
     r->est = r->passes = 0;
     r->conn_id = 0;
+    r->job = NULL;
     return 0;
+}
+
+/* Reads the optional "ack": 0 for "durable" (the default), 1 for "applied", -1 if malformed. */
+static int ack_mode(const cJSON *root)
+{
+    const cJSON *a = cJSON_GetObjectItemCaseSensitive(root, "ack");
+    if (!a)
+        return 0;
+    if (!cJSON_IsString(a))
+        return -1;
+    if (strcmp(a->valuestring, "durable") == 0)
+        return 0;
+    if (strcmp(a->valuestring, "applied") == 0)
+        return 1;
+    return -1;
+}
+
+/* Replies to an accepted observe: now when applied, else once its last seq is durable. */
+static void ack_observe(struct proto *p, struct conn *c, const char *id, struct learner *l,
+                        uint64_t seq, long count, int applied)
+{
+    struct out *o = &p->out;
+    out_begin(o, 1, id);
+    out_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
+    if (count >= 0)
+        out_fmt(o, ",\"count\":%ld", count);
+    if (applied) {
+        out_s(o, ",\"durable\":false");
+        out_end(o, c);
+        return;
+    }
+    out_s(o, ",\"durable\":true}\n");
+    send_durable(p, c, slot_of(p, l), seq, id);
 }
 
 /* ---- requests -------------------------------------------------------------------------- */
@@ -432,6 +638,15 @@ static void ensure_scratch(struct proto *p, size_t n_est)
     }
 }
 
+/* Remembers the request's id on the connection for a reply that comes later. */
+static void keep_id(struct req *rq)
+{
+    proto_conn_t *pc = conn_proto(rq->c);
+    pc->has_id = rq->id != NULL;
+    if (rq->id)
+        snprintf(pc->id, sizeof pc->id, "%s", rq->id);
+}
+
 static int do_create(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -458,17 +673,17 @@ static int do_create(struct req *rq)
     }
     char *canonical = s->canonical;
     s->canonical = NULL;
-    struct learner *l = learner_new(s->name, canonical, m, p->o->queue, p->post, p->wake, p->ctx);
-    p->models[p->n++] = l;
-    ensure_scratch(p, model_n_est(m));
+    learner_opts_t lo;
+    proto_learner_opts(p, &lo);
+    struct learner *l = learner_new(s->name, canonical, m, &lo, p->post, p->wake, p->ctx);
+    p->models[p->n++] = new_slot(l, 0);
     say_info("model %s created: %zu dims, %zu features, %zu estimators", s->name, model_dims(m),
              model_features(m), model_n_est(m));
-    struct out *o = &p->out;
-    out_begin(o, 1, rq->id);
-    out_s(o, ",\"model\":");
-    out_str(o, s->name);
-    out_fmt(o, ",\"features\":%zu", model_features(m));
-    out_end(o, rq->c);
+    /* The reply comes when the model's row has committed. */
+    writer_create_model(p->w, l, s->name, learner_spec(l), model_features(m), conn_id(rq->c));
+    conn_proto(rq->c)->creating = l;
+    keep_id(rq);
+    conn_wait(rq->c);
     spec_free(s);
     return PROTO_DONE;
 }
@@ -491,11 +706,11 @@ static int do_list(struct req *rq)
     out_begin(o, 1, rq->id);
     out_s(o, ",\"models\":[");
     for (size_t i = 0; i < p->n; i++) {
-        const struct model *m = learner_model(p->models[i]);
+        const struct model *m = learner_model(p->models[i]->l);
         learner_stats_t st;
-        learner_stats(p->models[i], &st);
+        learner_stats(p->models[i]->l, &st);
         out_s(o, i ? ",{\"model\":" : "{\"model\":");
-        out_str(o, learner_name(p->models[i]));
+        out_str(o, learner_name(p->models[i]->l));
         out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m),
                 model_features(m));
         out_est_names(o, m);
@@ -530,6 +745,25 @@ static int do_get(struct req *rq)
     return PROTO_DONE;
 }
 
+/* Takes a model out of the registry: its learner stops, its waiting replies fail. */
+static void unregister(struct proto *p, size_t at, int tell_writer)
+{
+    struct slot *sl = p->models[at];
+    p->models[at] = p->models[--p->n];
+    sl->gone = 1;
+    learner_stop(sl->l, 1);
+    if (tell_writer)
+        writer_drop_model(p->w, sl->l);
+    else
+        sl->released = 1;
+    if (p->n_dropped == p->cap_dropped) {
+        p->cap_dropped = p->cap_dropped ? 2 * p->cap_dropped : 8;
+        p->dropped = mem_realloc(p->dropped, p->cap_dropped * sizeof *p->dropped);
+    }
+    p->dropped[p->n_dropped++] = sl;
+    server_each_conn(p->srv, flush_one, p);
+}
+
 static int do_drop(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -537,16 +771,9 @@ static int do_drop(struct req *rq)
     if (!name)
         return PROTO_DONE;
     size_t at = 0;
-    struct learner *l = find_model(p, name, &at);
-    if (!l)
+    if (!find_model(p, name, &at))
         return fail_done(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
-    p->models[at] = p->models[--p->n];
-    learner_stop(l, 1);
-    if (p->n_dropped == p->cap_dropped) {
-        p->cap_dropped = p->cap_dropped ? 2 * p->cap_dropped : 8;
-        p->dropped = mem_realloc(p->dropped, p->cap_dropped * sizeof *p->dropped);
-    }
-    p->dropped[p->n_dropped++] = l;
+    unregister(p, at, 1);
     say_info("model %s dropped", name);
     out_begin(&p->out, 1, rq->id);
     out_end(&p->out, rq->c);
@@ -567,6 +794,9 @@ static int do_observe(struct req *rq)
     if (!l)
         return PROTO_DONE;
     const cJSON *batch = field(rq->root, "batch");
+    int applied = ack_mode(rq->root);
+    if (applied < 0)
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"ack\" must be \"durable\" or \"applied\"");
     if (!batch) {
         if (learner_space(l) < 1)
             return park(l);
@@ -578,12 +808,10 @@ static int do_observe(struct req *rq)
         if (rc)
             return fail_done(rq, rc, "%s", p->err);
         uint64_t seq = learner_commit(l, 1);
-        out_begin(&p->out, 1, rq->id);
-        out_fmt(&p->out, ",\"seq\":%llu", (unsigned long long)seq);
-        out_end(&p->out, rq->c);
+        ack_observe(p, rq->c, rq->id, l, seq, -1, applied);
         return PROTO_DONE;
     }
-    static const char *const keys[] = {"op", "id", "model", "batch", NULL};
+    static const char *const keys[] = {"op", "id", "model", "batch", "ack", NULL};
     const char *bad;
     if (!only_keys(rq->root, keys, &bad))
         return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" beside \"batch\"", bad);
@@ -614,9 +842,7 @@ static int do_observe(struct req *rq)
         return PROTO_DONE;
     }
     uint64_t seq = learner_commit(l, k);
-    out_begin(&p->out, 1, rq->id);
-    out_fmt(&p->out, ",\"seq\":%llu,\"count\":%zu", (unsigned long long)seq, k);
-    out_end(&p->out, rq->c);
+    ack_observe(p, rq->c, rq->id, l, seq, (long)k, applied);
     return PROTO_DONE;
 }
 
@@ -630,13 +856,15 @@ static int do_bulk_header(struct req *rq)
         conn_close_after_reply(rq->c);
         return PROTO_DONE;
     }
-    static const char *const keys[] = {"op", "id", "model", "count", "source", "dt", NULL};
+    static const char *const keys[] = {"op", "id", "model", "count", "source", "dt", "ack", NULL};
     const char *bad;
     const cJSON *cnt = field(rq->root, "count"), *s = field(rq->root, "source");
     double dt = NAN;
-    int code = 0;
+    int code = 0, applied = ack_mode(rq->root);
     if (!only_keys(rq->root, keys, &bad)) {
         FAIL(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in observe.bulk", bad);
+    } else if (applied < 0) {
+        FAIL(rq, WORTH_E_BAD_REQUEST, "\"ack\" must be \"durable\" or \"applied\"");
     } else if (!cJSON_IsNumber(cnt)) {
         FAIL(rq, WORTH_E_BAD_REQUEST, "\"count\" must be a number");
     } else if (cnt->valuedouble != floor(cnt->valuedouble) || cnt->valuedouble < 1) {
@@ -657,6 +885,7 @@ static int do_bulk_header(struct req *rq)
         pc->count = (size_t)cnt->valuedouble;
         snprintf(pc->source, sizeof pc->source, "%s", s ? s->valuestring : "");
         pc->dt_s = dt;
+        pc->bulk_applied = applied;
         pc->has_id = rq->id != NULL;
         if (rq->id)
             snprintf(pc->id, sizeof pc->id, "%s", rq->id);
@@ -712,13 +941,13 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
         r->terminal = term == 1.0;
         r->dt_s = pc->dt_s;
         memcpy(r->src, pc->source, sizeof r->src);
+        r->t_s = NAN;
         r->est = r->passes = 0;
         r->conn_id = 0;
+        r->job = NULL;
     }
     uint64_t seq = learner_commit(l, k);
-    out_begin(&p->out, 1, id);
-    out_fmt(&p->out, ",\"seq\":%llu,\"count\":%zu", (unsigned long long)seq, k);
-    out_end(&p->out, c);
+    ack_observe(p, c, id, l, seq, (long)k, pc->bulk_applied);
     return PROTO_DONE;
 }
 
@@ -870,10 +1099,8 @@ static int do_train(struct req *rq)
     r->est = (uint32_t)e;
     r->passes = (uint32_t)passes;
     r->conn_id = conn_id(rq->c);
-    proto_conn_t *pc = conn_proto(rq->c);
-    pc->has_id = rq->id != NULL;
-    if (rq->id)
-        snprintf(pc->id, sizeof pc->id, "%s", rq->id);
+    r->ordinal = learner_next_training(l);
+    keep_id(rq);
     learner_commit(l, 1);
     conn_wait(rq->c); /* its progress and reply come before anything else on this connection */
     return PROTO_DONE;
@@ -927,18 +1154,145 @@ static int do_stats(struct req *rq)
     return PROTO_DONE;
 }
 
+static int do_checkpoint(struct req *rq)
+{
+    static const char *const keys[] = {"op", "id", "model", "label", NULL};
+    const char *bad;
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    if (!only_keys(rq->root, keys, &bad))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
+    const cJSON *lab = field(rq->root, "label");
+    if (lab && !cJSON_IsString(lab))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"label\" must be a string");
+    if (lab && (strlen(lab->valuestring) < 1 || strlen(lab->valuestring) > MODEL_NAME_MAX))
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"label\" must be 1..%d bytes", MODEL_NAME_MAX);
+    if (learner_space(l) < 1)
+        return park(l);
+    learner_rec_t *r = learner_slot(l, 0);
+    memset(r, 0, sizeof *r);
+    r->type = LREC_CHECKPOINT;
+    r->est = lab != NULL;
+    if (lab)
+        snprintf(r->src, sizeof r->src, "%s", lab->valuestring);
+    r->conn_id = conn_id(rq->c);
+    keep_id(rq);
+    learner_commit(l, 1);
+    conn_wait(rq->c);
+    return PROTO_DONE;
+}
+
+static int do_checkpoints(struct req *rq)
+{
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    keep_id(rq);
+    writer_list_checkpoints(rq->p->w, l, conn_id(rq->c));
+    conn_wait(rq->c);
+    return PROTO_DONE;
+}
+
+/* Reads a window [lo, hi] from a two-number array. */
+static int window(const cJSON *a, double *lo, double *hi)
+{
+    if (!cJSON_IsArray(a) || cJSON_GetArraySize(a) != 2 || !cJSON_IsNumber(a->child) ||
+        !cJSON_IsNumber(a->child->next) || !isfinite(a->child->valuedouble) ||
+        !isfinite(a->child->next->valuedouble))
+        return -1;
+    *lo = a->child->valuedouble;
+    *hi = a->child->next->valuedouble;
+    return 0;
+}
+
+static int do_rollback(struct req *rq)
+{
+    static const char *const keys[] = {"op",     "id",      "model", "checkpoint",
+                                       "replay", "exclude", NULL};
+    const char *bad;
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    if (!only_keys(rq->root, keys, &bad))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
+    const cJSON *cp = field(rq->root, "checkpoint"), *rp = field(rq->root, "replay"),
+                *ex = field(rq->root, "exclude");
+    if (!cJSON_IsNumber(cp))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"checkpoint\" must be a number");
+    if (cp->valuedouble != floor(cp->valuedouble) || cp->valuedouble < 1 ||
+        cp->valuedouble > 9007199254740992.0)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"checkpoint\" must be an integer >= 1");
+    if (rp && !cJSON_IsBool(rp))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"replay\" must be true or false");
+    int replay = cJSON_IsTrue(rp), by_t = 0;
+    double lo = 1, hi = 0; /* empty window */
+    if (ex) {
+        if (!replay)
+            return fail_done(rq, WORTH_E_BAD_REQUEST, "\"exclude\" needs \"replay\":true");
+        const cJSON *ws = field(ex, "seq"), *wt = field(ex, "t");
+        if (!cJSON_IsObject(ex) || (ws != NULL) == (wt != NULL) || ex->child->next)
+            return fail_done(rq, WORTH_E_BAD_REQUEST,
+                             "\"exclude\" must be {\"seq\":[a,b]} or {\"t\":[t0,t1]}");
+        by_t = wt != NULL;
+        if (window(by_t ? wt : ws, &lo, &hi) != 0)
+            return fail_done(rq, WORTH_E_BAD_REQUEST, "the window must be two finite numbers");
+        if (lo > hi)
+            return fail_done(rq, WORTH_E_BAD_PARAM, "the window's start is after its end");
+    }
+    if (learner_space(l) < 1)
+        return park(l);
+    learner_plan_t *plan = mem_calloc(1, sizeof *plan);
+    plan->checkpoint = (int64_t)cp->valuedouble;
+    plan->replay = replay;
+    plan->by_t = by_t;
+    plan->lo = lo;
+    plan->hi = hi;
+    learner_rec_t *r = learner_slot(l, 0);
+    memset(r, 0, sizeof *r);
+    r->type = LREC_ROLLBACK;
+    r->job = plan;
+    r->conn_id = conn_id(rq->c);
+    keep_id(rq);
+    learner_commit(l, 1);
+    conn_wait(rq->c);
+    return PROTO_DONE;
+}
+
+static int do_backup(struct req *rq)
+{
+    const char *path = need_string(rq, "path");
+    if (!path)
+        return PROTO_DONE;
+    if (!*path || strlen(path) > 4000)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"path\" must be 1..4000 bytes");
+    keep_id(rq);
+    writer_backup(rq->p->w, path, conn_id(rq->c));
+    conn_wait(rq->c);
+    return PROTO_DONE;
+}
+
 /* ---- dispatch -------------------------------------------------------------------------- */
 
 static const struct {
     const char *op;
     int (*fn)(struct req *rq);
 } ops[] = {
-    {"hello", do_hello},         {"auth", do_auth},
-    {"model.create", do_create}, {"model.list", do_list},
-    {"model.get", do_get},       {"model.drop", do_drop},
-    {"observe", do_observe},     {"observe.bulk", do_bulk_header},
-    {"value", do_value},         {"train", do_train},
+    {"hello", do_hello},
+    {"auth", do_auth},
+    {"model.create", do_create},
+    {"model.list", do_list},
+    {"model.get", do_get},
+    {"model.drop", do_drop},
+    {"observe", do_observe},
+    {"observe.bulk", do_bulk_header},
+    {"value", do_value},
+    {"train", do_train},
     {"stats", do_stats},
+    {"checkpoint", do_checkpoint},
+    {"checkpoints", do_checkpoints},
+    {"rollback", do_rollback},
+    {"backup", do_backup},
 };
 
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
@@ -1008,21 +1362,65 @@ out:
 
 void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
 {
-    if (ev->kind == LEV_EXITED) {
-        for (size_t i = 0; i < p->n_dropped; i++)
-            if (p->dropped[i] == ev->l) {
-                p->dropped[i] = p->dropped[--p->n_dropped];
-                learner_free(ev->l);
-                return;
-            }
+    struct slot *sl = slot_of(p, ev->l);
+    switch (ev->kind) {
+    case LEV_EXITED:
+        if (sl && sl->gone) {
+            sl->exited = 1;
+            maybe_free_dropped(p, sl);
+        }
         return; /* a registered learner ends only at shutdown, which joins it itself */
+    case LEV_RELEASED:
+        if (sl) {
+            sl->released = 1;
+            maybe_free_dropped(p, sl);
+        }
+        return;
+    case LEV_DURABLE:
+        if (sl && ev->seq > sl->durable)
+            sl->durable = ev->seq;
+        server_each_conn(s, flush_one, p);
+        return;
+    case LEV_FAILED:
+        if (sl) {
+            snprintf(sl->why, sizeof sl->why, "commit failed: %s; not applied", ev->text);
+            struct fail_ctx f = {p, sl, ev->seq};
+            server_each_conn(s, fail_one, &f);
+            if (ev->seq > sl->failed)
+                sl->failed = ev->seq;
+        }
+        mem_free(ev->text);
+        return;
+    default:
+        break;
     }
     struct conn *c = server_conn(s, ev->conn_id);
-    if (!c)
+    if (!c) {
+        if (ev->kind == LEV_REPLY)
+            mem_free(ev->text);
         return; /* the client left; the work was done all the same */
+    }
     proto_conn_t *pc = conn_proto(c);
     const char *id = pc->has_id ? pc->id : NULL;
     struct out *o = &p->out;
+    if (ev->kind == LEV_REPLY) {
+        if (ev->rc == 0) {
+            out_begin(o, 1, id);
+            out_s(o, ev->text);
+            out_end(o, c);
+        } else {
+            reply_error(p, c, id, ev->rc, -1, "%s", ev->text);
+        }
+        if (pc->creating && pc->creating == ev->l) {
+            pc->creating = NULL;
+            size_t at;
+            if (ev->rc && find_slot(p, learner_name(ev->l), &at))
+                unregister(p, at, 0); /* the writer never took it */
+        }
+        mem_free(ev->text);
+        conn_resume(c);
+        return;
+    }
     if (ev->kind == LEV_PROGRESS) {
         o->len = 0;
         out_s(o, "{");
@@ -1051,11 +1449,13 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
 
 /* ---- lifecycle ------------------------------------------------------------------------- */
 
-struct proto *proto_new(const server_opts_t *opts, learner_post_fn post, learner_wake_fn wake,
-                        void *ctx)
+struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_post_fn post,
+                        learner_wake_fn wake, void *ctx)
 {
     struct proto *p = mem_calloc(1, sizeof *p);
     p->o = opts;
+    p->w = w;
+    p->srv = ctx;
     p->models = mem_calloc(opts->max_models, sizeof *p->models);
     p->srcs = mem_calloc(opts->max_batch, sizeof *p->srcs);
     p->post = post;
@@ -1066,6 +1466,21 @@ struct proto *proto_new(const server_opts_t *opts, learner_post_fn post, learner
     return p;
 }
 
+void proto_learner_opts(const struct proto *p, learner_opts_t *o)
+{
+    memset(o, 0, sizeof *o);
+    o->queue_cap = p->o->queue;
+    o->checkpoint_every = p->o->checkpoint_every;
+    o->db_path = p->o->db_path;
+    o->writer = p->w;
+}
+
+void proto_add_recovered(struct proto *p, struct learner *l)
+{
+    CHECK(p->n < p->o->max_models);
+    p->models[p->n++] = new_slot(l, learner_last_seq(l));
+}
+
 void proto_conn_init(proto_conn_t *pc, int needs_auth)
 {
     memset(pc, 0, sizeof *pc);
@@ -1073,29 +1488,50 @@ void proto_conn_init(proto_conn_t *pc, int needs_auth)
     pc->dt_s = NAN;
 }
 
+void proto_conn_free(struct proto *p, proto_conn_t *pc)
+{
+    for (size_t i = pc->ack_head; i < pc->n_acks; i++) {
+        struct slot *sl = pc->acks[i].slot;
+        if (sl) {
+            sl->refs--;
+            maybe_free_dropped(p, sl);
+        }
+    }
+    mem_free(pc->acks);
+    mem_free(pc->ackbuf);
+    pc->acks = NULL;
+    pc->ackbuf = NULL;
+    pc->n_acks = pc->ack_head = 0;
+}
+
 void proto_shutdown(struct proto *p)
 {
     for (size_t i = 0; i < p->n; i++)
-        learner_stop(p->models[i], 0);
+        learner_stop(p->models[i]->l, 0);
     for (size_t i = 0; i < p->n; i++) {
-        learner_join(p->models[i]);
+        struct learner *l = p->models[i]->l;
+        learner_join(l);
         learner_stats_t st;
-        learner_stats(p->models[i], &st);
-        say_info("model %s: applied %llu of %llu accepted", learner_name(p->models[i]),
+        learner_stats(l, &st);
+        say_info("model %s: applied %llu of %llu accepted", learner_name(l),
                  (unsigned long long)st.applied, (unsigned long long)st.received);
     }
     for (size_t i = 0; i < p->n_dropped; i++)
-        learner_join(p->dropped[i]);
+        learner_join(p->dropped[i]->l);
 }
 
 void proto_free(struct proto *p)
 {
     if (!p)
         return;
-    for (size_t i = 0; i < p->n; i++)
-        learner_free(p->models[i]);
-    for (size_t i = 0; i < p->n_dropped; i++)
-        learner_free(p->dropped[i]);
+    for (size_t i = 0; i < p->n; i++) {
+        learner_free(p->models[i]->l);
+        mem_free(p->models[i]);
+    }
+    for (size_t i = 0; i < p->n_dropped; i++) {
+        learner_free(p->dropped[i]->l);
+        mem_free(p->dropped[i]);
+    }
     mem_free(p->models);
     mem_free(p->dropped);
     mem_free(p->srcs);

@@ -18,6 +18,7 @@
 #include "learner.h"
 #include "model.h"
 #include "server.h"
+#include "writer.h"
 
 struct proto;
 
@@ -30,9 +31,24 @@ struct proto;
 enum { PROTO_DONE = 0, PROTO_PARK = 1 };
 
 /* Plain data: per-connection protocol state, embedded in each connection. */
+/* One reply waiting its turn on a connection (the transitions it acknowledges, or earlier ones,
+ * are not durable yet). */
+struct proto_ack {
+    struct slot *slot; /* NULL: ready now */
+    uint64_t seq;      /* ready once slot's durable seq reaches it */
+    size_t off, len;   /* the reply's text in the connection's ack buffer */
+    size_t id_off, id_len;
+};
+
 typedef struct proto_conn {
     int needs_auth; /* TCP listener with a token */
     int authed;
+    int bulk_applied;         /* pending bulk: "ack":"applied" */
+    struct learner *creating; /* a model.create awaiting the database */
+    struct proto_ack *acks;   /* replies in order; [ack_head, n_acks) wait */
+    size_t n_acks, ack_head, cap_acks;
+    char *ackbuf;
+    size_t ack_len, ack_cap;
     char model[MODEL_NAME_MAX + 1];  /* pending bulk: target model */
     size_t count;                    /* pending bulk: records */
     char source[MODEL_NAME_MAX + 1]; /* pending bulk: source ("" = default) */
@@ -43,9 +59,16 @@ typedef struct proto_conn {
 
 /* Lifecycle */
 
-/* Returns the protocol state for a daemon with opts (borrowed for its life). */
-struct proto *proto_new(const server_opts_t *opts, learner_post_fn post, learner_wake_fn wake,
-                        void *ctx);
+/*
+ * Returns the protocol state for a daemon with opts (borrowed for its life),
+ * writing through w (borrowed).
+ */
+struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_post_fn post,
+                        learner_wake_fn wake, void *ctx);
+/* Registers a model recovered at start-up (l transferred). */
+void proto_add_recovered(struct proto *p, struct learner *l);
+/* Fills *o with the learner options for a model of this daemon. */
+void proto_learner_opts(const struct proto *p, learner_opts_t *o);
 /* Stops every learner after it has applied its queue, joins them and logs their counts. */
 void proto_shutdown(struct proto *p);
 void proto_free(struct proto *p);
@@ -53,6 +76,8 @@ void proto_free(struct proto *p);
 /* Operate (loop thread) */
 
 void proto_conn_init(proto_conn_t *pc, int needs_auth);
+/* Releases what the connection's state holds (it is closing). */
+void proto_conn_free(struct proto *p, proto_conn_t *pc);
 /* Handles one request line (len bytes without the newline, borrowed). */
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len);
 /* Handles the complete payload of the pending bulk request of c. */

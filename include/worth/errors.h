@@ -33,7 +33,8 @@
     X(NO_MEMORY, -17, "no_memory", "out of memory")                                                \
     X(IO, -18, "io", "input/output error")                                                         \
     X(INTERNAL, -19, "internal", "internal error")                                                 \
-    X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")
+    X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")             \
+    X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),

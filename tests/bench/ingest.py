@@ -27,7 +27,8 @@ def main():
     d = 8
     tmp = tempfile.mkdtemp(prefix="worth-bench-")
     sock = os.path.join(tmp, "w.sock")
-    proc = subprocess.Popen([worthd, "--socket", sock, "--log-level", "warn"])
+    proc = subprocess.Popen([worthd, "--socket", sock, "--db", os.path.join(tmp, "w.db"),
+                             "--log-level", "warn"] + os.environ.get("WORTHD_ARGS", "").split())
     try:
         for _ in range(1000):
             if os.path.exists(sock):

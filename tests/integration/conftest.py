@@ -1,10 +1,13 @@
 """Fixtures for the worthd integration tests (tests only).
 
 The daemon under test is $WORTH_DAEMON.  Each test starts its own worthd on a Unix socket
-inside pytest's tmp_path, talks to it through Client (one JSON object a line, replies read
-with a timeout) and stops it with SIGTERM at teardown, where its exit code is checked.  The
-contract is schema/protocol.md.  Every wait here is bounded in time and in count, and the
-client only ever connects to the temporary Unix socket or to a loopback address.
+inside pytest's tmp_path, with its database at <tmp>/worthd.db unless the test names another,
+talks to it through Client (one JSON object a line, replies read with a timeout) and stops it
+with SIGTERM at teardown, where its exit code is checked.  A test may restart a daemon on the
+same socket and database (Daemon.restart) or kill it with SIGKILL (Daemon.kill9).  The
+contract is schema/protocol.md (and schema/README.md for the database).  Every wait here is
+bounded in time and in count, and the client only ever connects to the temporary Unix socket
+or to a loopback address.
 Run with Debian's /usr/bin/python3 (numpy 1.24, pytest 7.2).
 """
 import errno
@@ -158,8 +161,10 @@ class Client:
 class Daemon:
     """A running worthd: .sock (path), .proc, .stderr (text so far), .client()."""
 
-    def __init__(self, argv, sock, workdir, expect_rc):
+    def __init__(self, argv, sock, workdir, expect_rc, db=None, respawn=None):
         self.argv, self.sock, self.expect_rc = argv, str(sock), expect_rc
+        self.db = None if db is None else str(db)
+        self.respawn = respawn  # set by the daemon fixture: starts the same argv again
         self.err_path = os.path.join(workdir, "worthd.stderr")
         self.out_path = os.path.join(workdir, "worthd.stdout")
         with open(self.err_path, "wb") as err, open(self.out_path, "wb") as out:
@@ -234,6 +239,37 @@ class Daemon:
             except OSError:
                 pass
 
+    def kill9(self, timeout=STOP_TIMEOUT):
+        """SIGKILLs worthd (a crash), waits (bounded) until it is gone; expects rc -9 at
+        teardown."""
+        self.close_clients()
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGKILL)
+        try:
+            self.proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            raise AssertionError(f"worthd still running {timeout} s after SIGKILL")
+        self.expect_rc = -signal.SIGKILL
+        return self.proc.returncode
+
+    def shutdown(self, sig=signal.SIGTERM, timeout=STOP_TIMEOUT):
+        """A clean stop: signals worthd, asserts it exits 0 within timeout; returns stderr."""
+        self.close_clients()
+        rc, killed = self.stop(sig, timeout)
+        assert not killed, f"worthd still running {timeout} s after {sig!r}:\n{self.tail()}"
+        assert rc == 0, f"worthd exited {rc} after {sig!r}:\n{self.tail()}"
+        return self.stderr
+
+    def restart(self, expect_rc=0, ready=True, ready_timeout=None):
+        """Stops this worthd cleanly if it still runs (SIGTERM, exit 0), then starts a new
+        one with the same arguments: same socket, same database.  Returns the new Daemon."""
+        assert self.respawn is not None, "restart needs a daemon started by the fixture"
+        if self.proc.poll() is None:
+            self.shutdown()
+        else:
+            self.close_clients()
+        return self.respawn(self, expect_rc=expect_rc, ready=ready, ready_timeout=ready_timeout)
+
 
 def daemon_path():
     exe = os.environ.get("WORTH_DAEMON")
@@ -257,24 +293,40 @@ def sockdir(tmp_path):
 
 @pytest.fixture
 def daemon(tmp_path, sockdir):
-    """Factory: daemon(*args, sock=None, expect_rc=0, ready=True) -> Daemon.
+    """Factory: daemon(*args, sock=None, db=None, expect_rc=0, ready=True) -> Daemon.
 
-    Starts worthd --socket <sock> *args (sock defaults to <tmp>/worthd.sock).  With ready,
-    waits until the socket accepts.  At teardown sends SIGTERM, waits 10 s, kills, and
-    asserts the exit code is expect_rc (None: not checked) and that nothing went to stdout.
+    Starts worthd --socket <sock> --db <db> *args: sock defaults to a new name in sockdir,
+    db to <tmp>/worthd.db (shared by the daemons of one test, so that a second daemon started
+    without db= runs on the same database; pass db= for an independent one).  When args hold
+    their own --db, none is added.  With ready, waits (bounded) until the socket accepts.
+    Daemon.restart() starts the same argv again.  At teardown sends SIGTERM, waits 10 s,
+    kills, and asserts the exit code is expect_rc (None: not checked; -9 after kill9) and
+    that nothing went to stdout.
     """
     started = []
     exe = daemon_path()
 
-    def start(*args, sock=None, expect_rc=0, ready=True):
-        sock = str(sock or os.path.join(str(sockdir), f"worthd{len(started) or ''}.sock"))
+    def spawn(argv, sock, db, expect_rc, ready, ready_timeout):
         workdir = tmp_path / f"d{len(started)}"
         workdir.mkdir()
-        d = Daemon([exe, "--socket", sock, *map(str, args)], sock, str(workdir), expect_rc)
+        d = Daemon(argv, sock, str(workdir), expect_rc, db=db, respawn=respawn)
         started.append(d)
         if ready:
-            d.wait_ready()
+            d.wait_ready(ready_timeout or READY_TIMEOUT)
         return d
+
+    def respawn(old, expect_rc=0, ready=True, ready_timeout=None):
+        return spawn(old.argv, old.sock, old.db, expect_rc, ready, ready_timeout)
+
+    def start(*args, sock=None, db=None, expect_rc=0, ready=True, ready_timeout=None):
+        sock = str(sock or os.path.join(str(sockdir), f"worthd{len(started) or ''}.sock"))
+        args = [str(a) for a in args]
+        if "--db" in args:
+            db = args[args.index("--db") + 1]
+        else:
+            db = str(db or tmp_path / "worthd.db")
+            args = ["--db", db] + args
+        return spawn([exe, "--socket", sock, *args], sock, db, expect_rc, ready, ready_timeout)
 
     yield start
 

@@ -131,14 +131,14 @@ def test_boyan_chain_json_and_bulk(daemon):
         c.send_raw(b"".join(json.dumps(q).encode() + b"\n" for q in lines))
         for _ in lines:
             seq += 1
-            assert c.recv() == {"ok": True, "seq": seq}
+            assert c.recv() == {"ok": True, "seq": seq, "durable": True}
     # observe.bulk: the same transitions, one header and 23 * SWEEPS records
     rec = np.array([np.concatenate([boyan_phi(s), [r], boyan_phi(sn), [1.0 if sn == 0 else 0.0]])
                     for s, sn, r in sweep] * SWEEPS)
     assert rec.shape == (23 * SWEEPS, 10)
     c.send({"op": "observe.bulk", "model": "boyan-bulk", "count": len(rec)})
     c.send_raw(rec.astype("<f8").tobytes())
-    assert c.recv(30) == {"ok": True, "seq": len(rec), "count": len(rec)}
+    assert c.recv(30) == {"ok": True, "seq": len(rec), "count": len(rec), "durable": True}
     got_json = check_boyan(c, "boyan-json")
     got_bulk = check_boyan(c, "boyan-bulk")
     # Same transitions in the same order give the same bits, whatever the framing.
@@ -173,7 +173,7 @@ def test_concurrent_producers_and_queries(daemon):
                 tr = {"x": [i / N_PRODUCERS], "r": 1.0, "terminal": True, "source": f"p{i}"}
                 for _ in range(SINGLES):
                     rep = p.call(dict(tr, op="observe", model="fleet"))
-                    assert rep.get("ok") is True and set(rep) == {"ok", "seq"}, rep
+                    assert rep.get("ok") is True and set(rep) == {"ok", "seq", "durable"}, rep
                     seqs[i].append(rep["seq"])
                 for _ in range(BATCHES):
                     rep = p.call({"op": "observe", "model": "fleet", "batch": [tr] * BATCH})
@@ -349,7 +349,7 @@ def test_drop_with_backlog(daemon):
     x = rng.uniform(size=(n + 1, 2))
     c.send({"op": "observe.bulk", "model": "slow", "count": n})
     c.send_raw(np.column_stack([x[:-1], np.ones(n), x[1:], np.zeros(n)]).astype("<f8").tobytes())
-    assert c.recv(30) == {"ok": True, "seq": n, "count": n}
+    assert c.recv(30) == {"ok": True, "seq": n, "count": n, "durable": True}
     # queries never wait for the backlog
     t0 = time.monotonic()
     rep = c.ok({"op": "value", "model": "slow", "x": [0.5, 0.5]})
@@ -372,7 +372,7 @@ def test_drop_with_backlog(daemon):
     # the name is free; the new model starts from nothing
     heavy_model(c, "slow", 4)
     assert c.call({"op": "observe", "model": "slow", "x": [0.5, 0.5], "r": 1,
-                   "terminal": True}) == {"ok": True, "seq": 1}
+                   "terminal": True}) == {"ok": True, "seq": 1, "durable": True}
     assert c.wait_applied("slow", 1)["applied"] == 1
 
 
@@ -505,7 +505,7 @@ def test_tcp_with_token(daemon, free_port, token_file):
     c.ok({"op": "model.create", "model": "m", "dims": 1, "gamma": 0.5, "ranges": [[0, 1]],
           "features": [{"basis": "bias"}], "estimators": [{"name": "td", "kind": "td"}]})
     assert c.call({"op": "observe", "model": "m", "x": [0.5], "r": 1, "terminal": True}) == \
-        {"ok": True, "seq": 1}
+        {"ok": True, "seq": 1, "durable": True}
     # the Unix socket needs no token and sees the same models
     u = d.client()
     assert u.wait_applied("m", 1)["received"] == 1
@@ -569,12 +569,13 @@ def test_default_socket_path(tmp_path):
     assert not d.stdout
 
 
-def test_second_daemon_same_socket_refuses(daemon):
+def test_second_daemon_same_socket_refuses(daemon, tmp_path):
     first = daemon()
     c = first.client()
     c.ok({"op": "model.create", "model": "m", "dims": 1, "gamma": 0.9, "ranges": [[0, 1]],
           "features": [{"basis": "bias"}], "estimators": [{"name": "td", "kind": "td"}]})
-    second = daemon(sock=first.sock, ready=False, expect_rc=None)
+    # a database of its own: the socket alone must make it refuse
+    second = daemon(sock=first.sock, db=tmp_path / "second.db", ready=False, expect_rc=None)
     rc = second.wait_exit(5)
     assert rc is not None and rc != 0, f"second worthd on the same socket: {rc}"
     assert second.stderr.strip(), "refusal without a message on stderr"

@@ -237,7 +237,7 @@ def test_model_drop(c):
     assert c.ok({"op": "model.list"})["models"] == []
     # the name is free again and its sequence starts over
     c.ok(create_req())
-    assert c.call(obs()) == {"ok": True, "seq": 1}
+    assert c.call(obs()) == {"ok": True, "seq": 1, "durable": True}
     c.assert_open()
 
 
@@ -247,14 +247,15 @@ def test_observe_single_seq_from_1(c):
     c.ok(create_req(gamma_per_s=0.999))  # transitions with dt use it
     c.ok(create_req("other"))
     for k in range(1, 4):
-        assert c.call(obs()) == {"ok": True, "seq": k}
+        assert c.call(obs()) == {"ok": True, "seq": k, "durable": True}
     # each model numbers its own transitions
-    assert c.call(obs(model="other", id="o")) == {"ok": True, "id": "o", "seq": 1}
+    assert c.call(obs(model="other", id="o")) == {"ok": True, "id": "o", "seq": 1, "durable": True}
     # optional fields; terminal without x_next
-    assert c.call(obs(source="pump-2", t=1764633600, dt=60)) == {"ok": True, "seq": 4}
-    assert c.call(without(obs(terminal=True), "x_next")) == {"ok": True, "seq": 5}
-    assert c.call(obs(terminal=True)) == {"ok": True, "seq": 6}
-    assert c.call(obs(terminal=False)) == {"ok": True, "seq": 7}
+    assert c.call(obs(source="pump-2", t=1764633600, dt=60)) == {"ok": True, "seq": 4,
+                                                                  "durable": True}
+    assert c.call(without(obs(terminal=True), "x_next")) == {"ok": True, "seq": 5, "durable": True}
+    assert c.call(obs(terminal=True)) == {"ok": True, "seq": 6, "durable": True}
+    assert c.call(obs(terminal=False)) == {"ok": True, "seq": 7, "durable": True}
     st = c.wait_applied("m", 7)
     assert st["queue"] == 0
 
@@ -265,8 +266,8 @@ def test_observe_batch(c):
     batch = [{"x": [0.1 * i, 0.5], "r": -1.0 * i, "x_next": [0.1 * i + 0.1, 0.5]}
              for i in range(3)] + [{"x": [0.9, 0.9], "r": 2.0, "terminal": True, "source": "s2"}]
     assert c.call({"op": "observe", "model": "m", "batch": batch, "id": 2}) == \
-        {"ok": True, "id": 2, "seq": 5, "count": 4}
-    assert c.call(obs()) == {"ok": True, "seq": 6}
+        {"ok": True, "id": 2, "seq": 5, "count": 4, "durable": True}
+    assert c.call(obs()) == {"ok": True, "seq": 6, "durable": True}
     c.wait_applied("m", 6)
 
 
@@ -275,7 +276,7 @@ def test_observe_batch_at_max_batch(daemon):
     c.ok(create_req())
     tr = {"x": [0.5, 0.5], "r": 1.0, "terminal": True}
     assert c.call({"op": "observe", "model": "m", "batch": [tr] * MAX_BATCH}) == \
-        {"ok": True, "seq": MAX_BATCH, "count": MAX_BATCH}
+        {"ok": True, "seq": MAX_BATCH, "count": MAX_BATCH, "durable": True}
     rep = c.call({"op": "observe", "model": "m", "batch": [tr] * (MAX_BATCH + 1)})
     c.expect_error(rep, "too_large")
     c.assert_open()
@@ -291,14 +292,14 @@ def test_observe_bulk(c):
     assert payload[:48] == struct.pack("<6d", 0.1, 0.2, 1.0, 0.7, 0.8, 0.0)
     c.send({"op": "observe.bulk", "model": "m", "count": 4, "id": "b"})
     c.send_raw(payload)
-    assert c.recv() == {"ok": True, "id": "b", "seq": 5, "count": 4}
+    assert c.recv() == {"ok": True, "id": "b", "seq": 5, "count": 4, "durable": True}
     # text requests go on after the records
-    assert c.call(obs()) == {"ok": True, "seq": 6}
+    assert c.call(obs()) == {"ok": True, "seq": 6, "durable": True}
     # optional header fields; records split into small writes
     c.send({"op": "observe.bulk", "model": "m", "count": 4, "source": "bulk-1", "dt": 1.5})
     for i in range(0, len(payload), 7):
         c.send_raw(payload[i:i + 7])
-    assert c.recv() == {"ok": True, "seq": 10, "count": 4}
+    assert c.recv() == {"ok": True, "seq": 10, "count": 4, "durable": True}
     st = c.wait_applied("m", 10)
     assert st["sources"] == 2  # the default source and bulk-1
     c.assert_open()
@@ -325,7 +326,7 @@ def test_observe_bulk_header_errors_close(daemon):
     c.send({"op": "observe.bulk", "model": "m", "count": MAX_BATCH})
     c.send_raw(records(np.full((MAX_BATCH, 2), 0.5), np.ones(MAX_BATCH),
                        np.full((MAX_BATCH, 2), 0.5), np.zeros(MAX_BATCH)))
-    assert c.recv() == {"ok": True, "seq": MAX_BATCH, "count": MAX_BATCH}
+    assert c.recv() == {"ok": True, "seq": MAX_BATCH, "count": MAX_BATCH, "durable": True}
 
 
 def test_observe_bulk_bad_record_rejects_all(c):
@@ -340,7 +341,7 @@ def test_observe_bulk_bad_record_rejects_all(c):
     assert err["index"] == 3, err
     c.assert_open()
     assert c.wait_applied("m")["received"] == 1
-    assert c.call(obs()) == {"ok": True, "seq": 2}
+    assert c.call(obs()) == {"ok": True, "seq": 2, "durable": True}
 
 
 def test_observe_bulk_truncated(c, d):
@@ -358,7 +359,7 @@ def test_observe_bulk_truncated(c, d):
     time.sleep(0.2)
     st = c.wait_applied("m")
     assert (st["received"], st["applied"]) == (1, 1), st
-    assert c.call(obs()) == {"ok": True, "seq": 2}
+    assert c.call(obs()) == {"ok": True, "seq": 2, "durable": True}
 
 
 def test_observe_dt_discount(c):
@@ -380,7 +381,7 @@ def test_observe_dt_discount(c):
     c.ok({"op": "observe", "model": "bulk", "x": [0.5], "r": 1.0, "terminal": True})
     c.send({"op": "observe.bulk", "model": "bulk", "count": 1, "dt": 2})
     c.send_raw(records([[0.5]], [0.0], [[0.5]], [0]))
-    assert c.recv() == {"ok": True, "seq": 2, "count": 1}
+    assert c.recv() == {"ok": True, "seq": 2, "count": 1, "durable": True}
     c.wait_applied("bulk", 2)
     assert c.ok({"op": "value", "model": "bulk", "x": [0.5]})["value"] == pytest.approx(0.3125)
 
@@ -630,12 +631,12 @@ def test_stats(c):
 
 def test_too_many_sources(c):
     c.ok(create_req(max_sources=2))
-    assert c.call(obs(source="a")) == {"ok": True, "seq": 1}
-    assert c.call(obs(source="b")) == {"ok": True, "seq": 2}
+    assert c.call(obs(source="a")) == {"ok": True, "seq": 1, "durable": True}
+    assert c.call(obs(source="b")) == {"ok": True, "seq": 2, "durable": True}
     c.err(obs(source="c"), "too_many_sources")
     c.assert_open()
     # known sources still welcome; nothing of the refused one counted
-    assert c.call(obs(source="a")) == {"ok": True, "seq": 3}
+    assert c.call(obs(source="a")) == {"ok": True, "seq": 3, "durable": True}
     st = c.wait_applied("m", 3)
     assert st["sources"] == 2
     # in a batch too: whole batch refused, index of the new source
@@ -811,7 +812,7 @@ def test_batch_with_one_bad_element(c):
         c.assert_open()
         st = c.stats("m")
         assert st["received"] == 2, st
-    assert c.call(obs()) == {"ok": True, "seq": 3}
+    assert c.call(obs()) == {"ok": True, "seq": 3, "durable": True}
 
 
 def test_line_too_long(daemon):

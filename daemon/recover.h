@@ -1,0 +1,26 @@
+/*
+ * recover.h - bringing every model back at start-up.
+ *
+ * Runs on the main thread before worthd accepts connections: for each live
+ * model in the database it rebuilds the model from its spec, restores the
+ * newest valid checkpoint and replays the log after it, then hands the model
+ * to the protocol registry and the writer.
+ */
+#ifndef WORTH_RECOVER_H
+#define WORTH_RECOVER_H
+
+#include <sqlite3.h>
+#include <stddef.h>
+
+#include "proto.h"
+#include "writer.h"
+
+/*
+ * Recovers every live model of db (borrowed; the writer must not run yet)
+ * into p, registering each with w.  Returns 0, or -1 with err (the daemon
+ * then refuses to start rather than serve a partial state).
+ */
+int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
+                   learner_wake_fn wake, void *ctx, char *err, size_t errlen);
+
+#endif /* WORTH_RECOVER_H */

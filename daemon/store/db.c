@@ -1,0 +1,314 @@
+/*
+ * db.c - opening worthd's database, migrating it, and reading it back.
+ *
+ * Runs on the main thread at start-up (open, migrate, recover) and on a
+ * learner thread during a rollback (replay, on its own read-only connection).
+ * It never writes outside a migration: every other write belongs to the
+ * writer thread (writer.c).
+ *
+ * Invariants.
+ * 1. A migration is applied with its user_version bump in one transaction:
+ *    a crash leaves the schema at the old version or the new, never between.
+ * 2. Replay learns rows in exactly the order the live daemon learnt them:
+ *    transitions by seq, each training right after the transition it followed,
+ *    so a replay rebuilds the same weights bit for bit.
+ */
+#include "db.h"
+
+#include <errno.h>
+#include <fcntl.h>
+#include <limits.h>
+#include <stdlib.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <string.h>
+#include <sys/file.h>
+#include <time.h>
+#include <unistd.h>
+
+#include "mem.h"
+#include "say.h"
+#include "worth/errors.h"
+
+static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
+{
+    if (err && errlen) {
+        va_list ap;
+        va_start(ap, fmt);
+        vsnprintf(err, errlen, fmt, ap);
+        va_end(ap);
+    }
+    return code;
+}
+
+double db_now(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_REALTIME, &ts);
+    return (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+}
+
+int db_resolve(const char *path, char *out, size_t len)
+{
+    char buf[PATH_MAX];
+    if (realpath(path, buf)) {
+        if ((size_t)snprintf(out, len, "%s", buf) >= len)
+            return -1;
+        return 0;
+    }
+    /* Not there yet: resolve its directory. */
+    char dir[PATH_MAX];
+    if ((size_t)snprintf(dir, sizeof dir, "%s", path) >= sizeof dir)
+        return -1;
+    char *slash = strrchr(dir, '/');
+    const char *base = slash ? slash + 1 : path;
+    if (slash == dir)
+        dir[1] = 0;
+    else if (slash)
+        *slash = 0;
+    else
+        snprintf(dir, sizeof dir, ".");
+    if (!realpath(dir, buf))
+        return -1;
+    if ((size_t)snprintf(out, len, "%s/%s", strcmp(buf, "/") ? buf : "", base) >= len)
+        return -1;
+    return 0;
+}
+
+int db_lock(const char *path, char *err, size_t errlen)
+{
+    char lock[PATH_MAX + 8], real[PATH_MAX];
+    /* Lock the resolved name, so a symlink to the same file finds the same lock. */
+    if (db_resolve(path, real, sizeof real) != 0 ||
+        (size_t)snprintf(lock, sizeof lock, "%s.lock", real) >= sizeof lock)
+        return fail(err, errlen, -1, "cannot resolve the database path %s: %s", path,
+                    strerror(errno));
+    int fd = open(lock, O_RDWR | O_CREAT | O_CLOEXEC, 0600);
+    if (fd < 0)
+        return fail(err, errlen, -1, "cannot open %s: %s", lock, strerror(errno));
+    if (flock(fd, LOCK_EX | LOCK_NB) != 0) {
+        int e = errno;
+        close(fd);
+        if (e == EWOULDBLOCK)
+            return fail(err, errlen, -1, "another worthd is using %s (%s is locked)", path, lock);
+        return fail(err, errlen, -1, "cannot lock %s: %s", lock, strerror(e));
+    }
+    return fd;
+}
+
+static int exec(sqlite3 *db, const char *sql, char *err, size_t errlen)
+{
+    char *msg = NULL;
+    if (sqlite3_exec(db, sql, NULL, NULL, &msg) != SQLITE_OK) {
+        fail(err, errlen, -1, "%s", msg ? msg : sqlite3_errmsg(db));
+        sqlite3_free(msg);
+        return -1;
+    }
+    return 0;
+}
+
+static int user_version(sqlite3 *db)
+{
+    sqlite3_stmt *st = NULL;
+    int v = -1;
+    if (sqlite3_prepare_v2(db, "PRAGMA user_version", -1, &st, NULL) == SQLITE_OK &&
+        sqlite3_step(st) == SQLITE_ROW)
+        v = sqlite3_column_int(st, 0);
+    sqlite3_finalize(st);
+    return v;
+}
+
+static int migrate(sqlite3 *db, const char *path, char *err, size_t errlen)
+{
+    int have = user_version(db);
+    if (have < 0)
+        return fail(err, errlen, -1, "cannot read the schema version of %s", path);
+    int newest = db_migrations[db_n_migrations - 1].version;
+    if (have > newest)
+        return fail(
+            err, errlen, -1,
+            "%s has schema version %d; this worthd knows up to %d (a newer worthd wrote it)", path,
+            have, newest);
+    for (int i = 0; i < db_n_migrations; i++) {
+        const struct db_migration *mg = &db_migrations[i];
+        if (mg->version <= have)
+            continue;
+        char bump[64];
+        snprintf(bump, sizeof bump, "PRAGMA user_version = %d;", mg->version);
+        if (exec(db, "BEGIN IMMEDIATE", err, errlen) || exec(db, mg->sql, err, errlen) ||
+            exec(db, bump, err, errlen) || exec(db, "COMMIT", err, errlen)) {
+            sqlite3_exec(db, "ROLLBACK", NULL, NULL, NULL);
+            return fail(err, errlen, -1, "migration %d failed: %s", mg->version, err);
+        }
+        say_info("database %s: applied schema migration %d", path, mg->version);
+    }
+    return 0;
+}
+
+int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t errlen)
+{
+    sqlite3 *db = NULL;
+    int rc = sqlite3_open_v2(
+        path, &db, SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE | SQLITE_OPEN_NOMUTEX, NULL);
+    if (rc != SQLITE_OK) {
+        fail(err, errlen, -1, "cannot open %s: %s", path, db ? sqlite3_errmsg(db) : "no memory");
+        sqlite3_close(db);
+        return -1;
+    }
+    sqlite3_busy_timeout(db, 5000);
+    if (exec(db, "PRAGMA journal_mode = WAL", err, errlen) ||
+        exec(db, sync_full ? "PRAGMA synchronous = FULL" : "PRAGMA synchronous = NORMAL", err,
+             errlen) ||
+        migrate(db, path, err, errlen)) {
+        sqlite3_close(db);
+        return -1;
+    }
+    *out = db;
+    return 0;
+}
+
+int db_open_ro(const char *path, sqlite3 **out, char *err, size_t errlen)
+{
+    sqlite3 *db = NULL;
+    if (sqlite3_open_v2(path, &db, SQLITE_OPEN_READONLY | SQLITE_OPEN_NOMUTEX, NULL) != SQLITE_OK) {
+        fail(err, errlen, -1, "cannot open %s: %s", path, db ? sqlite3_errmsg(db) : "no memory");
+        sqlite3_close(db);
+        return -1;
+    }
+    sqlite3_busy_timeout(db, 5000);
+    *out = db;
+    return 0;
+}
+
+int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct model *m,
+                      db_start_t *start, char *err, size_t errlen)
+{
+    memset(start, 0, sizeof *start);
+    sqlite3_stmt *st = NULL;
+    if (sqlite3_prepare_v2(db,
+                           "SELECT id, seq, training, state FROM checkpoints"
+                           " WHERE model = ?1 AND invalid = 0 ORDER BY seq DESC, id DESC",
+                           -1, &st, NULL) != SQLITE_OK)
+        return fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
+    sqlite3_bind_int64(st, 1, model_id);
+    int rc;
+    while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
+        int64_t id = sqlite3_column_int64(st, 0);
+        const void *blob = sqlite3_column_blob(st, 3);
+        int len = sqlite3_column_bytes(st, 3);
+        char why[256];
+        if (blob && model_load(m, blob, (size_t)len, why, sizeof why) == 0) {
+            start->checkpoint = id;
+            start->seq = (uint64_t)sqlite3_column_int64(st, 1);
+            start->training = (uint64_t)sqlite3_column_int64(st, 2);
+            break;
+        }
+        say_warn("model %s: checkpoint %lld cannot be restored (%s); trying an older one", name,
+                 (long long)id, blob ? why : "empty state");
+    }
+    sqlite3_finalize(st);
+    if (rc != SQLITE_ROW && rc != SQLITE_DONE)
+        return fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
+    if (start->checkpoint == 0)
+        model_reset(m);
+    return 0;
+}
+
+/* Runs one logged training on m. */
+static void run_training(struct model *m, const char *est, unsigned passes)
+{
+    int i = model_est_find(m, est);
+    if (i < 0)
+        return; /* cannot happen for a log written by this model's spec */
+    est_train_t rep;
+    model_train(m, (size_t)i, passes, NULL, NULL, &rep);
+}
+
+int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
+              uint64_t *replayed, uint64_t *last_training, char *err, size_t errlen)
+{
+    sqlite3_stmt *tr = NULL, *tx = NULL;
+    int code = 0;
+    *replayed = 0;
+    *last_training = from->training;
+    size_t d = model_dims(m);
+    double x[FEAT_MAX_DIMS], xn[FEAT_MAX_DIMS];
+    /* upto beyond INT64_MAX reads as "everything" */
+    sqlite3_int64 hi = upto > (uint64_t)INT64_MAX ? INT64_MAX : (sqlite3_int64)upto;
+
+    if (sqlite3_prepare_v2(db,
+                           "SELECT ordinal, after_seq, estimator, passes FROM trainings"
+                           " WHERE model = ?1 AND ordinal > ?2 AND after_seq <= ?3"
+                           " AND rolled_back = 0 ORDER BY ordinal",
+                           -1, &tr, NULL) != SQLITE_OK ||
+        sqlite3_prepare_v2(db,
+                           "SELECT seq, source, x, r, x_next, terminal, dt FROM transitions"
+                           " WHERE model = ?1 AND seq > ?2 AND seq <= ?3 AND rolled_back = 0"
+                           " ORDER BY seq",
+                           -1, &tx, NULL) != SQLITE_OK) {
+        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+        goto out;
+    }
+    sqlite3_bind_int64(tr, 1, model_id);
+    sqlite3_bind_int64(tr, 2, (sqlite3_int64)from->training);
+    sqlite3_bind_int64(tr, 3, hi);
+    sqlite3_bind_int64(tx, 1, model_id);
+    sqlite3_bind_int64(tx, 2, (sqlite3_int64)from->seq);
+    sqlite3_bind_int64(tx, 3, hi);
+
+    int trc = sqlite3_step(tr), xrc;
+    while ((xrc = sqlite3_step(tx)) == SQLITE_ROW) {
+        uint64_t seq = (uint64_t)sqlite3_column_int64(tx, 0);
+        /* Trainings that ran before this transition was learnt. */
+        while (trc == SQLITE_ROW && (uint64_t)sqlite3_column_int64(tr, 1) < seq) {
+            run_training(m, (const char *)sqlite3_column_text(tr, 2),
+                         (unsigned)sqlite3_column_int(tr, 3));
+            *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
+            trc = sqlite3_step(tr);
+        }
+        int terminal = sqlite3_column_int(tx, 5);
+        if ((size_t)sqlite3_column_bytes(tx, 2) != d * sizeof(double) ||
+            (!terminal && (size_t)sqlite3_column_bytes(tx, 4) != d * sizeof(double))) {
+            code = fail(err, errlen, WORTH_E_CORRUPT,
+                        "transition %llu has vectors of the wrong length", (unsigned long long)seq);
+            goto out;
+        }
+        memcpy(x, sqlite3_column_blob(tx, 2), d * sizeof(double));
+        if (!terminal)
+            memcpy(xn, sqlite3_column_blob(tx, 4), d * sizeof(double));
+        model_obs_t o = {
+            .x = x,
+            .x_len = d,
+            .r = sqlite3_column_double(tx, 3),
+            .x_next = terminal ? NULL : xn,
+            .x_next_len = d,
+            .terminal = terminal,
+            .source = (const char *)sqlite3_column_text(tx, 1),
+            .dt_s = sqlite3_column_type(tx, 6) == SQLITE_NULL ? NAN : sqlite3_column_double(tx, 6),
+        };
+        char why[256];
+        if (model_observe(m, &o, why, sizeof why) != 0) {
+            code = fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
+                        (unsigned long long)seq, why);
+            goto out;
+        }
+        (*replayed)++;
+    }
+    if (xrc != SQLITE_DONE) {
+        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+        goto out;
+    }
+    while (trc == SQLITE_ROW) {
+        run_training(m, (const char *)sqlite3_column_text(tr, 2),
+                     (unsigned)sqlite3_column_int(tr, 3));
+        *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
+        trc = sqlite3_step(tr);
+    }
+    if (trc != SQLITE_DONE)
+        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+out:
+    sqlite3_finalize(tr);
+    sqlite3_finalize(tx);
+    return code;
+}

@@ -1,0 +1,77 @@
+/*
+ * db.h - worthd's SQLite database: opening, migrations, recovery reads.
+ *
+ * The writer thread (writer.h) owns the read-write connection after start-up;
+ * before it starts, the main thread uses it to migrate and to recover every
+ * model.  Learner threads open their own read-only connections to replay the
+ * log after a rollback (WAL lets them read while the writer writes).
+ */
+#ifndef WORTH_DB_H
+#define WORTH_DB_H
+
+#include <sqlite3.h>
+#include <stddef.h>
+#include <stdint.h>
+
+#include "model.h"
+
+/* One embedded migration (generated from schema/NNN_*.sql by schema/embed.py). */
+struct db_migration {
+    int version;
+    const char *sql;
+};
+extern const struct db_migration db_migrations[];
+extern const int db_n_migrations;
+
+/*
+ * Writes the absolute, symlink-free form of path into out (len bytes), also
+ * for a file that does not exist yet (its directory must).  Returns 0 or -1.
+ */
+int db_resolve(const char *path, char *out, size_t len);
+
+/*
+ * Takes the daemon's lock on the database (an flock on PATH.lock), so a
+ * second worthd on the same file refuses to start.  Returns the lock's fd
+ * (keep it open for the process's life) or -1 with a message in err.
+ */
+int db_lock(const char *path, char *err, size_t errlen);
+
+/*
+ * Opens path read-write (creating it), sets WAL, synchronous FULL or NORMAL
+ * and a busy timeout, and applies pending migrations in one transaction each.
+ * Returns 0 with *out owned by the caller (sqlite3_close), or -1 with err.
+ */
+int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t errlen);
+/* Opens path read-only (for replays on a learner thread). */
+int db_open_ro(const char *path, sqlite3 **out, char *err, size_t errlen);
+
+/* Seconds since 1970, UTC, as stored in created_at and at. */
+double db_now(void);
+
+/* Plain data: where a model's replay starts. */
+typedef struct db_start_t {
+    int64_t checkpoint; /* id of the checkpoint restored, 0 for none */
+    uint64_t seq;       /* the last transition that state has learnt */
+    uint64_t training;  /* the last training (ordinal) it includes */
+} db_start_t;
+
+/*
+ * Restores m from the newest valid checkpoint of model_id whose state loads
+ * (a checkpoint that fails its checksum or does not fit is skipped with a
+ * warning), filling *start; with none, m is reset and *start zeroed.
+ * Returns 0, or -1 with err on a database error.
+ */
+int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct model *m,
+                      db_start_t *start, char *err, size_t errlen);
+
+/*
+ * Replays into m the log of model_id after *from (transitions with seq in
+ * (from->seq, upto], trainings with ordinal > from->training and after_seq <=
+ * upto), skipping rolled-back rows, in the order they were first learnt.
+ * Fills *replayed (transitions learnt) and *last_training.  Returns 0, or
+ * WORTH_E_IO / WORTH_E_CORRUPT with err.
+ */
+int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
+              uint64_t *replayed, uint64_t *last_training, char *err, size_t errlen);
+
+#endif /* WORTH_DB_H */

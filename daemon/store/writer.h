@@ -1,0 +1,68 @@
+/*
+ * writer.h - the one thread that writes worthd's database.
+ *
+ * It owns the read-write connection.  It appends every model's accepted
+ * records to the log in arrival order, a group of them per transaction, and
+ * only after COMMIT marks them durable: that releases them to the model's
+ * learner and lets the loop acknowledge them.  It also runs the jobs that
+ * need the database: creating and dropping models, storing checkpoints,
+ * listing them, backups and events.  Results go back to the loop as learner
+ * events (LEV_REPLY, LEV_DURABLE, LEV_RELEASED) through the same post
+ * callback the learners use.
+ */
+#ifndef WORTH_WRITER_H
+#define WORTH_WRITER_H
+
+#include <sqlite3.h>
+#include <stddef.h>
+#include <stdint.h>
+
+#include "learner.h"
+
+struct writer;
+
+/* Plain data: the writer's configuration. */
+typedef struct writer_opts_t {
+    unsigned keep;    /* unlabelled checkpoints kept per model */
+    size_t group_max; /* most records in one transaction */
+} writer_opts_t;
+
+/*
+ * Builds the writer on db (transferred: the writer closes it).  Jobs queue up
+ * until writer_start; until then the caller may still use db on its thread.
+ */
+struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, learner_post_fn post, void *ctx);
+/* Starts the thread; from now on only the writer uses the database connection. */
+void writer_start(struct writer *w);
+/* Finishes every queued job and record, stops the thread, closes the database. */
+void writer_free(struct writer *w);
+
+/* Wakes the writer: records were committed to some model's ring.  Any thread. */
+void writer_kick(struct writer *w);
+
+/* Jobs, queued in order; any thread.  Strings and blobs are copied or transferred as noted. */
+
+/* Registers a model recovered at start-up (already in the database as model_id). */
+void writer_add_model(struct writer *w, struct learner *l, int64_t model_id);
+/*
+ * Inserts a new model row (name and spec borrowed, copied) and registers l;
+ * replies to conn_id {"model":..,"features":..} or an error.
+ */
+void writer_create_model(struct writer *w, struct learner *l, const char *name, const char *spec,
+                         size_t features, uint64_t conn_id);
+/* Marks the model dropped, forgets l, then posts LEV_RELEASED for it. */
+void writer_drop_model(struct writer *w, struct learner *l);
+/*
+ * Stores a checkpoint of l (blob transferred, from mem_alloc) at seq and
+ * training; label may be NULL.  Replies to conn_id when it is not 0.
+ */
+void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,
+                             const char *label, uint8_t *blob, size_t len, uint64_t conn_id);
+/* Replies to conn_id with the model's valid checkpoints, newest first. */
+void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id);
+/* Writes a consistent copy of the database to path (copied); replies to conn_id. */
+void writer_backup(struct writer *w, const char *path, uint64_t conn_id);
+/* Records an event (kind and JSON detail copied); l may be NULL for daemon-wide events. */
+void writer_event(struct writer *w, struct learner *l, const char *kind, const char *detail);
+
+#endif /* WORTH_WRITER_H */
