@@ -177,7 +177,7 @@ static void rollback(struct learner *l, learner_rec_t *r)
     if (model_load(l->m, p->blob, p->blob_len, err, sizeof err) != 0) {
         say_error("model %s: checkpoint %lld cannot be restored: %s", l->name,
                   (long long)p->checkpoint, err);
-        reply(l, r->conn_id, WORTH_E_CORRUPT, "checkpoint %lld cannot be restored: %s",
+        reply(l, r->conn_id, WORTH_E_BAD_DATABASE, "checkpoint %lld cannot be restored: %s",
               (long long)p->checkpoint, err);
         return;
     }
@@ -185,14 +185,14 @@ static void rollback(struct learner *l, learner_rec_t *r)
     if (p->replay) {
         sqlite3 *ro = NULL;
         db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
-        int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err);
+        int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err) ? WORTH_E_STORAGE_ERROR : 0;
         if (rc == 0)
             rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, err,
                            sizeof err);
         sqlite3_close(ro);
         if (rc) {
             say_error("model %s: replay after rollback failed: %s", l->name, err);
-            reply(l, r->conn_id, WORTH_E_IO, "restored checkpoint %lld but the replay failed: %s",
+            reply(l, r->conn_id, rc, "restored checkpoint %lld but the replay failed: %s",
                   (long long)p->checkpoint, err);
             l->model_training = last_training;
             return;
@@ -460,6 +460,7 @@ uint64_t learner_commit(struct learner *l, size_t k)
 {
     for (size_t i = 0; i < k; i++) {
         learner_rec_t *r = rec_at(l, l->head + i);
+        r->last = i + 1 == k;
         if (r->type == LREC_OBS) {
             r->seq = ++l->seq;
             if (mirror_find(l, r->src) < 0) {

@@ -57,12 +57,13 @@ typedef struct learner_rec_t {
     uint64_t seq;     /* OBS: its seq; others: the last transition's seq before it */
     uint64_t ordinal; /* TRAIN: the training's number */
     double r;
-    double dt_s;                  /* NAN when absent */
-    double t_s;                   /* NAN when absent */
-    uint32_t est;                 /* TRAIN: estimator index; CHECKPOINT: 1 when labelled */
-    uint32_t passes;              /* TRAIN */
-    uint64_t conn_id;             /* TRAIN, CHECKPOINT, ROLLBACK: who gets the reply */
-    learner_plan_t *job;          /* ROLLBACK */
+    double dt_s;         /* NAN when absent */
+    double t_s;          /* NAN when absent */
+    uint32_t est;        /* TRAIN: estimator index; CHECKPOINT: 1 when labelled */
+    uint32_t passes;     /* TRAIN */
+    uint32_t last;       /* 1 on the last record of a request (a commit never splits one) */
+    uint64_t conn_id;    /* TRAIN, CHECKPOINT, ROLLBACK: who gets the reply */
+    learner_plan_t *job; /* ROLLBACK */
     char src[MODEL_NAME_MAX + 1]; /* OBS: source; CHECKPOINT: label */
     double v[];
 } learner_rec_t;

@@ -37,6 +37,8 @@ static const char usage[] =
     "                      normal: it survives a crash of worthd, not of the machine\n"
     "  --checkpoint-every N  automatic checkpoint every N transitions (default 100000; 0: off)\n"
     "  --keep N            unlabelled checkpoints kept per model (default 10)\n"
+    "  --db-max-mb N       cap the database at N MiB (default 0: no cap); when full, ingest\n"
+    "                      is refused with storage_full and queries go on\n"
     "  --listen HOST:PORT  also listen on TCP; a non-loopback address needs --token-file\n"
     "  --token-file FILE   TCP clients must send {\"op\":\"auth\",\"token\":...} first\n"
     "  --log-level LEVEL   error, warn, info (default) or debug; logs go to stderr\n"
@@ -102,6 +104,7 @@ int main(int argc, char **argv)
         .sync_full = 1,
         .checkpoint_every = 100000,
         .keep = 10,
+        .db_max_mb = 0,
     };
     int queue_set = 0;
     static const struct option longopts[] = {
@@ -117,6 +120,7 @@ int main(int argc, char **argv)
         {"sync", required_argument, NULL, 'y'},
         {"checkpoint-every", required_argument, NULL, 'c'},
         {"keep", required_argument, NULL, 'k'},
+        {"db-max-mb", required_argument, NULL, 'M'},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -175,6 +179,9 @@ int main(int argc, char **argv)
             break;
         case 'k':
             o.keep = (unsigned)parse_size("keep", optarg, 1, 1000000);
+            break;
+        case 'M':
+            o.db_max_mb = parse_size("db-max-mb", optarg, 0, 1ull << 30);
             break;
         case 'h':
             fputs(usage, stdout);

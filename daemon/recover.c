@@ -20,6 +20,7 @@
 #include "mem.h"
 #include "say.h"
 #include "spec.h"
+#include "worth/errors.h"
 
 static double mono_s(void)
 {
@@ -64,18 +65,29 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
         return -1;
     }
     db_start_t start;
-    uint64_t replayed = 0, training = 0, last_seq = 0, last_training = 0;
+    uint64_t replayed = 0, training = 0, last_seq = 0, cp_seq = 0, last_training = 0;
+    /*
+     * The next seq continues after the log's last row and after every checkpoint:
+     * transitions refused for a failed commit use up seqs that only a checkpoint
+     * taken afterwards remembers, and a new transition must never sort below it.
+     */
     if (db_restore_newest(db, id, name, m, &start, why, sizeof why) != 0 ||
         db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, why, sizeof why) != 0 ||
         max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
                &last_seq) != 0 ||
+        max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id, &cp_seq) !=
+            0 ||
         max_of(db, "SELECT COALESCE(MAX(ordinal), 0) FROM trainings WHERE model = ?", id,
                &last_training) != 0) {
-        snprintf(err, errlen, "model %s: recovery failed: %s", name, why);
+        int code = db_error_code(db);
+        snprintf(err, errlen, "%smodel %s: recovery failed: %s",
+                 code == WORTH_E_BAD_DATABASE ? "bad_database: " : "", name, why);
         model_free(m);
         spec_free(s);
         return -1;
     }
+    if (cp_seq > last_seq)
+        last_seq = cp_seq;
     learner_opts_t lo;
     proto_learner_opts(p, &lo);
     lo.seq = last_seq;

@@ -409,7 +409,7 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
     return 0;
 }
 
-int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_t errlen)
+int model_state_check(const uint8_t *buf, size_t len, char *err, size_t errlen)
 {
     if (len < 36) /* the header and the checksum of a model with no estimator state */
         return fail(err, errlen, WORTH_E_CORRUPT, "model state too short (%zu bytes)", len);
@@ -423,12 +423,20 @@ int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_
     if (version != MODEL_FORMAT_VERSION)
         return fail(err, errlen, WORTH_E_CORRUPT, "model state format %u, this build reads %d",
                     version, MODEL_FORMAT_VERSION);
+    return 0;
+}
+
+int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_t errlen)
+{
+    int rc = model_state_check(buf, len, err, errlen);
+    if (rc)
+        return rc;
 
     size_t blen = 0;
     model_save(m, NULL, 0, &blen);
     uint8_t *backup = mem_alloc(blen);
     CHECK(model_save(m, backup, blen, &blen) == 0);
-    int rc = load_body(m, buf, len, err, errlen);
+    rc = load_body(m, buf, len, err, errlen);
     if (rc) {
         model_reset(m);
         CHECK(load_body(m, backup, blen, NULL, 0) == 0);

@@ -143,6 +143,12 @@ int model_snap_value(const struct model *m, const double *snap, const double *x,
  */
 int model_save(const struct model *m, uint8_t *buf, size_t cap, size_t *len);
 /*
+ * Checks saved model state without loading it: magic, format version and
+ * CRC-32.  Returns 0 or WORTH_E_CORRUPT with a message in err.
+ */
+int model_state_check(const uint8_t *buf, size_t len, char *err, size_t errlen);
+
+/*
  * Restores what model_save wrote, into a model built from the same spec.
  * Returns 0, WORTH_E_CORRUPT or WORTH_E_MISMATCH with m unchanged.
  */

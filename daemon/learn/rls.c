@@ -159,7 +159,7 @@ static int regularise(struct est *e, struct rls *m)
 #endif
 
 KERNEL static void products(size_t n, const double *P, const double *z, const double *d, double *pz,
-                     double *u)
+                            double *u)
 {
     memset(u, 0, n * sizeof *u);
     for (size_t i = 0; i < n; i++) {

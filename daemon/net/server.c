@@ -647,7 +647,13 @@ int server_run(const server_opts_t *opts)
 
     int lock = db_lock(opts->db_path, err, sizeof err);
     sqlite3 *db = NULL;
-    if (lock < 0 || db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0) {
+    if (lock < 0 || db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
+        db_set_max_mb(db, opts->db_max_mb) != 0) {
+        if (db)
+            snprintf(err, sizeof err, "cannot cap %s at %llu MiB", opts->db_path,
+                     (unsigned long long)opts->db_max_mb);
+        sqlite3_close(db);
+        db = NULL;
         say_error("%s", err);
         arena_uninstall();
         uv_loop_close(&s->loop);

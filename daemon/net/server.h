@@ -32,6 +32,7 @@ typedef struct server_opts_t {
     int sync_full;             /* synchronous=FULL (else NORMAL) */
     uint64_t checkpoint_every; /* automatic checkpoint period in transitions; 0 = off */
     unsigned keep;             /* unlabelled checkpoints kept per model */
+    uint64_t db_max_mb;        /* database size cap in MiB; 0 = none */
 } server_opts_t;
 
 /*

@@ -52,6 +52,7 @@ struct slot {
     struct learner *l;
     uint64_t durable; /* last seq committed */
     uint64_t failed;  /* last seq whose commit failed */
+    int fail_code;    /* and its error code */
     char why[200];    /* the reason of the last failure */
     int gone;         /* dropped */
     int exited, released;
@@ -300,7 +301,7 @@ static void flush_acks(struct proto *p, struct conn *c)
             id[a->id_len] = 0;
             const char *idp = a->id_len ? id : NULL;
             if (a->seq == 0) { /* marked failed */
-                format_error(p, idp, WORTH_E_IO, -1, sl->why);
+                format_error(p, idp, sl->fail_code, -1, sl->why);
                 conn_send(c, p->out.b, p->out.len);
             } else if (sl->durable >= a->seq) {
                 conn_send(c, pc->ackbuf + a->off, a->len);
@@ -1384,6 +1385,7 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
     case LEV_FAILED:
         if (sl) {
             snprintf(sl->why, sizeof sl->why, "commit failed: %s; not applied", ev->text);
+            sl->fail_code = ev->rc;
             struct fail_ctx f = {p, sl, ev->seq};
             server_each_conn(s, fail_one, &f);
             if (ev->seq > sl->failed)

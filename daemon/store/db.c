@@ -146,6 +146,51 @@ static int migrate(sqlite3 *db, const char *path, char *err, size_t errlen)
     return 0;
 }
 
+int db_error_code(sqlite3 *db)
+{
+    switch (sqlite3_extended_errcode(db) & 0xff) {
+    case SQLITE_FULL:
+        return WORTH_E_STORAGE_FULL;
+    case SQLITE_CORRUPT:
+    case SQLITE_NOTADB:
+        return WORTH_E_BAD_DATABASE;
+    default:
+        return WORTH_E_STORAGE_ERROR;
+    }
+}
+
+int db_set_max_mb(sqlite3 *db, uint64_t max_mb)
+{
+    if (max_mb == 0)
+        return 0;
+    sqlite3_stmt *st = NULL;
+    int64_t page = 4096;
+    if (sqlite3_prepare_v2(db, "PRAGMA page_size", -1, &st, NULL) == SQLITE_OK &&
+        sqlite3_step(st) == SQLITE_ROW)
+        page = sqlite3_column_int64(st, 0);
+    sqlite3_finalize(st);
+    char sql[96];
+    snprintf(sql, sizeof sql, "PRAGMA max_page_count = %llu",
+             (unsigned long long)(max_mb * 1048576u / (uint64_t)page));
+    return sqlite3_exec(db, sql, NULL, NULL, NULL) == SQLITE_OK ? 0 : -1;
+}
+
+/* A file that has tables but not worthd's is someone else's database: refuse it. */
+static int foreign(sqlite3 *db)
+{
+    sqlite3_stmt *st = NULL;
+    int tables = 0, ours = 0;
+    if (sqlite3_prepare_v2(db, "SELECT name FROM sqlite_master WHERE type = 'table'", -1, &st,
+                           NULL) != SQLITE_OK)
+        return 1;
+    while (sqlite3_step(st) == SQLITE_ROW) {
+        tables++;
+        ours += strcmp((const char *)sqlite3_column_text(st, 0), "transitions") == 0;
+    }
+    sqlite3_finalize(st);
+    return tables > 0 && (!ours || user_version(db) < 1);
+}
+
 int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t errlen)
 {
     sqlite3 *db = NULL;
@@ -157,6 +202,25 @@ int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t er
         return -1;
     }
     sqlite3_busy_timeout(db, 5000);
+    /* Read the schema first: a corrupt or foreign file fails here, before we touch it. */
+    if (sqlite3_exec(db, "SELECT count(*) FROM sqlite_master", NULL, NULL, NULL) != SQLITE_OK ||
+        foreign(db)) {
+        fail(err, errlen, -1, "bad_database: %s is %s", path,
+             sqlite3_errcode(db) == SQLITE_OK ? "another program's database, not worthd's"
+                                              : "not a readable SQLite database");
+        sqlite3_close(db);
+        return -1;
+    }
+    /* A newer worthd's file is refused before anything is written to it (even the WAL switch). */
+    int have = user_version(db), newest = db_migrations[db_n_migrations - 1].version;
+    if (have > newest) {
+        fail(err, errlen, -1,
+             "bad_database: %s has schema version %d; this worthd knows up to %d (a newer "
+             "worthd wrote it)",
+             path, have, newest);
+        sqlite3_close(db);
+        return -1;
+    }
     if (exec(db, "PRAGMA journal_mode = WAL", err, errlen) ||
         exec(db, sync_full ? "PRAGMA synchronous = FULL" : "PRAGMA synchronous = NORMAL", err,
              errlen) ||
@@ -247,7 +311,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
                            " WHERE model = ?1 AND seq > ?2 AND seq <= ?3 AND rolled_back = 0"
                            " ORDER BY seq",
                            -1, &tx, NULL) != SQLITE_OK) {
-        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
     sqlite3_bind_int64(tr, 1, model_id);
@@ -296,7 +360,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         (*replayed)++;
     }
     if (xrc != SQLITE_DONE) {
-        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
     while (trc == SQLITE_ROW) {
@@ -306,7 +370,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         trc = sqlite3_step(tr);
     }
     if (trc != SQLITE_DONE)
-        code = fail(err, errlen, WORTH_E_IO, "%s", sqlite3_errmsg(db));
+        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
 out:
     sqlite3_finalize(tr);
     sqlite3_finalize(tx);

@@ -38,10 +38,19 @@ int db_lock(const char *path, char *err, size_t errlen);
 
 /*
  * Opens path read-write (creating it), sets WAL, synchronous FULL or NORMAL
- * and a busy timeout, and applies pending migrations in one transaction each.
- * Returns 0 with *out owned by the caller (sqlite3_close), or -1 with err.
+ * and a busy timeout, checks that an existing file is a worthd database, and
+ * applies pending migrations in one transaction each.  Returns 0 with *out
+ * owned by the caller (sqlite3_close), or -1 with err (which names the
+ * problem: bad_database for a corrupt or foreign file).
  */
 int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t errlen);
+/* Caps the database at max_mb megabytes (PRAGMA max_page_count); 0 leaves it unbounded. */
+int db_set_max_mb(sqlite3 *db, uint64_t max_mb);
+/*
+ * Maps the connection's last error to a worth code: storage_full (disk or
+ * quota full), bad_database (corrupt, or not a database), else storage_error.
+ */
+int db_error_code(sqlite3 *db);
 /* Opens path read-only (for replays on a learner thread). */
 int db_open_ro(const char *path, sqlite3 **out, char *err, size_t errlen);
 

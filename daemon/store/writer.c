@@ -181,7 +181,7 @@ static void job_create(struct writer *w, struct job *j)
     sqlite3_finalize(st);
     if (!ok) {
         say_error("model %s: cannot store it: %s", j->s1, sqlite3_errmsg(w->db));
-        post_reply(w, j->l, j->conn_id, WORTH_E_IO, "cannot store the model: %s",
+        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot store the model: %s",
                    sqlite3_errmsg(w->db));
         return;
     }
@@ -276,10 +276,12 @@ static void job_checkpoint(struct writer *w, struct job *j)
              exec(w, "COMMIT") == 0;
     }
     if (!ok) {
-        say_error("model %s: checkpoint not stored: %s", learner_name(j->l), sqlite3_errmsg(w->db));
-        post_reply(w, j->l, j->conn_id, WORTH_E_IO, "checkpoint not stored: %s",
-                   sqlite3_errmsg(w->db));
+        int code = db_error_code(w->db);
+        char why[512];
+        snprintf(why, sizeof why, "%s", sqlite3_errmsg(w->db));
         exec(w, "ROLLBACK");
+        say_error("model %s: checkpoint not stored: %s", learner_name(j->l), why);
+        post_reply(w, j->l, j->conn_id, code, "checkpoint not stored: %s", why);
         return;
     }
     say_debug("model %s: checkpoint %lld at seq %llu (%zu bytes)", learner_name(j->l),
@@ -317,7 +319,7 @@ static void job_list(struct writer *w, struct job *j)
     sqlite3_finalize(st);
     appendf(&buf, &len, &cap, "]");
     if (rc != SQLITE_DONE)
-        post_reply(w, j->l, j->conn_id, WORTH_E_IO, "cannot list checkpoints: %s",
+        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot list checkpoints: %s",
                    sqlite3_errmsg(w->db));
     else {
         learner_event_t ev = {.kind = LEV_REPLY, .l = j->l, .conn_id = j->conn_id, .rc = 0};
@@ -380,18 +382,20 @@ static void job_backup(struct writer *w, struct job *j)
         ok = sqlite3_step(st) == SQLITE_DONE;
     }
     char why[512];
+    int code = ok ? 0 : db_error_code(w->db);
     snprintf(why, sizeof why, "%s", ok ? "" : sqlite3_errmsg(w->db));
     sqlite3_finalize(st);
     struct stat sb;
     if (ok && (sync_path(tmp, 0) != 0 || rename(tmp, path) != 0 || sync_path(dir, 1) != 0 ||
                stat(path, &sb) != 0)) {
         ok = 0;
+        code = errno == ENOSPC ? WORTH_E_STORAGE_FULL : WORTH_E_STORAGE_ERROR;
         snprintf(why, sizeof why, "%s", strerror(errno));
     }
     if (!ok) {
         unlink(tmp);
         say_warn("backup to %s failed: %s", path, why);
-        post_reply(w, NULL, j->conn_id, WORTH_E_IO, "backup to %s failed: %s", path, why);
+        post_reply(w, NULL, j->conn_id, code, "backup to %s failed: %s", path, why);
         return;
     }
     say_info("backup written to %s (%lld bytes)", path, (long long)sb.st_size);
@@ -465,6 +469,15 @@ static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
         p->rc = WORTH_E_NO_SUCH_CHECKPOINT;
         snprintf(p->err, sizeof p->err, "model %s has no valid checkpoint %lld", learner_name(l),
                  (long long)p->checkpoint);
+        return 0;
+    }
+    /* A damaged checkpoint is refused before anything is marked. */
+    char why[160];
+    if (model_state_check(p->blob, p->blob_len, why, sizeof why) != 0) {
+        p->rc = WORTH_E_BAD_DATABASE;
+        snprintf(p->err, sizeof p->err, "checkpoint %lld cannot be restored: %s",
+                 (long long)p->checkpoint, why);
+        say_error("model %s: %s", learner_name(l), p->err);
         return 0;
     }
     int64_t ev = insert_event(w, l, "rollback", "{}");
@@ -579,18 +592,17 @@ static int write_record(struct writer *w, struct learner *l, learner_rec_t *r)
 }
 
 /* A commit failed: the records taken are never learnt, and their requests hear io. */
-static void fail_records(struct writer *w, struct learner *l, uint64_t from, uint64_t to,
+static void fail_records(struct writer *w, struct learner *l, uint64_t from, uint64_t to, int code,
                          const char *why)
 {
     uint64_t last_seq = 0;
     for (uint64_t k = from; k < to; k++) {
         learner_rec_t *r = learner_rec(l, k);
         if (r->type == LREC_TRAIN) {
-            learner_event_t ev = {
-                .kind = LEV_TRAINED, .l = l, .conn_id = r->conn_id, .rc = WORTH_E_IO};
+            learner_event_t ev = {.kind = LEV_TRAINED, .l = l, .conn_id = r->conn_id, .rc = code};
             w->post(w->ctx, &ev);
         } else if (r->type == LREC_CHECKPOINT || r->type == LREC_ROLLBACK) {
-            post_reply(w, l, r->conn_id, WORTH_E_IO, "the log could not be written: %s", why);
+            post_reply(w, l, r->conn_id, code, "the log could not be written: %s", why);
             if (r->type == LREC_ROLLBACK) {
                 mem_free(r->job->blob);
                 mem_free(r->job);
@@ -603,7 +615,7 @@ static void fail_records(struct writer *w, struct learner *l, uint64_t from, uin
     }
     learner_set_durable(l, to);
     if (last_seq) {
-        learner_event_t ev = {.kind = LEV_FAILED, .l = l, .seq = last_seq};
+        learner_event_t ev = {.kind = LEV_FAILED, .l = l, .seq = last_seq, .rc = code};
         ev.text = mem_strdup(why);
         w->post(w->ctx, &ev);
     }
@@ -636,11 +648,19 @@ static int write_group(struct writer *w)
             }
             began = 1;
         }
+        /* Never split a request: run on to the end of the last one begun. */
+        while (t > f && !learner_rec(w->models[i], t - 1)->last) {
+            uint64_t f2, t2;
+            learner_pending(w->models[i], &f2, &t2);
+            if (t >= t2)
+                break; /* cannot happen: the loop commits whole requests */
+            t++;
+        }
         for (uint64_t k = f; k < t && ok; k++)
             ok = write_record(w, w->models[i], learner_rec(w->models[i], k)) == 0;
         w->upto[i] = t;
         taken += t - f;
-        budget -= t - f;
+        budget = t - f >= budget ? 0 : budget - (t - f);
         if (!ok || budget == 0)
             break;
     }
@@ -650,12 +670,13 @@ static int write_group(struct writer *w)
         ok = 0;
     if (!ok) {
         char why[512];
+        int code = db_error_code(w->db);
         snprintf(why, sizeof why, "%s", sqlite3_errmsg(w->db));
         exec(w, "ROLLBACK");
         say_error("log commit failed (%s); %zu records not applied", why, taken);
         for (size_t i = 0; i < nm; i++)
             if (w->upto[i] > from[i])
-                fail_records(w, w->models[i], from[i], w->upto[i], why);
+                fail_records(w, w->models[i], from[i], w->upto[i], code, why);
         return 1;
     }
     for (size_t i = 0; i < nm; i++) {

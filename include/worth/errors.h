@@ -34,7 +34,10 @@
     X(IO, -18, "io", "input/output error")                                                         \
     X(INTERNAL, -19, "internal", "internal error")                                                 \
     X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")             \
-    X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")
+    X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")       \
+    X(STORAGE_FULL, -22, "storage_full", "the database is full; nothing of the request applied") \
+    X(STORAGE_ERROR, -23, "storage_error", "the database could not be written")                  \
+    X(BAD_DATABASE, -24, "bad_database", "the database file is corrupt or not worthd's")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),
