@@ -21,6 +21,7 @@
 #include <string.h>
 
 #include "est_impl.h"
+#include "fail.h"
 #include "mem.h"
 #include "worth/errors.h"
 
@@ -36,17 +37,6 @@ static const struct est_ops *const kind_ops[EST_KIND_COUNT] = {
     &est_td_ops,  &est_tdn_ops,  &est_tdlambda_ops, &est_mc_ops,
     &est_rls_ops, &est_lstd_ops, &est_replay_ops,
 };
-
-static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
-{
-    if (err && errlen) {
-        va_list ap;
-        va_start(ap, fmt);
-        vsnprintf(err, errlen, fmt, ap);
-        va_end(ap);
-    }
-    return code;
-}
 
 const char *est_kind_name(enum est_kind kind)
 {
@@ -88,13 +78,13 @@ void est_params_default(enum est_kind kind, est_params_t *p)
 static int check_params(const est_params_t *p, size_t n, size_t sources, char *err, size_t len)
 {
     if ((unsigned)p->kind >= EST_KIND_COUNT)
-        return fail(err, len, WORTH_E_BAD_PARAM, "unknown estimator kind");
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "unknown estimator kind");
     if (n < 1)
-        return fail(err, len, WORTH_E_BAD_PARAM, "feature count must be >= 1");
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "feature count must be >= 1");
     if (sources < 1 || sources > EST_MAX_SOURCES)
-        return fail(err, len, WORTH_E_BAD_PARAM, "sources must be 1..%d", EST_MAX_SOURCES);
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "sources must be 1..%d", EST_MAX_SOURCES);
     if (!isfinite(p->init))
-        return fail(err, len, WORTH_E_BAD_PARAM, "init must be finite");
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "init must be finite");
     switch (p->kind) {
     case EST_TD:
     case EST_TD_N:
@@ -102,60 +92,60 @@ static int check_params(const est_params_t *p, size_t n, size_t sources, char *e
     case EST_MC:
     case EST_REPLAY:
         if (!(p->alpha > 0) || !isfinite(p->alpha))
-            return fail(err, len, WORTH_E_BAD_PARAM, "alpha must be a finite number > 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "alpha must be a finite number > 0");
         break;
     default:
         break;
     }
     if ((p->kind == EST_TD_LAMBDA || p->kind == EST_RLS_TD || p->kind == EST_LSTD) &&
         !(p->lambda >= 0 && p->lambda <= 1))
-        return fail(err, len, WORTH_E_BAD_PARAM, "lambda must be in [0, 1]");
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "lambda must be in [0, 1]");
     if (p->kind == EST_TD_N && (p->nstep < 1 || p->nstep > 100000))
-        return fail(err, len, WORTH_E_BAD_PARAM, "n must be 1..100000");
+        return err_fail(err, len, WORTH_E_BAD_PARAM, "n must be 1..100000");
     if (p->kind == EST_MC) {
         if (p->horizon > 1000000)
-            return fail(err, len, WORTH_E_BAD_PARAM, "horizon must be 0..1000000");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "horizon must be 0..1000000");
         if (p->horizon == 0 && (p->max_episode < 1 || p->max_episode > 10000000))
-            return fail(err, len, WORTH_E_BAD_PARAM, "max_episode must be 1..10000000");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "max_episode must be 1..10000000");
     }
     if (p->kind == EST_RLS_TD || p->kind == EST_LSTD) {
         if (!(p->forget > 0 && p->forget <= 1))
-            return fail(err, len, WORTH_E_BAD_PARAM, "forget (mu) must be in (0, 1]");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "forget (mu) must be in (0, 1]");
     }
     if (p->kind == EST_RLS_TD) {
         if (!(p->delta > 0) || !isfinite(p->delta))
-            return fail(err, len, WORTH_E_BAD_PARAM, "delta must be a finite number > 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "delta must be a finite number > 0");
         if (p->guard != EST_GUARD_REGULARISE && p->guard != EST_GUARD_TRACE &&
             p->guard != EST_GUARD_NONE)
-            return fail(err, len, WORTH_E_BAD_PARAM, "guard must be regularise, trace or none");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "guard must be regularise, trace or none");
         if (!(p->trace_cap >= 0) || !isfinite(p->trace_cap))
-            return fail(err, len, WORTH_E_BAD_PARAM, "trace_cap must be finite and >= 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "trace_cap must be finite and >= 0");
     }
     if (p->kind == EST_LSTD) {
         if (!(p->ridge >= 0) || !isfinite(p->ridge))
-            return fail(err, len, WORTH_E_BAD_PARAM, "ridge must be finite and >= 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "ridge must be finite and >= 0");
         if (p->refit_every < 1)
-            return fail(err, len, WORTH_E_BAD_PARAM, "refit_every must be >= 1");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "refit_every must be >= 1");
     }
     if (p->kind == EST_REPLAY) {
         if (p->capacity < 1 || p->capacity > 100000000)
-            return fail(err, len, WORTH_E_BAD_PARAM, "capacity must be 1..100000000");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "capacity must be 1..100000000");
         if (p->batch < 1 || p->batch > p->capacity)
-            return fail(err, len, WORTH_E_BAD_PARAM, "batch must be 1..capacity");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "batch must be 1..capacity");
         if (p->steps_per_obs > 1000)
-            return fail(err, len, WORTH_E_BAD_PARAM, "steps_per_obs must be 0..1000");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "steps_per_obs must be 0..1000");
         if (!(p->decay >= 0) || !isfinite(p->decay))
-            return fail(err, len, WORTH_E_BAD_PARAM, "decay must be finite and >= 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "decay must be finite and >= 0");
         if (!(p->tol > 0) || !isfinite(p->tol))
-            return fail(err, len, WORTH_E_BAD_PARAM, "tol must be a finite number > 0");
+            return err_fail(err, len, WORTH_E_BAD_PARAM, "tol must be a finite number > 0");
     }
     /* Memory the dense matrices imply, checked before anything is allocated. */
     if ((p->kind == EST_RLS_TD || p->kind == EST_LSTD) && n > 8192)
-        return fail(err, len, WORTH_E_TOO_LARGE,
-                    "%s keeps an n x n matrix: n = %zu exceeds its limit 8192", kind_names[p->kind],
-                    n);
+        return err_fail(err, len, WORTH_E_TOO_LARGE,
+                        "%s keeps an n x n matrix: n = %zu exceeds its limit 8192",
+                        kind_names[p->kind], n);
     if (p->kind == EST_REPLAY && (double)p->capacity * (2.0 * n + 1) * 8 > 4e9)
-        return fail(err, len, WORTH_E_TOO_LARGE, "replay buffer would exceed 4 GB");
+        return err_fail(err, len, WORTH_E_TOO_LARGE, "replay buffer would exceed 4 GB");
     return 0;
 }
 
@@ -373,9 +363,9 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
     CHECK(ser_fits(&pw));
     ser_get_bytes(&r, theirs, pw.len);
     if (r.err)
-        return fail(err, errlen, WORTH_E_CORRUPT, "state is shorter than its header");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "state is shorter than its header");
     if (memcmp(mine, theirs, pw.len) != 0)
-        return fail(err, errlen, WORTH_E_MISMATCH, "state was saved with other parameters");
+        return err_fail(err, errlen, WORTH_E_MISMATCH, "state was saved with other parameters");
     e->updates = ser_get_u64(&r);
     e->guarded = ser_get_u64(&r);
     e->td_last = ser_get_f64(&r);
@@ -384,33 +374,34 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
     ser_get_f64v(&r, e->w, e->n);
     e->ops->load(e, &r);
     if (r.err || r.pos != r.len)
-        return fail(err, errlen, WORTH_E_CORRUPT, "state has the wrong length for its kind");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "state has the wrong length for its kind");
     return 0;
 }
 
 int est_load(struct est *e, const uint8_t *buf, size_t len, char *err, size_t errlen)
 {
     if (len < 40 + 4)
-        return fail(err, errlen, WORTH_E_CORRUPT, "state too short (%zu bytes)", len);
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "state too short (%zu bytes)", len);
     ser_r h = {buf, len, 0, 0};
     uint32_t magic = ser_get_u32(&h), version = ser_get_u32(&h), kind = ser_get_u32(&h);
     ser_get_u32(&h);
     uint64_t n = ser_get_u64(&h), nsrc = ser_get_u64(&h);
     if (magic != EST_MAGIC)
-        return fail(err, errlen, WORTH_E_CORRUPT, "not an estimator state (bad magic)");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "not an estimator state (bad magic)");
     ser_r t = {buf + len - 4, 4, 0, 0};
     if (ser_get_u32(&t) != ser_crc32(buf, len - 4))
-        return fail(err, errlen, WORTH_E_CORRUPT, "estimator state fails its checksum");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "estimator state fails its checksum");
     if (version != EST_FORMAT_VERSION)
-        return fail(err, errlen, WORTH_E_CORRUPT, "state format version %u, this build reads %d",
-                    version, EST_FORMAT_VERSION);
+        return err_fail(err, errlen, WORTH_E_CORRUPT,
+                        "state format version %u, this build reads %d", version,
+                        EST_FORMAT_VERSION);
     if (kind != (uint32_t)e->p.kind)
-        return fail(err, errlen, WORTH_E_MISMATCH, "state is of kind %s, estimator is %s",
-                    kind < EST_KIND_COUNT ? kind_names[kind] : "?", kind_names[e->p.kind]);
+        return err_fail(err, errlen, WORTH_E_MISMATCH, "state is of kind %s, estimator is %s",
+                        kind < EST_KIND_COUNT ? kind_names[kind] : "?", kind_names[e->p.kind]);
     if (n != e->n || nsrc != e->nsrc)
-        return fail(err, errlen, WORTH_E_MISMATCH,
-                    "state has %llu features and %llu sources, estimator %zu and %zu",
-                    (unsigned long long)n, (unsigned long long)nsrc, e->n, e->nsrc);
+        return err_fail(err, errlen, WORTH_E_MISMATCH,
+                        "state has %llu features and %llu sources, estimator %zu and %zu",
+                        (unsigned long long)n, (unsigned long long)nsrc, e->n, e->nsrc);
 
     /* Keep a copy of the current state so that a failure leaves e unchanged. */
     size_t blen = 0;
@@ -454,4 +445,54 @@ void est_get_opt(ser_r *r, double **v, size_t n)
     if (!*v)
         *v = mem_alloc(n * sizeof **v);
     ser_get_f64v(r, *v, n);
+}
+
+void est_trace_step(struct est_trace *t, size_t n, double lambda, const double *phi,
+                    const double *phin, double g, int terminal, double *d)
+{
+    if (!t->z)
+        t->z = mem_calloc(n, sizeof *t->z);
+    double gl = t->g_prev * lambda;
+    for (size_t i = 0; i < n; i++)
+        t->z[i] = gl * t->z[i] + phi[i];
+    if (terminal)
+        memcpy(d, phi, n * sizeof *d);
+    else
+        for (size_t i = 0; i < n; i++)
+            d[i] = phi[i] - g * phin[i];
+}
+
+void est_trace_end(struct est_trace *t, size_t n, double g, int terminal)
+{
+    if (terminal) {
+        memset(t->z, 0, n * sizeof *t->z);
+        t->g_prev = 0.0;
+    } else {
+        t->g_prev = g;
+    }
+}
+
+void est_traces_reset(struct est_trace *t, size_t nsrc)
+{
+    for (size_t i = 0; i < nsrc; i++) {
+        mem_free(t[i].z);
+        t[i].z = NULL;
+        t[i].g_prev = 0.0;
+    }
+}
+
+void est_traces_save(const struct est_trace *t, size_t nsrc, size_t n, ser_w *w)
+{
+    for (size_t i = 0; i < nsrc; i++) {
+        est_put_opt(w, t[i].z, n);
+        ser_put_f64(w, t[i].g_prev);
+    }
+}
+
+void est_traces_load(struct est_trace *t, size_t nsrc, size_t n, ser_r *r)
+{
+    for (size_t i = 0; i < nsrc && !r->err; i++) {
+        est_get_opt(r, &t[i].z, n);
+        t[i].g_prev = ser_get_f64(r);
+    }
 }

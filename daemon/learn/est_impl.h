@@ -61,6 +61,26 @@ double est_dot(size_t n, const double *a, const double *b);
 /* y += a * x over n doubles (BLAS daxpy). */
 void est_axpy(size_t n, double a, const double *x, double *y);
 
+/*
+ * The accumulating trace of one source, shared by rls_td and lstd (the
+ * instrument of LSTD(lambda)): z = g_prev*lambda*z + phi, reset at a terminal
+ * transition; g_prev is the previous transition's discount.
+ */
+struct est_trace {
+    double *z; /* n, allocated when the source is first seen */
+    double g_prev;
+};
+
+/* Advances t (allocating z on first use) and writes the regressor d = phi - g phi'. */
+void est_trace_step(struct est_trace *t, size_t n, double lambda, const double *phi,
+                    const double *phin, double g, int terminal, double *d);
+/* Ends the step: resets t at a terminal transition, else remembers g. */
+void est_trace_end(struct est_trace *t, size_t n, double g, int terminal);
+/* Frees and zeroes nsrc traces. */
+void est_traces_reset(struct est_trace *t, size_t nsrc);
+void est_traces_save(const struct est_trace *t, size_t nsrc, size_t n, ser_w *w);
+void est_traces_load(struct est_trace *t, size_t nsrc, size_t n, ser_r *r);
+
 /* Writes a flag and, when present, n doubles of a lazily allocated per-source vector. */
 void est_put_opt(ser_w *w, const double *v, size_t n);
 /* Reads what est_put_opt wrote into *v, allocating it (n doubles) when present. */

@@ -18,6 +18,7 @@
 #include <stdio.h>
 #include <string.h>
 
+#include "fail.h"
 #include "mem.h"
 #include "worth/errors.h"
 
@@ -41,17 +42,6 @@ struct feat {
     size_t nbases;
     struct basis *b;
 };
-
-static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
-{
-    if (err && errlen) {
-        va_list ap;
-        va_start(ap, fmt);
-        vsnprintf(err, errlen, fmt, ap);
-        va_end(ap);
-    }
-    return code;
-}
 
 /* Saturating helpers: every count is capped at cap + 1, which means "too many". */
 static size_t sat_add(size_t a, size_t b, size_t cap)
@@ -132,34 +122,35 @@ static int check_basis(const feat_basis_t *p, size_t i, size_t d, char *err, siz
         return 0;
     case FEAT_POLY:
         if (p->degree < 1 || p->degree > 255)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu (poly): degree must be 1..255",
-                        i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "basis %zu (poly): degree must be 1..255", i);
         return 0;
     case FEAT_FOURIER:
         if (p->order < 1 || p->order > 255)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu (fourier): order must be 1..255",
-                        i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "basis %zu (fourier): order must be 1..255", i);
         if (p->couple > d)
-            return fail(err, errlen, WORTH_E_BAD_PARAM,
-                        "basis %zu (fourier): couple must be 0..%zu (the dimension)", i, d);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "basis %zu (fourier): couple must be 0..%zu (the dimension)", i, d);
         return 0;
     case FEAT_RBF:
         if (p->centers < 1)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu (rbf): centers must be >= 1", i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu (rbf): centers must be >= 1",
+                            i);
         if (!(p->width > 0) || !isfinite(p->width))
-            return fail(err, errlen, WORTH_E_BAD_PARAM,
-                        "basis %zu (rbf): width must be a finite number > 0", i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "basis %zu (rbf): width must be a finite number > 0", i);
         return 0;
     case FEAT_TILES:
         /* tilings bounds the offset table (tilings x D) and the cost of an evaluation. */
         if (p->tilings < 1 || p->tilings > FEAT_MAX_TILINGS || p->tiles < 1 ||
             p->tiles > FEAT_MAX_TILES || p->size < 1)
-            return fail(err, errlen, WORTH_E_BAD_PARAM,
-                        "basis %zu (tiles): tilings must be 1..%d, tiles 1..%d, size >= 1", i,
-                        FEAT_MAX_TILINGS, FEAT_MAX_TILES);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "basis %zu (tiles): tilings must be 1..%d, tiles 1..%d, size >= 1", i,
+                            FEAT_MAX_TILINGS, FEAT_MAX_TILES);
         return 0;
     }
-    return fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu: unknown kind", i);
+    return err_fail(err, errlen, WORTH_E_BAD_PARAM, "basis %zu: unknown kind", i);
 }
 
 /* Enumerates exponent vectors with 1 <= sum <= deg, last dimension fastest. */
@@ -224,20 +215,21 @@ int feat_new(const feat_spec_t *spec, struct feat **out, char *err, size_t errle
     size_t cap = spec->max_features ? spec->max_features : FEAT_DEFAULT_MAX;
 
     if (cap > FEAT_HARD_MAX)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "max_features must be <= %d", FEAT_HARD_MAX);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "max_features must be <= %d",
+                        FEAT_HARD_MAX);
 
     if (d < 1)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be >= 1");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be >= 1");
     if (d > FEAT_MAX_DIMS)
-        return fail(err, errlen, WORTH_E_TOO_LARGE, "dims %zu exceeds the limit %d", d,
-                    FEAT_MAX_DIMS);
+        return err_fail(err, errlen, WORTH_E_TOO_LARGE, "dims %zu exceeds the limit %d", d,
+                        FEAT_MAX_DIMS);
     if (spec->nbases < 1)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "at least one basis is required");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "at least one basis is required");
     for (size_t i = 0; i < d; i++) {
         double lo = spec->lo[i], hi = spec->hi[i];
         if (!isfinite(lo) || !isfinite(hi) || !(hi > lo) || !isfinite(hi - lo))
-            return fail(err, errlen, WORTH_E_BAD_PARAM,
-                        "range of dimension %zu must be finite with lo < hi", i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "range of dimension %zu must be finite with lo < hi", i);
     }
     size_t total = 0;
     for (size_t i = 0; i < spec->nbases; i++) {
@@ -246,9 +238,9 @@ int feat_new(const feat_spec_t *spec, struct feat **out, char *err, size_t errle
             return rc;
         total = sat_add(total, basis_count(&spec->bases[i], d, cap), cap);
         if (total > cap)
-            return fail(err, errlen, WORTH_E_TOO_LARGE,
-                        "basis %zu (%s) takes the feature count over the limit %zu", i,
-                        kind_name(spec->bases[i].kind), cap);
+            return err_fail(err, errlen, WORTH_E_TOO_LARGE,
+                            "basis %zu (%s) takes the feature count over the limit %zu", i,
+                            kind_name(spec->bases[i].kind), cap);
     }
 
     struct feat *f = mem_calloc(1, sizeof *f);

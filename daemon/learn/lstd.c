@@ -25,11 +25,6 @@
 #include "est_impl.h"
 #include "mem.h"
 
-struct slot {
-    double *z;
-    double g_prev;
-};
-
 struct lstd {
     double *A, *b;     /* accumulators: n x n column-major, n */
     double *M, *x;     /* solve workspaces: n x n, n */
@@ -41,7 +36,7 @@ struct lstd {
     double *sv;     /* n singular values for dgelss */
     uint64_t since; /* transitions since the last refit */
     uint64_t refits;
-    struct slot *s; /* nsrc */
+    struct est_trace *s; /* nsrc */
 };
 
 static void lstd_init(struct est *e)
@@ -74,10 +69,7 @@ static void lstd_reset(struct est *e)
     memset(m->A, 0, n * n * sizeof *m->A);
     memset(m->b, 0, n * sizeof *m->b);
     m->since = m->refits = 0;
-    for (size_t i = 0; i < e->nsrc; i++) {
-        mem_free(m->s[i].z);
-        memset(&m->s[i], 0, sizeof m->s[i]);
-    }
+    est_traces_reset(m->s, e->nsrc);
 }
 
 static void lstd_free(struct est *e)
@@ -153,21 +145,13 @@ static int lstd_observe(struct est *e, size_t src, const double *phi, double r, 
     (void)v;
     (void)vn;
     struct lstd *m = e->k;
-    struct slot *s = &m->s[src];
+    struct est_trace *s = &m->s[src];
     size_t n = e->n;
     int ni = (int)n;
     double beta = e->p.forget;
-    if (!s->z)
-        s->z = mem_calloc(n, sizeof *s->z);
 
-    double gl = s->g_prev * e->p.lambda;
-    for (size_t i = 0; i < n; i++)
-        s->z[i] = gl * s->z[i] + phi[i];
-    if (terminal)
-        memcpy(m->d, phi, n * sizeof *m->d);
-    else
-        for (size_t i = 0; i < n; i++)
-            m->d[i] = phi[i] - g * phin[i];
+    /* Instrument (eligibility trace) and regressor. */
+    est_trace_step(s, n, e->p.lambda, phi, phin, g, terminal, m->d);
     if (beta != 1.0) {
         cblas_dscal(ni * ni, beta, m->A, 1);
         cblas_dscal(ni, beta, m->b, 1);
@@ -175,12 +159,7 @@ static int lstd_observe(struct est *e, size_t src, const double *phi, double r, 
     cblas_dger(CblasColMajor, ni, ni, 1.0, s->z, 1, m->d, 1, m->A, ni);
     est_axpy(n, r, s->z, m->b);
 
-    if (terminal) {
-        memset(s->z, 0, n * sizeof *s->z);
-        s->g_prev = 0.0;
-    } else {
-        s->g_prev = g;
-    }
+    est_trace_end(s, n, g, terminal);
     if (++m->since >= e->p.refit_every)
         return refit(e);
     return 0;
@@ -218,10 +197,7 @@ static void lstd_save(const struct est *e, ser_w *w)
     ser_put_f64v(w, m->b, e->n);
     ser_put_u64(w, m->since);
     ser_put_u64(w, m->refits);
-    for (size_t i = 0; i < e->nsrc; i++) {
-        est_put_opt(w, m->s[i].z, e->n);
-        ser_put_f64(w, m->s[i].g_prev);
-    }
+    est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
 static void lstd_load(struct est *e, ser_r *r)
@@ -231,10 +207,7 @@ static void lstd_load(struct est *e, ser_r *r)
     ser_get_f64v(r, m->b, e->n);
     m->since = ser_get_u64(r);
     m->refits = ser_get_u64(r);
-    for (size_t i = 0; i < e->nsrc && !r->err; i++) {
-        est_get_opt(r, &m->s[i].z, e->n);
-        m->s[i].g_prev = ser_get_f64(r);
-    }
+    est_traces_load(m->s, e->nsrc, e->n, r);
 }
 
 const struct est_ops est_lstd_ops = {

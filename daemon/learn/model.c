@@ -22,6 +22,7 @@
 #include <stdio.h>
 #include <string.h>
 
+#include "fail.h"
 #include "mem.h"
 #include "ser.h"
 #include "worth/errors.h"
@@ -41,42 +42,33 @@ struct model {
     uint64_t applied, clipped;
 };
 
-static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
-{
-    if (err && errlen) {
-        va_list ap;
-        va_start(ap, fmt);
-        vsnprintf(err, errlen, fmt, ap);
-        va_end(ap);
-    }
-    return code;
-}
-
 int model_new(const model_spec_t *spec, struct model **out, char *err, size_t errlen)
 {
     int rc;
     if (!(spec->gamma >= 0 && spec->gamma <= 1))
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
     if (!(spec->gamma_per_s == 0 || (spec->gamma_per_s > 0 && spec->gamma_per_s <= 1)))
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "gamma_per_s must be in (0, 1]");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma_per_s must be in (0, 1]");
     if (spec->n_est < 1 || spec->n_est > MODEL_MAX_EST)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "a model runs 1..%d estimators", MODEL_MAX_EST);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "a model runs 1..%d estimators",
+                        MODEL_MAX_EST);
     if (spec->primary >= spec->n_est)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "primary estimator index out of range");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "primary estimator index out of range");
     size_t nsrc = spec->max_sources ? spec->max_sources : MODEL_DEFAULT_SOURCES;
     if (nsrc > EST_MAX_SOURCES)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "max_sources must be 1..%d", EST_MAX_SOURCES);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "max_sources must be 1..%d",
+                        EST_MAX_SOURCES);
     for (size_t i = 0; i < spec->n_est; i++) {
         if (!spec->est_names[i])
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "estimator %zu has no name", i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "estimator %zu has no name", i);
         size_t len = strlen(spec->est_names[i]);
         if (len < 1 || len > MODEL_NAME_MAX)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "estimator %zu: name must be 1..%d bytes",
-                        i, MODEL_NAME_MAX);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "estimator %zu: name must be 1..%d bytes", i, MODEL_NAME_MAX);
         for (size_t j = 0; j < i; j++)
             if (strcmp(spec->est_names[i], spec->est_names[j]) == 0)
-                return fail(err, errlen, WORTH_E_BAD_PARAM, "estimator name \"%s\" repeats",
-                            spec->est_names[i]);
+                return err_fail(err, errlen, WORTH_E_BAD_PARAM, "estimator name \"%s\" repeats",
+                                spec->est_names[i]);
     }
 
     struct feat *f = NULL;
@@ -95,7 +87,7 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
         char sub[200];
         rc = est_new(&spec->est[i], m->n, nsrc, &m->est[i], sub, sizeof sub);
         if (rc) {
-            fail(err, errlen, rc, "estimator \"%s\": %s", spec->est_names[i], sub);
+            err_fail(err, errlen, rc, "estimator \"%s\": %s", spec->est_names[i], sub);
             goto out_free_model;
         }
         m->n_est = i + 1;
@@ -156,30 +148,31 @@ static long find_source(const struct model *m, const char *name)
 int model_check(const struct model *m, const model_obs_t *t, char *err, size_t errlen)
 {
     if (!t->x || t->x_len != m->dims)
-        return fail(err, errlen, WORTH_E_BAD_DIMENSION, "x has %zu values, the model has %zu",
-                    t->x ? t->x_len : 0, m->dims);
+        return err_fail(err, errlen, WORTH_E_BAD_DIMENSION, "x has %zu values, the model has %zu",
+                        t->x ? t->x_len : 0, m->dims);
     if (!t->terminal && (!t->x_next || t->x_next_len != m->dims))
-        return fail(err, errlen, WORTH_E_BAD_DIMENSION, "x_next has %zu values, the model has %zu",
-                    t->x_next ? t->x_next_len : 0, m->dims);
+        return err_fail(err, errlen, WORTH_E_BAD_DIMENSION,
+                        "x_next has %zu values, the model has %zu", t->x_next ? t->x_next_len : 0,
+                        m->dims);
     if (t->x_next && t->x_next_len != m->dims)
-        return fail(err, errlen, WORTH_E_BAD_DIMENSION, "x_next has %zu values, the model has %zu",
-                    t->x_next_len, m->dims);
+        return err_fail(err, errlen, WORTH_E_BAD_DIMENSION,
+                        "x_next has %zu values, the model has %zu", t->x_next_len, m->dims);
     if (!finite_vec(t->x, m->dims))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "x holds a NaN or infinite value");
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "x holds a NaN or infinite value");
     if (t->x_next && !finite_vec(t->x_next, m->dims))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "x_next holds a NaN or infinite value");
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "x_next holds a NaN or infinite value");
     if (!isfinite(t->r))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "r is NaN or infinite");
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "r is NaN or infinite");
     if (!isnan(t->dt_s) && !(isfinite(t->dt_s) && t->dt_s >= 0))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "dt must be a finite number >= 0");
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "dt must be a finite number >= 0");
     const char *src = t->source ? t->source : "";
     if (strlen(src) > MODEL_NAME_MAX)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "source name longer than %d bytes",
-                    MODEL_NAME_MAX);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "source name longer than %d bytes",
+                        MODEL_NAME_MAX);
     if (find_source(m, src) < 0 && m->n_sources >= m->max_sources)
-        return fail(err, errlen, WORTH_E_TOO_MANY_SOURCES,
-                    "source \"%s\" would be the model's %zu-th; its limit is %zu", src,
-                    m->n_sources + 1, m->max_sources);
+        return err_fail(err, errlen, WORTH_E_TOO_MANY_SOURCES,
+                        "source \"%s\" would be the model's %zu-th; its limit is %zu", src,
+                        m->n_sources + 1, m->max_sources);
     return 0;
 }
 
@@ -379,50 +372,50 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
     ser_get_u32(&r);
     uint32_t n_est = ser_get_u32(&r), n_src = ser_get_u32(&r);
     if (n_est != m->n_est)
-        return fail(err, errlen, WORTH_E_MISMATCH, "state has %u estimators, model has %zu", n_est,
-                    m->n_est);
+        return err_fail(err, errlen, WORTH_E_MISMATCH, "state has %u estimators, model has %zu",
+                        n_est, m->n_est);
     if (n_src > m->max_sources)
-        return fail(err, errlen, WORTH_E_MISMATCH, "state has %u sources, model allows %zu", n_src,
-                    m->max_sources);
+        return err_fail(err, errlen, WORTH_E_MISMATCH, "state has %u sources, model allows %zu",
+                        n_src, m->max_sources);
     m->applied = ser_get_u64(&r);
     m->clipped = ser_get_u64(&r);
     memset(m->sources, 0, m->max_sources * sizeof *m->sources);
     for (uint32_t i = 0; i < n_src; i++) {
         uint32_t sl = ser_get_u32(&r);
         if (r.err || sl > MODEL_NAME_MAX)
-            return fail(err, errlen, WORTH_E_CORRUPT, "source name %u is malformed", i);
+            return err_fail(err, errlen, WORTH_E_CORRUPT, "source name %u is malformed", i);
         ser_get_bytes(&r, m->sources[i], sl);
     }
     m->n_sources = n_src;
     for (size_t i = 0; i < m->n_est; i++) {
         uint64_t el = ser_get_u64(&r);
         if (r.err || el > r.len - r.pos)
-            return fail(err, errlen, WORTH_E_CORRUPT, "estimator %zu state is cut short", i);
+            return err_fail(err, errlen, WORTH_E_CORRUPT, "estimator %zu state is cut short", i);
         char sub[200];
         int rc = est_load(m->est[i], r.buf + r.pos, (size_t)el, sub, sizeof sub);
         if (rc)
-            return fail(err, errlen, rc, "estimator \"%s\": %s", m->names[i], sub);
+            return err_fail(err, errlen, rc, "estimator \"%s\": %s", m->names[i], sub);
         r.pos += (size_t)el;
     }
     if (r.err || r.pos != r.len)
-        return fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
     return 0;
 }
 
 int model_state_check(const uint8_t *buf, size_t len, char *err, size_t errlen)
 {
     if (len < 36) /* the header and the checksum of a model with no estimator state */
-        return fail(err, errlen, WORTH_E_CORRUPT, "model state too short (%zu bytes)", len);
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "model state too short (%zu bytes)", len);
     ser_r h = {buf, len, 0, 0};
     uint32_t magic = ser_get_u32(&h), version = ser_get_u32(&h);
     if (magic != MODEL_MAGIC)
-        return fail(err, errlen, WORTH_E_CORRUPT, "not a model state (bad magic)");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "not a model state (bad magic)");
     ser_r t = {buf + len - 4, 4, 0, 0};
     if (ser_get_u32(&t) != ser_crc32(buf, len - 4))
-        return fail(err, errlen, WORTH_E_CORRUPT, "model state fails its checksum");
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "model state fails its checksum");
     if (version != MODEL_FORMAT_VERSION)
-        return fail(err, errlen, WORTH_E_CORRUPT, "model state format %u, this build reads %d",
-                    version, MODEL_FORMAT_VERSION);
+        return err_fail(err, errlen, WORTH_E_CORRUPT, "model state format %u, this build reads %d",
+                        version, MODEL_FORMAT_VERSION);
     return 0;
 }
 

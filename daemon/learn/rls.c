@@ -53,18 +53,13 @@
 #include "est_impl.h"
 #include "mem.h"
 
-struct slot {
-    double *z;
-    double g_prev;
-};
-
 struct rls {
     double *P;           /* n x n, row-major */
     double *pz, *u, *d;  /* workspaces, n each */
     double cap;          /* trace cap of the guard */
     double s2_sum, s2_w; /* running residual variance: sum of mu-weighted e^2 and weights */
     uint64_t reg_i;      /* regularised guard: next coordinate to regularise */
-    struct slot *s;      /* nsrc */
+    struct est_trace *s; /* nsrc */
 };
 
 static void init_p(struct est *e, struct rls *m)
@@ -95,10 +90,7 @@ static void rls_reset(struct est *e)
     init_p(e, m);
     m->s2_sum = m->s2_w = 0.0;
     m->reg_i = 0;
-    for (size_t i = 0; i < e->nsrc; i++) {
-        mem_free(m->s[i].z);
-        memset(&m->s[i], 0, sizeof m->s[i]);
-    }
+    est_traces_reset(m->s, e->nsrc);
 }
 
 static void rls_free(struct est *e)
@@ -189,22 +181,13 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
                        double g, int terminal, double v, double vn)
 {
     struct rls *m = e->k;
-    struct slot *s = &m->s[src];
+    struct est_trace *s = &m->s[src];
     size_t n = e->n;
     int guarded = 0;
     double mu = e->p.forget;
-    if (!s->z)
-        s->z = mem_calloc(n, sizeof *s->z);
 
     /* Instrument (eligibility trace) and regressor. */
-    double gl = s->g_prev * e->p.lambda;
-    for (size_t i = 0; i < n; i++)
-        s->z[i] = gl * s->z[i] + phi[i];
-    if (terminal)
-        memcpy(m->d, phi, n * sizeof *m->d);
-    else
-        for (size_t i = 0; i < n; i++)
-            m->d[i] = phi[i] - g * phin[i];
+    est_trace_step(s, n, e->p.lambda, phi, phin, g, terminal, m->d);
 
     double mu_t = mu;
     if (e->p.guard == EST_GUARD_TRACE && mu < 1.0) {
@@ -229,12 +212,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     m->s2_sum = mu * m->s2_sum + err * err;
     m->s2_w = mu * m->s2_w + 1.0;
 
-    if (terminal) {
-        memset(s->z, 0, n * sizeof *s->z);
-        s->g_prev = 0.0;
-    } else {
-        s->g_prev = g;
-    }
+    est_trace_end(s, n, g, terminal);
     return guarded;
 }
 
@@ -293,10 +271,7 @@ static void rls_save(const struct est *e, ser_w *w)
     ser_put_f64(w, m->s2_sum);
     ser_put_f64(w, m->s2_w);
     ser_put_u64(w, m->reg_i);
-    for (size_t i = 0; i < e->nsrc; i++) {
-        est_put_opt(w, m->s[i].z, e->n);
-        ser_put_f64(w, m->s[i].g_prev);
-    }
+    est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
 static void rls_load(struct est *e, ser_r *r)
@@ -306,10 +281,7 @@ static void rls_load(struct est *e, ser_r *r)
     m->s2_sum = ser_get_f64(r);
     m->s2_w = ser_get_f64(r);
     m->reg_i = ser_get_u64(r);
-    for (size_t i = 0; i < e->nsrc && !r->err; i++) {
-        est_get_opt(r, &m->s[i].z, e->n);
-        m->s[i].g_prev = ser_get_f64(r);
-    }
+    est_traces_load(m->s, e->nsrc, e->n, r);
 }
 
 const struct est_ops est_rls_ops = {

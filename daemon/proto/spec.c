@@ -34,6 +34,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "fail.h"
 #include "mem.h"
 #include "worth/errors.h"
 
@@ -126,17 +127,6 @@ static const struct field est_fields[] = {
 /* Guard names, indexed by enum est_guard. */
 static const char *const guard_names[] = {"regularise", "trace", "none"};
 
-static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
-{
-    if (err && errlen) {
-        va_list ap;
-        va_start(ap, fmt);
-        vsnprintf(err, errlen, fmt, ap);
-        va_end(ap);
-    }
-    return code;
-}
-
 /*
  * Copies at most SHOW_MAX bytes of a client's string into buf (SHOW_MAX + 4
  * bytes) for a message: printable ASCII only (others, quotes and backslashes
@@ -181,11 +171,11 @@ static int check_keys(const cJSON *obj, const struct field *t, size_t n, const c
     {
         int i = it->string ? find_field(t, n, it->string) : -1;
         if (i < 0)
-            return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: unknown field \"%s\"", path,
-                        show(it->string ? it->string : "", sb));
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: unknown field \"%s\"", path,
+                            show(it->string ? it->string : "", sb));
         if (seen & (1u << i))
-            return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: field \"%s\" appears twice", path,
-                        t[i].name);
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: field \"%s\" appears twice",
+                            path, t[i].name);
         seen |= 1u << i;
     }
     return 0;
@@ -195,13 +185,13 @@ static int check_keys(const cJSON *obj, const struct field *t, size_t n, const c
 static int get_double(const cJSON *it, const char *path, double *out, char *err, size_t errlen)
 {
     if (!it)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
     if (cJSON_IsNull(it) || cJSON_IsString(it))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "%s must be a finite number", path);
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "%s must be a finite number", path);
     if (!cJSON_IsNumber(it))
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be a number", path);
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be a number", path);
     if (!isfinite(it->valuedouble))
-        return fail(err, errlen, WORTH_E_BAD_NUMBER, "%s must be a finite number", path);
+        return err_fail(err, errlen, WORTH_E_BAD_NUMBER, "%s must be a finite number", path);
     *out = it->valuedouble;
     return 0;
 }
@@ -215,8 +205,8 @@ static int get_int(const cJSON *it, const char *path, double lo, double hi, uint
     if (rc)
         return rc;
     if (v != floor(v) || v < lo || v > hi)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be an integer %.0f..%.0f", path, lo,
-                    hi);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be an integer %.0f..%.0f", path,
+                        lo, hi);
     *out = (uint64_t)v;
     return 0;
 }
@@ -225,9 +215,9 @@ static int get_int(const cJSON *it, const char *path, double lo, double hi, uint
 static int get_string(const cJSON *it, const char *path, const char **out, char *err, size_t errlen)
 {
     if (!it)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
     if (!cJSON_IsString(it) || !it->valuestring)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be a string", path);
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be a string", path);
     *out = it->valuestring;
     return 0;
 }
@@ -268,8 +258,8 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
                 return 0;
             }
         }
-        return fail(err, errlen, WORTH_E_BAD_PARAM,
-                    "%s must be \"regularise\", \"trace\" or \"none\"", path);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                        "%s must be \"regularise\", \"trace\" or \"none\"", path);
     case F_OTHER:
         break;
     }
@@ -291,8 +281,8 @@ static int get_params(const cJSON *obj, const struct field *t, size_t n, size_t 
         const cJSON *it = cJSON_GetObjectItemCaseSensitive(obj, t[i].name);
         if (!(t[i].kinds & (1u << kind))) {
             if (it)
-                return fail(err, errlen, WORTH_E_BAD_REQUEST,
-                            "%s: field \"%s\" does not apply to %s", path, t[i].name, what);
+                return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
+                                "%s: field \"%s\" does not apply to %s", path, t[i].name, what);
             continue;
         }
         if (!it && !t[i].required)
@@ -309,13 +299,14 @@ static int parse_ranges(const cJSON *req, spec_t *s, size_t dims, char *err, siz
 {
     const cJSON *ranges = cJSON_GetObjectItemCaseSensitive(req, "ranges");
     if (!ranges)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "ranges is required");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "ranges is required");
     if (!cJSON_IsArray(ranges))
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "ranges must be an array of [lo, hi] pairs");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
+                        "ranges must be an array of [lo, hi] pairs");
     int n = cJSON_GetArraySize(ranges);
     if (n < 0 || (size_t)n != dims)
-        return fail(err, errlen, WORTH_E_BAD_DIMENSION, "ranges has %d pairs, dims is %zu", n,
-                    dims);
+        return err_fail(err, errlen, WORTH_E_BAD_DIMENSION, "ranges has %d pairs, dims is %zu", n,
+                        dims);
     s->lo = mem_calloc(dims, sizeof *s->lo);
     s->hi = mem_calloc(dims, sizeof *s->hi);
     size_t i = 0;
@@ -324,7 +315,8 @@ static int parse_ranges(const cJSON *req, spec_t *s, size_t dims, char *err, siz
     cJSON_ArrayForEach(pair, ranges)
     {
         if (!cJSON_IsArray(pair) || cJSON_GetArraySize(pair) != 2)
-            return fail(err, errlen, WORTH_E_BAD_REQUEST, "ranges[%zu] must be a pair [lo, hi]", i);
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "ranges[%zu] must be a pair [lo, hi]",
+                            i);
         int rc;
         snprintf(path, sizeof path, "ranges[%zu][0]", i);
         if ((rc = get_double(pair->child, path, &s->lo[i], err, errlen)))
@@ -333,7 +325,7 @@ static int parse_ranges(const cJSON *req, spec_t *s, size_t dims, char *err, siz
         if ((rc = get_double(pair->child->next, path, &s->hi[i], err, errlen)))
             return rc;
         if (!(s->lo[i] < s->hi[i]))
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "ranges[%zu]: lo must be below hi", i);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "ranges[%zu]: lo must be below hi", i);
         i++;
     }
     return 0;
@@ -344,16 +336,16 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
 {
     const cJSON *feats = cJSON_GetObjectItemCaseSensitive(req, "features");
     if (!feats)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "features is required");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "features is required");
     if (!cJSON_IsArray(feats))
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "features must be an array of bases");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "features must be an array of bases");
     int n = cJSON_GetArraySize(feats);
     if (n < 1)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "features must hold at least one basis");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "features must hold at least one basis");
     /* Every basis gives at least one feature: more bases than max_features cannot fit. */
     if ((size_t)n > cap)
-        return fail(err, errlen, WORTH_E_TOO_LARGE,
-                    "features: %d bases exceed the feature limit %zu", n, cap);
+        return err_fail(err, errlen, WORTH_E_TOO_LARGE,
+                        "features: %d bases exceed the feature limit %zu", n, cap);
     s->bases = mem_calloc((size_t)n, sizeof *s->bases);
     size_t i = 0;
     const cJSON *b;
@@ -363,7 +355,7 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
         int rc;
         snprintf(path, sizeof path, "features[%zu]", i);
         if (!cJSON_IsObject(b))
-            return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
         if ((rc = check_keys(b, basis_fields, NBASISF, path, err, errlen)))
             return rc;
         const char *name = NULL;
@@ -374,8 +366,8 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
         while (k < NBASIS && strcmp(name, basis_names[k]) != 0)
             k++;
         if (k == NBASIS)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown basis \"%s\"", fp,
-                        show(name, sb));
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown basis \"%s\"", fp,
+                            show(name, sb));
         feat_basis_t *fb = &s->bases[i];
         fb->kind = (enum feat_kind)k;
         char what[32];
@@ -384,7 +376,7 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
                              errlen)))
             return rc;
         if (fb->kind == FEAT_RBF && !(fb->width > 0))
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "%s.width must be > 0", path);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s.width must be > 0", path);
         i++;
     }
     s->m.feat.nbases = i;
@@ -395,13 +387,13 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
 {
     const cJSON *ests = cJSON_GetObjectItemCaseSensitive(req, "estimators");
     if (!ests)
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "estimators is required");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "estimators is required");
     if (!cJSON_IsArray(ests))
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "estimators must be an array");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "estimators must be an array");
     int n = cJSON_GetArraySize(ests);
     if (n < 1 || n > MODEL_MAX_EST)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "estimators must hold 1..%d estimators",
-                    MODEL_MAX_EST);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "estimators must hold 1..%d estimators",
+                        MODEL_MAX_EST);
     s->est = mem_calloc((size_t)n, sizeof *s->est);
     s->est_names = mem_calloc((size_t)n, sizeof *s->est_names);
     s->est_name_ptrs = mem_calloc((size_t)n, sizeof *s->est_name_ptrs);
@@ -413,7 +405,7 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
         int rc;
         snprintf(path, sizeof path, "estimators[%zu]", i);
         if (!cJSON_IsObject(e))
-            return fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
         if ((rc = check_keys(e, est_fields, NESTF, path, err, errlen)))
             return rc;
         const char *name = NULL, *kname = NULL; /* set before use; -O3 cannot see it */
@@ -422,13 +414,13 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
             return rc;
         size_t len = strlen(name);
         if (len < 1 || len > MODEL_NAME_MAX)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be 1..%d bytes", fp,
-                        MODEL_NAME_MAX);
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be 1..%d bytes", fp,
+                            MODEL_NAME_MAX);
         for (size_t j = 0; j < i; j++)
             if (strcmp(name, s->est_names[j]) == 0)
-                return fail(err, errlen, WORTH_E_BAD_PARAM,
-                            "%s: \"%s\" is already the name of estimators[%zu]", fp, show(name, sb),
-                            j);
+                return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                                "%s: \"%s\" is already the name of estimators[%zu]", fp,
+                                show(name, sb), j);
         memcpy(s->est_names[i], name, len + 1);
         s->est_name_ptrs[i] = s->est_names[i];
         snprintf(fp, sizeof fp, "%s.kind", path);
@@ -436,8 +428,8 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
             return rc;
         int k = est_kind_parse(kname);
         if (k < 0)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown kind \"%s\"", fp,
-                        show(kname, sb));
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown kind \"%s\"", fp,
+                            show(kname, sb));
         est_params_default((enum est_kind)k, &s->est[i]);
         char what[32];
         snprintf(what, sizeof what, "kind %s", est_kind_name((enum est_kind)k));
@@ -619,7 +611,7 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
     const cJSON *it;
 
     if (!cJSON_IsObject(req))
-        return fail(err, errlen, WORTH_E_BAD_REQUEST, "request must be a JSON object");
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "request must be a JSON object");
     if ((rc = check_keys(req, top_fields, NTOP, "request", err, errlen)))
         return rc;
 
@@ -627,17 +619,17 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
                          errlen)))
         return rc;
     if (!spec_name_ok(name))
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "model must be 1..%d bytes of [A-Za-z0-9._-]",
-                    MODEL_NAME_MAX);
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                        "model must be 1..%d bytes of [A-Za-z0-9._-]", MODEL_NAME_MAX);
     memcpy(s->name, name, strlen(name) + 1);
 
     /* dims: bad_param below 1 or fractional, too_large above the hard limit. */
     if ((rc = get_double(cJSON_GetObjectItemCaseSensitive(req, "dims"), "dims", &d, err, errlen)))
         return rc;
     if (d != floor(d) || d < 1)
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be an integer >= 1");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be an integer >= 1");
     if (d > FEAT_MAX_DIMS)
-        return fail(err, errlen, WORTH_E_TOO_LARGE, "dims must be at most %d", FEAT_MAX_DIMS);
+        return err_fail(err, errlen, WORTH_E_TOO_LARGE, "dims must be at most %d", FEAT_MAX_DIMS);
     size_t dims = (size_t)d;
     s->m.feat.dims = dims;
 
@@ -645,12 +637,12 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
                          errlen)))
         return rc;
     if (!(s->m.gamma >= 0 && s->m.gamma <= 1))
-        return fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "gamma_per_s"))) {
         if ((rc = get_double(it, "gamma_per_s", &s->m.gamma_per_s, err, errlen)))
             return rc;
         if (!(s->m.gamma_per_s > 0 && s->m.gamma_per_s <= 1))
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "gamma_per_s must be in (0, 1]");
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma_per_s must be in (0, 1]");
     }
 
     if ((rc = parse_ranges(req, s, dims, err, errlen)))
@@ -678,8 +670,8 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
         while (i < s->m.n_est && strcmp(name, s->est_names[i]) != 0)
             i++;
         if (i == s->m.n_est)
-            return fail(err, errlen, WORTH_E_BAD_PARAM, "primary: no estimator is named \"%s\"",
-                        show(name, sb));
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "primary: no estimator is named \"%s\"",
+                            show(name, sb));
         s->m.primary = i;
     }
 
@@ -705,7 +697,7 @@ int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen)
     s->m.est_names = s->est_name_ptrs;
     s->canonical = canonical(s);
     if (!s->canonical) {
-        rc = fail(err, errlen, WORTH_E_NO_MEMORY, "out of memory printing the spec");
+        rc = err_fail(err, errlen, WORTH_E_NO_MEMORY, "out of memory printing the spec");
         goto out_free_spec;
     }
     *out = s;

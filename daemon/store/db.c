@@ -27,20 +27,10 @@
 #include <time.h>
 #include <unistd.h>
 
+#include "fail.h"
 #include "mem.h"
 #include "say.h"
 #include "worth/errors.h"
-
-static int fail(char *err, size_t errlen, int code, const char *fmt, ...)
-{
-    if (err && errlen) {
-        va_list ap;
-        va_start(ap, fmt);
-        vsnprintf(err, errlen, fmt, ap);
-        va_end(ap);
-    }
-    return code;
-}
 
 double db_now(void)
 {
@@ -82,17 +72,18 @@ int db_lock(const char *path, char *err, size_t errlen)
     /* Lock the resolved name, so a symlink to the same file finds the same lock. */
     if (db_resolve(path, real, sizeof real) != 0 ||
         (size_t)snprintf(lock, sizeof lock, "%s.lock", real) >= sizeof lock)
-        return fail(err, errlen, -1, "cannot resolve the database path %s: %s", path,
-                    strerror(errno));
+        return err_fail(err, errlen, -1, "cannot resolve the database path %s: %s", path,
+                        strerror(errno));
     int fd = open(lock, O_RDWR | O_CREAT | O_CLOEXEC, 0600);
     if (fd < 0)
-        return fail(err, errlen, -1, "cannot open %s: %s", lock, strerror(errno));
+        return err_fail(err, errlen, -1, "cannot open %s: %s", lock, strerror(errno));
     if (flock(fd, LOCK_EX | LOCK_NB) != 0) {
         int e = errno;
         close(fd);
         if (e == EWOULDBLOCK)
-            return fail(err, errlen, -1, "another worthd is using %s (%s is locked)", path, lock);
-        return fail(err, errlen, -1, "cannot lock %s: %s", lock, strerror(e));
+            return err_fail(err, errlen, -1, "another worthd is using %s (%s is locked)", path,
+                            lock);
+        return err_fail(err, errlen, -1, "cannot lock %s: %s", lock, strerror(e));
     }
     return fd;
 }
@@ -101,7 +92,7 @@ static int exec(sqlite3 *db, const char *sql, char *err, size_t errlen)
 {
     char *msg = NULL;
     if (sqlite3_exec(db, sql, NULL, NULL, &msg) != SQLITE_OK) {
-        fail(err, errlen, -1, "%s", msg ? msg : sqlite3_errmsg(db));
+        err_fail(err, errlen, -1, "%s", msg ? msg : sqlite3_errmsg(db));
         sqlite3_free(msg);
         return -1;
     }
@@ -123,10 +114,10 @@ static int migrate(sqlite3 *db, const char *path, char *err, size_t errlen)
 {
     int have = user_version(db);
     if (have < 0)
-        return fail(err, errlen, -1, "cannot read the schema version of %s", path);
+        return err_fail(err, errlen, -1, "cannot read the schema version of %s", path);
     int newest = db_migrations[db_n_migrations - 1].version;
     if (have > newest)
-        return fail(
+        return err_fail(
             err, errlen, -1,
             "%s has schema version %d; this worthd knows up to %d (a newer worthd wrote it)", path,
             have, newest);
@@ -139,7 +130,7 @@ static int migrate(sqlite3 *db, const char *path, char *err, size_t errlen)
         if (exec(db, "BEGIN IMMEDIATE", err, errlen) || exec(db, mg->sql, err, errlen) ||
             exec(db, bump, err, errlen) || exec(db, "COMMIT", err, errlen)) {
             sqlite3_exec(db, "ROLLBACK", NULL, NULL, NULL);
-            return fail(err, errlen, -1, "migration %d failed: %s", mg->version, err);
+            return err_fail(err, errlen, -1, "migration %d failed: %s", mg->version, err);
         }
         say_info("database %s: applied schema migration %d", path, mg->version);
     }
@@ -197,7 +188,8 @@ int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t er
     int rc = sqlite3_open_v2(
         path, &db, SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE | SQLITE_OPEN_NOMUTEX, NULL);
     if (rc != SQLITE_OK) {
-        fail(err, errlen, -1, "cannot open %s: %s", path, db ? sqlite3_errmsg(db) : "no memory");
+        err_fail(err, errlen, -1, "cannot open %s: %s", path,
+                 db ? sqlite3_errmsg(db) : "no memory");
         sqlite3_close(db);
         return -1;
     }
@@ -205,19 +197,19 @@ int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t er
     /* Read the schema first: a corrupt or foreign file fails here, before we touch it. */
     if (sqlite3_exec(db, "SELECT count(*) FROM sqlite_master", NULL, NULL, NULL) != SQLITE_OK ||
         foreign(db)) {
-        fail(err, errlen, -1, "bad_database: %s is %s", path,
-             sqlite3_errcode(db) == SQLITE_OK ? "another program's database, not worthd's"
-                                              : "not a readable SQLite database");
+        err_fail(err, errlen, -1, "bad_database: %s is %s", path,
+                 sqlite3_errcode(db) == SQLITE_OK ? "another program's database, not worthd's"
+                                                  : "not a readable SQLite database");
         sqlite3_close(db);
         return -1;
     }
     /* A newer worthd's file is refused before anything is written to it (even the WAL switch). */
     int have = user_version(db), newest = db_migrations[db_n_migrations - 1].version;
     if (have > newest) {
-        fail(err, errlen, -1,
-             "bad_database: %s has schema version %d; this worthd knows up to %d (a newer "
-             "worthd wrote it)",
-             path, have, newest);
+        err_fail(err, errlen, -1,
+                 "bad_database: %s has schema version %d; this worthd knows up to %d (a newer "
+                 "worthd wrote it)",
+                 path, have, newest);
         sqlite3_close(db);
         return -1;
     }
@@ -236,7 +228,8 @@ int db_open_ro(const char *path, sqlite3 **out, char *err, size_t errlen)
 {
     sqlite3 *db = NULL;
     if (sqlite3_open_v2(path, &db, SQLITE_OPEN_READONLY | SQLITE_OPEN_NOMUTEX, NULL) != SQLITE_OK) {
-        fail(err, errlen, -1, "cannot open %s: %s", path, db ? sqlite3_errmsg(db) : "no memory");
+        err_fail(err, errlen, -1, "cannot open %s: %s", path,
+                 db ? sqlite3_errmsg(db) : "no memory");
         sqlite3_close(db);
         return -1;
     }
@@ -254,7 +247,7 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
                            "SELECT id, seq, training, state FROM checkpoints"
                            " WHERE model = ?1 AND invalid = 0 ORDER BY seq DESC, id DESC",
                            -1, &st, NULL) != SQLITE_OK)
-        return fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
+        return err_fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
     sqlite3_bind_int64(st, 1, model_id);
     int rc;
     while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
@@ -273,7 +266,7 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
     }
     sqlite3_finalize(st);
     if (rc != SQLITE_ROW && rc != SQLITE_DONE)
-        return fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
+        return err_fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
     if (start->checkpoint == 0)
         model_reset(m);
     return 0;
@@ -311,7 +304,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
                            " WHERE model = ?1 AND seq > ?2 AND seq <= ?3 AND rolled_back = 0"
                            " ORDER BY seq",
                            -1, &tx, NULL) != SQLITE_OK) {
-        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
+        code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
     sqlite3_bind_int64(tr, 1, model_id);
@@ -334,8 +327,9 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         int terminal = sqlite3_column_int(tx, 5);
         if ((size_t)sqlite3_column_bytes(tx, 2) != d * sizeof(double) ||
             (!terminal && (size_t)sqlite3_column_bytes(tx, 4) != d * sizeof(double))) {
-            code = fail(err, errlen, WORTH_E_CORRUPT,
-                        "transition %llu has vectors of the wrong length", (unsigned long long)seq);
+            code = err_fail(err, errlen, WORTH_E_CORRUPT,
+                            "transition %llu has vectors of the wrong length",
+                            (unsigned long long)seq);
             goto out;
         }
         memcpy(x, sqlite3_column_blob(tx, 2), d * sizeof(double));
@@ -353,14 +347,14 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         };
         char why[256];
         if (model_observe(m, &o, why, sizeof why) != 0) {
-            code = fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
-                        (unsigned long long)seq, why);
+            code = err_fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
+                            (unsigned long long)seq, why);
             goto out;
         }
         (*replayed)++;
     }
     if (xrc != SQLITE_DONE) {
-        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
+        code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
     while (trc == SQLITE_ROW) {
@@ -370,7 +364,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         trc = sqlite3_step(tr);
     }
     if (trc != SQLITE_DONE)
-        code = fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
+        code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
 out:
     sqlite3_finalize(tr);
     sqlite3_finalize(tx);
