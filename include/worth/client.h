@@ -1,0 +1,168 @@
+/*
+ * worth/client.h - the C client library of worthd.
+ *
+ * For plant gateways and tools written in C: connect to worthd over its Unix
+ * socket or TCP, and call every request of protocol v1 (schema/protocol.md)
+ * without writing protocol code.  Calls are synchronous, each bounded by the
+ * connection's timeout.
+ *
+ * Errors: every call returns 0 or a negative code of worth/errors.h.  A code
+ * sent by worthd keeps its wire name and message (worth_error_name and
+ * worth_error_message); failures on this side are WORTH_E_IO (cannot connect,
+ * connection lost, timeout) with a message saying which.
+ *
+ * Threads: a connection is not thread-safe.  Use one connection per thread
+ * (worthd serves many connections at once); different connections need no
+ * locking.
+ *
+ * Ownership: strings returned by the library (replies, names) are owned by
+ * the connection and valid until its next call; copy what you keep.
+ */
+#ifndef WORTH_CLIENT_H
+#define WORTH_CLIENT_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "worth/errors.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+/* An open connection to worthd. */
+typedef struct worth_client worth_client;
+
+/* Most estimators a value reply carries (a model's limit). */
+#define WORTH_MAX_ESTIMATORS 16
+
+/* Plain data: where and how to connect.  Strings are borrowed during worth_connect. */
+typedef struct worth_opts {
+    const char *socket_path; /* Unix socket, or NULL to use host_port */
+    const char *host_port;   /* "HOST:PORT" (numeric host, or localhost) */
+    const char *token;       /* sent with auth first when not NULL */
+    int timeout_ms;          /* per call; 0 means 30000 */
+} worth_opts;
+
+/* Plain data: the answer of worth_value. */
+typedef struct worth_value_t {
+    double value; /* the primary estimator's, or the one asked for */
+    double sd;    /* NAN when no estimator has an uncertainty */
+    uint64_t seq; /* last transition applied to the weights that answered */
+    size_t n;     /* estimators below (0 when one was asked for) */
+    char names[WORTH_MAX_ESTIMATORS][64];
+    double values[WORTH_MAX_ESTIMATORS];
+} worth_value_t;
+
+/* Plain data: one transition. */
+typedef struct worth_transition {
+    const double *x; /* dims values (borrowed) */
+    double r;
+    const double *x_next; /* dims values, or NULL when terminal */
+    int terminal;
+    const char *source; /* NULL for the default source */
+    double t;           /* NAN when absent */
+    double dt;          /* NAN when absent */
+} worth_transition;
+
+/* Plain data: the answer of worth_train. */
+typedef struct worth_train_t {
+    unsigned passes;
+    double change;
+    int converged;
+} worth_train_t;
+
+/* Called after each training pass with pass, of and the relative weight change. */
+typedef void (*worth_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
+
+/* Lifecycle */
+
+/*
+ * Connects (and authenticates when a token is given).  Returns 0 with *out
+ * owned by the caller (free with worth_close), or a negative code with a
+ * message in err (errlen bytes).
+ */
+int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t errlen);
+/* Closes the connection and frees it; NULL is fine. */
+void worth_close(worth_client *c);
+
+/* Errors of the last failed call (owned by c). */
+const char *worth_error_name(const worth_client *c);
+const char *worth_error_message(const worth_client *c);
+
+/* Any request */
+
+/*
+ * Sends one request (a JSON object, without newline) and returns worthd's
+ * reply line in *reply (owned by c).  Returns 0 when the reply says ok, the
+ * reply's error code otherwise (*reply is set either way when a reply came).
+ */
+int worth_request(worth_client *c, const char *json, const char **reply);
+
+/* Models */
+
+/* Creates a model from a model.create spec (JSON object; "op" is added).  *features may be NULL. */
+int worth_model_create(worth_client *c, const char *spec_json, size_t *features);
+int worth_model_drop(worth_client *c, const char *model);
+/* The model.list reply, or model.get's when model is not NULL (owned by c). */
+int worth_model_info(worth_client *c, const char *model, const char **json);
+
+/* Transitions */
+
+/* One transition; *seq (may be NULL) gets its number.  Waits until it is durable. */
+int worth_observe(worth_client *c, const char *model, size_t dims, const worth_transition *t,
+                  uint64_t *seq);
+/*
+ * Automatic batching: worth_observe_queue adds a transition to the
+ * connection's batch for model (sending it when it reaches batch_max, 256 by
+ * default) and worth_flush sends what is left.  *seq gets the last seq sent.
+ * A batch is all-or-nothing: an error names the index within the batch.
+ */
+int worth_observe_queue(worth_client *c, const char *model, size_t dims, const worth_transition *t,
+                        uint64_t *seq);
+int worth_flush(worth_client *c, uint64_t *seq);
+void worth_set_batch_max(worth_client *c, size_t n);
+/*
+ * Bulk frames: count records of 2*dims+2 doubles each (x, r, x_next,
+ * terminal as 0 or 1), sent as one observe.bulk.  *seq gets the last seq.
+ * With applied set, the reply does not wait for durability (weaker).
+ */
+int worth_observe_bulk(worth_client *c, const char *model, size_t dims, const double *records,
+                       size_t count, int applied, uint64_t *seq);
+
+/* Queries */
+
+/* Value of one state under every estimator (estimator NULL) or one. */
+int worth_value(worth_client *c, const char *model, const double *x, size_t dims,
+                const char *estimator, worth_value_t *out);
+/* Values of count states (row-major count x dims) into out (count doubles). */
+int worth_values(worth_client *c, const char *model, const double *xs, size_t count, size_t dims,
+                 const char *estimator, double *out, uint64_t *seq);
+/* The stats reply (owned by c). */
+int worth_stats(worth_client *c, const char *model, const char **json);
+
+/* Checkpoints and history */
+
+/* label may be NULL.  *id and *seq may be NULL. */
+int worth_checkpoint(worth_client *c, const char *model, const char *label, int64_t *id,
+                     uint64_t *seq);
+/* The checkpoints reply (owned by c). */
+int worth_checkpoints(worth_client *c, const char *model, const char **json);
+/*
+ * Rolls back to checkpoint id.  With replay, re-learns the log after it,
+ * skipping [lo, hi] of seq (exclude 's') or of t (exclude 't'); exclude 0 for
+ * no window.  undone and replayed may be NULL.
+ */
+int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, char exclude,
+                   double lo, double hi, uint64_t *undone, uint64_t *replayed);
+/* Writes a consistent copy of worthd's database to path (on worthd's machine). */
+int worth_backup(worth_client *c, const char *path, uint64_t *bytes);
+/* Trains a replay or lstd estimator; progress may be NULL. */
+int worth_train(worth_client *c, const char *model, const char *estimator, unsigned passes,
+                worth_progress_fn progress, void *ctx, worth_train_t *out);
+
+#ifdef __cplusplus
+}
+#endif
+
+#endif /* WORTH_CLIENT_H */

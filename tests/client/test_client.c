@@ -1,0 +1,353 @@
+/*
+ * test_client.c - the C client library against a real worthd.
+ *
+ * Starts worthd (path in $WORTH_DAEMON) on a Unix socket and database in a
+ * fresh temporary folder, and calls every function of include/worth/client.h,
+ * checking replies exactly; then the error paths: worthd's own codes, a
+ * server that is down, one that never answers (timeout), and one that hangs
+ * up.  Every wait is bounded.
+ */
+#include <math.h>
+#include <setjmp.h>
+#include <signal.h>
+#include <spawn.h>
+#include <stdarg.h>
+#include <stddef.h>
+#include <stdint.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/socket.h>
+#include <sys/un.h>
+#include <sys/wait.h>
+#include <time.h>
+#include <unistd.h>
+
+#include <cmocka.h>
+
+#include "worth/client.h"
+
+extern char **environ;
+
+static char dir[256], sock[300], db[300];
+static pid_t daemon_pid;
+
+static void sleep_ms(int ms)
+{
+    struct timespec ts = {ms / 1000, (long)(ms % 1000) * 1000000};
+    nanosleep(&ts, NULL);
+}
+
+static int start_daemon(void **state)
+{
+    (void)state;
+    const char *exe = getenv("WORTH_DAEMON");
+    if (!exe) {
+        fprintf(stderr, "set WORTH_DAEMON to the worthd executable\n");
+        return -1;
+    }
+    snprintf(dir, sizeof dir, "/tmp/worth-client-XXXXXX");
+    if (!mkdtemp(dir))
+        return -1;
+    snprintf(sock, sizeof sock, "%s/w.sock", dir);
+    snprintf(db, sizeof db, "%s/w.db", dir);
+    char *argv[] = {(char *)exe, "--socket", sock, "--db", db, "--log-level", "warn", NULL};
+    if (posix_spawn(&daemon_pid, exe, NULL, NULL, argv, environ) != 0)
+        return -1;
+    for (int i = 0; i < 1000; i++) { /* up to 10 s */
+        worth_opts o = {.socket_path = sock};
+        worth_client *c = NULL;
+        if (worth_connect(&o, &c, NULL, 0) == 0) {
+            worth_close(c);
+            return 0;
+        }
+        sleep_ms(10);
+    }
+    return -1;
+}
+
+static int stop_daemon(void **state)
+{
+    (void)state;
+    int status = -1;
+    kill(daemon_pid, SIGTERM);
+    for (int i = 0; i < 1000 && waitpid(daemon_pid, &status, WNOHANG) == 0; i++)
+        sleep_ms(10);
+    char cmd[400];
+    snprintf(cmd, sizeof cmd, "rm -rf '%s'", dir);
+    if (system(cmd) != 0)
+        fprintf(stderr, "could not remove %s\n", dir);
+    return WIFEXITED(status) && WEXITSTATUS(status) == 0 ? 0 : -1;
+}
+
+static worth_client *open_client(void)
+{
+    worth_opts o = {.socket_path = sock, .timeout_ms = 10000};
+    worth_client *c = NULL;
+    char err[256];
+    int rc = worth_connect(&o, &c, err, sizeof err);
+    if (rc)
+        print_error("connect: %s\n", err);
+    assert_int_equal(rc, 0);
+    return c;
+}
+
+#define OK(call)                                                                                   \
+    do {                                                                                           \
+        int rc_ = (call);                                                                          \
+        if (rc_)                                                                                   \
+            print_error("%s: %s: %s\n", #call, worth_error_name(c), worth_error_message(c));       \
+        assert_int_equal(rc_, 0);                                                                  \
+    } while (0)
+
+static const char *SPEC =
+    "{\"model\":\"%s\",\"dims\":1,\"gamma\":0.5,\"ranges\":[[0,1]],"
+    "\"features\":[{\"basis\":\"bias\"},{\"basis\":\"raw\"}],"
+    "\"estimators\":[{\"name\":\"td\",\"kind\":\"td\",\"alpha\":0.5},"
+    "{\"name\":\"rls\",\"kind\":\"rls_td\"},{\"name\":\"rp\",\"kind\":\"replay\"}]}";
+
+static void create(worth_client *c, const char *name)
+{
+    char spec[600];
+    snprintf(spec, sizeof spec, SPEC, name);
+    size_t features = 0;
+    OK(worth_model_create(c, spec, &features));
+    assert_int_equal(features, 2);
+}
+
+static void models_and_ingest(void **state)
+{
+    (void)state;
+    worth_client *c = open_client();
+    create(c, "a");
+    const char *json = NULL;
+    OK(worth_model_info(c, NULL, &json));
+    assert_non_null(strstr(json, "\"model\":\"a\""));
+    OK(worth_model_info(c, "a", &json));
+    assert_non_null(strstr(json, "\"estimators\":[\"td\",\"rls\",\"rp\"]"));
+
+    /* One transition, then automatic batching, then a bulk frame. */
+    double x = 0.25, xn = 0.5;
+    worth_transition t = {.x = &x, .r = 1.0, .x_next = &xn, .t = NAN, .dt = NAN};
+    uint64_t seq = 0;
+    OK(worth_observe(c, "a", 1, &t, &seq));
+    assert_int_equal(seq, 1);
+    worth_set_batch_max(c, 10);
+    for (int i = 0; i < 25; i++) {
+        worth_transition b = {
+            .x = &x, .r = 1.0, .terminal = 1, .source = "unit-2", .t = 100.0 + i, .dt = 60.0};
+        OK(worth_observe_queue(c, "a", 1, &b, &seq));
+    }
+    assert_int_equal(seq, 21); /* two batches of 10 went out */
+    OK(worth_flush(c, &seq));
+    assert_int_equal(seq, 26);
+    OK(worth_flush(c, &seq)); /* nothing left: no request */
+    double rec[3][4] = {{0.1, 1.0, 0.2, 0}, {0.2, 1.0, 0.3, 0}, {0.3, 1.0, 0.0, 1}};
+    OK(worth_observe_bulk(c, "a", 1, &rec[0][0], 3, 0, &seq));
+    assert_int_equal(seq, 29);
+    OK(worth_observe_bulk(c, "a", 1, &rec[0][0], 3, 1, &seq));
+    assert_int_equal(seq, 32);
+
+    /* Wait until learnt, then query. */
+    for (int i = 0; i < 1000; i++) {
+        OK(worth_stats(c, "a", &json));
+        if (strstr(json, "\"applied\":32"))
+            break;
+        sleep_ms(5);
+    }
+    assert_non_null(strstr(json, "\"received\":32,\"applied\":32"));
+    worth_value_t v;
+    OK(worth_value(c, "a", &x, 1, NULL, &v));
+    assert_int_equal(v.n, 3);
+    assert_string_equal(v.names[0], "td");
+    assert_string_equal(v.names[2], "rp");
+    assert_true(v.value == v.values[0]); /* primary: the first */
+    assert_true(isfinite(v.sd) && v.sd >= 0);
+    assert_int_equal(v.seq, 32);
+    worth_value_t one;
+    OK(worth_value(c, "a", &x, 1, "rls", &one));
+    assert_true(one.value == v.values[1]);
+    assert_int_equal(one.n, 0);
+    double xs[2] = {0.25, 0.75}, out[2];
+    OK(worth_values(c, "a", xs, 2, 1, "rls", out, &seq));
+    assert_true(out[0] == v.values[1]);
+    assert_true(isfinite(out[1]));
+    worth_close(c);
+}
+
+struct progress {
+    unsigned calls, last;
+};
+
+static void on_pass(void *ctx, unsigned pass, unsigned of, double change)
+{
+    struct progress *p = ctx;
+    assert_int_equal(pass, p->last + 1);
+    assert_int_equal(of, 4);
+    assert_true(change >= 0);
+    p->last = pass;
+    p->calls++;
+}
+
+static void checkpoints_rollback_backup_train(void **state)
+{
+    (void)state;
+    worth_client *c = open_client();
+    create(c, "b");
+    double x = 0.5;
+    worth_transition t = {.x = &x, .r = 2.0, .terminal = 1, .t = NAN, .dt = NAN};
+    for (int i = 0; i < 5; i++)
+        OK(worth_observe(c, "b", 1, &t, NULL));
+    int64_t id = 0;
+    uint64_t seq = 0;
+    OK(worth_checkpoint(c, "b", "first", &id, &seq));
+    assert_true(id > 0);
+    assert_int_equal(seq, 5);
+    worth_value_t before;
+    OK(worth_value(c, "b", &x, 1, NULL, &before));
+    t.r = 9.0;
+    for (int i = 0; i < 7; i++)
+        OK(worth_observe(c, "b", 1, &t, NULL));
+    const char *json = NULL;
+    OK(worth_checkpoints(c, "b", &json));
+    assert_non_null(strstr(json, "\"label\":\"first\""));
+    uint64_t undone = 0, replayed = 9;
+    OK(worth_rollback(c, "b", id, 0, 0, 0, 0, &undone, &replayed));
+    assert_int_equal(undone, 7);
+    assert_int_equal(replayed, 0);
+    worth_value_t after;
+    OK(worth_value(c, "b", &x, 1, NULL, &after));
+    for (size_t i = 0; i < before.n; i++)
+        assert_true(after.values[i] == before.values[i]);
+    /* A window: replay with seq 6..8 excluded (they were rolled back already: 0 undone). */
+    OK(worth_rollback(c, "b", id, 1, 's', 6, 8, &undone, &replayed));
+    assert_int_equal(undone, 0);
+
+    struct progress pr = {0, 0};
+    worth_train_t rep;
+    OK(worth_train(c, "b", "rp", 4, on_pass, &pr, &rep));
+    assert_int_equal(rep.passes, pr.calls);
+    assert_true(rep.passes >= 1 && rep.passes <= 4);
+
+    char path[400];
+    snprintf(path, sizeof path, "%s/backup.db", dir);
+    uint64_t bytes = 0;
+    OK(worth_backup(c, path, &bytes));
+    assert_true(bytes > 0);
+    assert_int_equal(access(path, R_OK), 0);
+    OK(worth_model_drop(c, "b"));
+    worth_close(c);
+}
+
+static void server_errors_keep_their_codes(void **state)
+{
+    (void)state;
+    worth_client *c = open_client();
+    double x[2] = {0.1, 0.2};
+    worth_value_t v;
+    assert_int_equal(worth_value(c, "nope", x, 1, NULL, &v), WORTH_E_NO_SUCH_MODEL);
+    assert_string_equal(worth_error_name(c), "no_such_model");
+    assert_non_null(strstr(worth_error_message(c), "nope"));
+    create(c, "e");
+    assert_int_equal(worth_value(c, "e", x, 2, NULL, &v), WORTH_E_BAD_DIMENSION);
+    assert_string_equal(worth_error_name(c), "bad_dimension");
+    double nan = NAN;
+    worth_transition t = {.x = &nan, .r = 1, .terminal = 1, .t = NAN, .dt = NAN};
+    assert_int_equal(worth_observe(c, "e", 1, &t, NULL), WORTH_E_BAD_NUMBER);
+    char spec[600];
+    snprintf(spec, sizeof spec, SPEC, "e");
+    assert_int_equal(worth_model_create(c, spec, NULL), WORTH_E_MODEL_EXISTS);
+    assert_int_equal(worth_train(c, "e", "td", 1, NULL, NULL, NULL), WORTH_E_UNSUPPORTED);
+    /* A batch with a bad element: the error names its index. */
+    worth_set_batch_max(c, 100);
+    double good = 0.5;
+    worth_transition ok = {.x = &good, .r = 1, .terminal = 1, .t = NAN, .dt = NAN};
+    assert_int_equal(worth_observe_queue(c, "e", 1, &ok, NULL), 0);
+    assert_int_equal(worth_observe_queue(c, "e", 1, &t, NULL), 0);
+    assert_int_equal(worth_flush(c, NULL), WORTH_E_BAD_NUMBER);
+    assert_non_null(strstr(worth_error_message(c), "batch index 1"));
+    /* The connection still works after errors; a raw request too. */
+    const char *reply = NULL;
+    assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), 0);
+    assert_non_null(strstr(reply, "\"protocol\":1"));
+    assert_int_equal(worth_request(c, "{\"op\":\"nope\"}", &reply), WORTH_E_UNKNOWN_OP);
+    worth_close(c);
+}
+
+static void server_down(void **state)
+{
+    (void)state;
+    char path[400], err[256] = "";
+    snprintf(path, sizeof path, "%s/nobody.sock", dir);
+    worth_opts o = {.socket_path = path};
+    worth_client *c = (worth_client *)&o;
+    assert_int_equal(worth_connect(&o, &c, err, sizeof err), WORTH_E_IO);
+    assert_true(c == (worth_client *)&o); /* untouched */
+    assert_non_null(strstr(err, "cannot connect"));
+    worth_opts tcp = {.host_port = "127.0.0.1:1"};
+    assert_int_equal(worth_connect(&tcp, &c, err, sizeof err), WORTH_E_IO);
+    worth_opts both = {.socket_path = path, .host_port = "127.0.0.1:1"};
+    assert_int_equal(worth_connect(&both, &c, err, sizeof err), WORTH_E_BAD_PARAM);
+}
+
+/* A listener that accepts and then never answers (or hangs up at once). */
+static int fake_server(const char *path)
+{
+    int fd = socket(AF_UNIX, SOCK_STREAM, 0);
+    struct sockaddr_un a;
+    memset(&a, 0, sizeof a);
+    a.sun_family = AF_UNIX;
+    assert_true(strlen(path) < sizeof a.sun_path);
+    memcpy(a.sun_path, path, strlen(path) + 1);
+    unlink(path);
+    assert_int_equal(bind(fd, (struct sockaddr *)&a, sizeof a), 0);
+    assert_int_equal(listen(fd, 4), 0);
+    return fd;
+}
+
+static void timeout_and_hang_up(void **state)
+{
+    (void)state;
+    char path[400];
+    snprintf(path, sizeof path, "%s/silent.sock", dir);
+    int lfd = fake_server(path);
+    worth_opts o = {.socket_path = path, .timeout_ms = 200};
+    worth_client *c = NULL;
+    assert_int_equal(worth_connect(&o, &c, NULL, 0), 0); /* the kernel accepts for it */
+    struct timespec t0, t1;
+    clock_gettime(CLOCK_MONOTONIC, &t0);
+    const char *reply;
+    assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), WORTH_E_IO);
+    clock_gettime(CLOCK_MONOTONIC, &t1);
+    double s = (double)(t1.tv_sec - t0.tv_sec) + (t1.tv_nsec - t0.tv_nsec) * 1e-9;
+    assert_true(s >= 0.19 && s < 5.0);
+    assert_non_null(strstr(worth_error_message(c), "timed out"));
+    /* After a timeout the connection is closed: later calls fail at once. */
+    assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), WORTH_E_IO);
+    worth_close(c);
+
+    /* A server that hangs up. */
+    assert_int_equal(worth_connect(&o, &c, NULL, 0), 0);
+    int afd = accept(lfd, NULL, NULL);
+    int afd2 = accept(lfd, NULL, NULL); /* the first client's connection, then this one */
+    close(afd);
+    close(afd2);
+    assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), WORTH_E_IO);
+    const char *m = worth_error_message(c);
+    assert_true(strstr(m, "closed") || strstr(m, "lost")); /* EOF, or a reset on send */
+    worth_close(c);
+    close(lfd);
+    unlink(path);
+}
+
+int main(void)
+{
+    const struct CMUnitTest tests[] = {
+        cmocka_unit_test(models_and_ingest),
+        cmocka_unit_test(checkpoints_rollback_backup_train),
+        cmocka_unit_test(server_errors_keep_their_codes),
+        cmocka_unit_test(server_down),
+        cmocka_unit_test(timeout_and_hang_up),
+    };
+    return cmocka_run_group_tests(tests, start_daemon, stop_daemon);
+}
