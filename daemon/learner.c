@@ -38,6 +38,9 @@
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
+/* History: most samples kept (thinned by half when full), and their least spacing. */
+#define HIST_MAX 1024
+#define HIST_GAP_S 0.25
 /* Publish at most this often while the queue is busy (it always publishes when it empties). */
 #define PUBLISH_NS 1000000
 
@@ -77,6 +80,12 @@ struct learner {
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
     struct snap snaps[2];
+    /* History of the RMS TD error (under snap_mu): a sample at most every HIST_GAP_S. */
+    learner_sample_t *hist;
+    size_t n_hist;
+    unsigned hist_stride; /* keep every hist_stride-th candidate sample */
+    unsigned hist_skip;
+    double hist_last;
     int front;
     double *qwork; /* loop-thread query workspace */
 
@@ -118,6 +127,26 @@ static void publish(struct learner *l, double last_update)
     b->last_update = last_update;
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
+    /*
+     * One history sample per HIST_GAP_S of updates; when the buffer is full,
+     * every other sample goes and the spacing doubles, so it spans the whole run.
+     */
+    if (last_update > 0 && last_update - l->hist_last >= HIST_GAP_S &&
+        ++l->hist_skip >= l->hist_stride) {
+        l->hist_skip = 0;
+        l->hist_last = last_update;
+        if (l->n_hist == HIST_MAX) {
+            for (size_t i = 0; i < HIST_MAX / 2; i++)
+                l->hist[i] = l->hist[2 * i + 1];
+            l->n_hist = HIST_MAX / 2;
+            l->hist_stride *= 2;
+        }
+        learner_sample_t *h = &l->hist[l->n_hist++];
+        h->t = last_update;
+        h->seq = l->applied_seq;
+        for (size_t i = 0; i < l->n_est; i++)
+            h->td_rms[i] = b->est[i].td_rms;
+    }
     pthread_mutex_unlock(&l->snap_mu);
 }
 
@@ -361,6 +390,8 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     size_t ss = model_snap_size(m);
     for (int i = 0; i < 2; i++)
         l->snaps[i].data = mem_calloc(ss, sizeof(double));
+    l->hist_stride = 1;
+    l->hist = mem_calloc(HIST_MAX, sizeof *l->hist);
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
     CHECK(pthread_create(&l->thread, NULL, run, l) == 0);
@@ -404,6 +435,7 @@ void learner_free(struct learner *l)
     for (int i = 0; i < 2; i++)
         mem_free(l->snaps[i].data);
     mem_free(l->qwork);
+    mem_free(l->hist);
     mem_free(l->ring);
     mem_free(l->src);
     mem_free(l->spec_json);
@@ -567,4 +599,13 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     pthread_mutex_lock(&l->mu);
     out->queued = (size_t)(l->head - l->tail);
     pthread_mutex_unlock(&l->mu);
+}
+
+size_t learner_history(struct learner *l, learner_sample_t *out, size_t max)
+{
+    pthread_mutex_lock(&l->snap_mu);
+    size_t n = l->n_hist < max ? l->n_hist : max;
+    memcpy(out, l->hist, n * sizeof *out);
+    pthread_mutex_unlock(&l->snap_mu);
+    return n;
 }

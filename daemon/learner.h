@@ -106,6 +106,16 @@ typedef struct learner_stats_t {
     double last_update; /* wall clock, seconds; 0 before the first update */
 } learner_stats_t;
 
+/* Plain data: one sample of the learning history. */
+typedef struct learner_sample_t {
+    double t;                      /* wall clock, seconds */
+    uint64_t seq;                  /* last transition learnt */
+    double td_rms[MODEL_MAX_EST];  /* each estimator's RMS TD error then */
+} learner_sample_t;
+
+/* Most samples learner_history returns. */
+#define LEARNER_HISTORY_MAX 1024
+
 /* Plain data: how a learner starts. */
 typedef struct learner_opts_t {
     size_t queue_cap;          /* records in the queue */
@@ -185,5 +195,11 @@ const struct model *learner_model(const struct learner *l);
 int learner_value(struct learner *l, const double *x, size_t len, double *values, double *sd,
                   uint64_t *seq);
 void learner_stats(struct learner *l, learner_stats_t *out);
+/*
+ * Copies up to max samples of the RMS TD error history (oldest first) into
+ * out; returns how many.  The history lives in memory: it starts again at a
+ * restart.  It spans the whole run, thinned as it grows.
+ */
+size_t learner_history(struct learner *l, learner_sample_t *out, size_t max);
 
 #endif /* WORTH_LEARNER_H */

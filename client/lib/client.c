@@ -342,7 +342,10 @@ static int connect_tcp(const char *host_port, char *err, size_t errlen)
     }
     memcpy(host, host_port, (size_t)(colon - host_port));
     host[colon - host_port] = 0;
-    long port = strtol(colon + 1, NULL, 10);
+    char *end = NULL;
+    long port = strtol(colon + 1, &end, 10);
+    if (!colon[1] || *end)
+        port = -1; /* "80abc", "": not a port */
     struct sockaddr_storage ss;
     socklen_t len;
     memset(&ss, 0, sizeof ss);
@@ -440,10 +443,22 @@ int worth_request(worth_client *c, const char *json, const char **reply)
 {
     req_reset(c);
     req_s(c, json);
-    int rc = call(c, NULL);
+    req_add(c, "\n", 1);
+    if (c->line)
+        c->line[0] = 0; /* no stale reply if none comes */
+    struct timespec dl;
+    deadline_in(&dl, c->timeout_ms);
+    int rc = send_all(c, c->req, c->req_len, &dl);
+    /* Progress lines (train) precede the reply: skip them, restarting the clock on each. */
+    while (rc == 0) {
+        rc = recv_line(c, &dl);
+        if (rc || !strstr(c->line, "\"progress\":") || strstr(c->line, "\"ok\":"))
+            break;
+        deadline_in(&dl, c->timeout_ms);
+    }
     if (reply)
         *reply = c->line ? c->line : "";
-    return rc;
+    return rc ? rc : reply_status(c, NULL);
 }
 
 /* Starts a request {"op":OP,"model":MODEL (when not NULL) */

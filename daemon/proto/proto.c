@@ -73,6 +73,7 @@ struct proto {
     struct out out;
     /* Per-request scratch, sized for the largest model (grown on create). */
     double *vals, *sds;
+    learner_sample_t *hist; /* history request scratch */
     const char **srcs; /* max_batch source names of a batch */
     char err[512];
 };
@@ -1155,6 +1156,37 @@ static int do_stats(struct req *rq)
     return PROTO_DONE;
 }
 
+static int do_history(struct req *rq)
+{
+    struct learner *l = need_model(rq);
+    if (!l)
+        return PROTO_DONE;
+    struct proto *p = rq->p;
+    if (!p->hist)
+        p->hist = mem_calloc(LEARNER_HISTORY_MAX, sizeof *p->hist);
+    size_t n = learner_history(l, p->hist, LEARNER_HISTORY_MAX);
+    const struct model *m = learner_model(l);
+    struct out *o = &p->out;
+    out_begin(o, 1, rq->id);
+    out_s(o, ",\"estimators\":");
+    out_est_names(o, m);
+    out_s(o, ",\"history\":[");
+    for (size_t i = 0; i < n; i++) {
+        out_s(o, i ? ",{\"t\":" : "{\"t\":");
+        out_num(o, p->hist[i].t);
+        out_fmt(o, ",\"seq\":%llu,\"td_rms\":[", (unsigned long long)p->hist[i].seq);
+        for (size_t k = 0; k < model_n_est(m); k++) {
+            if (k)
+                out_s(o, ",");
+            out_num(o, p->hist[i].td_rms[k]);
+        }
+        out_s(o, "]}");
+    }
+    out_s(o, "]");
+    out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
 static int do_checkpoint(struct req *rq)
 {
     static const char *const keys[] = {"op", "id", "model", "label", NULL};
@@ -1294,6 +1326,7 @@ static const struct {
     {"checkpoints", do_checkpoints},
     {"rollback", do_rollback},
     {"backup", do_backup},
+    {"history", do_history},
 };
 
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
@@ -1539,6 +1572,7 @@ void proto_free(struct proto *p)
     mem_free(p->srcs);
     mem_free(p->vals);
     mem_free(p->sds);
+    mem_free(p->hist);
     mem_free(p->out.b);
     mem_free(p);
 }

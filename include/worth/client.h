@@ -94,8 +94,9 @@ const char *worth_error_message(const worth_client *c);
 
 /*
  * Sends one request (a JSON object, without newline) and returns worthd's
- * reply line in *reply (owned by c).  Returns 0 when the reply says ok, the
- * reply's error code otherwise (*reply is set either way when a reply came).
+ * final reply line in *reply (owned by c; progress lines are skipped).
+ * Returns 0 when the reply says ok, the reply's error code otherwise; when no
+ * reply came (WORTH_E_IO), *reply is "".
  */
 int worth_request(worth_client *c, const char *json, const char **reply);
 

@@ -1,0 +1,124 @@
+/*
+ * watch.c - `worth watch`: a refreshing view of a model's stats.
+ *
+ * Every interval it asks worthd for `stats` and redraws a table of the model's
+ * counters and each estimator's figures, with the ingest rate since the last
+ * refresh.  On a terminal it redraws in place and quits on q (the terminal is
+ * put in non-canonical mode and restored on every exit path); elsewhere it
+ * prints one block per refresh.  --count bounds the number of refreshes
+ * (for scripts and tests).
+ */
+#include <math.h>
+#include <poll.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <termios.h>
+#include <time.h>
+#include <unistd.h>
+
+#include "cli.h"
+
+static double now_s(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_MONOTONIC, &ts);
+    return (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+}
+
+static double getnum(const cJSON *o, const char *k)
+{
+    const cJSON *v = cJSON_GetObjectItemCaseSensitive(o, k);
+    return cJSON_IsNumber(v) ? v->valuedouble : NAN;
+}
+
+/* Draws one refresh; returns EXIT_OK or the error exit. */
+static int draw(struct cli *cli, const char *model, int tty, double *last_t, double *last_n)
+{
+    const char *json;
+    int rc = worth_stats(cli->c, model, &json);
+    if (rc)
+        return cli_fail(cli, rc);
+    cJSON *r = cJSON_Parse(json);
+    if (!r)
+        return cli_error(EXIT_SERVER, "worthd sent an unreadable stats reply");
+    double t = now_s(), n = getnum(r, "received");
+    double rate = *last_t > 0 && t > *last_t ? (n - *last_n) / (t - *last_t) : NAN;
+    *last_t = t;
+    *last_n = n;
+    if (tty)
+        fputs("\033[H\033[2J", stdout); /* home, clear */
+    char a[64], b[64], c[64], d[64], e[64], f[64];
+    printf("worth watch %s   (q quits)\n\n", model);
+    fmt_num(a, sizeof a, getnum(r, "received"));
+    fmt_num(b, sizeof b, getnum(r, "applied"));
+    fmt_num(c, sizeof c, getnum(r, "queue"));
+    fmt_num(d, sizeof d, rate);
+    printf("received %s   applied %s   queue %s   rate %s/s\n\n", a, b, c, d);
+    struct table *tb = table_new(6);
+    if (tb) {
+        table_rowv(tb, "estimator", "kind", "updates", "td_rms", "td_last", "guarded");
+        const cJSON *est;
+        cJSON_ArrayForEach(est, cJSON_GetObjectItemCaseSensitive(r, "estimators"))
+        {
+            const cJSON *kind = cJSON_GetObjectItemCaseSensitive(est, "kind");
+            fmt_num(a, sizeof a, getnum(est, "updates"));
+            fmt_num(b, sizeof b, getnum(est, "td_rms"));
+            fmt_num(c, sizeof c, getnum(est, "td_last"));
+            fmt_num(e, sizeof e, getnum(est, "guarded"));
+            snprintf(f, sizeof f, "%s", cJSON_IsString(kind) ? kind->valuestring : "?");
+            table_rowv(tb, est->string, f, a, b, c, e);
+        }
+        table_print(tb, stdout);
+        table_free(tb);
+    }
+    fflush(stdout);
+    cJSON_Delete(r);
+    return EXIT_OK;
+}
+
+int cmd_watch(struct cli *cli, int argc, char **argv)
+{
+    const char *every_s = NULL, *count_s = NULL;
+    struct opt opts[] = {
+        {"--every", &every_s, NULL}, {"--count", &count_s, NULL}, {NULL, NULL, NULL}};
+    char *pos[1];
+    int np;
+    int ex = parse_args("watch", argc, argv, opts, pos, 1, 1, &np);
+    if (ex)
+        return ex;
+    double every = 1.0;
+    long long count = -1;
+    if (every_s && (parse_double(every_s, &every) || every < 0.05 || every > 3600))
+        return cli_usage("watch", "--every must be 0.05..3600 seconds");
+    if (count_s && parse_int(count_s, 1, 1000000000, &count))
+        return cli_usage("watch", "--count must be a positive integer");
+    if ((ex = cli_connect(cli)))
+        return ex;
+    int tty = isatty(STDIN_FILENO) && isatty(STDOUT_FILENO);
+    struct termios saved;
+    int raw = tty && tcgetattr(STDIN_FILENO, &saved) == 0;
+    if (raw) {
+        struct termios t = saved;
+        t.c_lflag &= ~(tcflag_t)(ICANON | ECHO);
+        t.c_cc[VMIN] = 0;
+        t.c_cc[VTIME] = 0;
+        tcsetattr(STDIN_FILENO, TCSANOW, &t);
+    }
+    double last_t = 0, last_n = 0;
+    for (long long k = 0; count < 0 || k < count; k++) {
+        if ((ex = draw(cli, pos[0], tty, &last_t, &last_n)))
+            break;
+        if (count >= 0 && k + 1 >= count)
+            break;
+        struct pollfd pf = {STDIN_FILENO, POLLIN, 0};
+        if (poll(&pf, raw ? 1 : 0, (int)(every * 1000)) > 0) {
+            char ch = 0;
+            if (read(STDIN_FILENO, &ch, 1) == 1 && (ch == 'q' || ch == 'Q'))
+                break;
+        }
+    }
+    if (raw)
+        tcsetattr(STDIN_FILENO, TCSANOW, &saved);
+    return ex;
+}

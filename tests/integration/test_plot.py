@@ -1,0 +1,134 @@
+"""`worth plot` and `worth watch` against a real worthd (tests only).
+
+The value map must be a well-formed SVG (parsed with xml.etree) whose colour cells
+span the requested ranges of the two plotted dimensions, with the other dimensions
+held where --at says; the values in the cells must equal worthd's own `value`
+answers; and the picture must render (Debian's rsvg-convert, to PNG). The history
+plot draws one series per estimator from worthd's `history`. `watch --count`
+prints refreshing stats and ends by itself.
+"""
+import json
+import os
+import shutil
+import subprocess
+import xml.etree.ElementTree as ET
+
+import pytest
+
+from test_cli import cli_path, ok, fails, run
+
+SVG = "{http://www.w3.org/2000/svg}"
+SPEC = {"model": "pl", "dims": 3, "gamma": 0.9, "ranges": [[0, 12], [0, 400], [-1, 1]],
+        "features": [{"basis": "bias"}, {"basis": "rbf", "centers": 3, "width": 0.3}],
+        "estimators": [{"name": "td", "kind": "td", "alpha": 0.1},
+                       {"name": "rls", "kind": "rls_td"}]}
+
+
+def make_model(d, tmp_path, n=400):
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps(SPEC))
+    ok(run(d, "create", spec))
+    rows = ["x0,x1,x2,r,xn0,xn1,xn2,terminal"]
+    for i in range(n):
+        a, b, c = (i * 7) % 12, (i * 37) % 400, ((i % 9) - 4) / 4
+        rows.append(f"{a},{b},{c},{a / 12 - b / 400},{(a + 1) % 12},{b},{c},{int(i % 10 == 9)}")
+    data = tmp_path / "d.csv"
+    data.write_text("\n".join(rows) + "\n")
+    ok(run(d, "feed", "pl", data))
+    c = d.client()
+    c.wait_applied("pl", n)
+    return c
+
+
+def test_value_map_is_a_well_formed_svg_spanning_the_ranges(daemon, tmp_path):
+    d = daemon()
+    c = make_model(d, tmp_path)
+    out = tmp_path / "map.svg"
+    p = ok(run(d, "plot", "pl", "--x", 0, "--y", 1, "--at", "0,0,0.5", "--grid", 20,
+               "--out", out))
+    assert "wrote" in p.stdout
+    root = ET.parse(out).getroot()
+    assert root.tag == SVG + "svg"
+    cells = [e for e in root.iter(SVG + "rect") if e.get("class") == "cell"]
+    assert len(cells) == 400
+    xs = sorted({float(e.get("data-x")) for e in cells})
+    ys = sorted({float(e.get("data-y")) for e in cells})
+    # 20 cell centres across each declared range: first and last half a cell from the ends
+    assert len(xs) == 20 and len(ys) == 20
+    assert xs[0] == pytest.approx(0.3) and xs[-1] == pytest.approx(11.7)
+    assert ys[0] == pytest.approx(10.0) and ys[-1] == pytest.approx(390.0)
+    # geometry: the cells tile the plot area, larger x to the right, larger y upwards
+    left = min(cells, key=lambda e: float(e.get("data-x")))
+    right = max(cells, key=lambda e: float(e.get("data-x")))
+    low = min(cells, key=lambda e: float(e.get("data-y")))
+    high = max(cells, key=lambda e: float(e.get("data-y")))
+    assert float(left.get("x")) < float(right.get("x"))
+    assert float(low.get("y")) > float(high.get("y"))
+    # each cell's value is worthd's value at that state (third dimension held at 0.5)
+    for e in cells[::37]:
+        v = c.ok({"op": "value", "model": "pl",
+                  "x": [float(e.get("data-x")), float(e.get("data-y")), 0.5]})["value"]
+        assert float(e.get("data-v")) == v
+    fills = {e.get("fill") for e in cells}
+    assert len(fills) > 5, "the map should not be one colour"
+    # axes: ticks on both, labels in the declared ranges; a colour bar with its value range
+    ticks_x = [e for e in root.iter(SVG + "line") if e.get("class") == "tick-x"]
+    ticks_y = [e for e in root.iter(SVG + "line") if e.get("class") == "tick-y"]
+    assert len(ticks_x) >= 3 and len(ticks_y) >= 3
+    texts = [t.text for t in root.iter(SVG + "text")]
+    assert "x[0]" in texts and "x[1]" in texts and "400" in texts
+    bar = [g for g in root.iter(SVG + "g") if g.get("class") == "colourbar"]
+    assert len(bar) == 1
+    vals = [float(e.get("data-v")) for e in cells]
+    assert float(bar[0].get("data-v-lo")) == min(vals)
+    assert float(bar[0].get("data-v-hi")) == max(vals)
+    # it renders (librsvg)
+    png = tmp_path / "map.png"
+    r = subprocess.run([shutil.which("rsvg-convert") or "/usr/bin/rsvg-convert", "-o", str(png),
+                        str(out)], capture_output=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert not [f for f in os.listdir(tmp_path) if ".tmp-" in f]
+
+
+def test_value_map_of_one_estimator_and_errors(daemon, tmp_path):
+    d = daemon()
+    c = make_model(d, tmp_path, n=50)
+    out = tmp_path / "rls.svg"
+    ok(run(d, "plot", "pl", "--x", 2, "--y", 0, "--estimator", "rls", "--grid", 4, "--out", out))
+    cells = [e for e in ET.parse(out).getroot().iter(SVG + "rect") if e.get("class") == "cell"]
+    e = cells[5]
+    mid = 200.0  # dimension 1 held at the middle of [0, 400]
+    v = c.ok({"op": "value", "model": "pl", "estimator": "rls",
+              "x": [float(e.get("data-y")), mid, float(e.get("data-x"))]})["value"]
+    assert float(e.get("data-v")) == v
+    fails(run(d, "plot", "pl", "--x", 0, "--y", 0, "--out", out), 2, "--x")
+    fails(run(d, "plot", "pl", "--x", 0, "--y", 9, "--out", out), 2)
+    fails(run(d, "plot", "pl", "--x", 0, "--y", 1), 2, "--out")
+    fails(run(d, "plot", "pl", "--x", 0, "--y", 1, "--at", "1,2", "--out", out), 2, "--at")
+    fails(run(d, "plot", "nope", "--x", 0, "--y", 1, "--out", out), 1, "no_such_model")
+    fails(run(d, "plot", "pl", "--x", 0, "--y", 1, "--out", tmp_path / "no" / "x.svg"), 2)
+
+
+def test_history_plot_has_a_series_per_estimator(daemon, tmp_path):
+    d = daemon()
+    make_model(d, tmp_path, n=300)
+    out = tmp_path / "history.svg"
+    ok(run(d, "plot", "pl", "--history", "--out", out))
+    root = ET.parse(out).getroot()
+    series = [e for e in root.iter(SVG + "polyline") if e.get("class") == "series"]
+    assert [e.get("data-estimator") for e in series] == ["td", "rls"]
+    assert all(e.get("points").strip() for e in series)
+    r = subprocess.run(["/usr/bin/rsvg-convert", "-o", str(tmp_path / "h.png"), str(out)],
+                       capture_output=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+
+
+def test_watch_count_refreshes_and_ends(daemon, tmp_path):
+    d = daemon()
+    make_model(d, tmp_path, n=20)
+    p = ok(run(d, "watch", "pl", "--count", 2, "--every", 0.1))
+    assert p.stdout.count("worth watch pl") == 2
+    assert "td" in p.stdout and "rls_td" in p.stdout and "received 20" in p.stdout
+    fails(run(d, "watch", "pl", "--every", 0), 2, "--every")
+    fails(run(d, "watch", "nope", "--count", 1), 1, "no_such_model")
