@@ -39,7 +39,7 @@
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
 /* History: most samples kept (thinned by half when full), and their least spacing. */
-#define HIST_MAX 1024
+#define HIST_MAX   1024
 #define HIST_GAP_S 0.25
 /* Publish at most this often while the queue is busy (it always publishes when it empties). */
 #define PUBLISH_NS 1000000
@@ -49,6 +49,9 @@ struct snap {
     uint64_t applied;
     model_counts_t counts;
     est_stats_t est[MODEL_MAX_EST];
+    diag_est_t realised[MODEL_MAX_EST];
+    diag_drift_t drift;
+    double spread;
     double last_update;
 };
 
@@ -76,6 +79,7 @@ struct learner {
 
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
+    uint64_t alarms_seen; /* drift alarms already reported */
 
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
@@ -122,8 +126,13 @@ static void publish(struct learner *l, double last_update)
     model_snap(l->m, b->data);
     b->applied = l->applied_seq;
     model_counts(l->m, &b->counts);
-    for (size_t i = 0; i < l->n_est; i++)
+    const struct diag *dg = model_diag(l->m);
+    for (size_t i = 0; i < l->n_est; i++) {
         est_stats(model_est(l->m, i), &b->est[i]);
+        diag_est(dg, i, &b->realised[i]);
+    }
+    diag_drift(dg, &b->drift);
+    b->spread = diag_spread(dg);
     b->last_update = last_update;
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
@@ -175,6 +184,27 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
     writer_store_checkpoint(l->o.writer, l, l->applied_seq, l->model_training, label, blob, len,
                             conn_id);
     l->since_checkpoint = 0;
+}
+
+/*
+ * A drift alarm: logged, and recorded as an event.  The detector counts steps
+ * from the model's start; the seqs given are those of the transitions at
+ * those steps when no rollback intervened (the event keeps both).
+ */
+static void drift_event(struct learner *l, const diag_drift_t *dr)
+{
+    uint64_t back = dr->last_alarm - dr->last_onset;
+    uint64_t onset_seq = l->applied_seq > back ? l->applied_seq - back : 0;
+    say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
+             (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
+    char detail[256];
+    snprintf(detail, sizeof detail,
+             "{\"seq\":%llu,\"onset_seq\":%llu,\"step\":%llu,\"onset_step\":%llu,"
+             "\"alarms\":%llu}",
+             (unsigned long long)l->applied_seq, (unsigned long long)onset_seq,
+             (unsigned long long)dr->last_alarm, (unsigned long long)dr->last_onset,
+             (unsigned long long)dr->alarms);
+    writer_event(l->o.writer, l, "drift", detail);
 }
 
 struct train_ctx {
@@ -259,6 +289,12 @@ static void apply(struct learner *l, learner_rec_t *r)
         }
         l->applied_seq = r->seq;
         l->since_checkpoint++;
+        diag_drift_t dr;
+        diag_drift(model_diag(l->m), &dr);
+        if (dr.alarms != l->alarms_seen) {
+            l->alarms_seen = dr.alarms;
+            drift_event(l, &dr);
+        }
         if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every)
             checkpoint(l, NULL, 0);
         return;
@@ -392,6 +428,9 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
         l->snaps[i].data = mem_calloc(ss, sizeof(double));
     l->hist_stride = 1;
     l->hist = mem_calloc(HIST_MAX, sizeof *l->hist);
+    diag_drift_t dr0;
+    diag_drift(model_diag(m), &dr0);
+    l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
     CHECK(pthread_create(&l->thread, NULL, run, l) == 0);
@@ -593,6 +632,10 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->applied = s->applied;
     out->counts = s->counts;
     memcpy(out->est, s->est, sizeof out->est);
+    memcpy(out->realised, s->realised, sizeof out->realised);
+    out->drift = s->drift;
+    out->spread = s->spread;
+    out->horizon = diag_horizon(model_diag(l->m));
     out->last_update = s->last_update;
     pthread_mutex_unlock(&l->snap_mu);
     out->received = l->seq;

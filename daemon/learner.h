@@ -103,6 +103,10 @@ typedef struct learner_stats_t {
     size_t queued;     /* records waiting */
     model_counts_t counts;
     est_stats_t est[MODEL_MAX_EST];
+    diag_est_t realised[MODEL_MAX_EST]; /* realised-return figures per estimator */
+    diag_drift_t drift;                 /* the drift detector */
+    double spread;                      /* running spread of the estimators' predictions */
+    unsigned horizon;                   /* steps after which a continuing return is known */
     double last_update; /* wall clock, seconds; 0 before the first update */
 } learner_stats_t;
 

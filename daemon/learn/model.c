@@ -12,8 +12,8 @@
  *
  * Saved state: u32 magic "WMOD", u32 version, u32 estimator count, u32
  * source count, u64 applied, u64 clipped, the source names (u32 length +
- * bytes), then each estimator's est_save bytes prefixed by a u64 length, and
- * a u32 CRC-32 of everything before it.
+ * bytes), then each estimator's est_save bytes prefixed by a u64 length, the
+ * diagnostics' state (diag_save), and a u32 CRC-32 of everything before it.
  */
 #include "model.h"
 
@@ -39,6 +39,8 @@ struct model {
     size_t max_sources, n_sources;
     char (*sources)[MODEL_NAME_MAX + 1];
     double *phi, *phin, *work; /* learner workspaces */
+    double *pred;              /* each estimator's V(x) before an update */
+    struct diag *diag;
     uint64_t applied, clipped;
 };
 
@@ -93,6 +95,15 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
         m->n_est = i + 1;
         snprintf(m->names[i], sizeof m->names[i], "%s", spec->est_names[i]);
     }
+    diag_params_t dp;
+    if (spec->diag)
+        dp = *spec->diag;
+    else
+        diag_params_default(spec->gamma, &dp);
+    rc = diag_new(&dp, m->n_est, nsrc, &m->diag, err, errlen);
+    if (rc)
+        goto out_free_model;
+    m->pred = mem_calloc(m->n_est, sizeof *m->pred);
     m->sources = mem_calloc(nsrc, sizeof *m->sources);
     m->phi = mem_calloc(m->n, sizeof *m->phi);
     m->phin = mem_calloc(m->n, sizeof *m->phin);
@@ -112,6 +123,8 @@ void model_free(struct model *m)
     for (size_t i = 0; i < m->n_est; i++)
         est_free(m->est[i]);
     feat_free(m->feat);
+    diag_free(m->diag);
+    mem_free(m->pred);
     mem_free(m->sources);
     mem_free(m->phi);
     mem_free(m->phin);
@@ -123,6 +136,7 @@ void model_reset(struct model *m)
 {
     for (size_t i = 0; i < m->n_est; i++)
         est_reset(m->est[i]);
+    diag_reset(m->diag);
     memset(m->sources, 0, m->max_sources * sizeof *m->sources);
     m->n_sources = 0;
     m->applied = m->clipped = 0;
@@ -194,11 +208,17 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     m->clipped += feat_eval(m->feat, t->x, m->phi, m->work);
     if (!t->terminal)
         m->clipped += feat_eval(m->feat, t->x_next, m->phin, m->work);
+    /* The predictions the diagnostics score, and the primary's TD error, before the update. */
+    for (size_t i = 0; i < m->n_est; i++)
+        m->pred[i] = est_value(m->est[i], m->phi);
+    double vn = t->terminal ? 0.0 : est_value(m->est[m->primary], m->phin);
+    double td = t->r + g * vn - m->pred[m->primary];
     for (size_t i = 0; i < m->n_est; i++) {
         rc = est_observe(m->est[i], (size_t)slot, m->phi, t->r, t->terminal ? NULL : m->phin, g,
                          t->terminal);
         CHECK(rc == 0); /* everything was validated above */
     }
+    diag_observe(m->diag, (size_t)slot, m->pred, t->r, g, t->terminal, td);
     m->applied++;
     return 0;
 }
@@ -262,6 +282,11 @@ const struct est *model_est(const struct model *m, size_t i)
 const struct feat *model_feat(const struct model *m)
 {
     return m->feat;
+}
+
+const struct diag *model_diag(const struct model *m)
+{
+    return m->diag;
 }
 
 void model_counts(const struct model *m, model_counts_t *out)
@@ -350,6 +375,7 @@ static int save_all(const struct model *m, ser_w *w)
         }
         w->len += len;
     }
+    diag_save(m->diag, w);
     return 0;
 }
 
@@ -397,6 +423,7 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
             return err_fail(err, errlen, rc, "estimator \"%s\": %s", m->names[i], sub);
         r.pos += (size_t)el;
     }
+    diag_load(m->diag, &r);
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
     return 0;

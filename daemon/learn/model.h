@@ -15,6 +15,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
+#include "diag.h"
 #include "est.h"
 #include "feat.h"
 
@@ -39,6 +40,7 @@ typedef struct model_spec_t {
     const char *const *est_names; /* n_est unique names, 1..MODEL_NAME_MAX bytes */
     size_t primary;               /* index of the primary estimator */
     size_t max_sources;           /* source slots, 0 = MODEL_DEFAULT_SOURCES */
+    const diag_params_t *diag;    /* diagnostics; NULL = diag_params_default(gamma) */
 } model_spec_t;
 
 /*
@@ -108,6 +110,8 @@ int model_est_find(const struct model *m, const char *name);
 /* Returns estimator i (borrowed; the model keeps ownership). */
 const struct est *model_est(const struct model *m, size_t i);
 const struct feat *model_feat(const struct model *m);
+/* The model's diagnostics (realised returns, drift), borrowed. */
+const struct diag *model_diag(const struct model *m);
 void model_counts(const struct model *m, model_counts_t *out);
 /* Doubles of workspace model_value needs. */
 size_t model_work_size(const struct model *m);

@@ -74,7 +74,7 @@ struct proto {
     /* Per-request scratch, sized for the largest model (grown on create). */
     double *vals, *sds;
     learner_sample_t *hist; /* history request scratch */
-    const char **srcs; /* max_batch source names of a batch */
+    const char **srcs;      /* max_batch source names of a batch */
     char err[512];
 };
 
@@ -1149,8 +1149,26 @@ static int do_stats(struct req *rq)
             out_fmt(o, ",\"steps\":%llu", (unsigned long long)e->refits);
         out_s(o, ",\"last_update\":");
         out_num(o, st.last_update);
-        out_s(o, "}");
+        const diag_est_t *d = &st.realised[i];
+        out_fmt(o, ",\"realised\":{\"n\":%llu,\"bias\":", (unsigned long long)d->n);
+        out_num(o, d->bias);
+        out_s(o, ",\"rms\":");
+        out_num(o, d->rms);
+        out_s(o, ",\"bias_window\":");
+        out_num(o, d->bias_window);
+        out_s(o, ",\"rms_window\":");
+        out_num(o, d->rms_window);
+        out_s(o, "}}");
     }
+    out_s(o, "},\"spread\":");
+    out_num(o, st.spread);
+    out_fmt(o,
+            ",\"horizon\":%u,\"drift\":{\"alarms\":%llu,\"last_alarm_step\":%llu,"
+            "\"last_onset_step\":%llu,\"armed\":%s,\"statistic\":",
+            st.horizon, (unsigned long long)st.drift.alarms,
+            (unsigned long long)st.drift.last_alarm, (unsigned long long)st.drift.last_onset,
+            st.drift.armed ? "true" : "false");
+    out_num(o, st.drift.statistic);
     out_s(o, "}");
     out_end(o, rq->c);
     return PROTO_DONE;

@@ -72,6 +72,7 @@ static const struct field top_fields[] = {
     {"ranges", F_OTHER, 0, 0, 0, 0, 0},      {"features", F_OTHER, 0, 0, 0, 0, 0},
     {"estimators", F_OTHER, 0, 0, 0, 0, 0},  {"primary", F_OTHER, 0, 0, 0, 0, 0},
     {"max_sources", F_OTHER, 0, 0, 0, 0, 0}, {"max_features", F_OTHER, 0, 0, 0, 0, 0},
+    {"diagnostics", F_OTHER, 0, 0, 0, 0, 0},
 };
 #define NTOP (sizeof top_fields / sizeof top_fields[0])
 
@@ -577,6 +578,15 @@ static char *canonical(const spec_t *s)
     bad |= cJSON_AddStringToObject(root, "primary", s->est_names[m->primary]) ? 0 : -1;
     bad |= add_u64(root, "max_sources", m->max_sources);
     bad |= add_u64(root, "max_features", m->feat.max_features);
+    cJSON *dg = cJSON_AddObjectToObject(root, "diagnostics");
+    bad |= dg ? 0 : -1;
+    if (dg) {
+        bad |= add_u64(dg, "horizon", s->diag.horizon);
+        bad |= add_u64(dg, "window", s->diag.window);
+        bad |= add_double(dg, "drift_delta", s->diag.delta);
+        bad |= add_double(dg, "drift_lambda", s->diag.lambda);
+        bad |= add_u64(dg, "drift_burn_in", s->diag.burn_in);
+    }
 
     char *text = bad ? NULL : cJSON_PrintUnformatted(root);
     cJSON_Delete(root);
@@ -602,6 +612,54 @@ int spec_name_ok(const char *name)
 }
 
 /* Everything but the arrays; the top-level fields in the order of protocol.md. */
+/*
+ * "diagnostics": {"horizon": H, "window": W, "drift_delta": d, "drift_lambda": l,
+ * "drift_burn_in": B}, every field optional (diag.h gives the defaults); ranges
+ * are checked by model_new.
+ */
+static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
+{
+    diag_params_default(s->m.gamma, &s->diag);
+    if (!o)
+        return 0;
+    if (!cJSON_IsObject(o))
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "diagnostics must be an object");
+    int rc;
+    uint64_t u;
+    double v;
+    for (const cJSON *f = o->child; f; f = f->next) {
+        for (const cJSON *g = f->next; g; g = g->next)
+            if (strcmp(f->string, g->string) == 0)
+                return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
+                                "diagnostics: \"%s\" appears twice", g->string);
+        char path[64];
+        snprintf(path, sizeof path, "diagnostics.%.40s", f->string);
+        if (strcmp(f->string, "horizon") == 0 || strcmp(f->string, "window") == 0 ||
+            strcmp(f->string, "drift_burn_in") == 0) {
+            if ((rc = get_int(f, path, 0, 4294967295.0, &u, err, errlen)))
+                return rc;
+            if (f->string[0] == 'h')
+                s->diag.horizon = (unsigned)u;
+            else if (f->string[0] == 'w')
+                s->diag.window = (unsigned)u;
+            else
+                s->diag.burn_in = (unsigned)u;
+        } else if (strcmp(f->string, "drift_delta") == 0 ||
+                   strcmp(f->string, "drift_lambda") == 0) {
+            if ((rc = get_double(f, path, &v, err, errlen)))
+                return rc;
+            if (strcmp(f->string, "drift_delta") == 0)
+                s->diag.delta = v;
+            else
+                s->diag.lambda = v;
+        } else {
+            return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
+                            "diagnostics: unknown field \"%.32s\"", f->string);
+        }
+    }
+    return 0;
+}
+
 static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
 {
     int rc;
@@ -681,7 +739,7 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
             return rc;
         s->m.max_sources = (size_t)u;
     }
-    return 0;
+    return parse_diag(cJSON_GetObjectItemCaseSensitive(req, "diagnostics"), s, err, errlen);
 }
 
 int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen)
@@ -695,6 +753,7 @@ int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen)
     s->m.feat.bases = s->bases;
     s->m.est = s->est;
     s->m.est_names = s->est_name_ptrs;
+    s->m.diag = &s->diag;
     s->canonical = canonical(s);
     if (!s->canonical) {
         rc = err_fail(err, errlen, WORTH_E_NO_MEMORY, "out of memory printing the spec");

@@ -25,6 +25,7 @@ typedef struct spec_t {
     char (*est_names)[MODEL_NAME_MAX + 1];
     const char **est_name_ptrs; /* m.est_names points here */
     char *canonical;            /* owned JSON text of the spec, defaults filled in */
+    diag_params_t diag;         /* m.diag points here */
 } spec_t;
 
 /*

@@ -797,7 +797,7 @@ static void corrupted_state_is_refused(void **state)
     r.pos += (size_t)l0;
     uint64_t l1 = ser_get_u64(&r);
     assert_int_equal(r.err, 0);
-    assert_int_equal(r.pos + l1, len - 4);
+    assert_true(r.pos + l1 < len - 4); /* the diagnostics' state follows the estimators */
     memcpy(copy, buf, len);
     copy[r.pos + l1 / 2] ^= 1;
     reseal(copy, len);

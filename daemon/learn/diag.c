@@ -1,0 +1,364 @@
+/*
+ * diag.c - realised-return checks and the drift alarm (see diag.h).
+ *
+ * Owns, per source, a ring of the steps whose return is not yet known: each
+ * estimator's prediction, the reward and the discount.  A continuing return
+ * is complete after `horizon` rewards; a terminal transition completes all of
+ * its source's pending returns.  Computing a truncated return walks the ring
+ * once, O(horizon) per transition, like mc.c.  The ring grows by doubling up
+ * to the horizon, so after warm-up nothing is allocated.  Learner thread only.
+ */
+#include "diag.h"
+
+#include <math.h>
+#include <string.h>
+
+#include "fail.h"
+#include "mem.h"
+#include "worth/errors.h"
+
+/* Longest horizon, also for gamma = 1 where the auto rule never stops. */
+#define MAX_HORIZON 100000u
+
+struct ring {
+    size_t head, count, cap;
+    double *e; /* cap entries of stride: n_est predictions, r, g */
+};
+
+struct stat {
+    uint64_t n;
+    double sum, sumsq;     /* over the run */
+    double ew, ewsq, ew_w; /* exponentially weighted, for the window */
+};
+
+struct diag {
+    diag_params_t p;
+    size_t n_est, nsrc, stride;
+    unsigned horizon;
+    double keep; /* 1 - 1/window */
+    struct ring *q;
+    struct stat *st;
+    double spread_ew, spread_w;
+    /* Page-Hinkley */
+    uint64_t step, k;      /* transitions seen; since the last (re)start */
+    double b_sum, b_sumsq; /* burn-in sums */
+    double mu, sd;
+    double up, up_min, dn, dn_max;
+    uint64_t up_min_at, dn_max_at;
+    uint64_t alarms, last_alarm, last_onset;
+};
+
+void diag_params_default(double gamma, diag_params_t *p)
+{
+    memset(p, 0, sizeof *p);
+    p->gamma = gamma;
+    p->horizon = 0;
+    p->window = 1000;
+    p->delta = 0.5;
+    p->lambda = 50.0;
+    p->burn_in = 500;
+}
+
+static unsigned auto_horizon(double gamma)
+{
+    if (!(gamma < 1.0))
+        return MAX_HORIZON;
+    if (gamma <= 0.0)
+        return 1;
+    double h = ceil(log(1e-3) / log(gamma));
+    return h > MAX_HORIZON ? MAX_HORIZON : (unsigned)(h < 1 ? 1 : h);
+}
+
+int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag **out, char *err,
+             size_t errlen)
+{
+    if (p->horizon > MAX_HORIZON)
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "diagnostics horizon must be 0..%u",
+                        MAX_HORIZON);
+    if (p->window < 1)
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "diagnostics window must be >= 1");
+    if (!(p->delta >= 0) || !isfinite(p->delta) || !(p->lambda > 0) || !isfinite(p->lambda))
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                        "drift delta must be >= 0 and lambda > 0, both finite");
+    if (p->burn_in < 2)
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "drift burn_in must be >= 2");
+    struct diag *d = mem_calloc(1, sizeof *d);
+    d->p = *p;
+    d->n_est = n_est;
+    d->nsrc = sources;
+    d->stride = n_est + 2;
+    d->horizon = p->horizon ? p->horizon : auto_horizon(p->gamma);
+    d->keep = 1.0 - 1.0 / p->window;
+    d->q = mem_calloc(sources, sizeof *d->q);
+    d->st = mem_calloc(n_est, sizeof *d->st);
+    *out = d;
+    diag_reset(d);
+    return 0;
+}
+
+static void restart_drift(struct diag *d)
+{
+    d->k = 0;
+    d->b_sum = d->b_sumsq = 0;
+    d->mu = 0;
+    d->sd = 1;
+    d->up = d->up_min = d->dn = d->dn_max = 0;
+    d->up_min_at = d->dn_max_at = d->step;
+}
+
+void diag_reset(struct diag *d)
+{
+    for (size_t s = 0; s < d->nsrc; s++) {
+        mem_free(d->q[s].e);
+        memset(&d->q[s], 0, sizeof d->q[s]);
+    }
+    memset(d->st, 0, d->n_est * sizeof *d->st);
+    d->spread_ew = d->spread_w = 0;
+    d->step = 0;
+    d->alarms = d->last_alarm = d->last_onset = 0;
+    restart_drift(d);
+}
+
+void diag_free(struct diag *d)
+{
+    if (!d)
+        return;
+    for (size_t s = 0; s < d->nsrc; s++)
+        mem_free(d->q[s].e);
+    mem_free(d->q);
+    mem_free(d->st);
+    mem_free(d);
+}
+
+static void grow(struct diag *d, struct ring *q)
+{
+    size_t cap = q->cap ? 2 * q->cap : 64;
+    if (cap > d->horizon)
+        cap = d->horizon;
+    double *e = mem_alloc(cap * d->stride * sizeof *e);
+    for (size_t i = 0; i < q->count; i++)
+        memcpy(e + i * d->stride, q->e + ((q->head + i) % q->cap) * d->stride,
+               d->stride * sizeof *e);
+    mem_free(q->e);
+    q->e = e;
+    q->cap = cap;
+    q->head = 0;
+}
+
+/* Scores the predictions of entry e against its realised return G. */
+static void score(struct diag *d, const double *e, double G)
+{
+    for (size_t k = 0; k < d->n_est; k++) {
+        struct stat *s = &d->st[k];
+        double err = e[k] - G;
+        s->n++;
+        s->sum += err;
+        s->sumsq += err * err;
+        s->ew = d->keep * s->ew + err;
+        s->ewsq = d->keep * s->ewsq + err * err;
+        s->ew_w = d->keep * s->ew_w + 1.0;
+    }
+}
+
+static int drift(struct diag *d, double td)
+{
+    d->k++;
+    if (d->k <= d->p.burn_in) {
+        d->b_sum += td;
+        d->b_sumsq += td * td;
+        if (d->k == d->p.burn_in) {
+            double n = (double)d->k;
+            d->mu = d->b_sum / n;
+            double var = (d->b_sumsq - n * d->mu * d->mu) / (n - 1);
+            d->sd = sqrt(var > 0 ? var : 0);
+            double floor_sd = 1e-9 * (1.0 + fabs(d->mu));
+            if (d->sd < floor_sd)
+                d->sd = floor_sd;
+            d->up_min_at = d->dn_max_at = d->step;
+        }
+        return 0;
+    }
+    double z = (td - d->mu) / d->sd;
+    d->up += z - d->p.delta; /* rises when the error grows */
+    d->dn += z + d->p.delta; /* falls when it shrinks */
+    if (d->up < d->up_min) {
+        d->up_min = d->up;
+        d->up_min_at = d->step;
+    }
+    if (d->dn > d->dn_max) {
+        d->dn_max = d->dn;
+        d->dn_max_at = d->step;
+    }
+    int rise = d->up - d->up_min > d->p.lambda, fall = d->dn_max - d->dn > d->p.lambda;
+    if (!rise && !fall)
+        return 0;
+    d->alarms++;
+    d->last_alarm = d->step;
+    d->last_onset = (rise ? d->up_min_at : d->dn_max_at) + 1;
+    restart_drift(d);
+    return 1;
+}
+
+int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
+                 double td)
+{
+    d->step++;
+    double lo = INFINITY, hi = -INFINITY;
+    for (size_t k = 0; k < d->n_est; k++) {
+        lo = fmin(lo, pred[k]);
+        hi = fmax(hi, pred[k]);
+    }
+    d->spread_ew = d->keep * d->spread_ew + (hi - lo);
+    d->spread_w = d->keep * d->spread_w + 1.0;
+
+    struct ring *q = &d->q[src];
+    if (q->count == q->cap)
+        grow(d, q);
+    double *e = q->e + ((q->head + q->count) % q->cap) * d->stride;
+    memcpy(e, pred, d->n_est * sizeof *e);
+    e[d->n_est] = r;
+    e[d->n_est + 1] = g;
+    q->count++;
+
+    if (terminal) {
+        /* Every pending return is complete: walk back once, then score oldest first. */
+        double G = 0;
+        for (size_t i = q->count; i-- > 0;) {
+            double *x = q->e + ((q->head + i) % q->cap) * d->stride;
+            G = x[d->n_est] + x[d->n_est + 1] * G;
+            x[d->n_est] = G; /* the reward slot now holds the return */
+        }
+        for (size_t i = 0; i < q->count; i++) {
+            double *x = q->e + ((q->head + i) % q->cap) * d->stride;
+            score(d, x, x[d->n_est]);
+        }
+        q->head = q->count = 0;
+    } else if (q->count == d->horizon) {
+        double G = 0;
+        for (size_t i = q->count; i-- > 0;) {
+            const double *x = q->e + ((q->head + i) % q->cap) * d->stride;
+            G = x[d->n_est] + x[d->n_est + 1] * G;
+        }
+        score(d, q->e + q->head * d->stride, G);
+        q->head = (q->head + 1) % q->cap;
+        q->count--;
+    }
+    return drift(d, td);
+}
+
+unsigned diag_horizon(const struct diag *d)
+{
+    return d->horizon;
+}
+
+void diag_est(const struct diag *d, size_t i, diag_est_t *out)
+{
+    const struct stat *s = &d->st[i];
+    memset(out, 0, sizeof *out);
+    out->n = s->n;
+    if (s->n) {
+        out->bias = s->sum / (double)s->n;
+        out->rms = sqrt(s->sumsq / (double)s->n);
+    }
+    if (s->ew_w > 0) {
+        out->bias_window = s->ew / s->ew_w;
+        out->rms_window = sqrt(s->ewsq / s->ew_w);
+    }
+}
+
+void diag_drift(const struct diag *d, diag_drift_t *out)
+{
+    out->alarms = d->alarms;
+    out->last_alarm = d->last_alarm;
+    out->last_onset = d->last_onset;
+    out->armed = d->k > d->p.burn_in;
+    double a = d->up - d->up_min, b = d->dn_max - d->dn;
+    out->statistic = out->armed ? (a > b ? a : b) : 0.0;
+}
+
+double diag_spread(const struct diag *d)
+{
+    return d->spread_w > 0 ? d->spread_ew / d->spread_w : 0.0;
+}
+
+void diag_save(const struct diag *d, ser_w *w)
+{
+    ser_put_u64(w, d->step);
+    for (size_t s = 0; s < d->nsrc; s++) {
+        const struct ring *q = &d->q[s];
+        ser_put_u64(w, q->count);
+        for (size_t i = 0; i < q->count; i++)
+            ser_put_f64v(w, q->e + ((q->head + i) % q->cap) * d->stride, d->stride);
+    }
+    for (size_t k = 0; k < d->n_est; k++) {
+        const struct stat *s = &d->st[k];
+        ser_put_u64(w, s->n);
+        ser_put_f64(w, s->sum);
+        ser_put_f64(w, s->sumsq);
+        ser_put_f64(w, s->ew);
+        ser_put_f64(w, s->ewsq);
+        ser_put_f64(w, s->ew_w);
+    }
+    ser_put_f64(w, d->spread_ew);
+    ser_put_f64(w, d->spread_w);
+    ser_put_u64(w, d->k);
+    double v[8] = {d->b_sum, d->b_sumsq, d->mu, d->sd, d->up, d->up_min, d->dn, d->dn_max};
+    ser_put_f64v(w, v, 8);
+    ser_put_u64(w, d->up_min_at);
+    ser_put_u64(w, d->dn_max_at);
+    ser_put_u64(w, d->alarms);
+    ser_put_u64(w, d->last_alarm);
+    ser_put_u64(w, d->last_onset);
+}
+
+int diag_load(struct diag *d, ser_r *r)
+{
+    diag_reset(d);
+    d->step = ser_get_u64(r);
+    for (size_t s = 0; s < d->nsrc && !r->err; s++) {
+        struct ring *q = &d->q[s];
+        uint64_t count = ser_get_u64(r);
+        if (r->err)
+            break;
+        if (count == 0)
+            continue;
+        /* A count that cannot be right is refused before anything is allocated. */
+        if (count >= d->horizon || count > (r->len - r->pos) / (d->stride * sizeof(double))) {
+            r->err = 1;
+            break;
+        }
+        while (q->cap < count)
+            grow(d, q);
+        for (size_t i = 0; i < count; i++)
+            ser_get_f64v(r, q->e + i * d->stride, d->stride);
+        q->count = count;
+    }
+    for (size_t k = 0; k < d->n_est && !r->err; k++) {
+        struct stat *s = &d->st[k];
+        s->n = ser_get_u64(r);
+        s->sum = ser_get_f64(r);
+        s->sumsq = ser_get_f64(r);
+        s->ew = ser_get_f64(r);
+        s->ewsq = ser_get_f64(r);
+        s->ew_w = ser_get_f64(r);
+    }
+    d->spread_ew = ser_get_f64(r);
+    d->spread_w = ser_get_f64(r);
+    d->k = ser_get_u64(r);
+    double v[8];
+    ser_get_f64v(r, v, 8);
+    d->b_sum = v[0];
+    d->b_sumsq = v[1];
+    d->mu = v[2];
+    d->sd = v[3];
+    d->up = v[4];
+    d->up_min = v[5];
+    d->dn = v[6];
+    d->dn_max = v[7];
+    d->up_min_at = ser_get_u64(r);
+    d->dn_max_at = ser_get_u64(r);
+    d->alarms = ser_get_u64(r);
+    d->last_alarm = ser_get_u64(r);
+    d->last_onset = ser_get_u64(r);
+    return r->err ? -1 : 0;
+}

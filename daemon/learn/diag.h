@@ -1,0 +1,92 @@
+/*
+ * diag.h - is the value estimate any good, and did the plant change?
+ *
+ * Two checks that a model runs beside its estimators, on the same stream.
+ *
+ * Realised return: every state's discounted return G is known once its
+ * episode ends, or, for plants that never end, after a horizon H with
+ * gamma^H < 1e-3 (the tail beyond H weighs less than a thousandth).  Each
+ * estimator's prediction V(x) at the time the state was seen is compared
+ * with G: per estimator the mean error (bias) and the RMS error, over the
+ * whole run and over a sliding (exponentially weighted) window.
+ *
+ * Drift: a two-sided Page-Hinkley test (Page 1954; Hinkley 1971) on the
+ * primary estimator's TD error, standardised by the mean and sd of its first
+ * `burn_in` values after each (re)start: it raises an alarm when the
+ * cumulative deviation beyond `delta` (in sd units) exceeds `lambda`, reports
+ * the step where the change began (the last extreme of the cumulative sum),
+ * and starts again.
+ *
+ * Owned by a model; updated on its learner thread; allocates a source's
+ * buffer when the source is first seen, nothing per transition afterwards.
+ * Its state is part of the model's saved state, so a replay rebuilds it.
+ */
+#ifndef WORTH_DIAG_H
+#define WORTH_DIAG_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "ser.h"
+
+struct diag;
+
+/* Plain data: parameters (documented defaults in diag_params_default). */
+typedef struct diag_params_t {
+    double gamma;     /* the model's per-step discount (sets the default horizon) */
+    unsigned horizon; /* steps after which a continuing return counts as known; 0 = auto */
+    unsigned window;  /* length of the sliding window, in returns; 1000 */
+    double delta;     /* Page-Hinkley tolerance, in sd of the TD error; 0.5 */
+    double lambda;    /* Page-Hinkley threshold, in sd of the TD error; 50 */
+    unsigned burn_in; /* TD errors that set the reference mean and sd; 500 */
+} diag_params_t;
+
+/* Plain data: one estimator's realised-return figures. */
+typedef struct diag_est_t {
+    uint64_t n;         /* returns compared */
+    double bias;        /* mean of V(x) - G over the run */
+    double rms;         /* RMS of V(x) - G over the run */
+    double bias_window; /* the same over the sliding window */
+    double rms_window;
+} diag_est_t;
+
+/* Plain data: the drift detector. */
+typedef struct diag_drift_t {
+    uint64_t alarms;     /* alarms raised so far */
+    uint64_t last_alarm; /* step (1-based count of transitions) of the last alarm, 0 for none */
+    uint64_t last_onset; /* step where the last detected change began */
+    double statistic;    /* the larger of the two cumulative deviations now, in sd */
+    int armed;           /* 1 once the burn-in is over */
+} diag_drift_t;
+
+void diag_params_default(double gamma, diag_params_t *p);
+/*
+ * Builds the diagnostics for n_est estimators and `sources` source slots.
+ * Returns 0, or WORTH_E_BAD_PARAM with a message in err.
+ */
+int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag **out, char *err,
+             size_t errlen);
+void diag_free(struct diag *d);
+void diag_reset(struct diag *d);
+
+/*
+ * One transition of source src: pred holds each estimator's V(x) before the
+ * update, r and g the reward and discount, td the primary estimator's TD
+ * error.  Returns 1 when the drift alarm fired on this transition.
+ */
+int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
+                 double td);
+
+/* Query */
+unsigned diag_horizon(const struct diag *d);
+void diag_est(const struct diag *d, size_t i, diag_est_t *out);
+void diag_drift(const struct diag *d, diag_drift_t *out);
+/* Running mean of the spread (max - min) of the estimators' predictions. */
+double diag_spread(const struct diag *d);
+
+/* Persistence (inside the model's saved state). */
+void diag_save(const struct diag *d, ser_w *w);
+/* Returns 0, or -1 when the bytes do not fit (r->err is set). */
+int diag_load(struct diag *d, ser_r *r);
+
+#endif /* WORTH_DIAG_H */

@@ -1,0 +1,169 @@
+/*
+ * test_diag.c - realised-return checks and the Page-Hinkley drift alarm,
+ * against returns worked out by hand, and the alarm on a simulated chain whose
+ * reward shifts at a known step (20 seeded runs).
+ */
+#include "testutil.h"
+
+#include "diag.h"
+#include "model.h"
+#include "rng.h"
+#include "worth/errors.h"
+
+static struct diag *make(double gamma, unsigned horizon, size_t n_est)
+{
+    diag_params_t p;
+    diag_params_default(gamma, &p);
+    p.horizon = horizon;
+    struct diag *d = NULL;
+    char err[100];
+    assert_int_equal(diag_new(&p, n_est, 2, &d, err, sizeof err), 0);
+    return d;
+}
+
+/*
+ * An episode of rewards 1, 2, 3 with gamma 0.5: returns 1 + .5*2 + .25*3 =
+ * 2.75, 2 + .5*3 = 3.5, 3.  Estimator 0 predicts 3 everywhere, estimator 1
+ * predicts exactly.  Errors of 0: 0.25, -0.5, 0 -> bias -1/12, RMS
+ * sqrt((0.0625 + 0.25)/3).
+ */
+static void episodic_returns_by_hand(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.5, 0, 2);
+    const double G[3] = {2.75, 3.5, 3.0};
+    for (int t = 0; t < 3; t++) {
+        double pred[2] = {3.0, G[t]};
+        diag_observe(d, 0, pred, t + 1.0, 0.5, t == 2, 0.0);
+        diag_est_t e;
+        diag_est(d, 0, &e);
+        assert_int_equal(e.n, t == 2 ? 3 : 0); /* nothing is known before the episode ends */
+    }
+    diag_est_t e0, e1;
+    diag_est(d, 0, &e0);
+    diag_est(d, 1, &e1);
+    assert_near(e0.bias, -0.25 / 3, 1e-15);
+    assert_near(e0.rms, sqrt((0.0625 + 0.25) / 3), 1e-15);
+    assert_near(e1.rms, 0.0, 1e-15);
+    assert_near(e1.bias, 0.0, 1e-15);
+    /* The spread of the predictions: |3 - G| averaged, 0.25, 0.5, 0. */
+    assert_true(diag_spread(d) > 0);
+    diag_free(d);
+}
+
+/*
+ * Continuing, gamma 0.5: the automatic horizon is the least H with
+ * 0.5^H < 1e-3, i.e. 10.  With reward 1 every step the truncated return is
+ * sum_{k<10} 0.5^k = 2 (1 - 2^-10); a prediction of 2 errs by 2^-9.
+ */
+static void truncated_returns_after_the_horizon(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.5, 0, 1);
+    assert_int_equal(diag_horizon(d), 10);
+    double pred[1] = {2.0};
+    for (int t = 0; t < 30; t++)
+        diag_observe(d, 1, pred, 1.0, 0.5, 0, 0.0);
+    diag_est_t e;
+    diag_est(d, 0, &e);
+    assert_int_equal(e.n, 21); /* steps 0..20 have 10 rewards after them */
+    assert_near(e.bias, ldexp(1.0, -9), 1e-15);
+    assert_near(e.rms_window, ldexp(1.0, -9), 1e-15);
+    diag_free(d);
+}
+
+static void bad_parameters(void **state)
+{
+    (void)state;
+    diag_params_t p;
+    diag_params_default(0.9, &p);
+    struct diag *d = NULL;
+    char err[100];
+    p.window = 0;
+    assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
+    diag_params_default(0.9, &p);
+    p.lambda = 0;
+    assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
+    diag_params_default(0.9, &p);
+    p.burn_in = 1;
+    assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
+    assert_null(d);
+}
+
+/* A standard normal draw (Box-Muller) from the seeded generator. */
+static double normal(rng_t *g)
+{
+    double u = rng_unit(g), v = rng_unit(g);
+    return sqrt(-2.0 * log(1.0 - u)) * cos(6.283185307179586 * v);
+}
+
+#define SHIFT_AT 4000
+#define RUN_LEN  6000
+/* The documented detection delay this test holds the alarm to (diag.h defaults). */
+#define MAX_DELAY 400
+
+/*
+ * A 5-state cycle with one-hot features and TD(0) (alpha 0.02, gamma 0.9);
+ * rewards N(0, 1) until step SHIFT_AT, N(1, 1) after: a sensor offset.  Over
+ * 20 seeded runs the alarm must never fire before the shift and must fire
+ * within MAX_DELAY steps after it.
+ */
+static void drift_alarm_on_a_reward_shift(void **state)
+{
+    (void)state;
+    double lo[1] = {0}, hi[1] = {4};
+    feat_basis_t basis = {.kind = FEAT_RBF, .centers = 5, .width = 0.05};
+    est_params_t ep;
+    est_params_default(EST_TD, &ep);
+    ep.alpha = 0.02;
+    const char *names[1] = {"td"};
+    model_spec_t spec = {
+        .feat = {.dims = 1, .lo = lo, .hi = hi, .nbases = 1, .bases = &basis},
+        .gamma = 0.9,
+        .n_est = 1,
+        .est = &ep,
+        .est_names = names,
+    };
+    uint64_t worst = 0;
+    for (uint64_t seed = 1; seed <= 20; seed++) {
+        struct model *m = NULL;
+        char err[200];
+        assert_int_equal(model_new(&spec, &m, err, sizeof err), 0);
+        rng_t g;
+        rng_init(&g, seed);
+        uint64_t fired_at = 0;
+        for (int t = 0; t < RUN_LEN && !fired_at; t++) {
+            double x[1] = {t % 5}, xn[1] = {(t + 1) % 5};
+            double r = normal(&g) + (t >= SHIFT_AT ? 1.0 : 0.0);
+            model_obs_t o = {
+                .x = x, .x_len = 1, .r = r, .x_next = xn, .x_next_len = 1, .dt_s = NAN};
+            assert_int_equal(model_observe(m, &o, err, sizeof err), 0);
+            diag_drift_t dr;
+            diag_drift(model_diag(m), &dr);
+            if (dr.alarms)
+                fired_at = dr.last_alarm;
+        }
+        if (fired_at && fired_at <= SHIFT_AT)
+            print_error("seed %llu: false alarm at step %llu (shift at %d)\n",
+                        (unsigned long long)seed, (unsigned long long)fired_at, SHIFT_AT);
+        assert_true(fired_at > SHIFT_AT);
+        uint64_t delay = fired_at - SHIFT_AT;
+        if (delay > worst)
+            worst = delay;
+        model_free(m);
+    }
+    print_message("20 runs: no false alarm; detection delay at most %llu steps\n",
+                  (unsigned long long)worst);
+    assert_true(worst <= MAX_DELAY);
+}
+
+int main(void)
+{
+    const struct CMUnitTest tests[] = {
+        cmocka_unit_test(episodic_returns_by_hand),
+        cmocka_unit_test(truncated_returns_after_the_horizon),
+        cmocka_unit_test(bad_parameters),
+        cmocka_unit_test(drift_alarm_on_a_reward_shift),
+    };
+    return cmocka_run_group_tests(tests, NULL, NULL);
+}
