@@ -70,8 +70,10 @@ struct learner {
     size_t cap, stride;
     uint64_t head, durable, tail;
     int stop, discard, want_space;
-    uint64_t seq;      /* loop thread: last seq given out */
-    uint64_t training; /* loop thread: last training ordinal given out */
+    uint64_t seq;          /* loop thread: last seq given out */
+    uint64_t ckpt_count;   /* under mu: the writer's count of valid checkpoints */
+    double ckpt_newest_at; /* under mu */
+    uint64_t training;     /* loop thread: last training ordinal given out */
 
     /* Loop-side mirror of the model's source table (a superset: rollbacks free no slot). */
     char (*src)[MODEL_NAME_MAX + 1];
@@ -153,8 +155,10 @@ static void publish(struct learner *l, double last_update)
         learner_sample_t *h = &l->hist[l->n_hist++];
         h->t = last_update;
         h->seq = l->applied_seq;
-        for (size_t i = 0; i < l->n_est; i++)
+        for (size_t i = 0; i < l->n_est; i++) {
             h->td_rms[i] = b->est[i].td_rms;
+            h->realised_rms[i] = b->realised[i].n ? b->realised[i].rms_window : NAN;
+        }
     }
     pthread_mutex_unlock(&l->snap_mu);
 }
@@ -197,14 +201,8 @@ static void drift_event(struct learner *l, const diag_drift_t *dr)
     uint64_t onset_seq = l->applied_seq > back ? l->applied_seq - back : 0;
     say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
              (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
-    char detail[256];
-    snprintf(detail, sizeof detail,
-             "{\"seq\":%llu,\"onset_seq\":%llu,\"step\":%llu,\"onset_step\":%llu,"
-             "\"alarms\":%llu}",
-             (unsigned long long)l->applied_seq, (unsigned long long)onset_seq,
-             (unsigned long long)dr->last_alarm, (unsigned long long)dr->last_onset,
-             (unsigned long long)dr->alarms);
-    writer_event(l->o.writer, l, "drift", detail);
+    writer_drift(l->o.writer, l, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
+                 dr->alarms, model_diag_params(l->m)->on_drift);
 }
 
 struct train_ctx {
@@ -588,6 +586,14 @@ void learner_set_durable(struct learner *l, uint64_t to)
     pthread_mutex_unlock(&l->mu);
 }
 
+void learner_set_checkpoint_info(struct learner *l, uint64_t count, double newest_at)
+{
+    pthread_mutex_lock(&l->mu);
+    l->ckpt_count = count;
+    l->ckpt_newest_at = newest_at;
+    pthread_mutex_unlock(&l->mu);
+}
+
 int64_t learner_db_id(const struct learner *l)
 {
     return l->db_id;
@@ -641,6 +647,8 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->received = l->seq;
     pthread_mutex_lock(&l->mu);
     out->queued = (size_t)(l->head - l->tail);
+    out->checkpoints = l->ckpt_count;
+    out->newest_checkpoint_at = l->ckpt_newest_at;
     pthread_mutex_unlock(&l->mu);
 }
 

@@ -107,6 +107,8 @@ typedef struct learner_stats_t {
     diag_drift_t drift;                 /* the drift detector */
     double spread;                      /* running spread of the estimators' predictions */
     unsigned horizon;                   /* steps after which a continuing return is known */
+    uint64_t checkpoints;               /* valid checkpoints stored (as the writer last saw) */
+    double newest_checkpoint_at;        /* created_at of the newest, 0 for none */
     double last_update; /* wall clock, seconds; 0 before the first update */
 } learner_stats_t;
 
@@ -114,7 +116,8 @@ typedef struct learner_stats_t {
 typedef struct learner_sample_t {
     double t;                      /* wall clock, seconds */
     uint64_t seq;                  /* last transition learnt */
-    double td_rms[MODEL_MAX_EST];  /* each estimator's RMS TD error then */
+    double td_rms[MODEL_MAX_EST];       /* each estimator's RMS TD error then */
+    double realised_rms[MODEL_MAX_EST]; /* and its realised-return RMS (window); NAN before any */
 } learner_sample_t;
 
 /* Most samples learner_history returns. */
@@ -188,6 +191,8 @@ void learner_set_durable(struct learner *l, uint64_t to);
 /* The model's id in the database (set by the writer before any record is written). */
 int64_t learner_db_id(const struct learner *l);
 void learner_set_db_id(struct learner *l, int64_t id);
+/* The writer's count of valid checkpoints and the newest one's time (any thread). */
+void learner_set_checkpoint_info(struct learner *l, uint64_t count, double newest_at);
 
 /* Queries [loop] */
 

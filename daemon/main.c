@@ -11,6 +11,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/socket.h>
 #include <sys/stat.h>
 
 #include "mem.h"
@@ -40,6 +41,8 @@ static const char usage[] =
     "  --db-max-mb N       cap the database at N MiB (default 0: no cap); when full, ingest\n"
     "                      is refused with storage_full and queries go on\n"
     "  --listen HOST:PORT  also listen on TCP; a non-loopback address needs --token-file\n"
+    "  --metrics HOST:PORT serve GET /metrics (Prometheus text format) over HTTP;\n"
+    "                      a non-loopback address needs --token-file (sent as a bearer token)\n"
     "  --token-file FILE   TCP clients must send {\"op\":\"auth\",\"token\":...} first\n"
     "  --log-level LEVEL   error, warn, info (default) or debug; logs go to stderr\n"
     "  --max-line BYTES    longest request line (default 1048576)\n"
@@ -121,6 +124,7 @@ int main(int argc, char **argv)
         {"checkpoint-every", required_argument, NULL, 'c'},
         {"keep", required_argument, NULL, 'k'},
         {"db-max-mb", required_argument, NULL, 'M'},
+        {"metrics", required_argument, NULL, 'P'},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -180,6 +184,9 @@ int main(int argc, char **argv)
         case 'k':
             o.keep = (unsigned)parse_size("keep", optarg, 1, 1000000);
             break;
+        case 'P':
+            o.metrics = optarg;
+            break;
         case 'M':
             o.db_max_mb = parse_size("db-max-mb", optarg, 0, 1ull << 30);
             break;
@@ -205,6 +212,26 @@ int main(int argc, char **argv)
             return 2;
         }
         o.queue = o.max_batch;
+    }
+    /* Refuse a bad listening address before touching the database. */
+    const char *addrs[2] = {o.listen, o.metrics};
+    const char *names[2] = {"--listen", "--metrics"};
+    for (int i = 0; i < 2; i++) {
+        struct sockaddr_storage ss;
+        int loopback = 0;
+        if (!addrs[i])
+            continue;
+        if (server_parse_hostport(addrs[i], &ss, &loopback) != 0) {
+            fprintf(stderr, "worthd: %s %s: expected HOST:PORT with a numeric address\n", names[i],
+                    addrs[i]);
+            return 2;
+        }
+        if (!loopback && !o.token) {
+            fprintf(stderr,
+                    "worthd: refusing %s %s, a non-loopback address, without --token-file\n",
+                    names[i], addrs[i]);
+            return 1;
+        }
     }
     signal(SIGPIPE, SIG_IGN);
     openblas_set_num_threads(1);

@@ -106,6 +106,7 @@ int cmd_rollback(struct cli *cli, int argc, char **argv);
 int cmd_backup(struct cli *cli, int argc, char **argv);
 int cmd_train(struct cli *cli, int argc, char **argv);
 int cmd_stats(struct cli *cli, int argc, char **argv);
+int cmd_events(struct cli *cli, int argc, char **argv);
 
 /* plot.c, watch.c */
 int cmd_plot(struct cli *cli, int argc, char **argv);

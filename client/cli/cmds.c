@@ -878,9 +878,20 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
     const cJSON *e;
     char v[128];
     for (e = r->child; t && e; e = e->next) {
-        if (strcmp(e->string, "ok") == 0 || strcmp(e->string, "id") == 0 || cJSON_IsObject(e) ||
-            cJSON_IsArray(e))
+        if (strcmp(e->string, "ok") == 0 || strcmp(e->string, "id") == 0 || cJSON_IsArray(e) ||
+            strcmp(e->string, "estimators") == 0)
             continue;
+        if (cJSON_IsObject(e)) { /* e.g. drift: one row per figure, "drift.alarms" */
+            const cJSON *f;
+            cJSON_ArrayForEach(f, e)
+            {
+                char key[96];
+                snprintf(key, sizeof key, "%s.%s", e->string, f->string);
+                fmt_json(v, sizeof v, f);
+                table_rowv(t, key, v);
+            }
+            continue;
+        }
         fmt_json(v, sizeof v, e);
         table_rowv(t, e->string, v);
     }
@@ -896,6 +907,8 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         const cJSON *f;
         cJSON_ArrayForEach(f, e)
         {
+            if (cJSON_IsObject(f))
+                continue; /* realised: its own table below */
             size_t k = 0;
             while (k < nk && strcmp(keys[k], f->string) != 0)
                 k++;
@@ -936,6 +949,87 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
             table_row(t, row);
         }
         printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
+    /* Realised returns: how each estimator's predictions compared with what happened. */
+    t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
+    if (t) {
+        table_rowv(t, "REALISED", "N", "BIAS", "RMS", "BIAS_WINDOW", "RMS_WINDOW");
+        cJSON_ArrayForEach(e, ests)
+        {
+            const cJSON *re = get(e, "realised");
+            char c[5][64];
+            static const char *const k5[5] = {"n", "bias", "rms", "bias_window", "rms_window"};
+            for (int k = 0; k < 5; k++)
+                fmt_json(c[k], sizeof c[k], get(re, k5[k]));
+            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4]);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
+    cJSON_Delete(r);
+    return EXIT_OK;
+}
+
+int cmd_events(struct cli *cli, int argc, char **argv)
+{
+    const char *since = NULL, *limit = NULL;
+    struct opt opts[] = {{"--since", &since, NULL}, {"--limit", &limit, NULL}, {NULL, NULL, NULL}};
+    char *pos[1] = {NULL};
+    int np;
+    int ex = parse_args("events", argc, argv, opts, pos, 1, 0, &np);
+    if (ex)
+        return ex;
+    double sv = 0;
+    long long lv = 1000;
+    if (since && parse_double(since, &sv))
+        return cli_usage("events", "--since must be a time in seconds since 1970");
+    if (limit && parse_int(limit, 1, 100000, &lv))
+        return cli_usage("events", "--limit must be an integer 1..100000");
+    cJSON *req = cJSON_CreateObject();
+    if (!req)
+        return cli_error(EXIT_USAGE, "out of memory");
+    cJSON_AddStringToObject(req, "op", "events");
+    if (np)
+        cJSON_AddStringToObject(req, "model", pos[0]);
+    cJSON_AddNumberToObject(req, "since", sv);
+    cJSON_AddNumberToObject(req, "limit", (double)lv);
+    if (cli->json)
+        return cli_raw(cli, req);
+    if ((ex = cli_connect(cli))) {
+        cJSON_Delete(req);
+        return ex;
+    }
+    char *text = cJSON_PrintUnformatted(req);
+    cJSON_Delete(req);
+    const char *json;
+    int rc = worth_request(cli->c, text ? text : "{}", &json);
+    cJSON_free(text);
+    if (rc)
+        return cli_fail(cli, rc);
+    cJSON *r = parse_reply(json);
+    if (!r)
+        return EXIT_SERVER;
+    struct table *t = table_new(4);
+    if (t) {
+        table_left(t);
+        table_rowv(t, "EVENT", "TIME", "KIND", "DETAIL");
+        const cJSON *e;
+        cJSON_ArrayForEach(e, get(r, "events"))
+        {
+            char id[32], when[64], detail[256];
+            fmt_json(id, sizeof id, get(e, "event"));
+            time_t at = (time_t)get(e, "at")->valuedouble;
+            struct tm tm;
+            if (localtime_r(&at, &tm))
+                strftime(when, sizeof when, "%Y-%m-%d %H:%M:%S", &tm);
+            else
+                snprintf(when, sizeof when, "-");
+            fmt_json(detail, sizeof detail, get(e, "detail"));
+            table_rowv(t, id, when, get(e, "kind")->valuestring, detail);
+        }
         table_print(t, stdout);
         table_free(t);
     }

@@ -258,7 +258,8 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
         fputs(")", f);
     }
     fprintf(f,
-            " after seq %llu</text>\n<g class=\"cells\" shape-rendering=\"crispEdges\" data-x-dim=\"%lld\" "
+            " after seq %llu</text>\n<g class=\"cells\" shape-rendering=\"crispEdges\" "
+            "data-x-dim=\"%lld\" "
             "data-y-dim=\"%lld\" data-x-lo=\"%.17g\" data-x-hi=\"%.17g\" data-y-lo=\"%.17g\" "
             "data-y-hi=\"%.17g\">\n",
             (unsigned long long)seq, dx, dy, lo[dx], hi[dx], lo[dy], hi[dy]);
@@ -341,8 +342,13 @@ static int history(struct cli *cli, const char *model, const char *out)
         double seq = cJSON_GetObjectItemCaseSensitive(h, "seq")->valuedouble;
         s0 = fmin(s0, seq);
         s1 = fmax(s1, seq);
-        cJSON_ArrayForEach(v, cJSON_GetObjectItemCaseSensitive(h, "td_rms")) if (cJSON_IsNumber(v))
-            y1 = fmax(y1, v->valuedouble);
+        for (int pass = 0; pass < 2; pass++)
+            cJSON_ArrayForEach(
+                v, cJSON_GetObjectItemCaseSensitive(h, pass ? "realised_rms" : "td_rms"))
+            {
+                if (cJSON_IsNumber(v))
+                    y1 = fmax(y1, v->valuedouble);
+            }
     }
     if (nh == 0) {
         s0 = 0;
@@ -367,7 +373,8 @@ static int history(struct cli *cli, const char *model, const char *out)
             W, H, W, H, W, H, W / 2);
     xml(f, model);
     fputs(" per estimator</text>\n", f);
-    axes(f, s0, s1, 0, y1 * 1.05, "transition (seq)", "RMS TD error");
+    axes(f, s0, s1, 0, y1 * 1.05, "transition (seq)",
+         "RMS error: TD (solid), realised return (dashed)");
     for (int k = 0; k < ne; k++) {
         const char *name = cJSON_GetArrayItem(names, k)->valuestring;
         const char *col = PALETTE[k % 8];
@@ -378,6 +385,24 @@ static int history(struct cli *cli, const char *model, const char *out)
         {
             double seq = cJSON_GetObjectItemCaseSensitive(h, "seq")->valuedouble;
             const cJSON *y = cJSON_GetArrayItem(cJSON_GetObjectItemCaseSensitive(h, "td_rms"), k);
+            if (!cJSON_IsNumber(y))
+                continue;
+            fprintf(f, "%.2f,%.2f ", PL + (seq - s0) / (s1 - s0) * PW,
+                    PT + PH - y->valuedouble / (y1 * 1.05) * PH);
+        }
+        fputs("\"/>\n", f);
+        /* The realised-return RMS error of the same estimator, dashed. */
+        fprintf(f, "<polyline class=\"series-realised\" data-estimator=\"");
+        xml(f, name);
+        fprintf(f,
+                "\" fill=\"none\" stroke=\"%s\" stroke-width=\"2\" stroke-dasharray=\"6 4\" "
+                "points=\"",
+                col);
+        cJSON_ArrayForEach(h, hist)
+        {
+            double seq = cJSON_GetObjectItemCaseSensitive(h, "seq")->valuedouble;
+            const cJSON *y =
+                cJSON_GetArrayItem(cJSON_GetObjectItemCaseSensitive(h, "realised_rms"), k);
             if (!cJSON_IsNumber(y))
                 continue;
             fprintf(f, "%.2f,%.2f ", PL + (seq - s0) / (s1 - s0) * PW,

@@ -54,10 +54,18 @@ static int draw(struct cli *cli, const char *model, int tty, double *last_t, dou
     fmt_num(b, sizeof b, getnum(r, "applied"));
     fmt_num(c, sizeof c, getnum(r, "queue"));
     fmt_num(d, sizeof d, rate);
-    printf("received %s   applied %s   queue %s   rate %s/s\n\n", a, b, c, d);
-    struct table *tb = table_new(6);
+    printf("received %s   applied %s   queue %s   rate %s/s\n", a, b, c, d);
+    const cJSON *dr = cJSON_GetObjectItemCaseSensitive(r, "drift");
+    fmt_num(a, sizeof a, getnum(dr, "alarms"));
+    fmt_num(b, sizeof b, getnum(dr, "statistic"));
+    fmt_num(c, sizeof c, getnum(dr, "last_alarm_step"));
+    fmt_num(d, sizeof d, getnum(r, "spread"));
+    printf("drift alarms %s (last at step %s)   statistic %s   spread %s%s\n\n", a, c, b, d,
+           getnum(dr, "alarms") > 0 ? "   << DRIFT: consider a rollback" : "");
+    struct table *tb = table_new(7);
     if (tb) {
-        table_rowv(tb, "estimator", "kind", "updates", "td_rms", "td_last", "guarded");
+        table_rowv(tb, "estimator", "kind", "updates", "td_rms", "td_last", "guarded",
+                   "realised_rms");
         const cJSON *est;
         cJSON_ArrayForEach(est, cJSON_GetObjectItemCaseSensitive(r, "estimators"))
         {
@@ -67,7 +75,10 @@ static int draw(struct cli *cli, const char *model, int tty, double *last_t, dou
             fmt_num(c, sizeof c, getnum(est, "td_last"));
             fmt_num(e, sizeof e, getnum(est, "guarded"));
             snprintf(f, sizeof f, "%s", cJSON_IsString(kind) ? kind->valuestring : "?");
-            table_rowv(tb, est->string, f, a, b, c, e);
+            char g[64];
+            fmt_num(g, sizeof g,
+                    getnum(cJSON_GetObjectItemCaseSensitive(est, "realised"), "rms_window"));
+            table_rowv(tb, est->string, f, a, b, c, e, g);
         }
         table_print(tb, stdout);
         table_free(tb);

@@ -34,6 +34,7 @@ const struct cmd cmds[] = {
     {"backup", cmd_backup, NULL, NULL},
     {"train", cmd_train, NULL, NULL},
     {"stats", cmd_stats, NULL, NULL},
+    {"events", cmd_events, NULL, NULL},
     {"watch", cmd_watch, NULL, NULL},
     {"plot", cmd_plot, NULL, NULL},
     {"help", cmd_help, NULL, NULL},

@@ -246,6 +246,11 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
     return drift(d, td);
 }
 
+const diag_params_t *diag_params(const struct diag *d)
+{
+    return &d->p;
+}
+
 unsigned diag_horizon(const struct diag *d)
 {
     return d->horizon;

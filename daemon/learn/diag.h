@@ -39,6 +39,7 @@ typedef struct diag_params_t {
     double delta;     /* Page-Hinkley tolerance, in sd of the TD error; 0.5 */
     double lambda;    /* Page-Hinkley threshold, in sd of the TD error; 50 */
     unsigned burn_in; /* TD errors that set the reference mean and sd; 500 */
+    int on_drift;     /* 1: keep a "pre-drift" checkpoint at each alarm (the daemon does); 0 */
 } diag_params_t;
 
 /* Plain data: one estimator's realised-return figures. */
@@ -78,6 +79,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
                  double td);
 
 /* Query */
+const diag_params_t *diag_params(const struct diag *d);
 unsigned diag_horizon(const struct diag *d);
 void diag_est(const struct diag *d, size_t i, diag_est_t *out);
 void diag_drift(const struct diag *d, diag_drift_t *out);

@@ -289,6 +289,11 @@ const struct diag *model_diag(const struct model *m)
     return m->diag;
 }
 
+const diag_params_t *model_diag_params(const struct model *m)
+{
+    return diag_params(m->diag);
+}
+
 void model_counts(const struct model *m, model_counts_t *out)
 {
     out->applied = m->applied;

@@ -112,6 +112,8 @@ const struct est *model_est(const struct model *m, size_t i);
 const struct feat *model_feat(const struct model *m);
 /* The model's diagnostics (realised returns, drift), borrowed. */
 const struct diag *model_diag(const struct model *m);
+/* Its parameters (borrowed). */
+const diag_params_t *model_diag_params(const struct model *m);
 void model_counts(const struct model *m, model_counts_t *out);
 /* Doubles of workspace model_value needs. */
 size_t model_work_size(const struct model *m);

@@ -39,6 +39,7 @@
 
 #include "arena.h"
 #include "db.h"
+#include "metrics.h"
 #include "mem.h"
 #include "proto.h"
 #include "recover.h"
@@ -96,6 +97,7 @@ struct server {
     size_t n_conns;
     struct proto *proto;
     struct writer *writer;
+    struct metrics *metrics;
     int stopping;
 
     /* Outbox: learner events, filled by learner threads under mu. */
@@ -539,7 +541,7 @@ static int listen_unix(struct server *s)
 }
 
 /* Parses HOST:PORT or [V6]:PORT into addr; returns 0, or -1. */
-static int parse_hostport(const char *spec, struct sockaddr_storage *addr, int *loopback)
+int server_parse_hostport(const char *spec, struct sockaddr_storage *addr, int *loopback)
 {
     char host[256];
     const char *colon = strrchr(spec, ':');
@@ -576,7 +578,7 @@ static int listen_tcp(struct server *s)
     struct sockaddr_storage addr;
     int loopback = 0;
     memset(&addr, 0, sizeof addr);
-    if (parse_hostport(s->o->listen, &addr, &loopback) != 0) {
+    if (server_parse_hostport(s->o->listen, &addr, &loopback) != 0) {
         say_error("--listen %s: expected HOST:PORT with a numeric address", s->o->listen);
         return -1;
     }
@@ -613,6 +615,8 @@ static void stop(struct server *s, const char *why)
     }
     if (s->have_tcp)
         uv_close((uv_handle_t *)&s->tcp_listener, NULL);
+    metrics_close(s->metrics);
+    s->metrics = NULL;
     for (struct conn *c = s->conns; c; c = c->next)
         update_reading(c);
     /* Learners apply everything accepted (the writer still commits it), checkpoint, end. */
@@ -628,6 +632,12 @@ static void stop(struct server *s, const char *why)
     uv_close((uv_handle_t *)&s->sigterm, NULL);
     uv_close((uv_handle_t *)&s->wake, NULL);
     uv_close((uv_handle_t *)&s->idle, NULL);
+}
+
+static char *render_metrics(void *ctx, size_t *len)
+{
+    struct server *s = ctx;
+    return proto_metrics_text(s->proto, len);
 }
 
 static void on_signal(uv_signal_t *h, int signum)
@@ -687,7 +697,9 @@ int server_run(const server_opts_t *opts)
     writer_start(s->writer);
     writer_event(s->writer, NULL, "start", "{}");
 
-    if (ready && listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0)) {
+    if (ready && listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0) &&
+        (!opts->metrics || metrics_start(&s->loop, opts->metrics, opts->token, render_metrics, s,
+                                         &s->metrics) == 0)) {
         status = 0;
     } else {
         stop(s, "start-up failed");

@@ -33,6 +33,7 @@ typedef struct server_opts_t {
     uint64_t checkpoint_every; /* automatic checkpoint period in transitions; 0 = off */
     unsigned keep;             /* unlabelled checkpoints kept per model */
     uint64_t db_max_mb;        /* database size cap in MiB; 0 = none */
+    const char *metrics;       /* "HOST:PORT" of the HTTP metrics listener, or NULL */
 } server_opts_t;
 
 /*
@@ -41,6 +42,10 @@ typedef struct server_opts_t {
  * could not start (the reason is logged).
  */
 int server_run(const server_opts_t *opts);
+
+struct sockaddr_storage;
+/* Parses "HOST:PORT" or "[V6]:PORT" (numeric, or localhost); 0 or -1.  *loopback set. */
+int server_parse_hostport(const char *spec, struct sockaddr_storage *addr, int *loopback);
 
 /* For the protocol layer, on the loop thread: */
 

@@ -20,6 +20,8 @@
 #include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
+#include <stdlib.h>
+#include <time.h>
 
 #include "arena.h"
 #include "mem.h"
@@ -1198,10 +1200,38 @@ static int do_history(struct req *rq)
                 out_s(o, ",");
             out_num(o, p->hist[i].td_rms[k]);
         }
+        out_s(o, "],\"realised_rms\":[");
+        for (size_t k = 0; k < model_n_est(m); k++) {
+            if (k)
+                out_s(o, ",");
+            out_num(o, p->hist[i].realised_rms[k]);
+        }
         out_s(o, "]}");
     }
     out_s(o, "]");
     out_end(o, rq->c);
+    return PROTO_DONE;
+}
+
+static int do_events(struct req *rq)
+{
+    static const char *const keys[] = {"op", "id", "model", "since", "limit", NULL};
+    const char *bad;
+    if (!only_keys(rq->root, keys, &bad))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
+    struct learner *l = NULL;
+    if (field(rq->root, "model") && !(l = need_model(rq)))
+        return PROTO_DONE;
+    double since = 0, limit = 1000;
+    int code = 0;
+    if (!opt_number(rq->root, "since", &since, &code, rq->p->err, sizeof rq->p->err, "") ||
+        !opt_number(rq->root, "limit", &limit, &code, rq->p->err, sizeof rq->p->err, ""))
+        return fail_done(rq, code, "%s", rq->p->err);
+    if (limit != floor(limit) || limit < 1 || limit > 100000)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"limit\" must be an integer 1..100000");
+    keep_id(rq);
+    writer_list_events(rq->p->w, l, since, (size_t)limit, conn_id(rq->c));
+    conn_wait(rq->c);
     return PROTO_DONE;
 }
 
@@ -1345,6 +1375,7 @@ static const struct {
     {"rollback", do_rollback},
     {"backup", do_backup},
     {"history", do_history},
+    {"events", do_events},
 };
 
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
@@ -1593,4 +1624,136 @@ void proto_free(struct proto *p)
     mem_free(p->hist);
     mem_free(p->out.b);
     mem_free(p);
+}
+
+/* A label value, escaped as the exposition format asks (backslash, quote, newline). */
+static void out_label(struct out *o, const char *s)
+{
+    out_raw(o, "\"", 1);
+    for (; *s; s++) {
+        if (*s == '\\' || *s == '"') {
+            char e[2] = {'\\', *s};
+            out_raw(o, e, 2);
+        } else if (*s == '\n') {
+            out_raw(o, "\\n", 2);
+        } else {
+            out_raw(o, s, 1);
+        }
+    }
+    out_raw(o, "\"", 1);
+}
+
+/* A sample value in the exposition format (Go float syntax: NaN, +Inf, -Inf). */
+static void out_val(struct out *o, double v)
+{
+    if (isnan(v))
+        out_s(o, "NaN");
+    else if (isinf(v))
+        out_s(o, v > 0 ? "+Inf" : "-Inf");
+    else
+        out_fmt(o, "%.17g", v);
+}
+
+static void metric_head(struct out *o, const char *name, const char *type, const char *help)
+{
+    out_fmt(o, "# HELP %s %s\n# TYPE %s %s\n", name, help, name, type);
+}
+
+char *proto_metrics_text(struct proto *p, size_t *len)
+{
+    struct out o = {NULL, 0, 0};
+    learner_stats_t *st = mem_calloc(p->n ? p->n : 1, sizeof *st);
+    for (size_t i = 0; i < p->n; i++)
+        learner_stats(p->models[i]->l, &st[i]);
+    static const struct {
+        const char *name, *type, *help;
+    } per_model[] = {
+        {"worth_transitions_received_total", "counter", "Transitions accepted."},
+        {"worth_transitions_applied_total", "counter", "Transitions learnt."},
+        {"worth_queue_depth", "gauge", "Transitions accepted and not yet learnt."},
+        {"worth_drift_alarms_total", "counter", "Drift alarms raised."},
+        {"worth_checkpoints", "gauge", "Valid checkpoints stored."},
+        {"worth_checkpoint_age_seconds", "gauge", "Age of the newest checkpoint."},
+    };
+    struct timespec ts;
+    clock_gettime(CLOCK_REALTIME, &ts);
+    double now = (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+    for (size_t k = 0; k < sizeof per_model / sizeof per_model[0]; k++) {
+        metric_head(&o, per_model[k].name, per_model[k].type, per_model[k].help);
+        for (size_t i = 0; i < p->n; i++) {
+            double v = 0;
+            switch (k) {
+            case 0:
+                v = (double)st[i].received;
+                break;
+            case 1:
+                v = (double)st[i].applied;
+                break;
+            case 2:
+                v = (double)(st[i].received - st[i].applied);
+                break;
+            case 3:
+                v = (double)st[i].drift.alarms;
+                break;
+            case 4:
+                v = (double)st[i].checkpoints;
+                break;
+            case 5:
+                if (!st[i].checkpoints)
+                    continue; /* no checkpoint: no age */
+                v = now - st[i].newest_checkpoint_at;
+                break;
+            }
+            out_s(&o, per_model[k].name);
+            out_s(&o, "{model=");
+            out_label(&o, learner_name(p->models[i]->l));
+            out_s(&o, "} ");
+            out_val(&o, v);
+            out_s(&o, "\n");
+        }
+    }
+    for (int k = 0; k < 2; k++) {
+        const char *name = k ? "worth_realised_return_rms" : "worth_td_error_rms";
+        metric_head(&o, name, "gauge",
+                    k ? "Realised-return RMS error over the sliding window."
+                      : "Running RMS TD error.");
+        for (size_t i = 0; i < p->n; i++) {
+            const struct model *m = learner_model(p->models[i]->l);
+            for (size_t e = 0; e < model_n_est(m); e++) {
+                out_s(&o, name);
+                out_s(&o, "{model=");
+                out_label(&o, learner_name(p->models[i]->l));
+                out_s(&o, ",estimator=");
+                out_label(&o, model_est_name(m, e));
+                out_s(&o, "} ");
+                out_val(&o, k ? st[i].realised[e].rms_window : st[i].est[e].td_rms);
+                out_s(&o, "\n");
+            }
+        }
+    }
+    uint64_t counts[WRITER_HIST_N], count = 0;
+    double sum = 0;
+    writer_commit_hist(p->w, counts, &sum, &count);
+    metric_head(&o, "worth_commit_seconds", "histogram", "Duration of the log's commits.");
+    for (int b = 0; b < WRITER_HIST_N; b++) {
+        out_s(&o, "worth_commit_seconds_bucket{le=\"");
+        if (isinf(writer_hist_le[b]))
+            out_s(&o, "+Inf");
+        else
+            out_fmt(&o, "%g", writer_hist_le[b]);
+        out_fmt(&o, "\"} %llu\n", (unsigned long long)counts[b]);
+    }
+    out_s(&o, "worth_commit_seconds_sum ");
+    out_val(&o, sum);
+    out_fmt(&o, "\nworth_commit_seconds_count %llu\n", (unsigned long long)count);
+    mem_free(st);
+    /* The caller frees with free(): hand over a malloc'd copy. */
+    char *text = malloc(o.len + 1);
+    if (text) {
+        memcpy(text, o.b, o.len);
+        text[o.len] = 0;
+    }
+    *len = text ? o.len : 0;
+    mem_free(o.b);
+    return text;
 }

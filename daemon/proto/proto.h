@@ -86,6 +86,11 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
 void proto_bulk_truncated(struct proto *p, struct conn *c, size_t got);
 /* A line exceeded max_line: answers line_too_long (the server then closes). */
 void proto_line_too_long(struct proto *p, struct conn *c);
+/*
+ * The Prometheus exposition text of every model's figures and the writer's
+ * commit latencies (malloc'd, the caller frees); *len gets its length.
+ */
+char *proto_metrics_text(struct proto *p, size_t *len);
 /* Handles an event a learner posted (delivered on the loop thread). */
 void proto_event(struct proto *p, struct server *s, const learner_event_t *ev);
 

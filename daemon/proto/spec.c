@@ -586,6 +586,9 @@ static char *canonical(const spec_t *s)
         bad |= add_double(dg, "drift_delta", s->diag.delta);
         bad |= add_double(dg, "drift_lambda", s->diag.lambda);
         bad |= add_u64(dg, "drift_burn_in", s->diag.burn_in);
+        bad |= cJSON_AddStringToObject(dg, "on_drift", s->diag.on_drift ? "checkpoint" : "none")
+                   ? 0
+                   : -1;
     }
 
     char *text = bad ? NULL : cJSON_PrintUnformatted(root);
@@ -652,6 +655,12 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
                 s->diag.delta = v;
             else
                 s->diag.lambda = v;
+        } else if (strcmp(f->string, "on_drift") == 0) {
+            if (!cJSON_IsString(f) || (strcmp(f->valuestring, "none") != 0 &&
+                                       strcmp(f->valuestring, "checkpoint") != 0))
+                return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                                "diagnostics.on_drift must be \"none\" or \"checkpoint\"");
+            s->diag.on_drift = strcmp(f->valuestring, "checkpoint") == 0;
         } else {
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
                             "diagnostics: unknown field \"%.32s\"", f->string);

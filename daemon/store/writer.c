@@ -38,7 +38,17 @@
 #include "say.h"
 #include "worth/errors.h"
 
-enum job_kind { J_ADD, J_CREATE, J_DROP, J_CHECKPOINT, J_LIST, J_BACKUP, J_EVENT };
+enum job_kind {
+    J_ADD,
+    J_CREATE,
+    J_DROP,
+    J_CHECKPOINT,
+    J_LIST,
+    J_BACKUP,
+    J_EVENT,
+    J_DRIFT,
+    J_EVENTS
+};
 
 struct job {
     enum job_kind kind;
@@ -48,6 +58,8 @@ struct job {
     uint8_t *blob;
     size_t len, features;
     uint64_t seq, training;
+    uint64_t a, b, c; /* J_DRIFT: onset seq, step, onset step */
+    double since;     /* J_EVENTS */
     int64_t id;
     struct job *next;
 };
@@ -64,6 +76,9 @@ struct writer {
     size_t n, cap;
     uint64_t *from, *upto; /* per model: records [from, upto) taken into the open transaction */
     sqlite3_stmt *ins_tx, *ins_tr;
+    /* Commit-latency histogram (under mu). */
+    uint64_t hist[WRITER_HIST_N], hist_count;
+    double hist_sum;
     learner_post_fn post;
     void *ctx;
 };
@@ -163,6 +178,25 @@ static void add_model(struct writer *w, struct learner *l)
         w->upto = mem_realloc(w->upto, w->cap * sizeof *w->upto);
     }
     w->models[w->n++] = l;
+}
+
+const double writer_hist_le[WRITER_HIST_N] = {0.0005, 0.001, 0.002, 0.005, 0.01, 0.02,
+                                              0.05,   0.1,   0.25,  0.5,   1.0,  INFINITY};
+
+/* Tells l how many valid checkpoints it has and when the newest was taken. */
+static void refresh_checkpoint_info(struct writer *w, struct learner *l)
+{
+    sqlite3_stmt *st = NULL;
+    if (sqlite3_prepare_v2(w->db,
+                           "SELECT count(*), COALESCE(max(created_at), 0) FROM checkpoints"
+                           " WHERE model = ? AND invalid = 0",
+                           -1, &st, NULL) == SQLITE_OK) {
+        sqlite3_bind_int64(st, 1, learner_db_id(l));
+        if (sqlite3_step(st) == SQLITE_ROW)
+            learner_set_checkpoint_info(l, (uint64_t)sqlite3_column_int64(st, 0),
+                                        sqlite3_column_double(st, 1));
+    }
+    sqlite3_finalize(st);
 }
 
 /* ---- jobs -------------------------------------------------------------------------------- */
@@ -284,6 +318,7 @@ static void job_checkpoint(struct writer *w, struct job *j)
         post_reply(w, j->l, j->conn_id, code, "checkpoint not stored: %s", why);
         return;
     }
+    refresh_checkpoint_info(w, j->l);
     say_debug("model %s: checkpoint %lld at seq %llu (%zu bytes)", learner_name(j->l),
               (long long)id, (unsigned long long)j->seq, j->len);
     post_reply(w, j->l, j->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu", (long long)id,
@@ -409,12 +444,99 @@ static void job_backup(struct writer *w, struct job *j)
     mem_free(buf);
 }
 
+static void job_drift(struct writer *w, struct job *j)
+{
+    int64_t pre = 0, model = learner_db_id(j->l);
+    if (j->id) { /* on_drift: copy the newest valid checkpoint before the onset, labelled */
+        sqlite3_stmt *st = NULL;
+        if (sqlite3_prepare_v2(
+                w->db,
+                "INSERT INTO checkpoints(model, seq, training, label, created_at, size, state)"
+                " SELECT model, seq, training, 'pre-drift', ?1, size, state FROM checkpoints"
+                " WHERE model = ?2 AND invalid = 0 AND seq < ?3 ORDER BY seq DESC, id DESC LIMIT 1",
+                -1, &st, NULL) == SQLITE_OK) {
+            sqlite3_bind_double(st, 1, db_now());
+            sqlite3_bind_int64(st, 2, model);
+            sqlite3_bind_int64(st, 3, (sqlite3_int64)j->a);
+            if (sqlite3_step(st) == SQLITE_DONE && sqlite3_changes(w->db) == 1)
+                pre = sqlite3_last_insert_rowid(w->db);
+        }
+        sqlite3_finalize(st);
+        if (pre)
+            refresh_checkpoint_info(w, j->l);
+        else
+            say_warn("model %s: no checkpoint before seq %llu to keep as pre-drift",
+                     learner_name(j->l), (unsigned long long)j->a);
+    }
+    char detail[320];
+    int n = snprintf(detail, sizeof detail,
+                     "{\"seq\":%llu,\"onset_seq\":%llu,\"step\":%llu,\"onset_step\":%llu,"
+                     "\"alarms\":%llu",
+                     (unsigned long long)j->seq, (unsigned long long)j->a, (unsigned long long)j->b,
+                     (unsigned long long)j->c, (unsigned long long)j->training);
+    if (pre)
+        n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"pre_drift_checkpoint\":%lld",
+                      (long long)pre);
+    snprintf(detail + n, sizeof detail - (size_t)n, "}");
+    insert_event(w, j->l, "drift", detail);
+}
+
+static void job_events(struct writer *w, struct job *j)
+{
+    sqlite3_stmt *st = NULL;
+    size_t len = 0, cap = 4096;
+    char *buf = mem_alloc(cap);
+    buf[0] = 0;
+    appendf(&buf, &len, &cap, ",\"events\":[");
+    int rc = SQLITE_ERROR, first = 1;
+    const char *sql = j->l ? "SELECT id, at, kind, detail FROM events WHERE model = ?1 AND at >= ?2"
+                             " ORDER BY id LIMIT ?3"
+                           : "SELECT id, at, kind, detail FROM events WHERE model IS NULL AND"
+                             " at >= ?2 ORDER BY id LIMIT ?3";
+    if (sqlite3_prepare_v2(w->db, sql, -1, &st, NULL) == SQLITE_OK) {
+        if (j->l)
+            sqlite3_bind_int64(st, 1, learner_db_id(j->l));
+        sqlite3_bind_double(st, 2, j->since);
+        sqlite3_bind_int64(st, 3, (sqlite3_int64)j->len);
+        while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
+            appendf(&buf, &len, &cap, "%s{\"event\":%lld,\"at\":%.17g,\"kind\":", first ? "" : ",",
+                    (long long)sqlite3_column_int64(st, 0), sqlite3_column_double(st, 1));
+            json_str(&buf, &len, &cap, (const char *)sqlite3_column_text(st, 2));
+            if (j->l) {
+                appendf(&buf, &len, &cap, ",\"model\":");
+                json_str(&buf, &len, &cap, learner_name(j->l));
+            }
+            /* detail is JSON written by worthd itself */
+            appendf(&buf, &len, &cap, ",\"detail\":%s}", (const char *)sqlite3_column_text(st, 3));
+            first = 0;
+        }
+    }
+    sqlite3_finalize(st);
+    appendf(&buf, &len, &cap, "]");
+    if (rc != SQLITE_DONE) {
+        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot list events: %s",
+                   sqlite3_errmsg(w->db));
+        mem_free(buf);
+        return;
+    }
+    learner_event_t ev = {.kind = LEV_REPLY, .l = j->l, .conn_id = j->conn_id, .rc = 0};
+    ev.text = buf;
+    w->post(w->ctx, &ev);
+}
+
 static void run_job(struct writer *w, struct job *j)
 {
     switch (j->kind) {
     case J_ADD:
         learner_set_db_id(j->l, j->id);
         add_model(w, j->l);
+        refresh_checkpoint_info(w, j->l);
+        break;
+    case J_DRIFT:
+        job_drift(w, j);
+        break;
+    case J_EVENTS:
+        job_events(w, j);
         break;
     case J_CREATE:
         job_create(w, j);
@@ -545,6 +667,8 @@ static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
     sqlite3_bind_int64(st, 2, ev);
     rc = sqlite3_step(st);
     sqlite3_finalize(st);
+    if (rc == SQLITE_DONE)
+        refresh_checkpoint_info(w, l);
     return rc == SQLITE_DONE ? 0 : -1;
 }
 
@@ -666,8 +790,19 @@ static int write_group(struct writer *w)
     }
     if (!began && ok)
         return 0;
-    if (ok && exec(w, "COMMIT") != 0)
-        ok = 0;
+    if (ok) {
+        double t0 = db_now();
+        if (exec(w, "COMMIT") != 0)
+            ok = 0;
+        double dt = db_now() - t0;
+        pthread_mutex_lock(&w->mu);
+        for (int b = 0; b < WRITER_HIST_N; b++)
+            if (dt <= writer_hist_le[b])
+                w->hist[b]++;
+        w->hist_count++;
+        w->hist_sum += dt;
+        pthread_mutex_unlock(&w->mu);
+    }
     if (!ok) {
         char why[512];
         int code = db_error_code(w->db);
@@ -866,4 +1001,36 @@ void writer_event(struct writer *w, struct learner *l, const char *kind, const c
     j->s1 = mem_strdup(kind);
     j->s2 = mem_strdup(detail);
     push(w, j);
+}
+
+void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t onset_seq,
+                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift)
+{
+    struct job *j = job(J_DRIFT, l, 0);
+    j->seq = seq;
+    j->a = onset_seq;
+    j->b = step;
+    j->c = onset_step;
+    j->training = alarms;
+    j->id = pre_drift;
+    push(w, j);
+}
+
+void writer_list_events(struct writer *w, struct learner *l, double since, size_t limit,
+                        uint64_t conn_id)
+{
+    struct job *j = job(J_EVENTS, l, conn_id);
+    j->since = since;
+    j->len = limit;
+    push(w, j);
+}
+
+void writer_commit_hist(struct writer *w, uint64_t counts[WRITER_HIST_N], double *sum,
+                        uint64_t *count)
+{
+    pthread_mutex_lock(&w->mu);
+    memcpy(counts, w->hist, sizeof w->hist);
+    *sum = w->hist_sum;
+    *count = w->hist_count;
+    pthread_mutex_unlock(&w->mu);
 }

@@ -64,5 +64,26 @@ void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_
 void writer_backup(struct writer *w, const char *path, uint64_t conn_id);
 /* Records an event (kind and JSON detail copied); l may be NULL for daemon-wide events. */
 void writer_event(struct writer *w, struct learner *l, const char *kind, const char *detail);
+/*
+ * Records a drift alarm of l (alarm at seq, change from onset_seq; steps as the
+ * detector counts them).  With pre_drift, first stores a checkpoint labelled
+ * "pre-drift" holding the state of the newest valid checkpoint taken before
+ * onset_seq, and names it in the event.
+ */
+void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t onset_seq,
+                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift);
+/*
+ * Replies to conn_id with the events of l (NULL: the daemon-wide ones) at or
+ * after since, oldest first, at most limit.
+ */
+void writer_list_events(struct writer *w, struct learner *l, double since, size_t limit,
+                        uint64_t conn_id);
+
+/* Buckets of the commit-latency histogram, seconds (the last is +Inf). */
+#define WRITER_HIST_N 12
+extern const double writer_hist_le[WRITER_HIST_N];
+/* Copies the cumulative commit-latency histogram; any thread. */
+void writer_commit_hist(struct writer *w, uint64_t counts[WRITER_HIST_N], double *sum,
+                        uint64_t *count);
 
 #endif /* WORTH_WRITER_H */

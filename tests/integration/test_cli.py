@@ -17,7 +17,7 @@ from conftest import Client  # noqa: F401  (the fixtures come from conftest.py)
 
 CLI_TIMEOUT = 60.0
 COMMANDS = ["models", "create", "drop", "show", "feed", "value", "checkpoint", "checkpoints",
-            "rollback", "backup", "train", "stats", "watch", "plot", "help"]
+            "rollback", "backup", "train", "stats", "events", "watch", "plot", "help"]
 
 
 def cli_path():

@@ -309,7 +309,7 @@ static void canonical_lists_every_parameter(void **state)
                                       "max_sources", "max_features", "diagnostics"};
     assert_int_equal(cJSON_GetArraySize(j), sizeof top / sizeof top[0]);
     const cJSON *dg = cJSON_GetObjectItemCaseSensitive(j, "diagnostics");
-    assert_int_equal(cJSON_GetArraySize(dg), 5); /* horizon, window, drift_{delta,lambda,burn_in} */
+    assert_int_equal(cJSON_GetArraySize(dg), 6); /* horizon, window, drift_*, on_drift */
     for (size_t i = 0; i < sizeof top / sizeof top[0]; i++)
         assert_non_null(cJSON_GetObjectItemCaseSensitive(j, top[i]));
     assert_string_equal(cJSON_GetObjectItemCaseSensitive(j, "primary")->valuestring, "rls");
