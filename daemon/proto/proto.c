@@ -1029,6 +1029,14 @@ static int do_value(struct req *rq)
             }
             out_s(o, "},\"sd\":");
             out_num(o, pick_sd(m, p->sds));
+            /* Agreement: how far apart the estimators are at this state. */
+            double lo = INFINITY, hi = -INFINITY;
+            for (size_t i = 0; i < ne; i++) {
+                lo = fmin(lo, p->vals[i]);
+                hi = fmax(hi, p->vals[i]);
+            }
+            out_s(o, ",\"spread\":");
+            out_num(o, hi - lo);
         }
         out_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
         out_end(o, rq->c);

@@ -397,7 +397,8 @@ def test_value_before_any_transition(c):
     c.ok(create_req(estimators=[{"name": "td", "kind": "td", "init": 0.5}]))
     rep = c.ok({"op": "value", "model": "m", "x": [0.5, 1.0]})
     # V = init * sum(phi) = 0.5 * (1 + 0.5 + 1.0)
-    assert rep == {"ok": True, "value": 1.25, "estimators": {"td": 1.25}, "sd": None, "seq": 0}
+    assert rep == {"ok": True, "value": 1.25, "estimators": {"td": 1.25}, "sd": None,
+                   "spread": 0, "seq": 0}
 
 
 def test_value_exact_td(c):
@@ -408,7 +409,7 @@ def test_value_exact_td(c):
     c.wait_applied("m", 3)
     rep = c.call({"op": "value", "model": "m", "x": [0.7], "id": "v"})
     assert rep == {"ok": True, "id": "v", "value": 0.875, "estimators": {"td": 0.875},
-                   "sd": None, "seq": 3}
+                   "sd": None, "spread": 0, "seq": 3}
 
 
 def test_value_estimators_sd_and_selection(c):
@@ -418,8 +419,10 @@ def test_value_estimators_sd_and_selection(c):
     feed_terminal(c, "m", 3, [0.3])
     c.wait_applied("m", 3)
     rep = c.ok({"op": "value", "model": "m", "x": [0.7]})
-    assert set(rep) == {"ok", "value", "estimators", "sd", "seq"}, rep
+    assert set(rep) == {"ok", "value", "estimators", "sd", "spread", "seq"}, rep
     assert rep["seq"] == 3
+    # spread: the largest minus the smallest estimator value at this state
+    assert rep["spread"] == max(rep["estimators"].values()) - min(rep["estimators"].values())
     assert rep["value"] == rep["estimators"]["td"] == 0.875
     # RLS-TD with mu = 1 is ridge LSTD with eps = 1/delta (Sherman-Morrison; see
     # tests/reference/test_numpy_ref.py): bias only, three r = 1 terminal steps: 3 / (3 + 0.01).
