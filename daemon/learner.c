@@ -256,6 +256,8 @@ static void rollback(struct learner *l, learner_rec_t *r)
         }
     }
     l->model_training = last_training;
+    l->applied_seq = r->seq;
+    publish(l, wall_s()); /* queries after the reply see the restored weights */
     say_info("model %s: rolled back to checkpoint %lld (seq %llu): %llu undone, %llu replayed",
              l->name, (long long)p->checkpoint, (unsigned long long)p->cp_seq,
              (unsigned long long)p->undone, (unsigned long long)replayed);
@@ -302,6 +304,7 @@ static void apply(struct learner *l, learner_rec_t *r)
         struct train_ctx t = {l, r->conn_id};
         int rc = model_train(l->m, r->est, r->passes, on_pass, &t, &rep);
         l->model_training = r->ordinal;
+        publish(l, wall_s()); /* queries after the reply see the trained weights */
         learner_event_t ev = {.kind = LEV_TRAINED,
                               .l = l,
                               .conn_id = r->conn_id,

@@ -255,6 +255,8 @@ static const struct page pages[] = {
              "  --at X1,X2,...     one value per dimension for those not plotted\n"
              "  --estimator E      plot that estimator (default: the model's primary)\n"
              "  --grid N           N x N cells, 2..400 (default 48)\n"
+             "  --hour SIN,COS     instead of --y: the hour of day 0..24, for a time of day\n"
+             "                     encoded as sin and cos in those two dimensions\n"
              "  --history          plot the RMS TD error history instead\n"
              "  --out FILE.svg     the file to write (replaced atomically)\n"
              "\n"

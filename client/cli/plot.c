@@ -155,16 +155,28 @@ static int close_rename(FILE *f, const char *tmp, const char *path)
 }
 
 static int value_map(struct cli *cli, const char *model, const char *xs, const char *ys,
-                     const char *at, const char *est, const char *grid_s, const char *out)
+                     const char *at, const char *est, const char *grid_s, const char *out,
+                     const char *hour)
 {
     size_t dims;
+    long long hs = -1, hc = -1; /* --hour SIN,COS: the y axis is the hour of day */
     cJSON *reply = NULL;
     int ex = cli_model(cli, model, &dims, &reply);
     if (ex)
         return ex;
     long long dx, dy, grid = 48;
-    if (parse_int(xs, 0, (long long)dims - 1, &dx) || parse_int(ys, 0, (long long)dims - 1, &dy) ||
-        dx == dy) {
+    if (hour) {
+        char a[32], b[32];
+        if (sscanf(hour, "%31[^,],%31s", a, b) != 2 || parse_int(a, 0, (long long)dims - 1, &hs) ||
+            parse_int(b, 0, (long long)dims - 1, &hc) || hs == hc) {
+            cJSON_Delete(reply);
+            return cli_usage("plot", "--hour takes SIN_DIM,COS_DIM (two dimensions 0..%zu)",
+                             dims - 1);
+        }
+        dy = hs;
+    }
+    if (parse_int(xs, 0, (long long)dims - 1, &dx) ||
+        (!hour && parse_int(ys, 0, (long long)dims - 1, &dy)) || dx == dy || dx == hc) {
         cJSON_Delete(reply);
         return cli_usage("plot", "--x and --y must be two different dimensions 0..%zu", dims - 1);
     }
@@ -215,7 +227,13 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
             double *s = states + (row * (size_t)grid + col) * dims;
             memcpy(s, base, dims * sizeof *s);
             s[dx] = lo[dx] + (col + 0.5) * (hi[dx] - lo[dx]) / (double)grid;
-            s[dy] = lo[dy] + (row + 0.5) * (hi[dy] - lo[dy]) / (double)grid;
+            if (hour) { /* hour of day h on the circle: sin and cos dimensions */
+                double h = (row + 0.5) * 24.0 / (double)grid;
+                s[hs] = sin(2 * 3.14159265358979323846 * h / 24);
+                s[hc] = cos(2 * 3.14159265358979323846 * h / 24);
+            } else {
+                s[dy] = lo[dy] + (row + 0.5) * (hi[dy] - lo[dy]) / (double)grid;
+            }
         }
     uint64_t seq = 0;
     for (size_t k = 0; k < n; k += 4096) {
@@ -279,8 +297,8 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
     fputs("</g>\n", f);
     char xt[32], yt[32];
     snprintf(xt, sizeof xt, "x[%lld]", dx);
-    snprintf(yt, sizeof yt, "x[%lld]", dy);
-    axes(f, lo[dx], hi[dx], lo[dy], hi[dy], xt, yt);
+    snprintf(yt, sizeof yt, hour ? "hour of day" : "x[%lld]", dy);
+    axes(f, lo[dx], hi[dx], hour ? 0 : lo[dy], hour ? 24 : hi[dy], xt, yt);
     /* The colour bar, with ticks in value units. */
     int bx = PL + PW + 40, bw = 22;
     fprintf(f,
@@ -425,12 +443,13 @@ static int history(struct cli *cli, const char *model, const char *out)
 
 int cmd_plot(struct cli *cli, int argc, char **argv)
 {
-    const char *x = NULL, *y = NULL, *at = NULL, *est = NULL, *out = NULL, *grid = NULL;
+    const char *x = NULL, *y = NULL, *at = NULL, *est = NULL, *out = NULL, *grid = NULL,
+               *hour = NULL;
     int hist = 0;
-    struct opt opts[] = {{"--x", &x, NULL},          {"--y", &y, NULL},
-                         {"--at", &at, NULL},        {"--estimator", &est, NULL},
-                         {"--out", &out, NULL},      {"--grid", &grid, NULL},
-                         {"--history", NULL, &hist}, {NULL, NULL, NULL}};
+    struct opt opts[] = {
+        {"--x", &x, NULL},           {"--y", &y, NULL},       {"--at", &at, NULL},
+        {"--estimator", &est, NULL}, {"--out", &out, NULL},   {"--grid", &grid, NULL},
+        {"--history", NULL, &hist},  {"--hour", &hour, NULL}, {NULL, NULL, NULL}};
     char *pos[1];
     int np;
     int ex = parse_args("plot", argc, argv, opts, pos, 1, 1, &np);
@@ -440,7 +459,7 @@ int cmd_plot(struct cli *cli, int argc, char **argv)
         return cli_usage("plot", "--out FILE.svg is required");
     if (hist)
         return history(cli, pos[0], out);
-    if (!x || !y)
-        return cli_usage("plot", "give --x DIM and --y DIM (or --history)");
-    return value_map(cli, pos[0], x, y, at, est, grid, out);
+    if (!x || (!y && !hour))
+        return cli_usage("plot", "give --x DIM and --y DIM (or --hour SIN,COS, or --history)");
+    return value_map(cli, pos[0], x, y, at, est, grid, out, hour);
 }

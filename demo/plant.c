@@ -1,0 +1,302 @@
+/*
+ * plant.c - the demo plant: a river pumping station filling a hilltop reservoir.
+ *
+ * A scenario written for worth's demo; every number in it is invented for the
+ * demo and describes no real site.  The policy under evaluation is a
+ * level-band pump rule: the pump starts below a low band and stops above a
+ * high band; at night, when energy is cheap, both bands are raised; when the
+ * measured demand is high the low band is raised a little (to keep ahead of
+ * the draw), and when it reads almost nothing the bands drop to save energy.  State: reservoir
+ * level (m), measured outflow demand (m3/h), time of day as sin/cos, energy tariff (EUR/kWh).
+ * Reward per minute: minus the energy cost of pumping, minus a penalty while the level is under the
+ * safety reserve.  Demand is stochastic around a daily pattern.
+ *
+ * The program drives worthd through the C client library: it creates the
+ * model, streams the simulated weeks as bulk frames, prints the values at
+ * three named situations, checkpoints, streams a day with the demand sensor
+ * stuck, reports the drift alarm, rolls back with the fault window excluded
+ * and checks that the values are restored.  Exit status 0 when all of that
+ * happened as expected, 1 otherwise.
+ */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include <worth/client.h>
+
+#define DIMS 5
+#define REC  (2 * DIMS + 2)
+#define PI   3.14159265358979323846
+
+/* Invented plant figures. */
+#define AREA_M2     1500.0 /* reservoir surface */
+#define PUMP_M3H    520.0  /* pump delivery */
+#define PUMP_KW     110.0  /* pump power */
+#define RESERVE_M   2.0    /* safety reserve level */
+#define PENALTY_EUR 2.0    /* per minute under the reserve */
+#define LEVEL_MAX   8.0
+
+struct plant {
+    double level, demand_noise, minute;
+    int pump;
+    unsigned long long rng;
+};
+
+static double uniform(struct plant *p)
+{
+    p->rng = p->rng * 6364136223846793005ULL + 1442695040888963407ULL;
+    return (double)(p->rng >> 11) * 0x1.0p-53;
+}
+
+static double gauss(struct plant *p)
+{
+    double u = uniform(p), v = uniform(p);
+    return sqrt(-2 * log(1 - u)) * cos(2 * PI * v);
+}
+
+static double hour_of(double minute)
+{
+    return fmod(minute / 60.0, 24.0);
+}
+
+static double tariff(double hour)
+{
+    return hour >= 23 || hour < 6 ? 0.09 : 0.24;
+}
+
+/* The daily demand pattern (m3/h): night low, morning and evening peaks. */
+static double demand_mean(double hour)
+{
+    return 150 + 230 * exp(-pow((hour - 7.5) / 1.5, 2)) + 180 * exp(-pow((hour - 19) / 2.0, 2)) +
+           60 * (hour > 9 && hour < 17);
+}
+
+static void state(const struct plant *p, double measured_demand, double *x)
+{
+    double h = hour_of(p->minute);
+    x[0] = p->level;
+    x[1] = measured_demand;
+    x[2] = sin(2 * PI * h / 24);
+    x[3] = cos(2 * PI * h / 24);
+    x[4] = tariff(h);
+}
+
+/*
+ * One minute: the policy decides from the measured state, the plant moves, the
+ * reward is paid.  stuck >= 0 replaces the demand the sensor reports.
+ */
+static void step(struct plant *p, double stuck, double *rec)
+{
+    double h = hour_of(p->minute);
+    p->demand_noise = 0.9 * p->demand_noise + 0.1 * 40 * gauss(p);
+    double demand = fmax(0, demand_mean(h) + p->demand_noise);
+    double measured = stuck >= 0 ? stuck : demand;
+    state(p, measured, rec);
+    /* The policy: night bands raised; high measured demand raises the low band. */
+    int night = h >= 23 || h < 6;
+    double low = night ? 5.0 : 3.0, high = night ? 7.0 : 4.5;
+    if (measured > 380)
+        low += 1.0;
+    if (measured < 80) { /* "nobody is drawing": save energy */
+        low = 1.0;
+        high = 2.5;
+    }
+    if (p->level < low)
+        p->pump = 1;
+    else if (p->level > high)
+        p->pump = 0;
+    double inflow = p->pump ? PUMP_M3H : 0;
+    p->level += (inflow - demand) / 60.0 / AREA_M2;
+    p->level = fmin(LEVEL_MAX, fmax(0, p->level));
+    double r =
+        -(p->pump ? PUMP_KW / 60.0 * tariff(h) : 0) - (p->level < RESERVE_M ? PENALTY_EUR : 0);
+    rec[DIMS] = r;
+    p->minute += 1;
+    state(p, measured, rec + DIMS + 1); /* x_next, measured with the same sensor */
+    rec[2 * DIMS + 1] = 0;              /* the plant never stops: not terminal */
+}
+
+static const char *const NAMES[5] = {"td", "td_lambda", "rls", "lstd", "replay"};
+
+static const char SPEC[] =
+    "{\"model\":\"reservoir\",\"dims\":5,\"gamma\":0.999,"
+    "\"ranges\":[[0,8],[0,600],[-1,1],[-1,1],[0.05,0.3]],"
+    "\"features\":[{\"basis\":\"bias\"},{\"basis\":\"fourier\",\"order\":3,\"couple\":2}],"
+    "\"estimators\":[{\"name\":\"td\",\"kind\":\"td\",\"alpha\":0.002},"
+    "{\"name\":\"td_lambda\",\"kind\":\"td_lambda\",\"alpha\":0.001,\"lambda\":0.9},"
+    "{\"name\":\"rls\",\"kind\":\"rls_td\",\"forget\":0.9995,\"delta\":10},"
+    "{\"name\":\"lstd\",\"kind\":\"lstd\",\"ridge\":0.01,\"refit_every\":720},"
+    "{\"name\":\"replay\",\"kind\":\"replay\",\"alpha\":0.002,\"capacity\":20000}],"
+    "\"primary\":\"rls\","
+    "\"diagnostics\":{\"drift_burn_in\":1440,\"drift_lambda\":60,\"on_drift\":\"checkpoint\"}}";
+
+/* The three named situations: [level, demand, sin, cos, tariff] at an hour. */
+static void situation(int k, double *x, const char **name)
+{
+    static const double lv[3] = {6.5, 4.0, 2.3}, dm[3] = {140, 420, 360}, hr[3] = {2, 7.5, 19};
+    static const char *const nm[3] = {"night, full", "morning peak, half", "evening, near reserve"};
+    x[0] = lv[k];
+    x[1] = dm[k];
+    x[2] = sin(2 * PI * hr[k] / 24);
+    x[3] = cos(2 * PI * hr[k] / 24);
+    x[4] = tariff(hr[k]);
+    *name = nm[k];
+}
+
+static int fail(worth_client *c, const char *what)
+{
+    fprintf(stderr, "plant: %s: %s: %s\n", what, worth_error_name(c), worth_error_message(c));
+    return 1;
+}
+
+/* Prints the values table; fills vals[3][5]. */
+static int table(worth_client *c, double vals[3][5], const char *title)
+{
+    printf("\n%s\n%-24s", title, "situation");
+    for (int e = 0; e < 5; e++)
+        printf(" %11s", NAMES[e]);
+    printf(" %9s\n", "sd(rls)");
+    for (int k = 0; k < 3; k++) {
+        double x[DIMS];
+        const char *name;
+        situation(k, x, &name);
+        worth_value_t v;
+        if (worth_value(c, "reservoir", x, DIMS, NULL, &v))
+            return fail(c, "value");
+        printf("%-24s", name);
+        for (int e = 0; e < 5; e++) {
+            vals[k][e] = v.values[e];
+            printf(" %11.2f", v.values[e]);
+        }
+        printf(" %9.2f\n", v.sd);
+    }
+    return 0;
+}
+
+/* Streams days of simulation in one-day bulk frames, with a progress bar on a terminal. */
+static int stream(worth_client *c, struct plant *p, int days, double stuck, uint64_t *last)
+{
+    static double buf[1440 * REC];
+    int tty = isatty(2);
+    for (int d = 0; d < days; d++) {
+        for (int m = 0; m < 1440; m++)
+            step(p, stuck, buf + m * REC);
+        if (worth_observe_bulk(c, "reservoir", DIMS, buf, 1440, 0, last))
+            return fail(c, "observe.bulk");
+        if (tty) {
+            int w = 40, done = (d + 1) * w / days;
+            fprintf(stderr, "\r  [%.*s%*s] day %d/%d, %llu transitions", done,
+                    "########################################", w - done, "", d + 1, days,
+                    (unsigned long long)*last);
+        }
+    }
+    if (tty)
+        fputc('\n', stderr);
+    return 0;
+}
+
+/* Waits until the model has learnt up to seq (bounded). */
+static int settle(worth_client *c, uint64_t seq)
+{
+    char want[64];
+    snprintf(want, sizeof want, "\"applied\":%llu", (unsigned long long)seq);
+    for (int i = 0; i < 6000; i++) {
+        const char *json;
+        if (worth_stats(c, "reservoir", &json))
+            return fail(c, "stats");
+        if (strstr(json, want))
+            return 0;
+        usleep(10000);
+    }
+    fprintf(stderr, "plant: the model did not catch up\n");
+    return 1;
+}
+
+static double field(const char *json, const char *key)
+{
+    const char *p = strstr(json, key);
+    return p ? atof(p + strlen(key)) : NAN;
+}
+
+int main(int argc, char **argv)
+{
+    const char *sock = argc > 1 ? argv[1] : "./worthd.sock";
+    int days = argc > 2 ? atoi(argv[2]) : 14;
+    if (days < 3 || days > 365) {
+        fprintf(stderr, "usage: plant SOCKET [DAYS 3..365]\n");
+        return 2;
+    }
+    worth_opts o = {.socket_path = sock, .timeout_ms = 120000};
+    worth_client *c = NULL;
+    char err[256];
+    if (worth_connect(&o, &c, err, sizeof err)) {
+        fprintf(stderr, "plant: %s\n", err);
+        return 1;
+    }
+    size_t features = 0;
+    if (worth_model_create(c, SPEC, &features))
+        return fail(c, "model.create");
+    printf("1. model \"reservoir\": 5 state dimensions, %zu Fourier features, estimators "
+           "td, td_lambda, rls_td (primary), lstd, replay\n",
+           features);
+
+    struct plant p = {.level = 5.0, .rng = 20261201};
+    uint64_t seq = 0;
+    printf("2. streaming %d simulated days at one-minute steps (%d transitions)\n", days,
+           days * 1440);
+    if (stream(c, &p, days, -1, &seq) || settle(c, seq))
+        return 1;
+    double before[3][5], fault[3][5], after[3][5];
+    if (table(c, before, "3. value (EUR, discounted future reward) at three situations:"))
+        return 1;
+    const char *json;
+    if (worth_stats(c, "reservoir", &json))
+        return fail(c, "stats");
+    printf("\n   realised-return error (value predicted minus the return that followed), "
+           "sliding window:\n   %-10s %9s %9s\n",
+           "estimator", "bias", "rms");
+    for (int e = 0; e < 5; e++) {
+        char key[64];
+        snprintf(key, sizeof key, "\"%s\":{\"kind\"", NAMES[e]);
+        const char *at = strstr(json, key);
+        printf("   %-10s %9.2f %9.2f\n", NAMES[e], at ? field(at, "\"bias_window\":") : NAN,
+               at ? field(at, "\"rms_window\":") : NAN);
+    }
+    double alarms_before = field(json, "\"alarms\":");
+
+    int64_t ck = 0;
+    uint64_t ck_seq = 0;
+    if (worth_checkpoint(c, "reservoir", "commissioned", &ck, &ck_seq))
+        return fail(c, "checkpoint");
+    printf("\n4. checkpoint %lld \"commissioned\" at seq %llu\n", (long long)ck,
+           (unsigned long long)ck_seq);
+
+    printf("5. one day with the demand sensor stuck at 0 m3/h: the controller thinks nobody draws\n"
+           "   water, lowers its bands, and the level sags under the reserve\n");
+    if (stream(c, &p, 1, 0.0, &seq) || settle(c, seq))
+        return 1;
+    if (worth_stats(c, "reservoir", &json))
+        return fail(c, "stats");
+    double alarms = field(json, "\"alarms\":");
+    printf("   drift alarms during the fault day: %.0f (Page-Hinkley statistic now %.1f sd)\n",
+           alarms - alarms_before, field(json, "\"statistic\":"));
+    if (table(c, fault, "   values after the fault day:"))
+        return 1;
+
+    uint64_t undone = 0, replayed = 0;
+    if (worth_rollback(c, "reservoir", ck, 1, 's', (double)ck_seq + 1, (double)seq, &undone,
+                       &replayed))
+        return fail(c, "rollback");
+    printf("\n6. rolled back to \"commissioned\", re-learning the log after it with the fault "
+           "window (seq %llu..%llu) excluded: %llu undone, %llu replayed\n",
+           (unsigned long long)ck_seq + 1, (unsigned long long)seq, (unsigned long long)undone,
+           (unsigned long long)replayed);
+    if (table(c, after, "   values restored:"))
+        return 1;
+    int same = memcmp(before, after, sizeof before) == 0;
+    printf("   values after the rollback equal those before the fault: %s\n", same ? "yes" : "NO");
+    worth_close(c);
+    return same && alarms > alarms_before ? 0 : 1;
+}
