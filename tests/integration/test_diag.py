@@ -10,20 +10,9 @@ import sqlite3
 
 import numpy as np
 
+from test_ingest import boyan_phi as boyan_phi  # Boyan's four interpolation features
+
 N_EP = 10000
-
-
-def boyan_phi(s):
-    """The four interpolation features of state s (anchors 12, 8, 4, 0)."""
-    phi = np.zeros(4)
-    j = min((12 - s) // 4, 3)
-    if j == 3:
-        phi[3] = 1.0
-        return phi
-    above = 12 - 4 * j
-    phi[j] = 1 - (above - s) / 4
-    phi[j + 1] = (above - s) / 4
-    return phi
 
 
 def exact_return_sd():
