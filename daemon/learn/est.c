@@ -182,7 +182,7 @@ void est_reset(struct est *e)
     for (size_t i = 0; i < e->n; i++)
         e->w[i] = e->p.init;
     e->updates = e->guarded = 0;
-    e->td_last = e->td_ms = e->td_wsum = 0.0;
+    e->td_last = e->td_ms = e->td_wsum = e->v_last = 0.0;
     e->ops->reset(e);
 }
 
@@ -223,6 +223,7 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
                                             terminal != 0, v, vn);
     e->updates++;
     e->td_last = delta;
+    e->v_last = v;
     e->td_ms = TD_EW_KEEP * e->td_ms + delta * delta;
     e->td_wsum = TD_EW_KEEP * e->td_wsum + 1.0;
     return 0;
@@ -246,6 +247,16 @@ int est_sd(const struct est *e, const double *phi, double *sd)
     if (!e->ops->sd)
         return WORTH_E_UNSUPPORTED;
     return e->ops->sd(e, phi, sd);
+}
+
+double est_last_value(const struct est *e)
+{
+    return e->v_last;
+}
+
+double est_last_td(const struct est *e)
+{
+    return e->td_last;
 }
 
 const double *est_weights(const struct est *e)

@@ -143,6 +143,12 @@ double est_value(const struct est *e, const double *phi);
  * WORTH_E_UNSUPPORTED.
  */
 int est_sd(const struct est *e, const double *phi, double *sd);
+/*
+ * Returns V(x) and the TD error of the last transition observed, both under the
+ * weights before its update (what est_observe computed; not part of the saved state).
+ */
+double est_last_value(const struct est *e);
+double est_last_td(const struct est *e);
 /* Returns the n weights (borrowed, valid until the next update). */
 const double *est_weights(const struct est *e);
 size_t est_features(const struct est *e);

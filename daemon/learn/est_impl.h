@@ -48,6 +48,7 @@ struct est {
     uint64_t updates;
     uint64_t guarded;
     double td_last;
+    double v_last;  /* V(x) of the last transition, weights before its update */
     double td_ms;   /* exponentially weighted mean square of the TD error */
     double td_wsum; /* its weight sum, for the start-up bias correction */
     void *k;        /* kind state, owned */

@@ -208,16 +208,14 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     m->clipped += feat_eval(m->feat, t->x, m->phi, m->work);
     if (!t->terminal)
         m->clipped += feat_eval(m->feat, t->x_next, m->phin, m->work);
-    /* The predictions the diagnostics score, and the primary's TD error, before the update. */
-    for (size_t i = 0; i < m->n_est; i++)
-        m->pred[i] = est_value(m->est[i], m->phi);
-    double vn = t->terminal ? 0.0 : est_value(m->est[m->primary], m->phin);
-    double td = t->r + g * vn - m->pred[m->primary];
     for (size_t i = 0; i < m->n_est; i++) {
         rc = est_observe(m->est[i], (size_t)slot, m->phi, t->r, t->terminal ? NULL : m->phin, g,
                          t->terminal);
         CHECK(rc == 0); /* everything was validated above */
+        /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it. */
+        m->pred[i] = est_last_value(m->est[i]);
     }
+    double td = est_last_td(m->est[m->primary]);
     diag_observe(m->diag, (size_t)slot, m->pred, t->r, g, t->terminal, td);
     m->applied++;
     return 0;
