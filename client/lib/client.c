@@ -505,14 +505,20 @@ int worth_model_drop(worth_client *c, const char *model)
     return call(c, NULL);
 }
 
-int worth_model_info(worth_client *c, const char *model, const char **json)
+/* Sends {"op":OP,"model":MODEL} and hands back the reply line (owned by c). */
+static int line_request(worth_client *c, const char *op, const char *model, const char **json)
 {
-    begin(c, model ? "model.get" : "model.list", model);
+    begin(c, op, model);
     req_s(c, "}");
     int rc = call(c, NULL);
     if (json)
         *json = c->line;
     return rc;
+}
+
+int worth_model_info(worth_client *c, const char *model, const char **json)
+{
+    return line_request(c, model ? "model.get" : "model.list", model, json);
 }
 
 static void add_transition(worth_client *c, size_t dims, const worth_transition *t)
@@ -699,12 +705,7 @@ int worth_values(worth_client *c, const char *model, const double *xs, size_t co
 
 int worth_stats(worth_client *c, const char *model, const char **json)
 {
-    begin(c, "stats", model);
-    req_s(c, "}");
-    int rc = call(c, NULL);
-    if (json)
-        *json = c->line;
-    return rc;
+    return line_request(c, "stats", model, json);
 }
 
 int worth_checkpoint(worth_client *c, const char *model, const char *label, int64_t *id,
@@ -730,12 +731,7 @@ int worth_checkpoint(worth_client *c, const char *model, const char *label, int6
 
 int worth_checkpoints(worth_client *c, const char *model, const char **json)
 {
-    begin(c, "checkpoints", model);
-    req_s(c, "}");
-    int rc = call(c, NULL);
-    if (json)
-        *json = c->line;
-    return rc;
+    return line_request(c, "checkpoints", model, json);
 }
 
 int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, char exclude,
