@@ -593,24 +593,37 @@ int cmd_checkpoint(struct cli *cli, int argc, char **argv)
     return EXIT_OK;
 }
 
-int cmd_checkpoints(struct cli *cli, int argc, char **argv)
+/*
+ * The start of a command that shows one model's reply (CMD MODEL): parses the
+ * arguments, prints worthd's reply unchanged with --json (*r stays NULL), or
+ * fetches it and parses it into *r (owned by the caller).  Returns the exit code.
+ */
+static int query_model(struct cli *cli, const char *cmd, int argc, char **argv,
+                       int (*fetch)(worth_client *, const char *, const char **), cJSON **r)
 {
     char *pos[1];
     int np;
-    int ex = parse_args("checkpoints", argc, argv, NULL, pos, 1, 1, &np);
+    int ex = parse_args(cmd, argc, argv, NULL, pos, 1, 1, &np);
     if (ex)
         return ex;
     if (cli->json)
-        return cli_raw(cli, request("checkpoints", pos[0]));
+        return cli_raw(cli, request(cmd, pos[0]));
     if ((ex = cli_connect(cli)))
         return ex;
     const char *json;
-    int rc = worth_checkpoints(cli->c, pos[0], &json);
+    int rc = fetch(cli->c, pos[0], &json);
     if (rc)
         return cli_fail(cli, rc);
-    cJSON *r = parse_reply(json);
+    *r = parse_reply(json);
+    return *r ? EXIT_OK : EXIT_SERVER;
+}
+
+int cmd_checkpoints(struct cli *cli, int argc, char **argv)
+{
+    cJSON *r = NULL;
+    int ex = query_model(cli, "checkpoints", argc, argv, worth_checkpoints, &r);
     if (!r)
-        return EXIT_SERVER;
+        return ex;
     const cJSON *list = get(r, "checkpoints"), *e;
     if (!cJSON_GetArraySize(list)) {
         printf("no checkpoints\n");
@@ -856,22 +869,10 @@ int cmd_train(struct cli *cli, int argc, char **argv)
 
 int cmd_stats(struct cli *cli, int argc, char **argv)
 {
-    char *pos[1];
-    int np;
-    int ex = parse_args("stats", argc, argv, NULL, pos, 1, 1, &np);
-    if (ex)
-        return ex;
-    if (cli->json)
-        return cli_raw(cli, request("stats", pos[0]));
-    if ((ex = cli_connect(cli)))
-        return ex;
-    const char *json;
-    int rc = worth_stats(cli->c, pos[0], &json);
-    if (rc)
-        return cli_fail(cli, rc);
-    cJSON *r = parse_reply(json);
+    cJSON *r = NULL;
+    int ex = query_model(cli, "stats", argc, argv, worth_stats, &r);
     if (!r)
-        return EXIT_SERVER;
+        return ex;
     struct table *t = table_new(2);
     if (t)
         table_left(t);
