@@ -703,6 +703,16 @@ static void out_est_names(struct out *o, const struct model *m)
     out_s(o, "]");
 }
 
+/* Writes "model":NAME,"dims":D,"features":N,"estimators":[NAMES], shared by list and get. */
+static void out_model_head(struct out *o, const struct learner *l, const struct model *m)
+{
+    out_s(o, "\"model\":");
+    out_str(o, learner_name(l));
+    out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m),
+            model_features(m));
+    out_est_names(o, m);
+}
+
 static int do_list(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -713,11 +723,8 @@ static int do_list(struct req *rq)
         const struct model *m = learner_model(p->models[i]->l);
         learner_stats_t st;
         learner_stats(p->models[i]->l, &st);
-        out_s(o, i ? ",{\"model\":" : "{\"model\":");
-        out_str(o, learner_name(p->models[i]->l));
-        out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m),
-                model_features(m));
-        out_est_names(o, m);
+        out_s(o, i ? ",{" : "{");
+        out_model_head(o, p->models[i]->l, m);
         out_fmt(o, ",\"received\":%llu,\"applied\":%llu}", (unsigned long long)st.received,
                 (unsigned long long)st.applied);
     }
@@ -736,10 +743,8 @@ static int do_get(struct req *rq)
     learner_stats(l, &st);
     struct out *o = &rq->p->out;
     out_begin(o, 1, rq->id);
-    out_s(o, ",\"model\":");
-    out_str(o, learner_name(l));
-    out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m), model_features(m));
-    out_est_names(o, m);
+    out_s(o, ",");
+    out_model_head(o, l, m);
     out_s(o, ",\"primary\":");
     out_str(o, model_est_name(m, model_primary(m)));
     out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"spec\":", (unsigned long long)st.received,
