@@ -655,7 +655,7 @@ static int do_create(struct req *rq)
 {
     struct proto *p = rq->p;
     spec_t *s = NULL;
-    int rc = spec_parse(rq->root, &s, p->err, sizeof p->err);
+    int rc = spec_parse_within(rq->root, p->o->max_features, &s, p->err, sizeof p->err);
     if (rc)
         return fail_done(rq, rc, "%s", p->err);
     if (find_model(p, s->name, NULL)) {
@@ -668,6 +668,11 @@ static int do_create(struct req *rq)
         spec_free(s);
         return PROTO_DONE;
     }
+    /* The memory the model implies, checked before its estimators are allocated. */
+    learner_opts_t qo;
+    proto_learner_opts(p, &qo);
+    s->m.max_bytes = (double)p->o->max_model_mb * 1048576.0;
+    s->m.base_bytes = learner_footprint(s->m.feat.dims, &qo);
     struct model *m = NULL;
     rc = model_new(&s->m, &m, p->err, sizeof p->err);
     if (rc) {
