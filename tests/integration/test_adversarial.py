@@ -104,7 +104,8 @@ ROWS = [
     ("text_after_object", b'{"op":"hello"} trailing\n', ["bad_json"], OPEN, "unix"),
     ("two_objects_one_line", b'{"op":"hello"}{"op":"hello"}\n', ["bad_json"], OPEN, "unix"),
     ("utf16_text", '{"op":"hello"}'.encode("utf-16-le") + b"\n", ["bad_json"], OPEN, "unix"),
-    # bytes
+    # bytes (valid UTF-8 as RFC 3629 section 3 defines it: no overlong forms, no surrogates
+    # U+D800..U+DFFF, nothing above U+10FFFF; JSON strings escape control bytes, RFC 8259 s. 7)
     ("nul_byte_after_object", b'{"op":"hello"}\x00\n', ["bad_json"], OPEN, "unix"),
     ("nul_byte_in_string", b'{"op":"hel\x00lo"}\n', ["bad_json"], OPEN, "unix"),
     ("control_byte_in_name", create("ab\x01cd").replace(b"\\u0001", b"\x01"), ["bad_json"],
