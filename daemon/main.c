@@ -128,7 +128,8 @@ static void raise_nofile(size_t max_conns)
         say_warn("the open-file limit %llu leaves room for about %llu of --max-conns %zu; "
                  "connections beyond it are shed (EMFILE)",
                  (unsigned long long)rl.rlim_cur,
-                 rl.rlim_cur > NOFILE_SPARE ? (unsigned long long)(rl.rlim_cur - NOFILE_SPARE) : 0ull,
+                 rl.rlim_cur > NOFILE_SPARE ? (unsigned long long)(rl.rlim_cur - NOFILE_SPARE)
+                                            : 0ull,
                  max_conns);
     else
         say_debug("open-file limit %llu", (unsigned long long)rl.rlim_cur);

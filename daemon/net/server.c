@@ -117,7 +117,7 @@ struct server {
     uv_async_t wake;
     uv_idle_t idle;
     int idle_on;
-    uv_timer_t tick; /* idle and send timeouts */
+    uv_timer_t tick;                  /* idle and send timeouts */
     unsigned long long shed, refused; /* connections lost to EMFILE, refused over max_conns */
     int reserve_fd;                   /* a spare descriptor, freed to shed a connection */
     uint64_t shed_log_ms, refused_log_ms;
@@ -504,7 +504,8 @@ static void on_wake(uv_async_t *h)
 static void send_limit_error(struct conn *c, int code, const char *msg)
 {
     char line[320];
-    int n = snprintf(line, sizeof line, "{\"ok\":false,\"error\":{\"code\":\"%s\",\"message\":\"%s\"}}\n",
+    int n = snprintf(line, sizeof line,
+                     "{\"ok\":false,\"error\":{\"code\":\"%s\",\"message\":\"%s\"}}\n",
                      worth_err_name(code), msg);
     if (n > 0 && (size_t)n < sizeof line)
         conn_send(c, line, (size_t)n);
@@ -645,7 +646,7 @@ static int unix_socket_live(const char *path)
  */
 static int check_socket_dir(const char *path)
 {
-    char dir[sizeof ((struct sockaddr_un *)0)->sun_path];
+    char dir[sizeof((struct sockaddr_un *)0)->sun_path];
     const char *slash = strrchr(path, '/');
     if (!slash)
         snprintf(dir, sizeof dir, ".");
@@ -665,8 +666,8 @@ static int check_socket_dir(const char *path)
         return -1;
     }
     if (st.st_uid != geteuid() && st.st_uid != 0) {
-        say_error("socket directory %s belongs to user %u, not to worthd's user %u or root",
-                  dir, (unsigned)st.st_uid, (unsigned)geteuid());
+        say_error("socket directory %s belongs to user %u, not to worthd's user %u or root", dir,
+                  (unsigned)st.st_uid, (unsigned)geteuid());
         return -1;
     }
     return 0;

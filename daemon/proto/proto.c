@@ -1462,8 +1462,9 @@ static int print_num_id(double v, char *buf, size_t cap, char *msg, size_t msgle
         return WORTH_E_BAD_NUMBER;
     }
     if (fabs(v) >= 9007199254740992.0) {
-        snprintf(msg, msglen, "a numeric \"id\" must lie within +-(2^53 - 1); send a larger one "
-                              "as a string");
+        snprintf(msg, msglen,
+                 "a numeric \"id\" must lie within +-(2^53 - 1); send a larger one "
+                 "as a string");
         return WORTH_E_BAD_PARAM;
     }
     if (v == floor(v)) {

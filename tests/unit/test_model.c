@@ -900,7 +900,8 @@ static void snapshot_answers_like_the_model(void **state)
     model_free(m);
 }
 
-/* model_footprint bounds what the model holds; model_new refuses over max_bytes, allocating nothing. */
+/* model_footprint bounds what the model holds; model_new refuses over max_bytes, allocating
+ * nothing. */
 static void footprint_is_checked_before_building(void **state)
 {
     (void)state;
