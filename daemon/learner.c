@@ -395,6 +395,12 @@ static void *run(void *arg)
     return NULL;
 }
 
+double learner_footprint(size_t dims, const learner_opts_t *o)
+{
+    size_t stride = (sizeof(learner_rec_t) + 2 * dims * sizeof(double) + 7) & ~(size_t)7;
+    return (double)o->queue_cap * (double)stride + (double)HIST_MAX * sizeof(learner_sample_t);
+}
+
 struct learner *learner_new(const char *name, char *spec_json, struct model *m,
                             const learner_opts_t *o, learner_post_fn post, learner_wake_fn wake,
                             void *ctx)

@@ -144,6 +144,9 @@ typedef struct learner_opts_t {
 struct learner *learner_new(const char *name, char *spec_json, struct model *m,
                             const learner_opts_t *o, learner_post_fn post, learner_wake_fn wake,
                             void *ctx);
+/* Returns the bytes learner_new allocates for a model of dims inputs besides the model itself
+ * (its queue of o->queue_cap records and its history), for a limit checked before it. */
+double learner_footprint(size_t dims, const learner_opts_t *o);
 /*
  * Asks the thread to end: after applying the queue and taking a checkpoint
  * of what it learnt since the last one, or (discard) at once.

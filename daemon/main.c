@@ -3,7 +3,9 @@
  *
  * Runs on the main thread, which becomes the loop thread.  Reads the token
  * file (never logging the token), ignores SIGPIPE (a client that goes away
- * must not kill the daemon), and pins OpenBLAS to one thread per learner.
+ * must not kill the daemon), raises the soft open-file limit to the hard one
+ * (every connection holds a descriptor), and pins OpenBLAS to one thread per
+ * learner.
  */
 #include <errno.h>
 #include <getopt.h>
@@ -11,6 +13,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/resource.h>
 #include <sys/socket.h>
 #include <sys/stat.h>
 
@@ -21,6 +24,9 @@
 #ifndef WORTH_VERSION
 #define WORTH_VERSION "0.0.0"
 #endif
+
+/* Descriptors worthd needs besides its clients: database, WAL, listeners, loop, threads. */
+#define NOFILE_SPARE 64
 
 /* From OpenBLAS; declared here to keep cblas.h out of the daemon shell. */
 void openblas_set_num_threads(int n);
@@ -49,6 +55,16 @@ static const char usage[] =
     "  --max-batch N       most transitions in one batch or bulk (default 65536)\n"
     "  --queue N           records each model's queue holds (default 262144, >= max-batch)\n"
     "  --max-models N      most models one daemon holds (default 256)\n"
+    "  --max-features N    most features one model may have (default 65536; a model's own\n"
+    "                      max_features defaults to 4096)\n"
+    "  --max-model-mb N    most memory one model may come to hold, in MiB: matrices, replay\n"
+    "                      and per-source buffers at full size, its queue (default 2048)\n"
+    "  --max-conns N       client connections open at once (default 1024); one more gets\n"
+    "                      too_many_connections and is closed\n"
+    "  --idle-timeout S    close a connection that sent nothing for S seconds while nothing\n"
+    "                      was owed to it, after an idle_timeout line (default 0: never)\n"
+    "  --send-timeout S    cut off a client whose unread replies stay over 4 MiB for S\n"
+    "                      seconds (slow_reader, logged; default 30)\n"
     "  --help              this text\n"
     "  --version           print the version\n"
     "\n"
@@ -93,6 +109,32 @@ static char *read_token(const char *path)
     return mem_strdup(buf);
 }
 
+/*
+ * Raises the soft limit on open files to the hard one: every connection holds
+ * a descriptor.  Warns when the limit leaves too few for max_conns; beyond it
+ * accept fails with EMFILE and connections are shed (closed unanswered).
+ */
+static void raise_nofile(size_t max_conns)
+{
+    struct rlimit rl;
+    if (getrlimit(RLIMIT_NOFILE, &rl) != 0)
+        return;
+    if (rl.rlim_cur < rl.rlim_max) {
+        rl.rlim_cur = rl.rlim_max;
+        setrlimit(RLIMIT_NOFILE, &rl);
+        getrlimit(RLIMIT_NOFILE, &rl);
+    }
+    if (rl.rlim_cur != RLIM_INFINITY && rl.rlim_cur < (rlim_t)max_conns + NOFILE_SPARE)
+        say_warn("the open-file limit %llu leaves room for about %llu of --max-conns %zu; "
+                 "connections beyond it are shed (EMFILE)",
+                 (unsigned long long)rl.rlim_cur,
+                 rl.rlim_cur > NOFILE_SPARE ? (unsigned long long)(rl.rlim_cur - NOFILE_SPARE)
+                                            : 0ull,
+                 max_conns);
+    else
+        say_debug("open-file limit %llu", (unsigned long long)rl.rlim_cur);
+}
+
 int main(int argc, char **argv)
 {
     server_opts_t o = {
@@ -108,6 +150,11 @@ int main(int argc, char **argv)
         .checkpoint_every = 100000,
         .keep = 10,
         .db_max_mb = 0,
+        .max_conns = 1024,
+        .idle_timeout_s = 0,
+        .send_timeout_s = 30,
+        .max_features = 65536,
+        .max_model_mb = 2048,
     };
     int queue_set = 0;
     static const struct option longopts[] = {
@@ -125,6 +172,11 @@ int main(int argc, char **argv)
         {"keep", required_argument, NULL, 'k'},
         {"db-max-mb", required_argument, NULL, 'M'},
         {"metrics", required_argument, NULL, 'P'},
+        {"max-conns", required_argument, NULL, 'C'},
+        {"idle-timeout", required_argument, NULL, 'I'},
+        {"send-timeout", required_argument, NULL, 'S'},
+        {"max-features", required_argument, NULL, 'F'},
+        {"max-model-mb", required_argument, NULL, 'B'},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -190,6 +242,21 @@ int main(int argc, char **argv)
         case 'M':
             o.db_max_mb = parse_size("db-max-mb", optarg, 0, 1ull << 30);
             break;
+        case 'C':
+            o.max_conns = parse_size("max-conns", optarg, 1, 1000000);
+            break;
+        case 'I':
+            o.idle_timeout_s = (unsigned)parse_size("idle-timeout", optarg, 0, 86400 * 365);
+            break;
+        case 'S':
+            o.send_timeout_s = (unsigned)parse_size("send-timeout", optarg, 1, 86400);
+            break;
+        case 'F':
+            o.max_features = parse_size("max-features", optarg, 1, 1u << 20);
+            break;
+        case 'B':
+            o.max_model_mb = parse_size("max-model-mb", optarg, 1, 1ull << 30);
+            break;
         case 'h':
             fputs(usage, stdout);
             return 0;
@@ -236,6 +303,7 @@ int main(int argc, char **argv)
     signal(SIGPIPE, SIG_IGN);
     openblas_set_num_threads(1);
     say_info("worthd %s starting", WORTH_VERSION);
+    raise_nofile(o.max_conns);
     int status = server_run(&o);
     mem_free(token);
     return status;

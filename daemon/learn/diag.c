@@ -69,6 +69,12 @@ static unsigned auto_horizon(double gamma)
     return h > MAX_HORIZON ? MAX_HORIZON : (unsigned)(h < 1 ? 1 : h);
 }
 
+double diag_footprint(const diag_params_t *p, size_t n_est, size_t sources)
+{
+    double h = p->horizon ? (double)p->horizon : (double)auto_horizon(p->gamma);
+    return (double)sources * h * (double)(n_est + 2) * sizeof(double);
+}
+
 int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag **out, char *err,
              size_t errlen)
 {

@@ -68,6 +68,8 @@ void diag_params_default(double gamma, diag_params_t *p);
  * Builds the diagnostics for n_est estimators and `sources` source slots.
  * Returns 0, or WORTH_E_BAD_PARAM with a message in err.
  */
+/* Returns the most bytes the diagnostics of p can hold (every source's return buffer full). */
+double diag_footprint(const diag_params_t *p, size_t n_est, size_t sources);
 int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag **out, char *err,
              size_t errlen);
 void diag_free(struct diag *d);

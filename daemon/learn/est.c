@@ -149,6 +149,40 @@ static int check_params(const est_params_t *p, size_t n, size_t sources, char *e
     return 0;
 }
 
+double est_footprint(const est_params_t *p, size_t n, size_t sources)
+{
+    double nn = (double)n, S = (double)sources, d = sizeof(double);
+    double state = nn, snap = nn; /* weights, and w in each snapshot */
+    switch (p->kind) {
+    case EST_TD:
+        break;
+    case EST_TD_N: /* a ring of n steps per source: phi, r, g */
+        state += S * (double)p->nstep * (nn + 2);
+        break;
+    case EST_TD_LAMBDA: /* a dutch trace per source */
+        state += S * (nn + 2);
+        break;
+    case EST_MC: { /* the episode (or horizon) buffer per source */
+        double cap = p->horizon ? (double)p->horizon : (double)p->max_episode;
+        state += S * cap * (nn + 2);
+        break;
+    }
+    case EST_RLS_TD: /* P, three work vectors, a trace per source; P in each snapshot */
+        state += nn * nn + 3 * nn + S * (nn + 2);
+        snap += nn * nn + 1;
+        break;
+    case EST_LSTD: /* A, its LU copy M, work vectors, a trace per source */
+        state += 2 * nn * nn + 10 * nn + S * (nn + 2);
+        break;
+    case EST_REPLAY: /* capacity records of phi and g*phi', r; gradient and start weights */
+        state += (double)p->capacity * (2 * nn + 1) + 2 * nn;
+        break;
+    default:
+        break;
+    }
+    return (state + 2 * snap) * d;
+}
+
 int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, char *err,
             size_t errlen)
 {

@@ -110,6 +110,13 @@ int est_kind_parse(const char *name);
  */
 int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, char *err,
             size_t errlen);
+/*
+ * Returns the most bytes an estimator of p over n features and `sources`
+ * source slots can come to hold: weights, matrices, every source's traces and
+ * buffers at their full size, and two published value snapshots.  Pure
+ * arithmetic in double (no overflow), for a limit checked before est_new.
+ */
+double est_footprint(const est_params_t *p, size_t n, size_t sources);
 void est_free(struct est *e);
 /* Returns the estimator to its freshly built state. */
 void est_reset(struct est *e);

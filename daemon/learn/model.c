@@ -77,6 +77,19 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
     rc = feat_new(&spec->feat, &f, err, errlen);
     if (rc)
         return rc;
+    /* The feature map is small next to the estimators: size those before allocating them. */
+    if (spec->max_bytes > 0) {
+        size_t n = feat_count(f);
+        double need = model_footprint(spec, n) + spec->base_bytes;
+        if (need > spec->max_bytes) {
+            feat_free(f);
+            return err_fail(err, errlen, WORTH_E_TOO_LARGE,
+                            "the model would hold up to %.0f MiB (%zu features, %zu estimators, "
+                            "%zu sources), over the limit of %.0f MiB",
+                            ceil(need / 1048576.0), n, spec->n_est, nsrc,
+                            floor(spec->max_bytes / 1048576.0));
+        }
+    }
     struct model *m = mem_calloc(1, sizeof *m);
     m->feat = f;
     m->dims = feat_dims(f);
@@ -114,6 +127,22 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
 out_free_model:
     model_free(m);
     return rc;
+}
+
+double model_footprint(const model_spec_t *spec, size_t n)
+{
+    size_t nsrc = spec->max_sources ? spec->max_sources : MODEL_DEFAULT_SOURCES;
+    double bytes = 4.0 * (double)n * sizeof(double); /* phi, phi', feature workspace */
+    for (size_t i = 0; i < spec->n_est; i++)
+        bytes += est_footprint(&spec->est[i], n, nsrc);
+    diag_params_t dp;
+    if (spec->diag)
+        dp = *spec->diag;
+    else
+        diag_params_default(spec->gamma, &dp);
+    bytes += diag_footprint(&dp, spec->n_est, nsrc);
+    bytes += (double)nsrc * (MODEL_NAME_MAX + 1);
+    return bytes;
 }
 
 void model_free(struct model *m)

@@ -41,6 +41,8 @@ typedef struct model_spec_t {
     size_t primary;               /* index of the primary estimator */
     size_t max_sources;           /* source slots, 0 = MODEL_DEFAULT_SOURCES */
     const diag_params_t *diag;    /* diagnostics; NULL = diag_params_default(gamma) */
+    double max_bytes;  /* refuse (too_large) a model whose footprint exceeds this; 0 = no limit */
+    double base_bytes; /* bytes the caller holds per model besides it (e.g. its queue) */
 } model_spec_t;
 
 /*
@@ -72,9 +74,17 @@ typedef struct model_counts_t {
 
 /*
  * Builds a model into *out (owned, free with model_free).  Returns 0, or
- * WORTH_E_BAD_PARAM / WORTH_E_TOO_LARGE with a message in err.
+ * WORTH_E_BAD_PARAM / WORTH_E_TOO_LARGE with a message in err.  When
+ * spec->max_bytes is set, the model's footprint (model_footprint, plus
+ * spec->base_bytes) is checked against it before any estimator is allocated.
  */
 int model_new(const model_spec_t *spec, struct model **out, char *err, size_t errlen);
+/*
+ * Returns the most bytes a model of spec with n features can come to hold: its
+ * estimators (est_footprint), diagnostics and workspaces, with every source
+ * slot in use; base_bytes not included.
+ */
+double model_footprint(const model_spec_t *spec, size_t n);
 void model_free(struct model *m);
 /* Every estimator and counter back to its initial state; sources forgotten. */
 void model_reset(struct model *m);

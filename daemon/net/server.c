@@ -10,8 +10,23 @@
  * A connection stops reading while: its unsent replies exceed WRITE_HIGH
  * (until they drain to WRITE_LOW), its request is parked for queue space,
  * it waits for a learner's reply, or it has unhandled lines in the backlog.
+ * Lines already read are not handled either while the replies exceed
+ * WRITE_HIGH (held), so the queue of one client is bounded.
  * Learners report through one uv_async handle (coalescing, so every wake-up
  * drains the whole outbox and retries every parked connection).
+ *
+ * Limits (schema/protocol.md, "Limits"): at most max_conns client
+ * connections (one more is told too_many_connections and closed); a tick
+ * every TICK_MS closes connections idle for idle_timeout_s (after an
+ * idle_timeout line) and cuts off slow readers, whose unsent replies stayed
+ * over WRITE_HIGH for send_timeout_s (logged as slow_reader).  When accept
+ * fails for lack of descriptors (EMFILE), libuv frees its reserve descriptor
+ * to accept and close the waiting connections, silently.  If that reserve is
+ * gone (another thread took the descriptor it freed), libuv reports EMFILE
+ * to on_connection and retries at once: on_connection then sheds one waiting
+ * connection with a reserve of its own, so the retry loop ends when none is
+ * left, and logs at most every SHED_LOG_MS.  XXX: with both reserves gone
+ * the accept loop would spin until a descriptor frees up.
  *
  * Invariants.
  * 1. A connection is freed only in its uv_close callback.
@@ -25,6 +40,7 @@
 
 #include <arpa/inet.h>
 #include <errno.h>
+#include <fcntl.h>
 #include <netinet/in.h>
 #include <pthread.h>
 #include <signal.h>
@@ -44,6 +60,7 @@
 #include "proto.h"
 #include "recover.h"
 #include "say.h"
+#include "worth/errors.h"
 #include "writer.h"
 
 /* Lines handled per connection before yielding to others. */
@@ -51,6 +68,10 @@
 /* Stop reading from a client whose unsent replies exceed this; resume below WRITE_LOW. */
 #define WRITE_HIGH (4u << 20)
 #define WRITE_LOW  (1u << 20)
+/* Period of the timer that enforces the idle and send timeouts. */
+#define TICK_MS 250
+/* Least gap between two log lines about shed or refused connections. */
+#define SHED_LOG_MS 10000
 /* Input buffer: initial size and read size. */
 #define IN_START   65536
 #define READ_CHUNK 65536
@@ -71,7 +92,11 @@ struct conn {
     size_t bulk_need, bulk_have, bulk_cap;
     int in_bulk;
     int reading, waiting, parked, backlog, eof, closing, close_after;
-    size_t unsent; /* bytes queued in uv_write requests */
+    int held;          /* lines left unhandled while unsent >= WRITE_HIGH */
+    int full;          /* unsent has been >= WRITE_HIGH since full_ms */
+    uint64_t full_ms;  /* loop time unsent reached WRITE_HIGH */
+    uint64_t quiet_ms; /* loop time since which the connection has been idle */
+    size_t unsent;     /* bytes queued in uv_write requests */
     proto_conn_t pc;
 };
 
@@ -92,6 +117,10 @@ struct server {
     uv_async_t wake;
     uv_idle_t idle;
     int idle_on;
+    uv_timer_t tick;                  /* idle and send timeouts */
+    unsigned long long shed, refused; /* connections lost to EMFILE, refused over max_conns */
+    int reserve_fd;                   /* a spare descriptor, freed to shed a connection */
+    uint64_t shed_log_ms, refused_log_ms;
     struct conn *conns;
     uint64_t next_id;
     size_t n_conns;
@@ -188,8 +217,16 @@ static void on_write(uv_write_t *req, int status)
         conn_close(c);
         return;
     }
-    if (c->unsent < WRITE_LOW)
-        update_reading(c);
+    if (c->unsent < WRITE_HIGH)
+        c->full = 0;
+    if (c->unsent < WRITE_LOW) {
+        if (c->held) {
+            c->held = 0;
+            pump(c); /* the lines read before the replies piled up */
+        } else {
+            update_reading(c);
+        }
+    }
 }
 
 void conn_send(struct conn *c, const char *buf, size_t len)
@@ -224,6 +261,10 @@ void conn_send(struct conn *c, const char *buf, size_t len)
         return;
     }
     c->unsent += rest;
+    if (c->unsent >= WRITE_HIGH && !c->full) {
+        c->full = 1;
+        c->full_ms = uv_now(&c->srv->loop);
+    }
     if (c->unsent > WRITE_HIGH)
         update_reading(c);
 }
@@ -290,6 +331,7 @@ static void on_read(uv_stream_t *st, ssize_t n, const uv_buf_t *buf)
     struct conn *c = st->data;
     if (n > 0) {
         c->in_len += (size_t)n;
+        c->quiet_ms = uv_now(&c->srv->loop);
     } else if (n < 0) {
         if (n != UV_EOF)
             say_debug("connection %llu: read: %s", (unsigned long long)c->id, uv_strerror((int)n));
@@ -321,6 +363,10 @@ static void pump(struct conn *c)
     int lines = 0;
     c->backlog = 0;
     while (!c->closing && !c->close_after && !c->waiting && !c->parked) {
+        if (c->unsent >= WRITE_HIGH) {
+            c->held = 1; /* on_write resumes once the client has read its replies */
+            break;
+        }
         if (c->in_bulk) {
             size_t take = c->bulk_need - c->bulk_have, avail = c->in_len - c->in_off;
             if (take > avail)
@@ -371,7 +417,7 @@ static void pump(struct conn *c)
         }
     }
     if (c->eof && !c->closing && !c->close_after && !c->waiting && !c->parked && !c->backlog &&
-        !c->in_bulk)
+        !c->held && !c->in_bulk)
         conn_close_after_reply(c); /* the client finished: close once replies are out */
     if (c->backlog && !s->idle_on) {
         uv_idle_start(&s->idle, on_idle);
@@ -449,13 +495,92 @@ static void on_wake(uv_async_t *h)
         }
 }
 
+/* ---- limits ------------------------------------------------------------------------------ */
+
+/*
+ * Sends one error line that no request asked for (a limit closing the
+ * connection), with the code's stable name; then the caller closes.
+ */
+static void send_limit_error(struct conn *c, int code, const char *msg)
+{
+    char line[320];
+    int n = snprintf(line, sizeof line,
+                     "{\"ok\":false,\"error\":{\"code\":\"%s\",\"message\":\"%s\"}}\n",
+                     worth_err_name(code), msg);
+    if (n > 0 && (size_t)n < sizeof line)
+        conn_send(c, line, (size_t)n);
+}
+
+/* Returns 1 when at most one log line per SHED_LOG_MS may be written now (then resets *last). */
+static int log_due(struct server *s, uint64_t *last)
+{
+    uint64_t now = uv_now(&s->loop);
+    if (*last && now - *last < SHED_LOG_MS)
+        return 0;
+    *last = now;
+    return 1;
+}
+
+/* 1 when nothing is owed to c or pending on it: no request waiting, no reply queued. */
+static int conn_idle(const struct conn *c)
+{
+    return !c->waiting && !c->parked && !c->backlog && !c->held && !c->close_after &&
+           c->unsent == 0 && c->pc.ack_head == c->pc.n_acks && !c->pc.creating;
+}
+
+/* Every TICK_MS: cuts off slow readers and closes idle connections. */
+static void on_tick(uv_timer_t *t)
+{
+    struct server *s = t->data;
+    uint64_t now = uv_now(&s->loop);
+    uint64_t send_ms = (uint64_t)s->o->send_timeout_s * 1000;
+    uint64_t idle_ms = (uint64_t)s->o->idle_timeout_s * 1000;
+    for (struct conn *c = s->conns, *next; c; c = next) {
+        next = c->next;
+        if (c->closing)
+            continue;
+        if (c->full && send_ms && now - c->full_ms >= send_ms) {
+            say_warn("connection %llu: %s: %zu bytes of replies unread for %u s; cut off",
+                     (unsigned long long)c->id, worth_err_name(WORTH_E_SLOW_READER), c->unsent,
+                     s->o->send_timeout_s);
+            conn_close(c);
+            continue;
+        }
+        if (!conn_idle(c)) {
+            c->quiet_ms = now;
+            continue;
+        }
+        if (idle_ms && now - c->quiet_ms >= idle_ms) {
+            say_info("connection %llu: idle for %u s; closed", (unsigned long long)c->id,
+                     s->o->idle_timeout_s);
+            send_limit_error(c, WORTH_E_IDLE_TIMEOUT,
+                             "nothing received within --idle-timeout; connection closed");
+            conn_close_after_reply(c);
+        }
+    }
+}
+
 /* ---- listeners --------------------------------------------------------------------------- */
 
 static void on_connection(uv_stream_t *listener, int status)
 {
     struct server *s = listener->data;
     if (status < 0) {
-        say_warn("accept: %s", uv_strerror(status));
+        /* libuv retries accept as soon as this returns: shed one waiting connection. */
+        if ((status == UV_EMFILE || status == UV_ENFILE) && s->reserve_fd >= 0) {
+            uv_os_fd_t lfd;
+            close(s->reserve_fd);
+            if (uv_fileno((uv_handle_t *)listener, &lfd) == 0) {
+                int fd = accept(lfd, NULL, NULL);
+                if (fd >= 0)
+                    close(fd);
+            }
+            s->reserve_fd = open("/dev/null", O_RDONLY | O_CLOEXEC);
+        }
+        s->shed++;
+        if (log_due(s, &s->shed_log_ms))
+            say_warn("accept: %s; %llu connection%s shed so far", uv_strerror(status), s->shed,
+                     s->shed == 1 ? "" : "s");
         return;
     }
     int tcp = listener == (uv_stream_t *)&s->tcp_listener;
@@ -483,6 +608,18 @@ static void on_connection(uv_stream_t *listener, int status)
     }
     if (tcp)
         uv_tcp_nodelay(&c->u.tcp, 1);
+    c->quiet_ms = uv_now(&s->loop);
+    if (s->n_conns > s->o->max_conns) {
+        s->refused++;
+        if (log_due(s, &s->refused_log_ms))
+            say_warn("connection %llu refused: %zu connections open, the limit is %zu "
+                     "(--max-conns); %llu refused so far",
+                     (unsigned long long)c->id, s->n_conns - 1, s->o->max_conns, s->refused);
+        send_limit_error(c, WORTH_E_TOO_MANY_CONNECTIONS,
+                         "worthd holds its limit of connections (--max-conns); try again later");
+        conn_close_after_reply(c);
+        return;
+    }
     say_debug("connection %llu opened (%s)", (unsigned long long)c->id, tcp ? "tcp" : "unix");
     update_reading(c);
 }
@@ -502,6 +639,40 @@ static int unix_socket_live(const char *path)
     return live;
 }
 
+/*
+ * The socket's file mode guards it only as long as nobody else can replace it:
+ * refuses a directory that every user may write to without the sticky bit,
+ * or one owned by another user than worthd's or root.  Returns 0 or -1 (logged).
+ */
+static int check_socket_dir(const char *path)
+{
+    char dir[sizeof((struct sockaddr_un *)0)->sun_path];
+    const char *slash = strrchr(path, '/');
+    if (!slash)
+        snprintf(dir, sizeof dir, ".");
+    else if (slash == path)
+        snprintf(dir, sizeof dir, "/");
+    else
+        snprintf(dir, sizeof dir, "%.*s", (int)(slash - path), path);
+    struct stat st;
+    if (stat(dir, &st) != 0) {
+        say_error("socket directory %s: %s", dir, strerror(errno));
+        return -1;
+    }
+    if ((st.st_mode & S_IWOTH) && !(st.st_mode & S_ISVTX)) {
+        say_error("socket directory %s is writable by every user without the sticky bit "
+                  "(mode %04o): anyone could replace the socket; use a directory of worthd's own",
+                  dir, (unsigned)(st.st_mode & 07777));
+        return -1;
+    }
+    if (st.st_uid != geteuid() && st.st_uid != 0) {
+        say_error("socket directory %s belongs to user %u, not to worthd's user %u or root", dir,
+                  (unsigned)st.st_uid, (unsigned)geteuid());
+        return -1;
+    }
+    return 0;
+}
+
 static int listen_unix(struct server *s)
 {
     const char *path = s->o->socket_path;
@@ -511,6 +682,8 @@ static int listen_unix(struct server *s)
         return -1;
     }
     struct stat st;
+    if (check_socket_dir(path) != 0)
+        return -1;
     if (lstat(path, &st) == 0) {
         if (!S_ISSOCK(st.st_mode)) {
             say_error("%s exists and is not a socket; refusing to replace it", path);
@@ -632,6 +805,7 @@ static void stop(struct server *s, const char *why)
     uv_close((uv_handle_t *)&s->sigterm, NULL);
     uv_close((uv_handle_t *)&s->wake, NULL);
     uv_close((uv_handle_t *)&s->idle, NULL);
+    uv_close((uv_handle_t *)&s->tick, NULL);
 }
 
 static char *render_metrics(void *ctx, size_t *len)
@@ -649,6 +823,7 @@ int server_run(const server_opts_t *opts)
 {
     struct server *s = mem_calloc(1, sizeof *s);
     s->o = opts;
+    s->reserve_fd = open("/dev/null", O_RDONLY | O_CLOEXEC);
     int status = 1;
     char err[1024];
     CHECK(uv_loop_init(&s->loop) == 0);
@@ -668,6 +843,8 @@ int server_run(const server_opts_t *opts)
         arena_uninstall();
         uv_loop_close(&s->loop);
         pthread_mutex_destroy(&s->mu);
+        if (s->reserve_fd >= 0)
+            close(s->reserve_fd);
         mem_free(s);
         if (lock >= 0)
             close(lock);
@@ -683,6 +860,8 @@ int server_run(const server_opts_t *opts)
     s->wake.data = s;
     uv_idle_init(&s->loop, &s->idle);
     s->idle.data = s;
+    uv_timer_init(&s->loop, &s->tick);
+    s->tick.data = s;
     uv_signal_init(&s->loop, &s->sigint);
     uv_signal_init(&s->loop, &s->sigterm);
     s->sigint.data = s->sigterm.data = s;
@@ -701,6 +880,7 @@ int server_run(const server_opts_t *opts)
         (!opts->metrics || metrics_start(&s->loop, opts->metrics, opts->token, render_metrics, s,
                                          &s->metrics) == 0)) {
         status = 0;
+        uv_timer_start(&s->tick, on_tick, TICK_MS, TICK_MS);
     } else {
         stop(s, "start-up failed");
         status = 1;
@@ -717,6 +897,8 @@ int server_run(const server_opts_t *opts)
     pthread_mutex_destroy(&s->mu);
     mem_free(s->events);
     mem_free(s->draining);
+    if (s->reserve_fd >= 0)
+        close(s->reserve_fd);
     mem_free(s);
     close(lock);
     if (status == 0)

@@ -34,6 +34,11 @@ typedef struct server_opts_t {
     unsigned keep;             /* unlabelled checkpoints kept per model */
     uint64_t db_max_mb;        /* database size cap in MiB; 0 = none */
     const char *metrics;       /* "HOST:PORT" of the HTTP metrics listener, or NULL */
+    size_t max_conns;          /* client connections open at once (Unix and TCP together) */
+    unsigned idle_timeout_s;   /* close a connection silent this long; 0 = never */
+    unsigned send_timeout_s;   /* cut off a client whose unread replies stay over the cap */
+    size_t max_features;       /* features one model may have */
+    uint64_t max_model_mb;     /* memory one model may come to hold, in MiB */
 } server_opts_t;
 
 /*

@@ -655,7 +655,7 @@ static int do_create(struct req *rq)
 {
     struct proto *p = rq->p;
     spec_t *s = NULL;
-    int rc = spec_parse(rq->root, &s, p->err, sizeof p->err);
+    int rc = spec_parse_within(rq->root, p->o->max_features, &s, p->err, sizeof p->err);
     if (rc)
         return fail_done(rq, rc, "%s", p->err);
     if (find_model(p, s->name, NULL)) {
@@ -668,6 +668,11 @@ static int do_create(struct req *rq)
         spec_free(s);
         return PROTO_DONE;
     }
+    /* The memory the model implies, checked before its estimators are allocated. */
+    learner_opts_t qo;
+    proto_learner_opts(p, &qo);
+    s->m.max_bytes = (double)p->o->max_model_mb * 1048576.0;
+    s->m.base_bytes = learner_footprint(s->m.feat.dims, &qo);
     struct model *m = NULL;
     rc = model_new(&s->m, &m, p->err, sizeof p->err);
     if (rc) {
@@ -1050,6 +1055,8 @@ static int do_value(struct req *rq)
     if (!cJSON_IsArray(xs))
         return fail_done(rq, WORTH_E_BAD_REQUEST, "\"xs\" must be an array of states");
     size_t k = (size_t)cJSON_GetArraySize(xs);
+    if (k == 0)
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"xs\" is empty");
     if (k > p->o->max_batch)
         return fail_done(rq, WORTH_E_TOO_LARGE, "%zu states exceed the limit %zu", k,
                          p->o->max_batch);
@@ -1391,11 +1398,104 @@ static const struct {
     {"events", do_events},
 };
 
+/*
+ * Checks the bytes of a line before cJSON sees them: cJSON passes invalid
+ * UTF-8 and raw control bytes through into strings (and so into names and
+ * messages echoed back), and cuts a string at an escaped NUL.  Returns 0, or
+ * the error code with a message in msg.
+ */
+static int line_check(const char *line, size_t len, char *msg, size_t msglen)
+{
+    const unsigned char *b = (const unsigned char *)line;
+    for (size_t i = 0; i < len; i++) {
+        unsigned char ch = b[i];
+        if (ch < 0x20 && ch != '\t' && ch != '\r') {
+            snprintf(msg, msglen, "control byte 0x%02x at byte %zu (JSON escapes it in strings)",
+                     ch, i);
+            return WORTH_E_BAD_JSON;
+        }
+        if (ch == '\\' && i + 1 < len) {
+            if (b[i + 1] == 'u' && i + 5 < len && memcmp(b + i + 2, "0000", 4) == 0) {
+                snprintf(msg, msglen, "strings may not hold \\u0000 (byte %zu)", i);
+                return WORTH_E_BAD_REQUEST;
+            }
+            i++; /* the escaped character */
+            continue;
+        }
+        if (ch < 0x80)
+            continue;
+        /* UTF-8: no overlong forms, no surrogates, nothing above U+10FFFF. */
+        size_t more;
+        uint32_t cp;
+        if (ch >= 0xc2 && ch <= 0xdf)
+            more = 1, cp = ch & 0x1f;
+        else if (ch >= 0xe0 && ch <= 0xef)
+            more = 2, cp = ch & 0x0f;
+        else if (ch >= 0xf0 && ch <= 0xf4)
+            more = 3, cp = ch & 0x07;
+        else
+            goto bad_utf8;
+        if (i + more >= len)
+            goto bad_utf8;
+        for (size_t k = 1; k <= more; k++) {
+            if ((b[i + k] & 0xc0) != 0x80)
+                goto bad_utf8;
+            cp = (cp << 6) | (b[i + k] & 0x3f);
+        }
+        if ((more == 2 && cp < 0x800) || (more == 3 && (cp < 0x10000 || cp > 0x10ffff)) ||
+            (cp >= 0xd800 && cp <= 0xdfff))
+            goto bad_utf8;
+        i += more;
+        continue;
+    bad_utf8:
+        snprintf(msg, msglen, "the line is not valid UTF-8 (byte %zu)", i);
+        return WORTH_E_BAD_JSON;
+    }
+    return 0;
+}
+
+/*
+ * Prints a numeric id so that it reads back as the same double: an integer
+ * as itself, any other number with the fewest digits (15 to 17) that
+ * round-trip.  Returns 0, or an error code with a message: a non-finite id or
+ * an integer beyond 2^53, which a double cannot echo exactly.
+ */
+static int print_num_id(double v, char *buf, size_t cap, char *msg, size_t msglen)
+{
+    if (!isfinite(v)) {
+        snprintf(msg, msglen, "\"id\" must be a finite number");
+        return WORTH_E_BAD_NUMBER;
+    }
+    if (fabs(v) >= 9007199254740992.0) {
+        snprintf(msg, msglen,
+                 "a numeric \"id\" must lie within +-(2^53 - 1); send a larger one "
+                 "as a string");
+        return WORTH_E_BAD_PARAM;
+    }
+    if (v == floor(v)) {
+        snprintf(buf, cap, "%.0f", v == 0 ? 0.0 : v);
+        return 0;
+    }
+    for (int digits = 15; digits <= 17; digits++) {
+        snprintf(buf, cap, "%.*g", digits, v);
+        if (strtod(buf, NULL) == v)
+            break;
+    }
+    return 0;
+}
+
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
 {
     struct req rq = {p, c, NULL, NULL};
     int res = PROTO_DONE;
     const char *end = NULL;
+    char numid[40];
+    int code = line_check(line, len, p->err, sizeof p->err);
+    if (code) {
+        reply_error(p, c, NULL, code, -1, "%s", p->err);
+        arena_reset();
+        return PROTO_DONE;
+    }
     rq.root = cJSON_ParseWithLengthOpts(line, len, &end, 0);
     int trailing = 0;
     if (rq.root && end) {
@@ -1416,7 +1516,16 @@ int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
             reply_error(p, c, NULL, WORTH_E_BAD_REQUEST, -1, "\"id\" must be a number or a string");
             goto out;
         }
-        idtext = cJSON_PrintUnformatted(idf);
+        if (cJSON_IsNumber(idf)) {
+            code = print_num_id(idf->valuedouble, numid, sizeof numid, p->err, sizeof p->err);
+            if (code) {
+                reply_error(p, c, NULL, code, -1, "%s", p->err);
+                goto out;
+            }
+            idtext = numid;
+        } else {
+            idtext = cJSON_PrintUnformatted(idf);
+        }
         if (!idtext || strlen(idtext) > PROTO_ID_MAX) {
             reply_error(p, c, NULL, WORTH_E_BAD_REQUEST, -1, "\"id\" is longer than %d bytes",
                         PROTO_ID_MAX);

@@ -669,7 +669,7 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
     return 0;
 }
 
-static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
+static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size_t errlen)
 {
     int rc;
     const char *name = NULL;
@@ -716,10 +716,14 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
         return rc;
 
     /* Read before features: it bounds the number of bases. */
-    s->m.feat.max_features = FEAT_DEFAULT_MAX;
+    s->m.feat.max_features = FEAT_DEFAULT_MAX < feat_limit ? FEAT_DEFAULT_MAX : feat_limit;
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "max_features"))) {
         if ((rc = get_int(it, "max_features", 1, FEAT_HARD_MAX, &u, err, errlen)))
             return rc;
+        if (u > feat_limit)
+            return err_fail(err, errlen, WORTH_E_TOO_LARGE,
+                            "max_features %llu exceeds the daemon's limit %zu (--max-features)",
+                            (unsigned long long)u, feat_limit);
         s->m.feat.max_features = (size_t)u;
     }
     if ((rc = parse_features(req, s, dims, s->m.feat.max_features, err, errlen)))
@@ -753,8 +757,13 @@ static int parse(const cJSON *req, spec_t *s, char *err, size_t errlen)
 
 int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen)
 {
+    return spec_parse_within(req, FEAT_HARD_MAX, out, err, errlen);
+}
+
+int spec_parse_within(const cJSON *req, size_t feat_limit, spec_t **out, char *err, size_t errlen)
+{
     spec_t *s = mem_calloc(1, sizeof *s);
-    int rc = parse(req, s, err, errlen);
+    int rc = parse(req, feat_limit, s, err, errlen);
     if (rc)
         goto out_free_spec;
     s->m.feat.lo = s->lo;

@@ -39,6 +39,12 @@ typedef struct spec_t {
  * is the caller's to report.
  */
 int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen);
+/*
+ * spec_parse under a daemon's ceiling on features per model: max_features
+ * defaults to the smaller of FEAT_DEFAULT_MAX and feat_limit, and a spec
+ * asking for more than feat_limit is too_large.
+ */
+int spec_parse_within(const cJSON *req, size_t feat_limit, spec_t **out, char *err, size_t errlen);
 void spec_free(spec_t *s);
 
 /* Returns 1 when name is a valid model name: 1..63 bytes of [A-Za-z0-9._-]. */

@@ -37,7 +37,11 @@
     X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")       \
     X(STORAGE_FULL, -22, "storage_full", "the database is full; nothing of the request applied") \
     X(STORAGE_ERROR, -23, "storage_error", "the database could not be written")                  \
-    X(BAD_DATABASE, -24, "bad_database", "the database file is corrupt or not worthd's")
+    X(BAD_DATABASE, -24, "bad_database", "the database file is corrupt or not worthd's")       \
+    X(TOO_MANY_CONNECTIONS, -25, "too_many_connections",                                           \
+      "the daemon holds its limit of connections; try again later")                                \
+    X(IDLE_TIMEOUT, -26, "idle_timeout", "the connection was idle too long and is closed")         \
+    X(SLOW_READER, -27, "slow_reader", "the client did not read its replies; connection cut off")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),

@@ -3,7 +3,7 @@
  * queries, validation of transitions (exact codes, model bit-identical after a
  * rejection), spec errors, per-step and per-second discounting, terminal
  * transitions, counters, model_value, save/load round trips, corrupted and
- * mismatched states, and model_reset.
+ * mismatched states, model_reset, and the footprint checked before building.
  */
 #include "testutil.h"
 
@@ -900,6 +900,54 @@ static void snapshot_answers_like_the_model(void **state)
     model_free(m);
 }
 
+/* model_footprint bounds what the model holds; model_new refuses over max_bytes, allocating
+ * nothing. */
+static void footprint_is_checked_before_building(void **state)
+{
+    (void)state;
+    fixture fx;
+    std_fixture(&fx);
+    size_t n = 10; /* bias + 3x3 rbf */
+    double all = model_footprint(&fx.spec, n);
+    /* Dropping the rls_td estimator removes exactly its share (P, and P in two snapshots) and
+     * its column in the diagnostics' return buffers. */
+    fx.spec.n_est = 1;
+    fx.spec.primary = 0;
+    double td_only = model_footprint(&fx.spec, n);
+    double rls = est_footprint(&fx.est[1], n, 3);
+    diag_params_t dp;
+    diag_params_default(0.9, &dp);
+    double diag_col = diag_footprint(&dp, 2, 3) - diag_footprint(&dp, 1, 3);
+    assert_true(diag_col > 0);
+    assert_near(all - td_only, rls + diag_col, 1e-6);
+    assert_true(rls >= 3.0 * n * n * sizeof(double));
+    /* A 8192-feature rls_td holds three 512 MiB matrices. */
+    assert_true(est_footprint(&fx.est[1], 8192, 1) >= 3.0 * 8192 * 8192 * 8);
+    /* Replay: capacity records of 2n + 1 doubles. */
+    est_params_t rp;
+    est_params_default(EST_REPLAY, &rp);
+    rp.capacity = 1000;
+    assert_true(est_footprint(&rp, n, 1) >= 1000.0 * (2 * n + 1) * 8);
+    /* mc: max_episode steps per source, each source counted. */
+    est_params_t mc;
+    est_params_default(EST_MC, &mc);
+    assert_true(est_footprint(&mc, n, 16) >= 16.0 * mc.max_episode * n * 8);
+    assert_true(est_footprint(&mc, n, 16) > 15.0 * est_footprint(&mc, n, 1));
+
+    std_fixture(&fx);
+    fx.spec.base_bytes = 4096;
+    fx.spec.max_bytes = all + 4096 - 1;
+    struct model *m = SENTINEL;
+    char err[256] = "";
+    assert_int_equal(model_new(&fx.spec, &m, err, sizeof err), WORTH_E_TOO_LARGE);
+    assert_ptr_equal(m, SENTINEL);
+    assert_non_null(strstr(err, "MiB"));
+    fx.spec.max_bytes = all + 4096;
+    m = build(&fx.spec);
+    assert_int_equal(model_features(m), n);
+    model_free(m);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -908,6 +956,7 @@ int main(void)
         cmocka_unit_test(bad_transitions_leave_the_model_unchanged),
         cmocka_unit_test(model_check_accepts_without_changing),
         cmocka_unit_test(bad_specs_are_refused),
+        cmocka_unit_test(footprint_is_checked_before_building),
         cmocka_unit_test(discount_per_second_and_per_step),
         cmocka_unit_test(terminal_ignores_x_next),
         cmocka_unit_test(counters_count),
