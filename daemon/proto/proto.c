@@ -479,6 +479,11 @@ static int get_vector(const cJSON *arr, size_t n, double *out, const char *name,
  * messages ("" or "batch[3]: ").  Returns 0 or a worth code with err set;
  * *src gets the source name (borrowed from the tree; NULL = default).
  */
+/* Largest |r| accepted.  Squares of TD errors must stay finite in a double for the
+ * estimators and their running statistics; 1e12 leaves them room (1e24 each) and is far
+ * beyond any reward a plant reports in its own units. */
+#define PROTO_MAX_ABS_R 1e12
+
 static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *r, const char **src,
                      char *err, size_t errlen, const char *where)
 {
@@ -521,6 +526,10 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, learner_rec_t *
     }
     if (!opt_number(o, "r", &r->r, &code, err, errlen, where))
         return code;
+    if (fabs(r->r) > PROTO_MAX_ABS_R) {
+        snprintf(err, errlen, "%s\"r\" is beyond +-%g", where, PROTO_MAX_ABS_R);
+        return WORTH_E_BAD_NUMBER;
+    }
     if (xn) {
         if (!get_vector(xn, d, r->v + d, "x_next", &code, err, errlen, where))
             return code;
@@ -944,6 +953,11 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
         if (!finite) {
             reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i,
                         "record %zu holds a NaN or infinite value", i);
+            return PROTO_DONE;
+        }
+        if (fabs(r->r) > PROTO_MAX_ABS_R) {
+            reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i, "record %zu: r is beyond +-%g", i,
+                        PROTO_MAX_ABS_R);
             return PROTO_DONE;
         }
         if (term != 0.0 && term != 1.0) {

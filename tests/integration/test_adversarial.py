@@ -122,6 +122,9 @@ ROWS = [
     # numbers
     ("r_overflow", obs_raw("r", b"1e400"), ["bad_number"], OPEN, "unix"),
     ("r_negative_overflow", obs_raw("r", b"-1e400"), ["bad_number"], OPEN, "unix"),
+    # finite, but its square would overflow a double (protocol.md: |r| <= 1e12)
+    ("r_1e308", obs_raw("r", b"1e308"), ["bad_number"], OPEN, "unix"),
+    ("r_just_over_bound", obs_raw("r", b"-1.0000001e12"), ["bad_number"], OPEN, "unix"),
     ("x_huge_exponent", obs_raw("x", b"[1e999999,0.5]"), ["bad_number"], OPEN, "unix"),
     ("r_nan_literal", obs_raw("r", b"NaN"), ["bad_json"], OPEN, "unix"),
     ("r_infinity_literal", obs_raw("r", b"Infinity"), ["bad_json"], OPEN, "unix"),
@@ -251,6 +254,7 @@ ROWS = [
      "unix"),
     ("bulk_inf_record", bulk_head(count=1) + rec(x=(float("-inf"), 0.5)), ["bad_number"], OPEN,
      "unix"),
+    ("bulk_r_1e308", bulk_head(count=1) + rec(r=1e308), ["bad_number"], OPEN, "unix"),
     ("bulk_terminal_2", bulk_head(count=1) + rec(term=2.0), ["bad_param"], OPEN, "unix"),
     # before auth, on the guarded TCP listener
     ("tcp_hello_before_auth", j({"op": "hello"}), ["unauthorized"], OPEN, "tcp"),
