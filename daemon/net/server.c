@@ -163,6 +163,20 @@ static void conn_close(struct conn *c)
     uv_close(&c->u.h, on_close);
 }
 
+/*
+ * Closes a connection marked close_after once its last reply is out: nothing
+ * unsent and no reply still waiting in the protocol for its transitions to be
+ * durable (closing earlier would drop those replies, and with them the error
+ * that said why the connection ends).  Returns 1 when it closed.
+ */
+static int maybe_close(struct conn *c)
+{
+    if (!c->close_after || c->closing || c->unsent != 0 || !proto_conn_quiet(&c->pc))
+        return 0;
+    conn_close(c);
+    return 1;
+}
+
 static void on_write(uv_write_t *req, int status)
 {
     struct wreq *w = (struct wreq *)req;
@@ -175,12 +189,8 @@ static void on_write(uv_write_t *req, int status)
         conn_close(c);
         return;
     }
-    if (c->closing)
+    if (c->closing || maybe_close(c))
         return;
-    if (c->close_after && c->unsent == 0) {
-        conn_close(c);
-        return;
-    }
     if (c->unsent < WRITE_LOW)
         update_reading(c);
 }
@@ -224,9 +234,7 @@ void conn_send(struct conn *c, const char *buf, size_t len)
 void conn_close_after_reply(struct conn *c)
 {
     c->close_after = 1;
-    if (c->unsent == 0)
-        conn_close(c);
-    else
+    if (!maybe_close(c))
         update_reading(c);
 }
 
@@ -399,12 +407,16 @@ static void on_wake(uv_async_t *h)
     if (s->stopping)
         return;
     drain_events(s);
-    /* Space may have been freed: retry every parked connection. */
-    for (struct conn *c = s->conns; c; c = c->next)
+    /* Space may have been freed: retry every parked connection.  Replies may have become
+     * durable: close the connections that only waited for theirs. */
+    for (struct conn *c = s->conns; c; c = c->next) {
+        if (maybe_close(c))
+            continue;
         if (c->parked && !c->closing) {
             c->parked = 0;
             pump(c);
         }
+    }
 }
 
 /* ---- listeners --------------------------------------------------------------------------- */
