@@ -44,6 +44,14 @@ void frame_close(frame_t *f)
     f->len = f->off = f->cap = f->bulk_cap = 0;
 }
 
+void frame_reset(frame_t *f)
+{
+    f->len = f->off = f->pending = 0;
+    f->bulk_need = f->bulk_have = 0;
+    f->in_bulk = f->ended = 0;
+    f->last = FRAME_MORE;
+}
+
 void frame_space(frame_t *f, char **buf, size_t *room)
 {
     /* Move the unread bytes to the front when that makes room for a whole read. */

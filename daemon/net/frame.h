@@ -61,6 +61,8 @@ typedef struct frame_t {
 void frame_init(frame_t *f, size_t max_line);
 /* Frees f's buffers. */
 void frame_close(frame_t *f);
+/* Starts a new stream on f's buffers (for tests and the fuzz target, which reuse a framer). */
+void frame_reset(frame_t *f);
 
 /* Operate */
 
