@@ -12,7 +12,7 @@
  *    must then come back unchanged.  The sequence of framed events (kind,
  *    length, bytes) must be identical in every run; any difference aborts.
  *    A stand-in decides which lines are bulk headers here: a line holding
- *    "observe.bulk" and "count":N with N in 1..64 announces N records of a
+ *    "observe.bulk" and "count":N with N in 1..8 announces N records of a
  *    2-dimensional model (48 bytes each).
  *
  * 2. The real dispatcher.  The stream goes through the framer into
@@ -35,7 +35,7 @@
  *    so each input starts from the same state and a crash reproduces alone.
  *
  * Limits (kept small so the odd paths are reachable): max_line 1024 bytes,
- * max_batch 64, queue 64 records, 4 models, an automatic checkpoint every 50
+ * max_batch 8, queue 8 records, 4 models, an automatic checkpoint every 50
  * transitions.  Every wait for a thread is bounded (WAIT_S); a request that
  * never gets its reply aborts as a finding.  The connection needs "auth" (the
  * token is "s3cret") when the input's length is 7 modulo 8.
@@ -62,7 +62,7 @@
 #include "writer.h"
 
 #define MAX_LINE   1024
-#define MAX_BATCH  64
+#define MAX_BATCH  8 /* and the queue: two batches in a row park the second */
 #define MAX_MODELS 4
 /* Seconds a reply or a learner may take before the input counts as hung. */
 #define WAIT_S 20

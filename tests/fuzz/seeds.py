@@ -98,6 +98,10 @@ def main():
         record((1, 1), 0, (1, 1), 2))
     add("bulk_ack_applied", (session_create + "\n" + header[:-1] + ',"ack":"applied"}\n').encode()
         + b"".join(recs))
+    # Two full batches in a row: the second waits (parks) for queue space.
+    batch = json.dumps({"op": "observe", "model": name, "batch": [
+        {"x": [4.2, 180], "r": -1.5, "x_next": [4.3, 175]}] * 8}, separators=(",", ":"))
+    add("batches_park", session_create + "\n" + batch + "\n" + batch + "\n" + batch + "\n")
     add("crlf_and_blank", session_create + "\r\n\r\n  \n" + '{"op":"hello","id":"a"}\r\n')
 
     os.makedirs(out_dir, exist_ok=True)
