@@ -1,9 +1,9 @@
 /*
  * server.c - worthd's libuv loop: listeners, connections, framing, wake-ups.
  *
- * The loop thread owns every handle here.  It splits each connection's input
- * into lines of at most max_line bytes and gives them to the protocol layer,
- * at most LINES_PER_PUMP per turn (the rest wait for the idle handle, so one
+ * The loop thread owns every handle here.  Each connection's framer (frame.h)
+ * splits its input into lines of at most max_line bytes and bulk payloads;
+ * this file gives them to the protocol layer, at most LINES_PER_PUMP per turn (the rest wait for the idle handle, so one
  * busy client cannot starve the others).  Replies are written at once with
  * uv_try_write; only what the socket does not take is copied and queued.
  *
@@ -33,7 +33,7 @@
  * 2. A line is consumed from the input buffer only when the protocol has
  *    handled it (not when it parked it).
  * 3. Bytes after a bulk header belong to the bulk payload until it is
- *    complete; a payload cut short by EOF applies nothing.
+ *    complete; a payload cut short by EOF applies nothing (frame.c).
  * It must never do disk I/O or O(n^2) work per transition.
  */
 #include "server.h"
@@ -55,6 +55,7 @@
 
 #include "arena.h"
 #include "db.h"
+#include "frame.h"
 #include "metrics.h"
 #include "mem.h"
 #include "proto.h"
@@ -72,9 +73,6 @@
 #define TICK_MS 250
 /* Least gap between two log lines about shed or refused connections. */
 #define SHED_LOG_MS 10000
-/* Input buffer: initial size and read size. */
-#define IN_START   65536
-#define READ_CHUNK 65536
 
 struct conn {
     union {
@@ -86,11 +84,7 @@ struct conn {
     struct server *srv;
     uint64_t id;
     struct conn *prev, *next; /* every live connection */
-    char *in;
-    size_t in_len, in_off, in_cap;
-    unsigned char *bulk;
-    size_t bulk_need, bulk_have, bulk_cap;
-    int in_bulk;
+    frame_t fr; /* input buffer and framing */
     int reading, waiting, parked, backlog, eof, closing, close_after;
     int held;          /* lines left unhandled while unsent >= WRITE_HIGH */
     int full;          /* unsent has been >= WRITE_HIGH since full_ms */
@@ -183,8 +177,7 @@ static void on_close(uv_handle_t *h)
     s->n_conns--;
     proto_conn_free(s->proto, &c->pc);
     say_debug("connection %llu closed", (unsigned long long)c->id);
-    mem_free(c->in);
-    mem_free(c->bulk);
+    frame_close(&c->fr);
     mem_free(c);
 }
 
@@ -199,6 +192,20 @@ static void conn_close(struct conn *c)
     uv_close(&c->u.h, on_close);
 }
 
+/*
+ * Closes a connection marked close_after once its last reply is out: nothing
+ * unsent and no reply still waiting in the protocol for its transitions to be
+ * durable (closing earlier would drop those replies, and with them the error
+ * that said why the connection ends).  Returns 1 when it closed.
+ */
+static int maybe_close(struct conn *c)
+{
+    if (!c->close_after || c->closing || c->unsent != 0 || !proto_conn_quiet(&c->pc))
+        return 0;
+    conn_close(c);
+    return 1;
+}
+
 static void on_write(uv_write_t *req, int status)
 {
     struct wreq *w = (struct wreq *)req;
@@ -211,12 +218,8 @@ static void on_write(uv_write_t *req, int status)
         conn_close(c);
         return;
     }
-    if (c->closing)
+    if (c->closing || maybe_close(c))
         return;
-    if (c->close_after && c->unsent == 0) {
-        conn_close(c);
-        return;
-    }
     if (c->unsent < WRITE_HIGH)
         c->full = 0;
     if (c->unsent < WRITE_LOW) {
@@ -272,22 +275,13 @@ void conn_send(struct conn *c, const char *buf, size_t len)
 void conn_close_after_reply(struct conn *c)
 {
     c->close_after = 1;
-    if (c->unsent == 0)
-        conn_close(c);
-    else
+    if (!maybe_close(c))
         update_reading(c);
 }
 
 void conn_expect_bulk(struct conn *c, size_t nbytes)
 {
-    c->in_bulk = 1;
-    c->bulk_need = nbytes;
-    c->bulk_have = 0;
-    if (c->bulk_cap < nbytes) {
-        mem_free(c->bulk);
-        c->bulk = mem_alloc(nbytes);
-        c->bulk_cap = nbytes;
-    }
+    frame_expect_bulk(&c->fr, nbytes);
 }
 
 void conn_wait(struct conn *c)
@@ -308,21 +302,10 @@ static void on_alloc(uv_handle_t *h, size_t suggested, uv_buf_t *buf)
 {
     (void)suggested;
     struct conn *c = h->data;
-    if (c->in_off > 0 && (c->in_off == c->in_len || c->in_cap - c->in_len < READ_CHUNK)) {
-        memmove(c->in, c->in + c->in_off, c->in_len - c->in_off);
-        c->in_len -= c->in_off;
-        c->in_off = 0;
-    }
-    size_t limit = c->srv->o->max_line + READ_CHUNK + 2;
-    if (c->in_cap - c->in_len < READ_CHUNK && c->in_cap < limit) {
-        size_t cap = c->in_cap * 2;
-        if (cap > limit)
-            cap = limit;
-        c->in = mem_realloc(c->in, cap);
-        c->in_cap = cap;
-    }
-    size_t room = c->in_cap - c->in_len;
-    *buf = uv_buf_init(c->in + c->in_len, (unsigned)(room > READ_CHUNK ? READ_CHUNK : room));
+    char *p;
+    size_t room;
+    frame_space(&c->fr, &p, &room);
+    *buf = uv_buf_init(p, (unsigned)room);
 }
 
 static void on_read(uv_stream_t *st, ssize_t n, const uv_buf_t *buf)
@@ -330,7 +313,7 @@ static void on_read(uv_stream_t *st, ssize_t n, const uv_buf_t *buf)
     (void)buf;
     struct conn *c = st->data;
     if (n > 0) {
-        c->in_len += (size_t)n;
+        frame_filled(&c->fr, (size_t)n);
         c->quiet_ms = uv_now(&c->srv->loop);
     } else if (n < 0) {
         if (n != UV_EOF)
@@ -367,57 +350,40 @@ static void pump(struct conn *c)
             c->held = 1; /* on_write resumes once the client has read its replies */
             break;
         }
-        if (c->in_bulk) {
-            size_t take = c->bulk_need - c->bulk_have, avail = c->in_len - c->in_off;
-            if (take > avail)
-                take = avail;
-            memcpy(c->bulk + c->bulk_have, c->in + c->in_off, take);
-            c->bulk_have += take;
-            c->in_off += take;
-            if (c->bulk_have < c->bulk_need) {
-                if (c->eof) {
-                    c->in_bulk = 0;
-                    proto_bulk_truncated(s->proto, c, c->bulk_have);
-                    conn_close_after_reply(c);
-                }
-                break;
-            }
-            if (proto_bulk(s->proto, c, c->bulk, c->bulk_need) == PROTO_PARK) {
-                c->parked = 1;
-                break;
-            }
-            c->in_bulk = 0;
-            continue;
+        frame_ev_t ev;
+        enum frame_kind k = frame_next(&c->fr, c->eof, &ev);
+        if (k == FRAME_MORE)
+            break; /* wait for more input (or, at EOF, the client is done) */
+        if (k == FRAME_TRUNCATED) {
+            proto_bulk_truncated(s->proto, c, ev.got);
+            conn_close_after_reply(c);
+            break;
         }
-        char *start = c->in + c->in_off;
-        size_t avail = c->in_len - c->in_off;
-        char *nl = memchr(start, '\n', avail);
-        size_t len = nl ? (size_t)(nl - start) : avail;
-        if (len > s->o->max_line) {
+        if (k == FRAME_TOO_LONG) {
             proto_line_too_long(s->proto, c);
             conn_close_after_reply(c);
             break;
         }
-        if (!nl && !(c->eof && avail > 0))
-            break; /* wait for the rest of the line */
-        size_t eaten = nl ? len + 1 : len;
-        if (len > 0 && start[len - 1] == '\r')
-            len--;
-        int blank = 1;
-        for (size_t i = 0; i < len && blank; i++)
-            blank = start[i] == ' ' || start[i] == '\t';
-        if (!blank && proto_line(s->proto, c, start, len) == PROTO_PARK) {
+        if (k == FRAME_BULK) {
+            if (proto_bulk(s->proto, c, ev.data, ev.len) == PROTO_PARK) {
+                c->parked = 1;
+                break;
+            }
+            frame_consume(&c->fr);
+            continue;
+        }
+        if (k == FRAME_LINE && proto_line(s->proto, c, ev.line, ev.len) == PROTO_PARK) {
             c->parked = 1;
             break;
         }
-        c->in_off += eaten;
+        frame_consume(&c->fr);
         if (++lines >= LINES_PER_PUMP) {
             c->backlog = 1;
             break;
         }
     }
     if (c->eof && !c->closing && !c->close_after && !c->waiting && !c->parked && !c->backlog &&
-        !c->held && !c->in_bulk)
+        !c->held && !frame_in_bulk(&c->fr))
         conn_close_after_reply(c); /* the client finished: close once replies are out */
     if (c->backlog && !s->idle_on) {
         uv_idle_start(&s->idle, on_idle);
@@ -487,12 +453,16 @@ static void on_wake(uv_async_t *h)
     if (s->stopping)
         return;
     drain_events(s);
-    /* Space may have been freed: retry every parked connection. */
-    for (struct conn *c = s->conns; c; c = c->next)
+    /* Space may have been freed: retry every parked connection.  Replies may have become
+     * durable: close the connections that only waited for theirs. */
+    for (struct conn *c = s->conns; c; c = c->next) {
+        if (maybe_close(c))
+            continue;
         if (c->parked && !c->closing) {
             c->parked = 0;
             pump(c);
         }
+    }
 }
 
 /* ---- limits ------------------------------------------------------------------------------ */
@@ -525,7 +495,7 @@ static int log_due(struct server *s, uint64_t *last)
 static int conn_idle(const struct conn *c)
 {
     return !c->waiting && !c->parked && !c->backlog && !c->held && !c->close_after &&
-           c->unsent == 0 && c->pc.ack_head == c->pc.n_acks && !c->pc.creating;
+           c->unsent == 0 && proto_conn_quiet(&c->pc) && !c->pc.creating;
 }
 
 /* Every TICK_MS: cuts off slow readers and closes idle connections. */
@@ -597,8 +567,7 @@ static void on_connection(uv_stream_t *listener, int status)
         s->conns->prev = c;
     s->conns = c;
     s->n_conns++;
-    c->in = mem_alloc(IN_START);
-    c->in_cap = IN_START;
+    frame_init(&c->fr, s->o->max_line);
     proto_conn_init(&c->pc, tcp && s->o->token != NULL);
     int rc = uv_accept(listener, &c->u.s);
     if (rc < 0) {

@@ -1708,6 +1708,11 @@ void proto_conn_init(proto_conn_t *pc, int needs_auth)
     pc->dt_s = NAN;
 }
 
+int proto_conn_quiet(const proto_conn_t *pc)
+{
+    return pc->ack_head == pc->n_acks;
+}
+
 void proto_conn_free(struct proto *p, proto_conn_t *pc)
 {
     for (size_t i = pc->ack_head; i < pc->n_acks; i++) {

@@ -78,6 +78,11 @@ void proto_free(struct proto *p);
 void proto_conn_init(proto_conn_t *pc, int needs_auth);
 /* Releases what the connection's state holds (it is closing). */
 void proto_conn_free(struct proto *p, proto_conn_t *pc);
+/*
+ * Returns 1 when no reply waits on this connection (every answer so far has
+ * gone to conn_send), 0 while one waits for its transitions to be durable.
+ */
+int proto_conn_quiet(const proto_conn_t *pc);
 /* Handles one request line (len bytes without the newline, borrowed). */
 int proto_line(struct proto *p, struct conn *c, const char *line, size_t len);
 /* Handles the complete payload of the pending bulk request of c. */
