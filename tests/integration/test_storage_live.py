@@ -300,3 +300,22 @@ def test_disk_really_full(daemon, tmp_path, small_fs):
     assert snapshot(c, MODEL) == live
     assert live == Reference(daemon, tmp_path).feed(acked)
     d2.shutdown()
+
+
+def test_read_only_remount_refused_while_worthd_writes(daemon, small_fs):
+    """The other meaning of "made read-only": a remount of the file system.  Linux refuses it
+    (EBUSY, "mount point is busy") while worthd holds its database open for writing, so
+    worthd goes on; this is why the read-only test above changes the file's mode."""
+    db = os.path.join(small_fs, "worthd.db")
+    d = daemon(db=db)
+    c = d.client()
+    create_model(c)
+    stream = Stream(4500)
+    feed(c, MODEL, [stream.one(None, None) for _ in range(100)], batch=50, first=1)
+    r = subprocess.run(["mount", "-o", "remount,ro", small_fs], capture_output=True, text=True,
+                       timeout=30)
+    print(f"remount,ro while worthd runs: exit {r.returncode}: {r.stderr.strip()}")
+    assert r.returncode != 0, "the file system was remounted read-only under worthd"
+    assert "busy" in r.stderr, r.stderr
+    feed(c, MODEL, [stream.one(None, None) for _ in range(100)], batch=50, first=101)
+    d.shutdown()
