@@ -24,11 +24,10 @@ import tempfile
 import threading
 import time
 
-import numpy as np
 import pytest
 
 from conftest import Client, is_closed_error
-from test_durable import PROBES, feed, log_rows, row_to_tr, snapshot
+from test_durable import feed, log_rows, row_to_tr, snapshot
 from test_faults import (MODEL, NAMES, Reference, Stream, create_model, log_prefix_check,
                          records, send_request)
 
