@@ -68,8 +68,7 @@ int fileguard_check(fileguard_t *g, char *why, size_t len)
         return FILEGUARD_REMOVED;
     }
     if (faccessat(AT_FDCWD, g->path, W_OK, AT_EACCESS) != 0) {
-        snprintf(why, len, "the database file %s is not writable (%s)", g->path,
-                 strerror(errno));
+        snprintf(why, len, "the database file %s is not writable (%s)", g->path, strerror(errno));
         return FILEGUARD_READONLY;
     }
     return FILEGUARD_OK;

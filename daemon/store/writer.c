@@ -90,11 +90,11 @@ struct writer {
     void *ctx;
     /* The database file's health (writer thread only). */
     fileguard_t guard;
-    int guarded;          /* guard holds the identities of the open file */
-    int readonly;         /* the last check found the file not writable */
-    int lost;             /* 0, FILEGUARD_REMOVED (a copy back is retried) or _REPLACED */
-    double next_rescue;   /* db_now() after which a failed copy back is tried again */
-    char lost_why[200];   /* why writes are refused while lost or without a connection */
+    int guarded;        /* guard holds the identities of the open file */
+    int readonly;       /* the last check found the file not writable */
+    int lost;           /* 0, FILEGUARD_REMOVED (a copy back is retried) or _REPLACED */
+    double next_rescue; /* db_now() after which a failed copy back is tried again */
+    char lost_why[200]; /* why writes are refused while lost or without a connection */
 };
 
 static void post_reply(struct writer *w, struct learner *l, uint64_t conn_id, int rc,
@@ -279,13 +279,12 @@ static int rescue(struct writer *w, char *why, size_t len)
     int64_t max_pages = pragma_int(w->db, "PRAGMA max_page_count");
     int copy = access(path, F_OK) != 0;
     sqlite3_stmt *st = NULL;
-    int ok = sqlite3_prepare_v2(w->db, "PRAGMA wal_checkpoint(TRUNCATE)", -1, &st, NULL) ==
-                 SQLITE_OK &&
-             sqlite3_step(st) == SQLITE_ROW && sqlite3_column_int(st, 0) == 0;
+    int ok =
+        sqlite3_prepare_v2(w->db, "PRAGMA wal_checkpoint(TRUNCATE)", -1, &st, NULL) == SQLITE_OK &&
+        sqlite3_step(st) == SQLITE_ROW && sqlite3_column_int(st, 0) == 0;
     sqlite3_finalize(st);
     if (!ok) {
-        msgf(why, len, "cannot checkpoint the log into the open file: %s",
-                 sqlite3_errmsg(w->db));
+        msgf(why, len, "cannot checkpoint the log into the open file: %s", sqlite3_errmsg(w->db));
         return -1;
     }
     if (copy) {
@@ -321,8 +320,8 @@ static int rescue(struct writer *w, char *why, size_t len)
     w->db = NULL;
     w->guarded = 0;
     if (copy && (rename(tmp, path) != 0 || sync_path(dir, 1) != 0)) {
-        msgf(why, len, "cannot move %s to %s (%s); everything acknowledged is in %s", tmp,
-                 path, strerror(errno), tmp);
+        msgf(why, len, "cannot move %s to %s (%s); everything acknowledged is in %s", tmp, path,
+             strerror(errno), tmp);
         return -1;
     }
     char err[512];
@@ -406,8 +405,7 @@ static int health(struct writer *w, char *why, size_t len)
                   w->guard.path);
     char fail[sizeof w->lost_why];
     if (rescue(w, fail, sizeof fail) == 0) {
-        say_warn("database %s written back with everything committed; writes go on",
-                 w->guard.path);
+        say_warn("database %s written back with everything committed; writes go on", w->guard.path);
         w->lost = 0;
         return FILEGUARD_OK;
     }
@@ -1085,8 +1083,8 @@ static int write_group(struct writer *w)
                           why, taken);
                 for (size_t i = 0; i < nm; i++)
                     if (w->upto[i] > from[i])
-                        fail_records(w, w->models[i], from[i], w->upto[i],
-                                     WORTH_E_STORAGE_ERROR, why);
+                        fail_records(w, w->models[i], from[i], w->upto[i], WORTH_E_STORAGE_ERROR,
+                                     why);
                 return 1;
             }
         }
