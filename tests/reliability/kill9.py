@@ -34,6 +34,7 @@ def main():
                                                       str(ROOT / "build/daemon/worthd")))
     ap.add_argument("--keep", action="store_true", help="keep the temporary directory")
     a = ap.parse_args()
+    a.daemon = os.path.abspath(a.daemon)  # worthd runs in its own working directory
     if not os.access(a.daemon, os.X_OK):
         sys.exit(f"kill9: {a.daemon} is not an executable (build first: ninja -C build)")
     work = pathlib.Path(tempfile.mkdtemp(prefix="worth-kill9-"))
