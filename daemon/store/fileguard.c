@@ -40,9 +40,11 @@ int fileguard_init(fileguard_t *g, const char *path)
     return 0;
 }
 
-int fileguard_check(fileguard_t *g, char *why, size_t len)
+int fileguard_check(fileguard_t *g, int what, char *why, size_t len)
 {
     struct stat st;
+    if (!(what & FILEGUARD_NAME))
+        goto access;
     if (stat(g->path, &st) != 0) {
         int e = errno;
         snprintf(why, len, "the database file %s is gone (%s)", g->path, strerror(e));
@@ -67,8 +69,14 @@ int fileguard_check(fileguard_t *g, char *why, size_t len)
         snprintf(why, len, "the write-ahead log %s was removed", g->wal);
         return FILEGUARD_REMOVED;
     }
-    if (faccessat(AT_FDCWD, g->path, W_OK, AT_EACCESS) != 0) {
-        snprintf(why, len, "the database file %s is not writable (%s)", g->path, strerror(errno));
+access:
+    if ((what & FILEGUARD_WRITE) && faccessat(AT_FDCWD, g->path, W_OK, AT_EACCESS) != 0) {
+        int e = errno;
+        if (e == ENOENT) { /* seen without FILEGUARD_NAME: a removal all the same */
+            snprintf(why, len, "the database file %s is gone (%s)", g->path, strerror(e));
+            return FILEGUARD_REMOVED;
+        }
+        snprintf(why, len, "the database file %s is not writable (%s)", g->path, strerror(e));
         return FILEGUARD_READONLY;
     }
     return FILEGUARD_OK;

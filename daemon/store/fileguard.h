@@ -24,6 +24,13 @@ enum fileguard_state {
     FILEGUARD_READONLY = 3, /* the file at the path is ours, but worthd may not write it */
 };
 
+/* What fileguard_check looks at (bits). */
+enum fileguard_what {
+    FILEGUARD_NAME = 1,  /* the path (and -wal) still name the files opened: two stats */
+    FILEGUARD_WRITE = 2, /* worthd may write the file at the path: one faccessat */
+    FILEGUARD_ALL = 3,
+};
+
 /* Plain data: the identities recorded when the database was opened. */
 typedef struct fileguard_t {
     char path[PATH_MAX];
@@ -41,11 +48,12 @@ typedef struct fileguard_t {
 int fileguard_init(fileguard_t *g, const char *path);
 
 /*
- * Compares the path's file (and -wal) with the recorded identities and checks
- * that worthd's effective user may write the file (faccessat W_OK, which also
- * sees a read-only mount).  Returns a fileguard_state; for anything but
- * FILEGUARD_OK, why (len bytes, borrowed) says what was found.
+ * With FILEGUARD_NAME, compares the path's file (and -wal) with the recorded
+ * identities; with FILEGUARD_WRITE, checks that worthd's effective user may
+ * write the file at the path (faccessat W_OK, which also sees a read-only
+ * mount).  Returns a fileguard_state; for anything but FILEGUARD_OK, why (len
+ * bytes, borrowed) says what was found.
  */
-int fileguard_check(fileguard_t *g, char *why, size_t len);
+int fileguard_check(fileguard_t *g, int what, char *why, size_t len);
 
 #endif /* WORTH_FILEGUARD_H */

@@ -349,12 +349,16 @@ static int rescue(struct writer *w, char *why, size_t len)
 }
 
 /*
- * Checks the database file before a write (and after a commit).  Returns a
- * fileguard_state: FILEGUARD_OK (also after a successful rescue: the
- * connection then writes the restored file) or the reason to refuse, with why
- * filled; logs each change of state once, loudly.
+ * Checks the database file (what: fileguard_what bits; always all of them
+ * while something is wrong).  Returns a fileguard_state: FILEGUARD_OK (also
+ * after a successful rescue: the connection then writes the restored file) or
+ * the reason to refuse, with why filled; logs each change of state once,
+ * loudly.  A group of log records costs five syscalls: all three checks
+ * before it (so a replaced or read-only file is refused before anything is
+ * written to it) and the names after its COMMIT (about 15 us in all on the
+ * sandboxed test machine, where a syscall costs 1.5-3 us).
  */
-static int health(struct writer *w, char *why, size_t len)
+static int health(struct writer *w, int what, char *why, size_t len)
 {
     if (!w->db) {
         msgf(why, len, "%s", w->lost_why);
@@ -366,31 +370,33 @@ static int health(struct writer *w, char *why, size_t len)
         msgf(why, len, "%s", w->lost_why);
         return FILEGUARD_REPLACED;
     }
-    char what[sizeof w->lost_why];
-    int s = fileguard_check(&w->guard, what, sizeof what);
+    if (w->lost || w->readonly)
+        what = FILEGUARD_ALL;
+    char found[sizeof w->lost_why];
+    int s = fileguard_check(&w->guard, what, found, sizeof found);
     if (s == FILEGUARD_OK || s == FILEGUARD_READONLY) {
         if (s == FILEGUARD_READONLY && !w->readonly)
             say_error("%s: worthd refuses every write (storage_error) until it is writable "
                       "again; queries go on",
-                      what);
+                      found);
         else if (s == FILEGUARD_OK && w->readonly)
             say_info("database %s is writable again; writes resume", w->guard.path);
         w->readonly = s == FILEGUARD_READONLY;
         if (s == FILEGUARD_READONLY)
-            msgf(why, len, "%s", what);
+            msgf(why, len, "%s", found);
         return s;
     }
     if (s == FILEGUARD_REPLACED) {
         say_error("%s while worthd ran: worthd refuses every write (storage_error) until it is "
                   "restarted; what it committed since it started is only in its open file: save "
                   "it with the backup request before stopping worthd",
-                  what);
+                  found);
         w->lost = FILEGUARD_REPLACED;
         /* Everything committed into the open main file: if it was moved rather than deleted,
          * the file under its new name is then complete without the -wal left at the path. */
         if (sqlite3_exec(w->db, "PRAGMA wal_checkpoint(TRUNCATE)", NULL, NULL, NULL) != SQLITE_OK)
             say_warn("cannot checkpoint the log into the open file: %s", sqlite3_errmsg(w->db));
-        msgf(w->lost_why, sizeof w->lost_why, "%s; restart worthd", what);
+        msgf(w->lost_why, sizeof w->lost_why, "%s; restart worthd", found);
         msgf(why, len, "%s", w->lost_why);
         return s;
     }
@@ -401,7 +407,7 @@ static int health(struct writer *w, char *why, size_t len)
         return s;
     }
     if (w->lost != FILEGUARD_REMOVED)
-        say_error("%s while worthd ran; writing the database back to %s from the open file", what,
+        say_error("%s while worthd ran; writing the database back to %s from the open file", found,
                   w->guard.path);
     char fail[sizeof w->lost_why];
     if (rescue(w, fail, sizeof fail) == 0) {
@@ -417,15 +423,15 @@ static int health(struct writer *w, char *why, size_t len)
                         : "");
     w->lost = FILEGUARD_REMOVED;
     w->next_rescue = now + 1.0;
-    msgf(w->lost_why, sizeof w->lost_why, "%s; %s", what, fail);
+    msgf(w->lost_why, sizeof w->lost_why, "%s; %s", found, fail);
     msgf(why, len, "%s", w->lost_why);
     return s;
 }
 
 /* health() before a write: returns 0, or storage_error with why. */
-static int may_write(struct writer *w, char *why, size_t len)
+static int may_write(struct writer *w, int what, char *why, size_t len)
 {
-    return health(w, why, len) == FILEGUARD_OK ? 0 : WORTH_E_STORAGE_ERROR;
+    return health(w, what, why, len) == FILEGUARD_OK ? 0 : WORTH_E_STORAGE_ERROR;
 }
 
 /* ---- jobs -------------------------------------------------------------------------------- */
@@ -433,7 +439,7 @@ static int may_write(struct writer *w, char *why, size_t len)
 static void job_create(struct writer *w, struct job *j)
 {
     char why[256];
-    int code = may_write(w, why, sizeof why);
+    int code = may_write(w, FILEGUARD_ALL, why, sizeof why);
     if (code) {
         post_reply(w, j->l, j->conn_id, code, "cannot store the model: %s", why);
         return;
@@ -475,7 +481,7 @@ static void job_drop(struct writer *w, struct job *j)
             break;
         }
     char why[256];
-    if (learner_db_id(j->l) && may_write(w, why, sizeof why) != 0) {
+    if (learner_db_id(j->l) && may_write(w, FILEGUARD_ALL, why, sizeof why) != 0) {
         say_error("model %s: cannot mark it dropped: %s", learner_name(j->l), why);
     } else if (learner_db_id(j->l)) {
         sqlite3_stmt *st = NULL;
@@ -519,7 +525,7 @@ static void job_checkpoint(struct writer *w, struct job *j)
 {
     int64_t model = learner_db_id(j->l), id = 0;
     char refused[256];
-    int code = may_write(w, refused, sizeof refused);
+    int code = may_write(w, FILEGUARD_ALL, refused, sizeof refused);
     if (code) {
         say_error("model %s: checkpoint not stored: %s", learner_name(j->l), refused);
         post_reply(w, j->l, j->conn_id, code, "checkpoint not stored: %s", refused);
@@ -792,7 +798,7 @@ static void run_job(struct writer *w, struct job *j)
         refresh_checkpoint_info(w, j->l);
         break;
     case J_DRIFT:
-        if (may_write(w, why, sizeof why) == 0)
+        if (may_write(w, FILEGUARD_ALL, why, sizeof why) == 0)
             job_drift(w, j);
         else
             say_error("model %s: drift alarm not recorded: %s", learner_name(j->l), why);
@@ -816,7 +822,7 @@ static void run_job(struct writer *w, struct job *j)
         job_backup(w, j);
         break;
     case J_EVENT:
-        if (may_write(w, why, sizeof why) == 0)
+        if (may_write(w, FILEGUARD_ALL, why, sizeof why) == 0)
             insert_event(w, j->l, j->s1, j->s2);
         else
             say_warn("event %s not recorded: %s", j->s1, why);
@@ -1032,7 +1038,7 @@ static int write_group(struct writer *w)
             continue;
         if (!began) {
             char why[256];
-            int code = may_write(w, why, sizeof why);
+            int code = may_write(w, FILEGUARD_ALL, why, sizeof why);
             if (code) {
                 /* Nothing begun: every pending request of every model is refused whole. */
                 say_error("log not written (%s); pending records not applied", why);
@@ -1076,7 +1082,7 @@ static int write_group(struct writer *w)
         if (ok) {
             /* A commit into a file that lost its name is not durable unless written back. */
             char why[256];
-            int h = health(w, why, sizeof why);
+            int h = health(w, FILEGUARD_NAME, why, sizeof why);
             if (h != FILEGUARD_OK && h != FILEGUARD_READONLY) {
                 say_error("log committed into a file that is no longer the database (%s); %zu "
                           "records not applied",

@@ -59,7 +59,7 @@ static int teardown(void **state)
 static int check(fileguard_t *g, char *why)
 {
     why[0] = 0;
-    return fileguard_check(g, why, 256);
+    return fileguard_check(g, FILEGUARD_ALL, why, 256);
 }
 
 static void test_same_file_is_ok(void **state)
@@ -95,6 +95,8 @@ static void test_removed_file(void **state)
     assert_int_equal(unlink(d->db), 0);
     assert_int_equal(check(&g, why), FILEGUARD_REMOVED);
     assert_non_null(strstr(why, "is gone"));
+    /* the mode check alone sees it too */
+    assert_int_equal(fileguard_check(&g, FILEGUARD_WRITE, why, sizeof why), FILEGUARD_REMOVED);
     /* a new file at the path is not ours */
     touch(d->db);
     assert_int_equal(check(&g, why), FILEGUARD_REPLACED);
@@ -145,6 +147,8 @@ static void test_read_only(void **state)
     touch(d->db);
     assert_int_equal(fileguard_init(&g, d->db), 0);
     assert_int_equal(chmod(d->db, 0444), 0);
+    /* the name check alone does not look at the mode */
+    assert_int_equal(fileguard_check(&g, FILEGUARD_NAME, why, sizeof why), FILEGUARD_OK);
     int want = geteuid() == 0 ? FILEGUARD_OK : FILEGUARD_READONLY;
     int got = check(&g, why);
     if (got != want)
