@@ -3,9 +3,10 @@
  *
  * Runs on the writer thread only (and on the main thread before the writer
  * starts).  It owns nothing but the identities in its fileguard_t and never
- * opens the files it watches: a stat and a faccessat per check, so the writer
- * can afford one before every commit group.  It must never decide what to do
- * about a change; the writer does (writer.c, "the database file's health").
+ * opens the files it watches: at most two stats and a faccessat per check,
+ * so the writer can afford one before and one after every commit group.  It
+ * must never decide what to do about a change; the writer does (writer.c,
+ * "the database file's health").
  *
  * XXX: a change between the check that follows a COMMIT and the next check is
  * seen at that next check; no commit is acknowledged in between.
