@@ -161,15 +161,17 @@ class Client:
 class Daemon:
     """A running worthd: .sock (path), .proc, .stderr (text so far), .client()."""
 
-    def __init__(self, argv, sock, workdir, expect_rc, db=None, respawn=None):
+    def __init__(self, argv, sock, workdir, expect_rc, db=None, respawn=None, user=None):
         self.argv, self.sock, self.expect_rc = argv, str(sock), expect_rc
+        self.user = user  # a uid to run as (Popen user=/group=), for tests of file modes
         self.db = None if db is None else str(db)
         self.respawn = respawn  # set by the daemon fixture: starts the same argv again
         self.err_path = os.path.join(workdir, "worthd.stderr")
         self.out_path = os.path.join(workdir, "worthd.stdout")
         with open(self.err_path, "wb") as err, open(self.out_path, "wb") as out:
+            as_user = {} if user is None else {"user": user, "group": user, "extra_groups": []}
             self.proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=out, stderr=err,
-                                         cwd=workdir)
+                                         cwd=workdir, **as_user)
         self.clients = []
 
     @property
@@ -293,32 +295,33 @@ def sockdir(tmp_path):
 
 @pytest.fixture
 def daemon(tmp_path, sockdir):
-    """Factory: daemon(*args, sock=None, db=None, expect_rc=0, ready=True) -> Daemon.
+    """Factory: daemon(*args, sock=None, db=None, expect_rc=0, ready=True, user=None) -> Daemon.
 
     Starts worthd --socket <sock> --db <db> *args: sock defaults to a new name in sockdir,
     db to <tmp>/worthd.db (shared by the daemons of one test, so that a second daemon started
     without db= runs on the same database; pass db= for an independent one).  When args hold
     their own --db, none is added.  With ready, waits (bounded) until the socket accepts.
-    Daemon.restart() starts the same argv again.  At teardown sends SIGTERM, waits 10 s,
+    Daemon.restart() starts the same argv again (as the same user: user= is a uid whose
+    worthd must reach sock and db, so not inside tmp_path, which is private to root).  At teardown sends SIGTERM, waits 10 s,
     kills, and asserts the exit code is expect_rc (None: not checked; -9 after kill9) and
     that nothing went to stdout.
     """
     started = []
     exe = daemon_path()
 
-    def spawn(argv, sock, db, expect_rc, ready, ready_timeout):
+    def spawn(argv, sock, db, expect_rc, ready, ready_timeout, user=None):
         workdir = tmp_path / f"d{len(started)}"
         workdir.mkdir()
-        d = Daemon(argv, sock, str(workdir), expect_rc, db=db, respawn=respawn)
+        d = Daemon(argv, sock, str(workdir), expect_rc, db=db, respawn=respawn, user=user)
         started.append(d)
         if ready:
             d.wait_ready(ready_timeout or READY_TIMEOUT)
         return d
 
     def respawn(old, expect_rc=0, ready=True, ready_timeout=None):
-        return spawn(old.argv, old.sock, old.db, expect_rc, ready, ready_timeout)
+        return spawn(old.argv, old.sock, old.db, expect_rc, ready, ready_timeout, old.user)
 
-    def start(*args, sock=None, db=None, expect_rc=0, ready=True, ready_timeout=None):
+    def start(*args, sock=None, db=None, expect_rc=0, ready=True, ready_timeout=None, user=None):
         sock = str(sock or os.path.join(str(sockdir), f"worthd{len(started) or ''}.sock"))
         args = [str(a) for a in args]
         if "--db" in args:
@@ -326,7 +329,8 @@ def daemon(tmp_path, sockdir):
         else:
             db = str(db or tmp_path / "worthd.db")
             args = ["--db", db] + args
-        return spawn([exe, "--socket", sock, *args], sock, db, expect_rc, ready, ready_timeout)
+        return spawn([exe, "--socket", sock, *args], sock, db, expect_rc, ready, ready_timeout,
+                     user)
 
     yield start
 

@@ -160,13 +160,15 @@ def model_id(db, name):
     return rows[0][0]
 
 
-def log_rows(path, name):
-    """The model's transition log, in seq order, as dicts (x, x_next decoded)."""
+def log_rows(path, name, after=0):
+    """The model's transition log (the rows with seq > after), in seq order, as dicts (x,
+    x_next decoded)."""
     db = ro(path)
     try:
         mid = model_id(db, name)
         rows = db.execute("SELECT seq, t, source, x, r, x_next, terminal, dt, rolled_back "
-                          "FROM transitions WHERE model = ? ORDER BY seq", (mid,)).fetchall()
+                          "FROM transitions WHERE model = ? AND seq > ? ORDER BY seq",
+                          (mid, after)).fetchall()
     finally:
         db.close()
     out = []

@@ -18,13 +18,10 @@ import os
 import re
 import signal
 import sqlite3
-import threading
-import time
 
 import numpy as np
 import pytest
 
-from conftest import Client, is_closed_error
 from test_durable import PROBES, assert_learnt, feed, log_rows, ro, row_to_tr, snapshot
 
 MODEL = "f"
@@ -144,123 +141,29 @@ class Reference:
 # 1. kill -9 at random moments of an ingest -------------------------------------------------
 
 CRASH_SEED = 20261201
-ROUNDS = 20
+KILL9_TRIALS = 8  # tests/reliability/kill9.py runs 100 of the same trials
 
 
 def test_kill9_at_random_moments(daemon, tmp_path):
-    """20 rounds on one database: restart worthd, stream durable requests from a seeded
-    generator for a random 50..400 ms, kill -9.  After every restart, every acknowledged
-    transition is in the log, and the recovered values equal those of a reference daemon
-    that was never interrupted and learnt the log's transitions in seq order."""
-    t_start = time.monotonic()
-    rng = np.random.default_rng(CRASH_SEED)
-    stream = Stream(CRASH_SEED + 1)
-    ref = Reference(daemon, tmp_path)
-    d = daemon("--checkpoint-every", 97, "--keep", 3)
-    c = d.client()
-    create_model(c)
-    c.close()
-    logged = []  # the log's transitions as of the last crash
-    total_acked = 0
-    kinds_acked = set()
-    compared = from_checkpoint = 0
-    for rnd in range(ROUNDS):
-        assert time.monotonic() - t_start < 120, f"round {rnd}: over the time budget"
-        if rnd:
-            d = d.restart()
-            c = d.client()
-            st = c.stats(MODEL)
-            # recovery happens before the socket accepts: everything logged is learnt
-            assert (st["received"], st["applied"], st["queue"]) == \
-                (len(logged), len(logged), 0), (rnd, st)
-            if len(logged):
-                assert c.ok({"op": "value", "model": MODEL, "x": PROBES[0]})["seq"] == \
-                    len(logged)
-            if "restored checkpoint" in d.stderr:
-                from_checkpoint += 1
-            got = snapshot(c, MODEL)
-            want = ref.feed(logged)
-            assert got == want, \
-                f"round {rnd}: recovered values differ from the uninterrupted reference " \
-                f"fed the same {len(logged)} transitions"
-            compared += 1
-            c.close()
-        sent = list(logged)  # the stream from the log's end: what the log must extend
-        acked = [len(logged)]
-        pending = [[]]
-        ended = []
+    """8 kill -9 trials on one database (crashtrials.py says what one trial checks): three
+    connections stream durable observes, batches and bulk frames, one lock-step and two
+    pipelined; worthd is killed at a seeded moment (or while it starts); after each restart
+    every acknowledged transition is in the log, requests in flight are logged whole or not
+    at all, and the recovered values and checkpointed state equal, bit for bit, those of a
+    reference worthd that learnt the log's transitions uninterrupted."""
+    import crashtrials  # (it imports this module's helpers)
 
-        def produce():
-            try:
-                p = Client(d.sock, timeout=10)
-            except OSError as e:
-                ended.append(("connect", repr(e)))
-                return
-            try:
-                deadline = time.monotonic() + 5
-                for _ in range(100_000):
-                    if time.monotonic() > deadline:  # a bound only: the kill ends it
-                        ended.append("limit")
-                        return
-                    kind, req, rec, trs = stream.next_request()
-                    pending[0] = trs
-                    try:
-                        send_request(p, kind, req, rec)
-                        rep = p.recv()
-                    except Exception as e:
-                        ended.append(("closed", repr(e)) if is_closed_error(e)
-                                     else ("error", repr(e)))
-                        return
-                    want = {"ok": True, "seq": acked[0] + len(trs), "durable": True}
-                    if kind != "observe":
-                        want["count"] = len(trs)
-                    if rep != want:
-                        ended.append(("reply", kind, rep, want))
-                        return
-                    sent.extend(trs)
-                    acked[0] += len(trs)
-                    pending[0] = []
-                    kinds_acked.add(kind)
-            finally:
-                p.close()
+    def start(*args, db, ready=True):
+        return daemon(*args, db=db, ready=ready)
 
-        t = threading.Thread(target=produce, daemon=True)
-        t.start()
-        time.sleep(float(rng.uniform(0.05, 0.4)))
-        d.kill9()
-        t.join(15)
-        assert not t.is_alive(), f"round {rnd}: producer hung after the kill"
-        assert ended and ended[0][0] == "closed", f"round {rnd}: producer ended with {ended}"
-        rows = log_rows(d.db, MODEL)
-        new = log_prefix_check(rows, sent, acked[0], pending[0])
-        assert new[:len(logged)] == logged, f"round {rnd}: the log before this round changed"
-        total_acked += acked[0] - len(logged)
-        logged = new
-        print(f"round {rnd}: acknowledged {acked[0]}, logged {len(rows)} "
-              f"(in flight {len(pending[0])})")
-    # after the last crash: recover once more and compare
-    d = d.restart()
-    c = d.client()
-    st = c.stats(MODEL)
-    assert (st["received"], st["applied"]) == (len(logged), len(logged)), st
-    got = snapshot(c, MODEL)
-    assert_learnt(got, NAMES)
-    assert got == ref.feed(logged), "final recovered values differ from the reference"
-    compared += 1
-    # the restarted daemon goes on from the log's end
-    tr = {"x": [1.0, 1.0], "r": 0.5, "terminal": True}
-    assert c.call({"op": "observe", "model": MODEL, **tr}) == \
-        {"ok": True, "seq": len(logged) + 1, "durable": True}
-    c.wait_applied(MODEL, len(logged) + 1)
-    assert snapshot(c, MODEL) == ref.feed(logged + [tr])
+    fig = crashtrials.run_trials(start, tmp_path, KILL9_TRIALS, CRASH_SEED)
+    print(crashtrials.summary(fig))
+    assert fig["losses"] == 0
     # the premises: the crashes hit a real ingest, of every kind of request
-    assert total_acked >= 20 * ROUNDS, f"only {total_acked} transitions acknowledged"
-    assert kinds_acked == {"observe", "batch", "bulk"}, kinds_acked
-    assert compared == ROUNDS  # after rounds 1..19 and at the end
-    assert from_checkpoint >= ROUNDS // 2, \
-        f"only {from_checkpoint} recoveries started from a checkpoint"
-    print(f"{len(logged)} transitions logged over {ROUNDS} crashes in "
-          f"{time.monotonic() - t_start:.1f} s")
+    assert fig["acked"] >= 50 * KILL9_TRIALS, fig
+    assert fig["kinds"] == ["batch", "bulk", "observe"], fig
+    assert fig["compared"] == KILL9_TRIALS - fig["startup_kills"] + 1, fig
+    assert fig["from_checkpoint"] >= (fig["compared"] - 1) // 2, fig
 
 
 # 2. a full database ---------------------------------------------------------------------------
