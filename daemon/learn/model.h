@@ -93,6 +93,32 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
 int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
                 est_train_t *rep);
 
+/*
+ * Replay: a long run of transitions (recovery, rollback with replay) learnt
+ * with the estimators spread over worker threads.  Each estimator still sees
+ * every transition in order, and the diagnostics are fed in order after the
+ * estimators, so the result is bit-identical to model_observe on each
+ * transition.  The pushing thread validates and evaluates features for one
+ * chunk while the workers learn the previous one.
+ *
+ * Between model_replay_new and model_replay_end the model belongs to the
+ * replay: no other model_* call until model_replay_end returns (it waits
+ * for every pushed transition).  threads is the number of workers, 0 for
+ * one per core up to one per estimator; with one estimator or one worker
+ * every transition is learnt on the pushing thread.
+ */
+struct model_replay;
+/* Returns a replay of m (owned; end it with model_replay_end). */
+struct model_replay *model_replay_new(struct model *m, unsigned threads);
+/*
+ * model_check, then queues t for learning (x, x_next and source are copied).
+ * Returns 0, or model_check's error with every earlier transition learnt and
+ * t not.
+ */
+int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, size_t errlen);
+/* Learns every queued transition, stops the workers and frees r. */
+void model_replay_end(struct model_replay *r);
+
 /* Query */
 
 size_t model_dims(const struct model *m);

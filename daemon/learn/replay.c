@@ -30,6 +30,7 @@ struct replay {
     double *gphin;          /* cap x n: g * phi' */
     double *r;              /* cap */
     double *grad, *w0;      /* workspaces, n each */
+    size_t *idx;            /* workspace: the entries of one mini-batch */
     uint64_t steps;         /* mini-batch steps taken */
     rng_t rng;
 };
@@ -44,6 +45,7 @@ static void replay_init(struct est *e)
     m->r = mem_calloc(m->cap, sizeof *m->r);
     m->grad = mem_calloc(n, sizeof *m->grad);
     m->w0 = mem_calloc(n, sizeof *m->w0);
+    m->idx = mem_calloc(e->p.batch, sizeof *m->idx);
     rng_init(&m->rng, e->p.seed);
     e->k = m;
 }
@@ -64,6 +66,7 @@ static void replay_free(struct est *e)
     mem_free(m->r);
     mem_free(m->grad);
     mem_free(m->w0);
+    mem_free(m->idx);
     mem_free(m);
 }
 
@@ -99,8 +102,22 @@ static void step(struct est *e, struct replay *m)
 {
     size_t n = e->n, B = e->p.batch;
     memset(m->grad, 0, n * sizeof *m->grad);
+    /*
+     * Draw the batch first (the same draws in the same order), so that the
+     * entries two ahead can be prefetched: the buffer is larger than the
+     * caches and each draw lands anywhere in it.
+     */
+    for (size_t b = 0; b < B; b++)
+        m->idx[b] = (size_t)rng_below(&m->rng, m->size);
     for (size_t b = 0; b < B; b++) {
-        size_t i = (size_t)rng_below(&m->rng, m->size);
+        if (b + 2 < B) {
+            const double *p = m->phi + m->idx[b + 2] * n, *q = m->gphin + m->idx[b + 2] * n;
+            for (size_t j = 0; j < n; j += 8) {
+                __builtin_prefetch(p + j);
+                __builtin_prefetch(q + j);
+            }
+        }
+        size_t i = m->idx[b];
         accumulate(n, e->w, m->phi + i * n, m->gphin + i * n, m->r[i], m->grad);
     }
     double a = e->p.alpha;
