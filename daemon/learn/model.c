@@ -3,6 +3,8 @@
  *
  * Owns its feature map, estimators, source table and the phi workspaces.  Run
  * by the model's learner thread; model_value may run elsewhere on a copy.
+ * model_replay (at the end) lends each estimator to one worker thread while
+ * the calling thread evaluates features and feeds the diagnostics in order.
  * It must never hand an estimator a transition it has not fully validated,
  * and never allocate per transition (only the first transition of a new
  * source allocates that source's buffers inside the estimators).
@@ -500,6 +502,14 @@ int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_
 
 /* Bytes of features a chunk holds at most (phi and phi' of every transition). */
 #define CHUNK_BYTES (1u << 20)
+/* Most transitions a chunk holds: small enough to pipeline a learner's blocks of records. */
+#define CHUNK_MAX 128
+/*
+ * Rough flops per transition below which worker threads cost more than they
+ * save (a hand-over is some microseconds): td alone at any n the daemon
+ * sees, or RLS-TD below about 40 features.
+ */
+#define PARALLEL_MIN_COST 10000.0
 
 struct chunk {
     size_t count;
@@ -532,6 +542,8 @@ struct model_replay {
     uint64_t gen;      /* chunks handed out so far */
     size_t pending;    /* workers still learning the chunk handed out */
     int stop;
+    model_replay_fn after; /* stage C callback, or NULL */
+    void *after_ctx;
 };
 
 /* Rough flops per transition of estimator e, to balance the workers. */
@@ -569,13 +581,16 @@ static void learn_chunk(struct model *m, struct chunk *c, const size_t *est, siz
     }
 }
 
-/* Stage C: diagnostics and counters, in transition order. */
-static void finish_chunk(struct model *m, struct chunk *c)
+/* Stage C: diagnostics, counters and the callback, in transition order. */
+static void finish_chunk(struct model_replay *r, struct chunk *c)
 {
+    struct model *m = r->m;
     for (size_t t = 0; t < c->count; t++) {
         diag_observe(m->diag, c->slot[t], c->pred + t * m->n_est, c->r[t], c->g[t], c->term[t],
                      c->td[t]);
         m->applied++;
+        if (r->after)
+            r->after(r->after_ctx);
     }
     c->count = 0;
 }
@@ -612,7 +627,7 @@ static void collect(struct model_replay *r)
     while (r->pending)
         pthread_cond_wait(&r->done, &r->mu);
     pthread_mutex_unlock(&r->mu);
-    finish_chunk(r->m, &r->ch[r->fill ^ 1]);
+    finish_chunk(r, &r->ch[r->fill ^ 1]);
     r->busy = 0;
 }
 
@@ -625,7 +640,7 @@ static void hand_over(struct model_replay *r)
     collect(r);
     if (r->n_workers == 0) {
         learn_chunk(r->m, c, r->all, r->m->n_est);
-        finish_chunk(r->m, c);
+        finish_chunk(r, c);
         return;
     }
     pthread_mutex_lock(&r->mu);
@@ -667,17 +682,21 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads)
     struct model_replay *r = mem_calloc(1, sizeof *r);
     r->m = m;
     size_t cap = CHUNK_BYTES / (2 * sizeof(double) * m->n);
-    r->cap = cap < 16 ? 16 : cap > 1024 ? 1024 : cap;
+    r->cap = cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
     for (int i = 0; i < 2; i++)
         chunk_init(&r->ch[i], r->cap, m->n, m->n_est);
     for (size_t i = 0; i < m->n_est; i++)
         r->all[i] = i;
 
+    double load[MODEL_MAX_EST] = {0}, cost[MODEL_MAX_EST], total = 0;
+    int taken[MODEL_MAX_EST] = {0};
+    for (size_t i = 0; i < m->n_est; i++)
+        total += cost[i] = est_cost(m->est[i], m->n);
     size_t want = threads;
     if (want == 0) {
         long cores = sysconf(_SC_NPROCESSORS_ONLN);
         /* One core: nothing runs alongside the pusher, so learn on it. */
-        want = cores > 1 ? (size_t)cores : 0;
+        want = cores > 1 && total >= PARALLEL_MIN_COST ? (size_t)cores : 0;
     }
     if (want > m->n_est)
         want = m->n_est;
@@ -687,10 +706,6 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads)
 
     /* Costliest estimator first, each to the least loaded worker. */
     r->w = mem_calloc(want, sizeof *r->w);
-    double load[MODEL_MAX_EST] = {0}, cost[MODEL_MAX_EST];
-    int taken[MODEL_MAX_EST] = {0};
-    for (size_t i = 0; i < m->n_est; i++)
-        cost[i] = est_cost(m->est[i], m->n);
     for (size_t k = 0; k < m->n_est; k++) {
         size_t best = m->n_est;
         for (size_t i = 0; i < m->n_est; i++)
@@ -719,8 +734,7 @@ int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, s
     struct model *m = r->m;
     int rc = model_check(m, t, err, errlen);
     if (rc) {
-        hand_over(r);
-        collect(r);
+        model_replay_flush(r);
         return rc;
     }
     struct chunk *c = &r->ch[r->fill];
@@ -737,12 +751,23 @@ int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, s
     return 0;
 }
 
+void model_replay_set_after(struct model_replay *r, model_replay_fn fn, void *ctx)
+{
+    r->after = fn;
+    r->after_ctx = ctx;
+}
+
+void model_replay_flush(struct model_replay *r)
+{
+    hand_over(r);
+    collect(r);
+}
+
 void model_replay_end(struct model_replay *r)
 {
     if (!r)
         return;
-    hand_over(r);
-    collect(r);
+    model_replay_flush(r);
     if (r->n_workers) {
         pthread_mutex_lock(&r->mu);
         r->stop = 1;
