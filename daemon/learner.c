@@ -11,6 +11,14 @@
  * the log's replay.  The learner must never let the loop touch the model's
  * mutable state, and never drop an accepted record.
  *
+ * The learner thread pushes observations through a model_replay: it checks
+ * them and evaluates features while the estimators learn the previous chunk
+ * on worker threads (one per core, when the estimators are costly enough to
+ * gain from it), and it takes each one's drift alarm in order.  The replay is
+ * flushed before anything else touches the model (a checkpoint, a training,
+ * a rollback, publishing), so the model is then exactly what learning each
+ * record alone would have made.
+ *
  * Invariants.
  * 1. tail <= durable <= head, each only grows, head - tail <= cap; all three
  *    change under mu.
@@ -82,6 +90,8 @@ struct learner {
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
     uint64_t alarms_seen; /* drift alarms already reported */
+    struct model_replay *rp; /* learns observations with the estimators on worker threads */
+    uint64_t cb_k;           /* ring index of the next observation observed() reports */
 
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
@@ -266,39 +276,60 @@ static void rollback(struct learner *l, learner_rec_t *r)
           (unsigned long long)replayed);
 }
 
+/*
+ * Called in order for each observation once the diagnostics have taken it
+ * (model_replay's stage C): the drift alarm is checked per transition, as
+ * if each were learnt alone.
+ */
+static void observed(void *ctx)
+{
+    struct learner *l = ctx;
+    learner_rec_t *r = rec_at(l, l->cb_k++);
+    l->applied_seq = r->seq;
+    diag_drift_t dr;
+    diag_drift(model_diag(l->m), &dr);
+    if (dr.alarms != l->alarms_seen) {
+        l->alarms_seen = dr.alarms;
+        drift_event(l, &dr);
+    }
+}
+
+/*
+ * Hands an observation to the model's replay (its estimators learn on
+ * worker threads; observed() runs for it later, in order).  A checkpoint due
+ * after it waits until everything pushed has been learnt.
+ */
+static void learn(struct learner *l, learner_rec_t *r)
+{
+    model_obs_t o = {
+        .x = r->v,
+        .x_len = l->dims,
+        .r = r->r,
+        .x_next = r->terminal ? NULL : r->v + l->dims,
+        .x_next_len = l->dims,
+        .terminal = (int)r->terminal,
+        .source = r->src,
+        .dt_s = r->dt_s,
+    };
+    char err[200];
+    int rc = model_replay_push(l->rp, &o, err, sizeof err);
+    /* The loop validated the record and mirrors the source table: a refusal is a bug. */
+    if (rc) {
+        say_error("model %s: accepted transition refused: %s", l->name, err);
+        CHECK(rc == 0);
+    }
+    l->since_checkpoint++;
+    if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every) {
+        model_replay_flush(l->rp);
+        checkpoint(l, NULL, 0);
+    }
+}
+
 static void apply(struct learner *l, learner_rec_t *r)
 {
     switch (r->type) {
-    case LREC_OBS: {
-        model_obs_t o = {
-            .x = r->v,
-            .x_len = l->dims,
-            .r = r->r,
-            .x_next = r->terminal ? NULL : r->v + l->dims,
-            .x_next_len = l->dims,
-            .terminal = (int)r->terminal,
-            .source = r->src,
-            .dt_s = r->dt_s,
-        };
-        char err[200];
-        int rc = model_observe(l->m, &o, err, sizeof err);
-        /* The loop validated the record and mirrors the source table: a refusal is a bug. */
-        if (rc) {
-            say_error("model %s: accepted transition refused: %s", l->name, err);
-            CHECK(rc == 0);
-        }
-        l->applied_seq = r->seq;
-        l->since_checkpoint++;
-        diag_drift_t dr;
-        diag_drift(model_diag(l->m), &dr);
-        if (dr.alarms != l->alarms_seen) {
-            l->alarms_seen = dr.alarms;
-            drift_event(l, &dr);
-        }
-        if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every)
-            checkpoint(l, NULL, 0);
-        return;
-    }
+    case LREC_OBS:
+        break; /* observations go through learn() */
     case LREC_TRAIN: {
         est_train_t rep = {0, 0, 0};
         struct train_ctx t = {l, r->conn_id};
@@ -367,8 +398,23 @@ static void *run(void *arg)
         if (to - from > CHUNK)
             to = from + CHUNK;
 
-        for (uint64_t k = from; k < to; k++)
-            apply(l, rec_at(l, k));
+        /*
+         * Observations are pushed to the replay; anything else first waits
+         * until every observation before it has been learnt.  The model is
+         * whole again (flushed) before it is published.
+         */
+        l->cb_k = from;
+        for (uint64_t k = from; k < to; k++) {
+            learner_rec_t *r = rec_at(l, k);
+            if (r->type == LREC_OBS) {
+                learn(l, r);
+                continue;
+            }
+            model_replay_flush(l->rp);
+            l->cb_k = k + 1;
+            apply(l, r);
+        }
+        model_replay_flush(l->rp);
         last_update = wall_s();
         dirty = 1;
 
@@ -386,6 +432,8 @@ static void *run(void *arg)
         if (wake)
             l->wake(l->ctx);
     }
+    model_replay_end(l->rp);
+    l->rp = NULL;
     if (!l->discard && l->since_checkpoint > 0)
         checkpoint(l, NULL, 0); /* the clean-shutdown checkpoint */
     if (dirty)
@@ -440,6 +488,8 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
+    l->rp = model_replay_new(m, 0);
+    model_replay_set_after(l->rp, observed, l);
     CHECK(pthread_create(&l->thread, NULL, run, l) == 0);
     return l;
 }

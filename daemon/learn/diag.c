@@ -240,10 +240,22 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         }
         q->head = q->count = 0;
     } else if (q->count == d->horizon) {
+        /*
+         * The truncated return, newest entry first.  O(horizon) per step: the
+         * ring is walked as its (at most two) contiguous runs rather than with
+         * a division per entry; same order, so the same bits.
+         */
         double G = 0;
-        for (size_t i = q->count; i-- > 0;) {
-            const double *x = q->e + ((q->head + i) % q->cap) * d->stride;
-            G = x[d->n_est] + x[d->n_est + 1] * G;
+        size_t end = q->head + q->count, wrap = end > q->cap ? end - q->cap : 0;
+        const size_t r_off = d->n_est, g_off = d->n_est + 1, stride = d->stride;
+        for (const double *x = q->e + wrap * stride; x != q->e;) {
+            x -= stride;
+            G = x[r_off] + x[g_off] * G;
+        }
+        const double *first = q->e + q->head * stride;
+        for (const double *x = q->e + (end - wrap) * stride; x != first;) {
+            x -= stride;
+            G = x[r_off] + x[g_off] * G;
         }
         score(d, q->e + q->head * d->stride, G);
         q->head = (q->head + 1) % q->cap;

@@ -103,6 +103,46 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
 int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
                 est_train_t *rep);
 
+/*
+ * Replay: a long run of transitions (recovery, rollback with replay) learnt
+ * with the estimators spread over worker threads.  Each estimator still sees
+ * every transition in order, and the diagnostics are fed in order after the
+ * estimators, so the result is bit-identical to model_observe on each
+ * transition.  The pushing thread validates and evaluates features for one
+ * chunk while the workers learn the previous one.
+ *
+ * Between model_replay_new and model_replay_end the model belongs to the
+ * replay: no other model_* call until model_replay_flush or _end returns
+ * (they wait for every pushed transition).  threads is the number of
+ * workers; 0 picks one per core up to one per estimator, or none when the
+ * estimators are too cheap to gain from threads (then every transition is
+ * learnt on the pushing thread when its chunk is full or flushed).
+ */
+struct model_replay;
+/* Returns a replay of m (owned; end it with model_replay_end). */
+struct model_replay *model_replay_new(struct model *m, unsigned threads);
+/*
+ * model_check, then queues t for learning (x, x_next and source are copied).
+ * Returns 0, or model_check's error with every earlier transition learnt and
+ * t not.
+ */
+int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, size_t errlen);
+/*
+ * Called on the pushing thread once per pushed transition, in push order,
+ * right after the diagnostics took it (diag state exact for that
+ * transition; the estimators may be up to one chunk further on).
+ */
+typedef void (*model_replay_fn)(void *ctx);
+/* Sets r's callback (NULL for none); ctx is borrowed. */
+void model_replay_set_after(struct model_replay *r, model_replay_fn fn, void *ctx);
+/*
+ * Learns every queued transition (their callbacks run before it returns).
+ * The model may then be used by the pushing thread until the next push.
+ */
+void model_replay_flush(struct model_replay *r);
+/* model_replay_flush, then stops the workers and frees r. */
+void model_replay_end(struct model_replay *r);
+
 /* Query */
 
 size_t model_dims(const struct model *m);

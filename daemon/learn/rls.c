@@ -154,7 +154,31 @@ KERNEL static void products(size_t n, const double *P, const double *z, const do
                             double *u)
 {
     memset(u, 0, n * sizeof *u);
-    for (size_t i = 0; i < n; i++) {
+    size_t i = 0;
+    /*
+     * Four rows at a time: each element of u and z is loaded once per four
+     * rows instead of once per row, so the loop does eight multiply-adds per
+     * load and store of u rather than two.
+     */
+    for (; i + 4 <= n; i += 4) {
+        const double *r0 = P + i * n, *r1 = r0 + n, *r2 = r1 + n, *r3 = r2 + n;
+        double a0 = 0.0, a1 = 0.0, a2 = 0.0, a3 = 0.0;
+        double d0 = d[i], d1 = d[i + 1], d2 = d[i + 2], d3 = d[i + 3];
+#pragma omp simd reduction(+ : a0, a1, a2, a3)
+        for (size_t j = 0; j < n; j++) {
+            double zj = z[j];
+            a0 += r0[j] * zj;
+            a1 += r1[j] * zj;
+            a2 += r2[j] * zj;
+            a3 += r3[j] * zj;
+            u[j] += (d0 * r0[j] + d1 * r1[j]) + (d2 * r2[j] + d3 * r3[j]);
+        }
+        pz[i] = a0;
+        pz[i + 1] = a1;
+        pz[i + 2] = a2;
+        pz[i + 3] = a3;
+    }
+    for (; i < n; i++) {
         const double *row = P + i * n;
         double acc = 0.0, di = d[i];
 #pragma omp simd reduction(+ : acc)
@@ -169,6 +193,20 @@ KERNEL static void products(size_t n, const double *P, const double *z, const do
 /* P = (P - k u') * inv_mu in one pass (dscal and dger would take two). */
 KERNEL static void downdate(size_t n, double *P, const double *k, const double *u, double inv_mu)
 {
+    /*
+     * mu = 1 (no forgetting, the default) skips the scaling.  Same bits: x * 1.0
+     * is x, and this file is built without floating-point contraction (ISO C
+     * mode), so both forms round the same two operations.
+     */
+    if (inv_mu == 1.0) {
+        for (size_t i = 0; i < n; i++) {
+            double *row = P + i * n, ki = k[i];
+#pragma omp simd
+            for (size_t j = 0; j < n; j++)
+                row[j] -= ki * u[j];
+        }
+        return;
+    }
     for (size_t i = 0; i < n; i++) {
         double *row = P + i * n, ki = k[i] * inv_mu;
 #pragma omp simd

@@ -628,8 +628,8 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
     if (!cJSON_IsObject(o))
         return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "diagnostics must be an object");
     int rc;
-    uint64_t u;
-    double v;
+    uint64_t u = 0;
+    double v = 0;
     for (const cJSON *f = o->child; f; f = f->next) {
         for (const cJSON *g = f->next; g; g = g->next)
             if (strcmp(f->string, g->string) == 0)

@@ -286,6 +286,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
               uint64_t *replayed, uint64_t *last_training, char *err, size_t errlen)
 {
     sqlite3_stmt *tr = NULL, *tx = NULL;
+    struct model_replay *rp = NULL;
     int code = 0;
     *replayed = 0;
     *last_training = from->training;
@@ -314,11 +315,22 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
     sqlite3_bind_int64(tx, 2, (sqlite3_int64)from->seq);
     sqlite3_bind_int64(tx, 3, hi);
 
+    /*
+     * The estimators learn on worker threads while this thread reads the log
+     * and evaluates features (model_replay: same bits as model_observe).  A
+     * training must see every transition before it, so the replay is ended
+     * before one and begun again after.
+     */
+    rp = model_replay_new(m, 0);
     int trc = sqlite3_step(tr), xrc;
     while ((xrc = sqlite3_step(tx)) == SQLITE_ROW) {
         uint64_t seq = (uint64_t)sqlite3_column_int64(tx, 0);
         /* Trainings that ran before this transition was learnt. */
         while (trc == SQLITE_ROW && (uint64_t)sqlite3_column_int64(tr, 1) < seq) {
+            if (rp) {
+                model_replay_end(rp);
+                rp = NULL;
+            }
             run_training(m, (const char *)sqlite3_column_text(tr, 2),
                          (unsigned)sqlite3_column_int(tr, 3));
             *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
@@ -346,7 +358,9 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
             .dt_s = sqlite3_column_type(tx, 6) == SQLITE_NULL ? NAN : sqlite3_column_double(tx, 6),
         };
         char why[256];
-        if (model_observe(m, &o, why, sizeof why) != 0) {
+        if (!rp)
+            rp = model_replay_new(m, 0);
+        if (model_replay_push(rp, &o, why, sizeof why) != 0) {
             code = err_fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
                             (unsigned long long)seq, why);
             goto out;
@@ -357,6 +371,8 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
+    model_replay_end(rp);
+    rp = NULL;
     while (trc == SQLITE_ROW) {
         run_training(m, (const char *)sqlite3_column_text(tr, 2),
                      (unsigned)sqlite3_column_int(tr, 3));
@@ -366,6 +382,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
     if (trc != SQLITE_DONE)
         code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
 out:
+    model_replay_end(rp); /* learns what was pushed before a failure */
     sqlite3_finalize(tr);
     sqlite3_finalize(tx);
     return code;

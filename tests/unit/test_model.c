@@ -712,6 +712,70 @@ static void save_load_continues_identically(void **state)
     model_free(b);
 }
 
+/*
+ * model_replay learns on worker threads, yet must give model_observe's bits:
+ * every kind of estimator, two sources, terminals, per-second discounts, and
+ * more transitions than a chunk holds, for 0 (auto), 1, 2 and 5 workers.  A
+ * refused transition ends the replay with everything before it learnt.
+ */
+static void replay_equals_observe(void **state)
+{
+    (void)state;
+    fixture fx;
+    std_fixture(&fx);
+    enum est_kind kinds[] = {EST_TD, EST_RLS_TD, EST_REPLAY, EST_LSTD, EST_TD_LAMBDA, EST_TD_N,
+                             EST_MC};
+    static const char *const names[] = {"td", "rls", "replay", "lstd", "tdl", "tdn", "mc"};
+    size_t ne = sizeof kinds / sizeof kinds[0];
+    for (size_t i = 0; i < ne; i++) {
+        est_params_default(kinds[i], &fx.est[i]);
+        fx.names[i] = names[i];
+    }
+    fx.est[1].forget = 0.999; /* the regularised guard too */
+    fx.spec.n_est = ne;
+    fx.spec.gamma_per_s = 0.8;
+    struct model *want = build(&fx.spec);
+    const int k = 2500;
+    feed(want, 0, k);
+    size_t len;
+    uint8_t *buf = saved(want, &len);
+
+    unsigned threads[] = {0, 1, 2, 5};
+    for (size_t c = 0; c < sizeof threads / sizeof threads[0]; c++) {
+        struct model *m = build(&fx.spec);
+        struct model_replay *r = model_replay_new(m, threads[c]);
+        for (int i = 0; i < k; i++) {
+            double x[2] = {sin(0.37 * i), 5.0 + 4.0 * cos(0.21 * i)};
+            double xn[2] = {sin(0.37 * (i + 1)), 5.0 + 4.0 * cos(0.21 * (i + 1))};
+            model_obs_t t = obs(x, x[0] - 0.1 * x[1], xn, i % 17 == 16, i % 3 ? "unit-a" : NULL);
+            if (i % 5 == 0)
+                t.dt_s = 0.5 + (i % 4);
+            char err[256] = "";
+            assert_int_equal(model_replay_push(r, &t, err, sizeof err), 0);
+        }
+        model_replay_end(r);
+        assert_state(m, buf, len);
+
+        /* A bad transition: refused, the ones before it learnt. */
+        model_reset(m);
+        r = model_replay_new(m, threads[c]);
+        double x[2] = {0.1, 1.0}, bad[2] = {NAN, 1.0};
+        model_obs_t t = obs(x, 1.0, x, 0, NULL);
+        char err[256] = "";
+        for (int i = 0; i < 3; i++)
+            assert_int_equal(model_replay_push(r, &t, err, sizeof err), 0);
+        t.x_next = bad;
+        assert_int_equal(model_replay_push(r, &t, err, sizeof err), WORTH_E_BAD_NUMBER);
+        model_replay_end(r);
+        model_counts_t cn;
+        model_counts(m, &cn);
+        assert_int_equal(cn.applied, 3);
+        model_free(m);
+    }
+    free(buf);
+    model_free(want);
+}
+
 static void expect_load_fail(struct model *m, const uint8_t *buf, size_t len, int code,
                              const char *what)
 {
@@ -962,6 +1026,7 @@ int main(void)
         cmocka_unit_test(counters_count),
         cmocka_unit_test(value_of_every_estimator),
         cmocka_unit_test(save_load_continues_identically),
+        cmocka_unit_test(replay_equals_observe),
         cmocka_unit_test(corrupted_state_is_refused),
         cmocka_unit_test(mismatched_state_is_refused),
     };
