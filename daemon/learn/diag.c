@@ -4,9 +4,18 @@
  * Owns, per source, a ring of the steps whose return is not yet known: each
  * estimator's prediction, the reward and the discount.  A continuing return
  * is complete after `horizon` rewards; a terminal transition completes all of
- * its source's pending returns.  Computing a truncated return walks the ring
- * once, O(horizon) per transition, like mc.c.  The ring grows by doubling up
- * to the horizon, so after warm-up nothing is allocated.  Learner thread only.
+ * its source's pending returns.  The ring grows by doubling up to the
+ * horizon, so after warm-up nothing is allocated.  Learner thread only.
+ *
+ * A truncated return over the window of the last `horizon` steps is the
+ * composition of the steps' affine maps G -> r + g G, applied to 0.  It is
+ * kept in O(1) amortised per transition with the two-stack queue: the
+ * oldest `front` entries carry their suffix composition up to the front's
+ * end (computed backwards in one pass when the front runs empty), and the
+ * newer entries are folded forwards into one running composition (bR, bG).
+ * The window's return is then sR + sG * bR.  Both parts are pure functions
+ * of the ring's contents and `front`, so a saved ring with its `front`
+ * count reloads to the same bits.
  */
 #include "diag.h"
 
@@ -22,7 +31,9 @@
 
 struct ring {
     size_t head, count, cap;
-    double *e; /* cap entries of stride: n_est predictions, r, g */
+    size_t front;  /* the oldest entries, whose suffix compositions are valid */
+    double bR, bG; /* composition of the entries after the front, oldest first */
+    double *e;     /* cap entries of stride: n_est predictions, r, g, suffix r, suffix g */
 };
 
 struct stat {
@@ -33,7 +44,7 @@ struct stat {
 
 struct diag {
     diag_params_t p;
-    size_t n_est, nsrc, stride;
+    size_t n_est, nsrc, stride; /* stride: n_est + 4; n_est + 2 of them saved */
     unsigned horizon;
     double keep; /* 1 - 1/window */
     struct ring *q;
@@ -92,7 +103,7 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
     d->p = *p;
     d->n_est = n_est;
     d->nsrc = sources;
-    d->stride = n_est + 2;
+    d->stride = n_est + 4;
     d->horizon = p->horizon ? p->horizon : auto_horizon(p->gamma);
     d->keep = 1.0 - 1.0 / p->window;
     d->q = mem_calloc(sources, sizeof *d->q);
@@ -117,6 +128,7 @@ void diag_reset(struct diag *d)
     for (size_t s = 0; s < d->nsrc; s++) {
         mem_free(d->q[s].e);
         memset(&d->q[s], 0, sizeof d->q[s]);
+        d->q[s].bG = 1.0;
     }
     memset(d->st, 0, d->n_est * sizeof *d->st);
     d->spread_ew = d->spread_w = 0;
@@ -149,6 +161,33 @@ static void grow(struct diag *d, struct ring *q)
     q->e = e;
     q->cap = cap;
     q->head = 0;
+}
+
+static double *entry(const struct diag *d, const struct ring *q, size_t i)
+{
+    return q->e + ((q->head + i) % q->cap) * d->stride;
+}
+
+/* Folds entry i (the newest after the front) into the back composition. */
+static void fold_back(const struct diag *d, struct ring *q, size_t i)
+{
+    const double *x = entry(d, q, i);
+    q->bR += q->bG * x[d->n_est];
+    q->bG *= x[d->n_est + 1];
+}
+
+/* Makes the first `front` entries the front: their suffix compositions, newest first. */
+static void build_front(const struct diag *d, struct ring *q, size_t front)
+{
+    double R = 0.0, G = 1.0;
+    for (size_t i = front; i-- > 0;) {
+        double *x = entry(d, q, i);
+        R = x[d->n_est] + x[d->n_est + 1] * R;
+        G = x[d->n_est + 1] * G;
+        x[d->n_est + 2] = R;
+        x[d->n_est + 3] = G;
+    }
+    q->front = front;
 }
 
 /* Scores the predictions of entry e against its realised return G. */
@@ -225,6 +264,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
     e[d->n_est] = r;
     e[d->n_est + 1] = g;
     q->count++;
+    fold_back(d, q, q->count - 1);
 
     if (terminal) {
         /* Every pending return is complete: walk back once, then score oldest first. */
@@ -239,27 +279,21 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
             score(d, x, x[d->n_est]);
         }
         q->head = q->count = 0;
+        q->front = 0;
+        q->bR = 0.0;
+        q->bG = 1.0;
     } else if (q->count == d->horizon) {
-        /*
-         * The truncated return, newest entry first.  O(horizon) per step: the
-         * ring is walked as its (at most two) contiguous runs rather than with
-         * a division per entry; same order, so the same bits.
-         */
-        double G = 0;
-        size_t end = q->head + q->count, wrap = end > q->cap ? end - q->cap : 0;
-        const size_t r_off = d->n_est, g_off = d->n_est + 1, stride = d->stride;
-        for (const double *x = q->e + wrap * stride; x != q->e;) {
-            x -= stride;
-            G = x[r_off] + x[g_off] * G;
+        /* The window is full: score its oldest entry, then drop it from the front. */
+        if (q->front == 0) {
+            build_front(d, q, q->count);
+            q->bR = 0.0;
+            q->bG = 1.0;
         }
-        const double *first = q->e + q->head * stride;
-        for (const double *x = q->e + (end - wrap) * stride; x != first;) {
-            x -= stride;
-            G = x[r_off] + x[g_off] * G;
-        }
-        score(d, q->e + q->head * d->stride, G);
+        const double *x = entry(d, q, 0);
+        score(d, x, x[d->n_est + 2] + x[d->n_est + 3] * q->bR);
         q->head = (q->head + 1) % q->cap;
         q->count--;
+        q->front--;
     }
     return drift(d, td);
 }
@@ -310,8 +344,9 @@ void diag_save(const struct diag *d, ser_w *w)
     for (size_t s = 0; s < d->nsrc; s++) {
         const struct ring *q = &d->q[s];
         ser_put_u64(w, q->count);
+        ser_put_u64(w, q->front);
         for (size_t i = 0; i < q->count; i++)
-            ser_put_f64v(w, q->e + ((q->head + i) % q->cap) * d->stride, d->stride);
+            ser_put_f64v(w, entry(d, q, i), d->n_est + 2);
     }
     for (size_t k = 0; k < d->n_est; k++) {
         const struct stat *s = &d->st[k];
@@ -334,27 +369,33 @@ void diag_save(const struct diag *d, ser_w *w)
     ser_put_u64(w, d->last_onset);
 }
 
-int diag_load(struct diag *d, ser_r *r)
+int diag_load(struct diag *d, ser_r *r, unsigned version)
 {
     diag_reset(d);
     d->step = ser_get_u64(r);
     for (size_t s = 0; s < d->nsrc && !r->err; s++) {
         struct ring *q = &d->q[s];
         uint64_t count = ser_get_u64(r);
+        /* Format 1 kept no front: every entry is then folded into the back. */
+        uint64_t front = version >= 2 ? ser_get_u64(r) : 0;
         if (r->err)
             break;
-        if (count == 0)
+        if (count == 0 && front == 0)
             continue;
         /* A count that cannot be right is refused before anything is allocated. */
-        if (count >= d->horizon || count > (r->len - r->pos) / (d->stride * sizeof(double))) {
+        if (count >= d->horizon || front > count ||
+            count > (r->len - r->pos) / ((d->n_est + 2) * sizeof(double))) {
             r->err = 1;
             break;
         }
         while (q->cap < count)
             grow(d, q);
         for (size_t i = 0; i < count; i++)
-            ser_get_f64v(r, q->e + i * d->stride, d->stride);
+            ser_get_f64v(r, q->e + i * d->stride, d->n_est + 2);
         q->count = count;
+        build_front(d, q, (size_t)front);
+        for (size_t i = (size_t)front; i < count; i++)
+            fold_back(d, q, i);
     }
     for (size_t k = 0; k < d->n_est && !r->err; k++) {
         struct stat *s = &d->st[k];

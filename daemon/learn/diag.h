@@ -93,7 +93,8 @@ double diag_spread(const struct diag *d);
 
 /* Persistence (inside the model's saved state). */
 void diag_save(const struct diag *d, ser_w *w);
-/* Returns 0, or -1 when the bytes do not fit (r->err is set). */
-int diag_load(struct diag *d, ser_r *r);
+/* Reads what diag_save wrote under model state format `version` (1 or 2).
+ * Returns 0, or -1 when the bytes do not fit (r->err is set). */
+int diag_load(struct diag *d, ser_r *r, unsigned version);
 
 #endif /* WORTH_DIAG_H */

@@ -444,7 +444,7 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
 {
     ser_r r = {buf, len - 4, 0, 0};
     ser_get_u32(&r);
-    ser_get_u32(&r);
+    uint32_t version = ser_get_u32(&r);
     uint32_t n_est = ser_get_u32(&r), n_src = ser_get_u32(&r);
     if (n_est != m->n_est)
         return err_fail(err, errlen, WORTH_E_MISMATCH, "state has %u estimators, model has %zu",
@@ -472,7 +472,7 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
             return err_fail(err, errlen, rc, "estimator \"%s\": %s", m->names[i], sub);
         r.pos += (size_t)el;
     }
-    diag_load(m->diag, &r);
+    diag_load(m->diag, &r, version);
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
     return 0;
@@ -489,9 +489,10 @@ int model_state_check(const uint8_t *buf, size_t len, char *err, size_t errlen)
     ser_r t = {buf + len - 4, 4, 0, 0};
     if (ser_get_u32(&t) != ser_crc32(buf, len - 4))
         return err_fail(err, errlen, WORTH_E_CORRUPT, "model state fails its checksum");
-    if (version != MODEL_FORMAT_VERSION)
-        return err_fail(err, errlen, WORTH_E_CORRUPT, "model state format %u, this build reads %d",
-                        version, MODEL_FORMAT_VERSION);
+    if (version < MODEL_FORMAT_OLDEST || version > MODEL_FORMAT_VERSION)
+        return err_fail(err, errlen, WORTH_E_CORRUPT,
+                        "model state format %u, this build reads %d to %d", version,
+                        MODEL_FORMAT_OLDEST, MODEL_FORMAT_VERSION);
     return 0;
 }
 

@@ -27,8 +27,11 @@ struct model;
 #define MODEL_MAX_EST 16
 /* Source slots when the spec gives none. */
 #define MODEL_DEFAULT_SOURCES 16
-/* Version of the byte format written by model_save. */
-#define MODEL_FORMAT_VERSION 1
+/* Version of the byte format written by model_save (2: the diagnostics save each
+ * source's front count). */
+#define MODEL_FORMAT_VERSION 2
+/* Oldest format model_load still reads. */
+#define MODEL_FORMAT_OLDEST 1
 
 /* Plain data: a model's configuration.  Pointers are borrowed during model_new. */
 typedef struct model_spec_t {

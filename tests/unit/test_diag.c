@@ -72,6 +72,80 @@ static void truncated_returns_after_the_horizon(void **state)
     diag_free(d);
 }
 
+/*
+ * The O(1) window (two-stack queue of affine maps) against returns summed
+ * directly, term by term, over a long stream: two interleaved sources,
+ * rewards in [-5, 5), discounts in [0.8, 1) varying per step, episodes
+ * ending at random.  Estimator 0 predicts 0 (its error is -G), estimator 1
+ * predicts 1.  Then a save in the middle of a window reloads into a state that
+ * goes on to the same bits as the uninterrupted one.
+ */
+#define W_H 37
+#define W_STEPS 6000
+static void window_matches_direct_sums_and_reloads_exactly(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.9, W_H, 2), *e = make(0.9, W_H, 2);
+    static double hr[2][W_STEPS], hg[2][W_STEPS];
+    size_t hn[2] = {0, 0}, done[2] = {0, 0};
+    double n = 0, sum = 0, sumsq = 0;
+    rng_t rg;
+    rng_init(&rg, 7);
+    uint8_t *buf = NULL;
+    for (int t = 0; t < W_STEPS; t++) {
+        size_t src = rng_below(&rg, 2);
+        double r = 10.0 * rng_unit(&rg) - 5.0, g = 0.8 + 0.2 * rng_unit(&rg);
+        int term = rng_below(&rg, 150) == 0;
+        double pred[2] = {0.0, 1.0};
+        diag_observe(d, src, pred, r, g, term, 0.0);
+        if (t >= W_STEPS / 2)
+            diag_observe(e, src, pred, r, g, term, 0.0);
+        hr[src][hn[src]] = r;
+        hg[src][hn[src]] = g;
+        hn[src]++;
+        /* Returns now complete: a full window, or all pending ones at a terminal. */
+        while (done[src] < hn[src] && (term || hn[src] - done[src] >= W_H)) {
+            double G = 0, disc = 1;
+            size_t end = term ? hn[src] : done[src] + W_H;
+            for (size_t i = done[src]; i < end; i++) {
+                G += disc * hr[src][i];
+                disc *= hg[src][i];
+            }
+            n++;
+            sum += -G;
+            sumsq += G * G;
+            done[src]++;
+        }
+        if (t == W_STEPS / 2 - 1) {
+            /* Mid-window: save d and load the bytes into e. */
+            ser_w w = {NULL, 0, 0};
+            diag_save(d, &w);
+            buf = malloc(w.len);
+            assert_non_null(buf);
+            ser_w w2 = {buf, w.len, 0};
+            diag_save(d, &w2);
+            assert_true(ser_fits(&w2));
+            ser_r rd = {buf, w2.len, 0, 0};
+            assert_int_equal(diag_load(e, &rd, MODEL_FORMAT_VERSION), 0);
+            assert_int_equal(rd.pos, w2.len);
+        }
+    }
+    diag_est_t a, b;
+    diag_est(d, 0, &a);
+    assert_int_equal(a.n, (uint64_t)n);
+    assert_true(n > 5000);
+    assert_near(a.bias, sum / n, 1e-12 * (1 + fabs(sum / n)));
+    assert_near(a.rms, sqrt(sumsq / n), 1e-12 * sqrt(sumsq / n));
+    for (size_t k = 0; k < 2; k++) {
+        diag_est(d, k, &a);
+        diag_est(e, k, &b);
+        assert_memory_equal(&a, &b, sizeof a);
+    }
+    free(buf);
+    diag_free(d);
+    diag_free(e);
+}
+
 static void bad_parameters(void **state)
 {
     (void)state;
@@ -162,6 +236,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(episodic_returns_by_hand),
         cmocka_unit_test(truncated_returns_after_the_horizon),
+        cmocka_unit_test(window_matches_direct_sums_and_reloads_exactly),
         cmocka_unit_test(bad_parameters),
         cmocka_unit_test(drift_alarm_on_a_reward_shift),
     };

@@ -835,9 +835,14 @@ static void corrupted_state_is_refused(void **state)
     expect_load_fail(b, longer, len + 1, WORTH_E_CORRUPT, "trailing byte, resealed");
 
     memcpy(copy, buf, len);
-    copy[4] = 2; /* version */
+    copy[4] = MODEL_FORMAT_VERSION + 1; /* a format from a newer build */
     reseal(copy, len);
-    expect_load_fail(b, copy, len, WORTH_E_CORRUPT, "version 2, resealed");
+    expect_load_fail(b, copy, len, WORTH_E_CORRUPT, "newer version, resealed");
+
+    memcpy(copy, buf, len);
+    copy[4] = 0; /* older than any format written */
+    reseal(copy, len);
+    expect_load_fail(b, copy, len, WORTH_E_CORRUPT, "version 0, resealed");
 
     /* Header: magic, version, n_est, n_src, applied, clipped (32 bytes); then sources. */
     memcpy(copy, buf, len);
