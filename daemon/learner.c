@@ -33,6 +33,7 @@
 
 #include <math.h>
 #include <pthread.h>
+#include <sys/resource.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
@@ -43,6 +44,13 @@
 #include "say.h"
 #include "worth/errors.h"
 #include "writer.h"
+
+/*
+ * Learning runs at a lower priority than the loop thread (nice + LEARN_NICE,
+ * workers included): under load the loop, which answers queries and takes
+ * requests, gets the CPU first, while learning still has every idle cycle.
+ */
+#define LEARN_NICE 5
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
@@ -368,6 +376,8 @@ static void apply(struct learner *l, learner_rec_t *r)
 static void *run(void *arg)
 {
     struct learner *l = arg;
+    /* Linux keeps a nice value per thread; failing to change it only costs latency. */
+    (void)setpriority(PRIO_PROCESS, 0, getpriority(PRIO_PROCESS, 0) + LEARN_NICE);
     uint64_t last_pub = mono_ns();
     double last_update = 0;
     int dirty = 0;
@@ -488,7 +498,7 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
-    l->rp = model_replay_new(m, 0);
+    l->rp = model_replay_new(m, 0, LEARN_NICE);
     model_replay_set_after(l->rp, observed, l);
     CHECK(pthread_create(&l->thread, NULL, run, l) == 0);
     return l;

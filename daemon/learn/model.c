@@ -21,6 +21,7 @@
 
 #include <math.h>
 #include <pthread.h>
+#include <sys/resource.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
@@ -572,6 +573,7 @@ struct model_replay {
     uint64_t gen;      /* chunks handed out so far */
     size_t pending;    /* workers still learning the chunk handed out */
     int stop;
+    int nice;          /* added to each worker's nice value */
     model_replay_fn after; /* stage C callback, or NULL */
     void *after_ctx;
 };
@@ -630,6 +632,9 @@ static void *work(void *arg)
     struct worker *w = arg;
     struct model_replay *r = w->r;
     uint64_t seen = 0;
+    /* Linux keeps a nice value per thread; failing to change it only costs latency. */
+    if (r->nice)
+        (void)setpriority(PRIO_PROCESS, 0, getpriority(PRIO_PROCESS, 0) + r->nice);
     pthread_mutex_lock(&r->mu);
     for (;;) {
         while (r->gen == seen && !r->stop)
@@ -707,10 +712,11 @@ static void chunk_free(struct chunk *c)
     mem_free(c->td);
 }
 
-struct model_replay *model_replay_new(struct model *m, unsigned threads)
+struct model_replay *model_replay_new(struct model *m, unsigned threads, int nice)
 {
     struct model_replay *r = mem_calloc(1, sizeof *r);
     r->m = m;
+    r->nice = nice;
     size_t cap = CHUNK_BYTES / (2 * sizeof(double) * m->n);
     r->cap = cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
     for (int i = 0; i < 2; i++)

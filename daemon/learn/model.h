@@ -122,8 +122,10 @@ int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, 
  * learnt on the pushing thread when its chunk is full or flushed).
  */
 struct model_replay;
-/* Returns a replay of m (owned; end it with model_replay_end). */
-struct model_replay *model_replay_new(struct model *m, unsigned threads);
+/* Returns a replay of m (owned; end it with model_replay_end).  Each worker
+ * thread adds nice (0..19) to its own nice value when it starts, so that a
+ * latency-sensitive thread of the caller's wins the CPU from learning. */
+struct model_replay *model_replay_new(struct model *m, unsigned threads, int nice);
 /*
  * model_check, then queues t for learning (x, x_next and source are copied).
  * Returns 0, or model_check's error with every earlier transition learnt and

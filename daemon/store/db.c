@@ -321,7 +321,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
      * training must see every transition before it, so the replay is ended
      * before one and begun again after.
      */
-    rp = model_replay_new(m, 0);
+    rp = model_replay_new(m, 0, 0);
     int trc = sqlite3_step(tr), xrc;
     while ((xrc = sqlite3_step(tx)) == SQLITE_ROW) {
         uint64_t seq = (uint64_t)sqlite3_column_int64(tx, 0);
@@ -359,7 +359,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
         };
         char why[256];
         if (!rp)
-            rp = model_replay_new(m, 0);
+            rp = model_replay_new(m, 0, 0);
         if (model_replay_push(rp, &o, why, sizeof why) != 0) {
             code = err_fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
                             (unsigned long long)seq, why);

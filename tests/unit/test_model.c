@@ -743,7 +743,7 @@ static void replay_equals_observe(void **state)
     unsigned threads[] = {0, 1, 2, 5};
     for (size_t c = 0; c < sizeof threads / sizeof threads[0]; c++) {
         struct model *m = build(&fx.spec);
-        struct model_replay *r = model_replay_new(m, threads[c]);
+        struct model_replay *r = model_replay_new(m, threads[c], 0);
         for (int i = 0; i < k; i++) {
             double x[2] = {sin(0.37 * i), 5.0 + 4.0 * cos(0.21 * i)};
             double xn[2] = {sin(0.37 * (i + 1)), 5.0 + 4.0 * cos(0.21 * (i + 1))};
@@ -758,7 +758,7 @@ static void replay_equals_observe(void **state)
 
         /* A bad transition: refused, the ones before it learnt. */
         model_reset(m);
-        r = model_replay_new(m, threads[c]);
+        r = model_replay_new(m, threads[c], 0);
         double x[2] = {0.1, 1.0}, bad[2] = {NAN, 1.0};
         model_obs_t t = obs(x, 1.0, x, 0, NULL);
         char err[256] = "";
