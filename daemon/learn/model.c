@@ -574,6 +574,12 @@ struct model_replay {
     size_t pending;    /* workers still learning the chunk handed out */
     int stop;
     int nice;          /* added to each worker's nice value */
+    /* The last x_next pushed and its features: a stream whose x is the previous
+     * x_next (the usual case) evaluates features once per transition, not twice.
+     * feat_eval is a pure function of x, so the bits are the same. */
+    int have_last;
+    size_t last_clip;
+    double *last_x, *last_phi;
     model_replay_fn after; /* stage C callback, or NULL */
     void *after_ctx;
 };
@@ -717,6 +723,8 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads, int nic
     struct model_replay *r = mem_calloc(1, sizeof *r);
     r->m = m;
     r->nice = nice;
+    r->last_x = mem_alloc(m->dims * sizeof *r->last_x);
+    r->last_phi = mem_alloc(m->n * sizeof *r->last_phi);
     size_t cap = CHUNK_BYTES / (2 * sizeof(double) * m->n);
     r->cap = cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
     for (int i = 0; i < 2; i++)
@@ -779,9 +787,19 @@ int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, s
     c->g[k] = discount(m, t);
     c->r[k] = t->r;
     c->term[k] = t->terminal != 0;
-    m->clipped += feat_eval(m->feat, t->x, c->phi + k * n, m->work);
-    if (!t->terminal)
-        m->clipped += feat_eval(m->feat, t->x_next, c->phin + k * n, m->work);
+    if (r->have_last && memcmp(t->x, r->last_x, m->dims * sizeof *t->x) == 0) {
+        memcpy(c->phi + k * n, r->last_phi, n * sizeof *r->last_phi);
+        m->clipped += r->last_clip;
+    } else {
+        m->clipped += feat_eval(m->feat, t->x, c->phi + k * n, m->work);
+    }
+    r->have_last = !t->terminal;
+    if (!t->terminal) {
+        r->last_clip = feat_eval(m->feat, t->x_next, c->phin + k * n, m->work);
+        m->clipped += r->last_clip;
+        memcpy(r->last_x, t->x_next, m->dims * sizeof *t->x_next);
+        memcpy(r->last_phi, c->phin + k * n, n * sizeof *r->last_phi);
+    }
     if (++c->count == r->cap)
         hand_over(r);
     return 0;
@@ -818,5 +836,7 @@ void model_replay_end(struct model_replay *r)
     }
     for (int i = 0; i < 2; i++)
         chunk_free(&r->ch[i]);
+    mem_free(r->last_x);
+    mem_free(r->last_phi);
     mem_free(r);
 }
