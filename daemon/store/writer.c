@@ -251,6 +251,19 @@ static int64_t pragma_int(sqlite3 *db, const char *sql)
 
 static int sync_path(const char *path, int dir);
 
+/* Writes the directory that holds path into dir (len bytes): "." for a bare name. */
+static void dir_of(const char *path, char *dir, size_t len)
+{
+    snprintf(dir, len, "%s", path);
+    char *slash = strrchr(dir, '/');
+    if (slash == dir)
+        dir[1] = 0;
+    else if (slash)
+        *slash = 0;
+    else
+        snprintf(dir, len, ".");
+}
+
 /*
  * The database file or its -wal was removed while worthd ran: everything
  * committed lives only in files that have no name any more.  Writes it back:
@@ -267,14 +280,7 @@ static int rescue(struct writer *w, char *why, size_t len)
     snprintf(path, sizeof path, "%s", w->guard.path);
     char tmp[PATH_MAX + 32], dir[PATH_MAX];
     snprintf(tmp, sizeof tmp, "%s.rescue-%ld", path, (long)getpid());
-    snprintf(dir, sizeof dir, "%s", path);
-    char *slash = strrchr(dir, '/');
-    if (slash == dir)
-        dir[1] = 0;
-    else if (slash)
-        *slash = 0;
-    else
-        snprintf(dir, sizeof dir, ".");
+    dir_of(path, dir, sizeof dir);
     int sync_full = pragma_int(w->db, "PRAGMA synchronous") >= 2;
     int64_t max_pages = pragma_int(w->db, "PRAGMA max_page_count");
     int copy = access(path, F_OK) != 0;
@@ -632,14 +638,7 @@ static void job_backup(struct writer *w, struct job *j)
     char tmp[4200], dir[4200];
     const char *path = j->s1;
     snprintf(tmp, sizeof tmp, "%s.tmp-%ld", path, (long)getpid());
-    snprintf(dir, sizeof dir, "%s", path);
-    char *slash = strrchr(dir, '/');
-    if (slash == dir)
-        dir[1] = 0;
-    else if (slash)
-        *slash = 0;
-    else
-        snprintf(dir, sizeof dir, ".");
+    dir_of(path, dir, sizeof dir);
     /* Never over the live database or its companions. */
     char real[4200], live[4200];
     const char *main_file = sqlite3_db_filename(w->db, "main");

@@ -47,16 +47,7 @@ def poll_until(fn, timeout, what):
 
 
 def hello_works(d):
-    try:
-        c = Client(d.sock, timeout=2)
-    except OSError:
-        return False
-    try:
-        return c.call({"op": "hello"}).get("ok") is True
-    except (OSError, Closed):
-        return False
-    finally:
-        c.close()
+    return _hello(d.sock)
 
 
 def wait_tcp(port, timeout=10):
