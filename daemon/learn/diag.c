@@ -148,6 +148,12 @@ void diag_free(struct diag *d)
     mem_free(d);
 }
 
+/* Entry i of ring q, oldest first. */
+static double *entry(const struct diag *d, const struct ring *q, size_t i)
+{
+    return q->e + ((q->head + i) % q->cap) * d->stride;
+}
+
 static void grow(struct diag *d, struct ring *q)
 {
     size_t cap = q->cap ? 2 * q->cap : 64;
@@ -155,17 +161,11 @@ static void grow(struct diag *d, struct ring *q)
         cap = d->horizon;
     double *e = mem_alloc(cap * d->stride * sizeof *e);
     for (size_t i = 0; i < q->count; i++)
-        memcpy(e + i * d->stride, q->e + ((q->head + i) % q->cap) * d->stride,
-               d->stride * sizeof *e);
+        memcpy(e + i * d->stride, entry(d, q, i), d->stride * sizeof *e);
     mem_free(q->e);
     q->e = e;
     q->cap = cap;
     q->head = 0;
-}
-
-static double *entry(const struct diag *d, const struct ring *q, size_t i)
-{
-    return q->e + ((q->head + i) % q->cap) * d->stride;
 }
 
 /* Folds entry i (the newest after the front) into the back composition. */
@@ -176,9 +176,12 @@ static void fold_back(const struct diag *d, struct ring *q, size_t i)
     q->bG *= x[d->n_est + 1];
 }
 
-/* Makes the first `front` entries the front: their suffix compositions, newest first. */
+/* Makes the first `front` entries the front (their suffix compositions, newest
+ * first) and empties the back; the caller folds any later entries into it. */
 static void build_front(const struct diag *d, struct ring *q, size_t front)
 {
+    q->bR = 0.0;
+    q->bG = 1.0;
     double R = 0.0, G = 1.0;
     for (size_t i = front; i-- > 0;) {
         double *x = entry(d, q, i);
@@ -270,25 +273,20 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         /* Every pending return is complete: walk back once, then score oldest first. */
         double G = 0;
         for (size_t i = q->count; i-- > 0;) {
-            double *x = q->e + ((q->head + i) % q->cap) * d->stride;
+            double *x = entry(d, q, i);
             G = x[d->n_est] + x[d->n_est + 1] * G;
             x[d->n_est] = G; /* the reward slot now holds the return */
         }
         for (size_t i = 0; i < q->count; i++) {
-            double *x = q->e + ((q->head + i) % q->cap) * d->stride;
+            double *x = entry(d, q, i);
             score(d, x, x[d->n_est]);
         }
         q->head = q->count = 0;
-        q->front = 0;
-        q->bR = 0.0;
-        q->bG = 1.0;
+        build_front(d, q, 0);
     } else if (q->count == d->horizon) {
         /* The window is full: score its oldest entry, then drop it from the front. */
-        if (q->front == 0) {
+        if (q->front == 0)
             build_front(d, q, q->count);
-            q->bR = 0.0;
-            q->bG = 1.0;
-        }
         const double *x = entry(d, q, 0);
         score(d, x, x[d->n_est + 2] + x[d->n_est + 3] * q->bR);
         q->head = (q->head + 1) % q->cap;
