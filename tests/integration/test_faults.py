@@ -22,27 +22,22 @@ import sqlite3
 import numpy as np
 import pytest
 
-from test_durable import PROBES, assert_learnt, feed, log_rows, ro, row_to_tr, snapshot
+from test_durable import PROBES, assert_learnt, feed, log_rows, ro, row_to_tr, snapshot, spec
 
 MODEL = "f"
 NAMES = ["td", "tdl", "rls", "lstd", "rp"]
 
 
 def fault_spec(name=MODEL):
-    """Two dimensions, 1 + 2 + 3^2 = 12 features; td, td_lambda, rls_td (forget 0.99), lstd,
-    replay (whose buffer, generator and background steps make any divergence show)."""
-    return {"op": "model.create", "model": name, "dims": 2, "gamma": 0.95, "gamma_per_s": 0.999,
-            "ranges": [[0, 10], [-5, 5]],
-            "features": [{"basis": "bias"}, {"basis": "raw"},
-                         {"basis": "rbf", "centers": 3, "width": 0.3}],
-            "estimators": [
-                {"name": "td", "kind": "td", "alpha": 0.05},
-                {"name": "tdl", "kind": "td_lambda", "alpha": 0.02, "lambda": 0.8},
-                {"name": "rls", "kind": "rls_td", "lambda": 0.3, "forget": 0.99, "delta": 100},
-                {"name": "lstd", "kind": "lstd", "lambda": 0.3, "ridge": 1e-3,
-                 "refit_every": 40},
-                {"name": "rp", "kind": "replay", "alpha": 0.02, "capacity": 128, "batch": 4,
-                 "steps_per_obs": 1, "seed": 11, "tol": 1e-300}]}
+    """test_durable's spec() (12 features; td, td_lambda, rls_td, lstd, replay), with a
+    shorter RLS-TD memory (forget 0.99), LSTD refits every 40 and a larger replay buffer, whose
+    buffer, generator and background steps make any divergence show."""
+    sp = spec(name)
+    est = {e["name"]: e for e in sp["estimators"]}
+    est["rls"].update({"lambda": 0.3, "forget": 0.99})
+    est["lstd"]["refit_every"] = 40
+    est["rp"].update({"capacity": 128, "steps_per_obs": 1, "seed": 11})
+    return sp
 
 
 def create_model(c, name=MODEL):
