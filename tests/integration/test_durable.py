@@ -30,7 +30,11 @@ import pytest
 from conftest import Client, is_closed_error
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-INIT_SQL = os.path.join(HERE, "..", "..", "schema", "001_init.sql")
+SCHEMA_DIR = os.path.join(HERE, "..", "..", "schema")
+# Every migration, in order: the database worthd makes must have their shape.
+MIGRATIONS = sorted(os.path.join(SCHEMA_DIR, f) for f in os.listdir(SCHEMA_DIR)
+                    if f[:3].isdigit() and f.endswith(".sql"))
+SCHEMA_VERSION = int(os.path.basename(MIGRATIONS[-1])[:3])
 T0 = 1764633600.0  # a sender's clock, for transitions that carry t
 PROBES = [[0.5, -4.0], [3.3, 0.0], [7.7, 2.5], [10.0, 5.0], [1.25, 1.0]]
 PROBES_1D = [[0.1], [0.5], [0.9]]  # for small_spec()
@@ -1199,7 +1203,7 @@ def test_backup(daemon, tmp_path):
         db = ro(path, immutable=True)  # the copy alone must hold everything
         try:
             assert db.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
-            assert db.execute("PRAGMA user_version").fetchone()[0] == 1
+            assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
             n = {name: db.execute("SELECT count(*) FROM transitions WHERE model = ?",
                                   (model_id(db, name),)).fetchone()[0] for name in ("a", "b")}
             assert n == {"a": expect_a, "b": expect_b}, n
@@ -1328,14 +1332,15 @@ def test_schema(daemon):
     assert c.call(small_spec("s"))["ok"] is True
     d.shutdown()
     ref = sqlite3.connect(":memory:")
-    with open(INIT_SQL) as f:
-        ref.executescript(f.read())
+    for path in MIGRATIONS:
+        with open(path) as f:
+            ref.executescript(f.read())
     want, want_idx = table_shape(ref)
     ref.close()
     assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events"}
     db = ro(d.db)
     try:
-        assert db.execute("PRAGMA user_version").fetchone()[0] == 1
+        assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
         assert db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
         got, got_idx = table_shape(db)
         for t in want:
@@ -1352,11 +1357,11 @@ def test_schema(daemon):
         assert stored[k] == small_spec()[k], stored
     assert [e["name"] for e in stored["estimators"]] == ["td"]
     assert stored["estimators"][0]["alpha"] == 0.1 and "init" in stored["estimators"][0]
-    # a restart on the migrated database keeps it at version 1
+    # a restart on the migrated database keeps it at the newest version
     d.restart().shutdown()
     db = ro(d.db)
     try:
-        assert db.execute("PRAGMA user_version").fetchone()[0] == 1
+        assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
     finally:
         db.close()
 

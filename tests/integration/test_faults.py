@@ -22,7 +22,8 @@ import sqlite3
 import numpy as np
 import pytest
 
-from test_durable import PROBES, assert_learnt, feed, log_rows, ro, row_to_tr, snapshot, spec
+from test_durable import (PROBES, SCHEMA_VERSION, assert_learnt, feed, log_rows, ro, row_to_tr,
+                          snapshot, spec)
 
 MODEL = "f"
 NAMES = ["td", "tdl", "rls", "lstd", "rp"]
@@ -390,7 +391,7 @@ def test_worthd_database_reopens(daemon, tmp_path, start):
         finally:
             db.close()
 
-    assert version() == (1, 300)
+    assert version() == (SCHEMA_VERSION, 300)
     d = d.restart()
     c = d.client()
     assert [m["model"] for m in c.ok({"op": "model.list"})["models"]] == [MODEL]
@@ -399,7 +400,7 @@ def test_worthd_database_reopens(daemon, tmp_path, start):
     assert c.call({"op": "observe", "model": MODEL, "x": [1, 1], "r": 1.0, "terminal": True}) \
         == {"ok": True, "seq": 301, "durable": True}
     d.shutdown()
-    assert version() == (1, 301)
+    assert version() == (SCHEMA_VERSION, 301)
     assert [row_to_tr(r) for r in log_rows(str(path), MODEL)][:300] == trs
 
 
