@@ -33,15 +33,22 @@
     X(NO_MEMORY, -17, "no_memory", "out of memory")                                                \
     X(IO, -18, "io", "input/output error")                                                         \
     X(INTERNAL, -19, "internal", "internal error")                                                 \
-    X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")             \
-    X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")       \
-    X(STORAGE_FULL, -22, "storage_full", "the database is full; nothing of the request applied") \
-    X(STORAGE_ERROR, -23, "storage_error", "the database could not be written")                  \
-    X(BAD_DATABASE, -24, "bad_database", "the database file is corrupt or not worthd's")       \
+    X(UNSUPPORTED, -20, "unsupported", "operation not supported by this estimator")                \
+    X(NO_SUCH_CHECKPOINT, -21, "no_such_checkpoint", "no valid checkpoint with that id")           \
+    X(STORAGE_FULL, -22, "storage_full", "the database is full; nothing of the request applied")   \
+    X(STORAGE_ERROR, -23, "storage_error", "the database could not be written")                    \
+    X(BAD_DATABASE, -24, "bad_database", "the database file is corrupt or not worthd's")           \
     X(TOO_MANY_CONNECTIONS, -25, "too_many_connections",                                           \
       "the daemon holds its limit of connections; try again later")                                \
     X(IDLE_TIMEOUT, -26, "idle_timeout", "the connection was idle too long and is closed")         \
-    X(SLOW_READER, -27, "slow_reader", "the client did not read its replies; connection cut off")
+    X(SLOW_READER, -27, "slow_reader", "the client did not read its replies; connection cut off")  \
+    X(CANCELLED, -28, "cancelled",                                                                 \
+      "cut short: worthd is stopping, or the model was dropped or rolled back")                    \
+    X(DIVERGED, -29, "diverged",                                                                   \
+      "the estimator diverged (non-finite or exploding weights) and no longer answers")            \
+    X(DAMAGED, -30, "damaged", "the model's stored log is damaged; the model is quarantined")      \
+    X(OVER_BUDGET, -31, "over_budget", "the daemon's buffer budget is spent; retry later")         \
+    X(AUTH_TIMEOUT, -32, "auth_timeout", "no authentication within the deadline; connection closed")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),
