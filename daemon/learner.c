@@ -97,7 +97,7 @@ struct learner {
 
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
-    uint64_t alarms_seen; /* drift alarms already reported */
+    uint64_t alarms_seen;    /* drift alarms already reported */
     struct model_replay *rp; /* learns observations with the estimators on worker threads */
     uint64_t cb_k;           /* ring index of the next observation observed() reports */
 
@@ -691,12 +691,26 @@ const struct model *learner_model(const struct learner *l)
 int learner_value(struct learner *l, const double *x, size_t len, double *values, double *sd,
                   uint64_t *seq)
 {
-    pthread_mutex_lock(&l->snap_mu);
-    const struct snap *s = &l->snaps[l->front];
-    int rc = model_snap_value(l->m, s->data, x, len, values, sd, l->qwork);
-    *seq = s->applied;
-    pthread_mutex_unlock(&l->snap_mu);
+    *seq = learner_read_begin(l);
+    int rc = learner_read_value(l, x, len, values, sd);
+    learner_read_end(l);
     return rc;
+}
+
+uint64_t learner_read_begin(struct learner *l)
+{
+    pthread_mutex_lock(&l->snap_mu);
+    return l->snaps[l->front].applied;
+}
+
+int learner_read_value(struct learner *l, const double *x, size_t len, double *values, double *sd)
+{
+    return model_snap_value(l->m, l->snaps[l->front].data, x, len, values, sd, l->qwork);
+}
+
+void learner_read_end(struct learner *l)
+{
+    pthread_mutex_unlock(&l->snap_mu);
 }
 
 void learner_stats(struct learner *l, learner_stats_t *out)

@@ -109,13 +109,13 @@ typedef struct learner_stats_t {
     unsigned horizon;                   /* steps after which a continuing return is known */
     uint64_t checkpoints;               /* valid checkpoints stored (as the writer last saw) */
     double newest_checkpoint_at;        /* created_at of the newest, 0 for none */
-    double last_update; /* wall clock, seconds; 0 before the first update */
+    double last_update;                 /* wall clock, seconds; 0 before the first update */
 } learner_stats_t;
 
 /* Plain data: one sample of the learning history. */
 typedef struct learner_sample_t {
-    double t;                      /* wall clock, seconds */
-    uint64_t seq;                  /* last transition learnt */
+    double t;                           /* wall clock, seconds */
+    uint64_t seq;                       /* last transition learnt */
     double td_rms[MODEL_MAX_EST];       /* each estimator's RMS TD error then */
     double realised_rms[MODEL_MAX_EST]; /* and its realised-return RMS (window); NAN before any */
 } learner_sample_t;
@@ -206,6 +206,16 @@ const struct model *learner_model(const struct learner *l);
 /* Values of x under the latest snapshot; *seq gets the last applied seq.  As model_value. */
 int learner_value(struct learner *l, const double *x, size_t len, double *values, double *sd,
                   uint64_t *seq);
+/*
+ * Several values from one snapshot: learner_read_begin holds the snapshot
+ * (returning its last applied seq) until learner_read_end, and every
+ * learner_read_value between them answers from it, so one request never mixes
+ * weights of different moments.  The learner cannot publish meanwhile: keep
+ * the work between the two bounded (the protocol caps it per request).
+ */
+uint64_t learner_read_begin(struct learner *l);
+int learner_read_value(struct learner *l, const double *x, size_t len, double *values, double *sd);
+void learner_read_end(struct learner *l);
 void learner_stats(struct learner *l, learner_stats_t *out);
 /*
  * Copies up to max samples of the RMS TD error history (oldest first) into

@@ -46,10 +46,19 @@ static const char usage[] =
     "  --keep N            unlabelled checkpoints kept per model (default 10)\n"
     "  --db-max-mb N       cap the database at N MiB (default 0: no cap); when full, ingest\n"
     "                      is refused with storage_full and queries go on\n"
-    "  --listen HOST:PORT  also listen on TCP; a non-loopback address needs --token-file\n"
+    "  --listen HOST:PORT  also listen on TCP; needs --token-file (clients then send\n"
+    "                      {\"op\":\"auth\",\"token\":...} first), even on loopback: without\n"
+    "                      one, every user of the machine could use the whole protocol\n"
+    "  --allow-tcp-without-token  accept that risk on a loopback --listen (logged loudly)\n"
     "  --metrics HOST:PORT serve GET /metrics (Prometheus text format) over HTTP;\n"
     "                      a non-loopback address needs --token-file (sent as a bearer token)\n"
-    "  --token-file FILE   TCP clients must send {\"op\":\"auth\",\"token\":...} first\n"
+    "  --token-file FILE   the token TCP clients must send first\n"
+    "  --auth-timeout S    close a TCP client that has not authenticated S seconds after\n"
+    "                      connecting, however much it trickles (auth_timeout; default 10)\n"
+    "  --max-unauthenticated N  TCP connections waiting to authenticate at once (default 64);\n"
+    "                      one more is refused (too_many_connections)\n"
+    "  --unix-slots N      of --max-conns, slots TCP cannot take, kept for the Unix socket\n"
+    "                      (default 32, at most a quarter of --max-conns)\n"
     "  --log-level LEVEL   error, warn, info (default) or debug; logs go to stderr\n"
     "  --max-line BYTES    longest request line (default 1048576)\n"
     "  --max-batch N       most transitions in one batch or bulk (default 65536)\n"
@@ -65,6 +74,12 @@ static const char usage[] =
     "                      was owed to it, after an idle_timeout line (default 0: never)\n"
     "  --send-timeout S    cut off a client whose unread replies stay over 4 MiB for S\n"
     "                      seconds (slow_reader, logged; default 30)\n"
+    "  --max-buffer-mb N   every connection's buffers together (partial lines, bulk payloads,\n"
+    "                      unsent replies) in MiB (default 256; 0: no cap); input beyond it\n"
+    "                      is refused with over_budget\n"
+    "  --max-query-work N  most work one value request may ask: states x (features + the\n"
+    "                      features^2 of each rls_td sd), in millions (default 64); more is\n"
+    "                      too_large, so one request cannot stall every connection\n"
     "  --help              this text\n"
     "  --version           print the version\n"
     "\n"
@@ -155,8 +170,14 @@ int main(int argc, char **argv)
         .send_timeout_s = 30,
         .max_features = 65536,
         .max_model_mb = 2048,
+        .max_buffer_mb = 256,
+        .auth_timeout_s = 10,
+        .max_unauthed = 64,
+        .unix_slots = 32,
+        .tcp_without_token = 0,
+        .max_query_work = 64000000,
     };
-    int queue_set = 0;
+    int queue_set = 0, slots_set = 0;
     static const struct option longopts[] = {
         {"socket", required_argument, NULL, 's'},
         {"listen", required_argument, NULL, 'l'},
@@ -177,6 +198,12 @@ int main(int argc, char **argv)
         {"send-timeout", required_argument, NULL, 'S'},
         {"max-features", required_argument, NULL, 'F'},
         {"max-model-mb", required_argument, NULL, 'B'},
+        {"max-buffer-mb", required_argument, NULL, 'U'},
+        {"auth-timeout", required_argument, NULL, 'A'},
+        {"max-unauthenticated", required_argument, NULL, 'N'},
+        {"unix-slots", required_argument, NULL, 'X'},
+        {"allow-tcp-without-token", no_argument, NULL, 'O'},
+        {"max-query-work", required_argument, NULL, 'W'},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -257,6 +284,25 @@ int main(int argc, char **argv)
         case 'B':
             o.max_model_mb = parse_size("max-model-mb", optarg, 1, 1ull << 30);
             break;
+        case 'U':
+            o.max_buffer_mb = parse_size("max-buffer-mb", optarg, 0, 1ull << 30);
+            break;
+        case 'A':
+            o.auth_timeout_s = (unsigned)parse_size("auth-timeout", optarg, 1, 3600);
+            break;
+        case 'N':
+            o.max_unauthed = parse_size("max-unauthenticated", optarg, 1, 1000000);
+            break;
+        case 'X':
+            o.unix_slots = parse_size("unix-slots", optarg, 0, 1000000);
+            slots_set = 1;
+            break;
+        case 'O':
+            o.tcp_without_token = 1;
+            break;
+        case 'W':
+            o.max_query_work = parse_size("max-query-work", optarg, 1, 1000000) * 1000000u;
+            break;
         case 'h':
             fputs(usage, stdout);
             return 0;
@@ -300,7 +346,28 @@ int main(int argc, char **argv)
             return 1;
         }
     }
+    if (o.listen && !o.token && !o.tcp_without_token) {
+        fprintf(stderr,
+                "worthd: refusing --listen %s without --token-file: on TCP every local user "
+                "could use the whole protocol, the Unix socket's 0660 mode notwithstanding; "
+                "give --token-file, or --allow-tcp-without-token to accept that\n",
+                o.listen);
+        return 1;
+    }
+    if (!slots_set && o.unix_slots > o.max_conns / 4)
+        o.unix_slots = o.max_conns / 4; /* the default never takes more than a quarter */
+    if (o.unix_slots >= o.max_conns) {
+        fprintf(stderr, "worthd: --unix-slots (%zu) must be less than --max-conns (%zu)\n",
+                o.unix_slots, o.max_conns);
+        return 2;
+    }
+    /* A signal worthd does not handle must not end it uncleanly: SIGPIPE (a client went
+     * away), SIGALRM; HUP, USR1 and USR2 until the loop's own handlers take them. */
     signal(SIGPIPE, SIG_IGN);
+    signal(SIGALRM, SIG_IGN);
+    signal(SIGHUP, SIG_IGN);
+    signal(SIGUSR1, SIG_IGN);
+    signal(SIGUSR2, SIG_IGN);
     openblas_set_num_threads(1);
     say_info("worthd %s starting", WORTH_VERSION);
     raise_nofile(o.max_conns);

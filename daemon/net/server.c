@@ -3,8 +3,8 @@
  *
  * The loop thread owns every handle here.  Each connection's framer (frame.h)
  * splits its input into lines of at most max_line bytes and bulk payloads;
- * this file gives them to the protocol layer, at most LINES_PER_PUMP per turn (the rest wait for the idle handle, so one
- * busy client cannot starve the others).  Replies are written at once with
+ * this file gives them to the protocol layer, at most LINES_PER_PUMP per turn (the rest wait for
+ * the idle handle, so one busy client cannot starve the others).  Replies are written at once with
  * uv_try_write; only what the socket does not take is copied and queued.
  *
  * A connection stops reading while: its unsent replies exceed WRITE_HIGH
@@ -84,9 +84,12 @@ struct conn {
     struct server *srv;
     uint64_t id;
     struct conn *prev, *next; /* every live connection */
-    frame_t fr; /* input buffer and framing */
+    frame_t fr;               /* input buffer and framing */
     int reading, waiting, parked, backlog, eof, closing, close_after;
-    int held;          /* lines left unhandled while unsent >= WRITE_HIGH */
+    int held;          /* lines left unhandled while unsent >= WRITE_HIGH (or over budget) */
+    int tcp;           /* accepted on the TCP listener */
+    int pending_auth;  /* TCP with a token, not authenticated yet (counted in n_unauthed) */
+    uint64_t open_ms;  /* loop time it was accepted */
     int full;          /* unsent has been >= WRITE_HIGH since full_ms */
     uint64_t full_ms;  /* loop time unsent reached WRITE_HIGH */
     uint64_t quiet_ms; /* loop time since which the connection has been idle */
@@ -113,11 +116,15 @@ struct server {
     int idle_on;
     uv_timer_t tick;                  /* idle and send timeouts */
     unsigned long long shed, refused; /* connections lost to EMFILE, refused over max_conns */
-    int reserve_fd;                   /* a spare descriptor, freed to shed a connection */
+    unsigned long long auth_timeouts; /* TCP connections closed for not authenticating */
+    uint64_t auth_log_ms;
+    int reserve_fd; /* a spare descriptor, freed to shed a connection */
     uint64_t shed_log_ms, refused_log_ms;
+    uv_signal_t sighup, sigusr1, sigusr2, sigquit;
     struct conn *conns;
     uint64_t next_id;
-    size_t n_conns;
+    size_t n_conns, n_tcp, n_unauthed;
+    budget_t budget; /* every connection's buffers (--max-buffer-mb) */
     struct proto *proto;
     struct writer *writer;
     struct metrics *metrics;
@@ -134,6 +141,7 @@ struct server {
 static void pump(struct conn *c);
 static void update_reading(struct conn *c);
 static void on_idle(uv_idle_t *h);
+static void send_limit_error(struct conn *c, int code, const char *msg);
 
 /* ---- connection helpers used by the protocol -------------------------------------------- */
 
@@ -175,6 +183,10 @@ static void on_close(uv_handle_t *h)
     if (c->next)
         c->next->prev = c->prev;
     s->n_conns--;
+    if (c->tcp)
+        s->n_tcp--;
+    if (c->pending_auth)
+        s->n_unauthed--;
     proto_conn_free(s->proto, &c->pc);
     say_debug("connection %llu closed", (unsigned long long)c->id);
     frame_close(&c->fr);
@@ -211,6 +223,7 @@ static void on_write(uv_write_t *req, int status)
     struct wreq *w = (struct wreq *)req;
     struct conn *c = w->c;
     c->unsent -= w->len;
+    budget_give(&c->srv->budget, w->len);
     mem_free(w);
     if (status < 0 && status != UV_ECANCELED) {
         say_debug("connection %llu: write failed: %s", (unsigned long long)c->id,
@@ -264,6 +277,7 @@ void conn_send(struct conn *c, const char *buf, size_t len)
         return;
     }
     c->unsent += rest;
+    budget_force(&c->srv->budget, rest); /* a reply is never dropped: it may go over the cap */
     if (c->unsent >= WRITE_HIGH && !c->full) {
         c->full = 1;
         c->full_ms = uv_now(&c->srv->loop);
@@ -279,9 +293,14 @@ void conn_close_after_reply(struct conn *c)
         update_reading(c);
 }
 
-void conn_expect_bulk(struct conn *c, size_t nbytes)
+int conn_expect_bulk(struct conn *c, size_t nbytes)
 {
-    frame_expect_bulk(&c->fr, nbytes);
+    return frame_expect_bulk(&c->fr, nbytes);
+}
+
+void conn_skip_bulk(struct conn *c, size_t nbytes)
+{
+    frame_skip_bulk(&c->fr, nbytes);
 }
 
 void conn_wait(struct conn *c)
@@ -314,7 +333,11 @@ static void on_read(uv_stream_t *st, ssize_t n, const uv_buf_t *buf)
     struct conn *c = st->data;
     if (n > 0) {
         frame_filled(&c->fr, (size_t)n);
-        c->quiet_ms = uv_now(&c->srv->loop);
+    } else if (n == UV_ENOBUFS) {
+        /* The buffer is full and the budget refused to grow it: pump answers over_budget
+         * unless whole lines are waiting (handling them makes room). */
+        uv_read_stop(st);
+        c->reading = 0;
     } else if (n < 0) {
         if (n != UV_EOF)
             say_debug("connection %llu: read: %s", (unsigned long long)c->id, uv_strerror((int)n));
@@ -346,7 +369,7 @@ static void pump(struct conn *c)
     int lines = 0;
     c->backlog = 0;
     while (!c->closing && !c->close_after && !c->waiting && !c->parked) {
-        if (c->unsent >= WRITE_HIGH) {
+        if (c->unsent >= WRITE_HIGH || (c->unsent > 0 && budget_over(&s->budget))) {
             c->held = 1; /* on_write resumes once the client has read its replies */
             break;
         }
@@ -364,12 +387,24 @@ static void pump(struct conn *c)
             conn_close_after_reply(c);
             break;
         }
+        if (k == FRAME_OVER_BUDGET) {
+            say_warn("connection %llu: a line of over %zu bytes does not fit in the buffer "
+                     "budget (--max-buffer-mb %llu, %zu bytes in use); closed",
+                     (unsigned long long)c->id, c->fr.cap, (unsigned long long)s->o->max_buffer_mb,
+                     s->budget.used);
+            send_limit_error(c, WORTH_E_OVER_BUDGET,
+                             "the daemon's buffer budget (--max-buffer-mb) cannot hold this line "
+                             "now; connection closed, retry later");
+            conn_close_after_reply(c);
+            break;
+        }
         if (k == FRAME_BULK) {
             if (proto_bulk(s->proto, c, ev.data, ev.len) == PROTO_PARK) {
                 c->parked = 1;
                 break;
             }
             frame_consume(&c->fr);
+            c->quiet_ms = uv_now(&s->loop);
             continue;
         }
         if (k == FRAME_LINE && proto_line(s->proto, c, ev.line, ev.len) == PROTO_PARK) {
@@ -377,6 +412,13 @@ static void pump(struct conn *c)
             break;
         }
         frame_consume(&c->fr);
+        /* Idleness is counted from the last whole request, not the last byte: one byte
+         * every second must not keep a connection that never asks anything. */
+        c->quiet_ms = uv_now(&s->loop);
+        if (c->pending_auth && c->pc.authed) {
+            c->pending_auth = 0;
+            s->n_unauthed--;
+        }
         if (++lines >= LINES_PER_PUMP) {
             c->backlog = 1;
             break;
@@ -505,10 +547,24 @@ static void on_tick(uv_timer_t *t)
     uint64_t now = uv_now(&s->loop);
     uint64_t send_ms = (uint64_t)s->o->send_timeout_s * 1000;
     uint64_t idle_ms = (uint64_t)s->o->idle_timeout_s * 1000;
+    uint64_t auth_ms = (uint64_t)s->o->auth_timeout_s * 1000;
     for (struct conn *c = s->conns, *next; c; c = next) {
         next = c->next;
         if (c->closing)
             continue;
+        /* A deadline from the connection's start: bytes that trickle in do not extend it. */
+        if (c->pending_auth && !c->pc.authed && !c->close_after && auth_ms &&
+            now - c->open_ms >= auth_ms) {
+            s->auth_timeouts++;
+            if (log_due(s, &s->auth_log_ms))
+                say_warn("connection %llu: not authenticated within %u s (--auth-timeout); "
+                         "closed; %llu so far",
+                         (unsigned long long)c->id, s->o->auth_timeout_s, s->auth_timeouts);
+            send_limit_error(c, WORTH_E_AUTH_TIMEOUT,
+                             "no auth request within --auth-timeout; connection closed");
+            conn_close_after_reply(c);
+            continue;
+        }
         if (c->full && send_ms && now - c->full_ms >= send_ms) {
             say_warn("connection %llu: %s: %zu bytes of replies unread for %u s; cut off",
                      (unsigned long long)c->id, worth_err_name(WORTH_E_SLOW_READER), c->unsent,
@@ -524,7 +580,7 @@ static void on_tick(uv_timer_t *t)
             say_info("connection %llu: idle for %u s; closed", (unsigned long long)c->id,
                      s->o->idle_timeout_s);
             send_limit_error(c, WORTH_E_IDLE_TIMEOUT,
-                             "nothing received within --idle-timeout; connection closed");
+                             "no whole request within --idle-timeout; connection closed");
             conn_close_after_reply(c);
         }
     }
@@ -557,6 +613,7 @@ static void on_connection(uv_stream_t *listener, int status)
     struct conn *c = mem_calloc(1, sizeof *c);
     c->srv = s;
     c->id = ++s->next_id;
+    c->tcp = tcp;
     if (tcp)
         uv_tcp_init(&s->loop, &c->u.tcp);
     else
@@ -567,8 +624,11 @@ static void on_connection(uv_stream_t *listener, int status)
         s->conns->prev = c;
     s->conns = c;
     s->n_conns++;
-    frame_init(&c->fr, s->o->max_line);
+    s->n_tcp += tcp;
+    int no_room = frame_init(&c->fr, s->o->max_line, &s->budget) != 0;
     proto_conn_init(&c->pc, tcp && s->o->token != NULL);
+    c->pending_auth = c->pc.needs_auth;
+    s->n_unauthed += c->pending_auth;
     int rc = uv_accept(listener, &c->u.s);
     if (rc < 0) {
         say_warn("accept: %s", uv_strerror(rc));
@@ -577,15 +637,39 @@ static void on_connection(uv_stream_t *listener, int status)
     }
     if (tcp)
         uv_tcp_nodelay(&c->u.tcp, 1);
-    c->quiet_ms = uv_now(&s->loop);
+    c->quiet_ms = c->open_ms = uv_now(&s->loop);
+    /*
+     * Limits, in order: the whole daemon's; the share of TCP, so that slots stay for the
+     * Unix socket; TCP peers still to authenticate, so that silent ones cannot hold the
+     * share; the buffer budget.  Each refusal is one error line, then the close.
+     */
+    size_t tcp_cap = s->o->max_conns > s->o->unix_slots ? s->o->max_conns - s->o->unix_slots : 1;
+    const char *why = NULL, *limit = NULL;
+    int code = WORTH_E_TOO_MANY_CONNECTIONS;
     if (s->n_conns > s->o->max_conns) {
+        why = "worthd holds its limit of connections (--max-conns); try again later";
+        limit = "--max-conns";
+    } else if (tcp && s->n_tcp > tcp_cap) {
+        why = "worthd holds its limit of TCP connections (--max-conns less --unix-slots); "
+              "try again later";
+        limit = "--max-conns less --unix-slots";
+    } else if (c->pending_auth && s->n_unauthed > s->o->max_unauthed) {
+        why = "too many TCP connections are waiting to authenticate (--max-unauthenticated); "
+              "try again later";
+        limit = "--max-unauthenticated";
+    } else if (no_room) {
+        why = "the daemon's buffer budget (--max-buffer-mb) is spent; try again later";
+        limit = "--max-buffer-mb";
+        code = WORTH_E_OVER_BUDGET;
+    }
+    if (why) {
         s->refused++;
         if (log_due(s, &s->refused_log_ms))
-            say_warn("connection %llu refused: %zu connections open, the limit is %zu "
-                     "(--max-conns); %llu refused so far",
-                     (unsigned long long)c->id, s->n_conns - 1, s->o->max_conns, s->refused);
-        send_limit_error(c, WORTH_E_TOO_MANY_CONNECTIONS,
-                         "worthd holds its limit of connections (--max-conns); try again later");
+            say_warn("connection %llu (%s) refused (%s, the limit of %s): %zu open, %zu tcp, %zu "
+                     "not authenticated; %llu refused so far",
+                     (unsigned long long)c->id, tcp ? "tcp" : "unix", worth_err_name(code), limit,
+                     s->n_conns - 1, s->n_tcp, s->n_unauthed, s->refused);
+        send_limit_error(c, code, why);
         conn_close_after_reply(c);
         return;
     }
@@ -729,6 +813,12 @@ static int listen_tcp(struct server *s)
                   s->o->listen);
         return -1;
     }
+    if (!s->o->token && !s->o->tcp_without_token) {
+        say_error("refusing to listen on %s without --token-file: every local user could "
+                  "use the whole protocol (--allow-tcp-without-token to accept that)",
+                  s->o->listen);
+        return -1;
+    }
     uv_tcp_init(&s->loop, &s->tcp_listener);
     s->tcp_listener.data = s;
     s->have_tcp = 1;
@@ -739,7 +829,13 @@ static int listen_tcp(struct server *s)
         say_error("cannot listen on %s: %s", s->o->listen, uv_strerror(rc));
         return -1;
     }
-    say_info("listening on %s (tcp%s)", s->o->listen, s->o->token ? ", token required" : "");
+    if (s->o->token)
+        say_info("listening on %s (tcp, token required within %u s)", s->o->listen,
+                 s->o->auth_timeout_s);
+    else
+        say_warn("listening on %s (tcp) WITHOUT A TOKEN (--allow-tcp-without-token): every "
+                 "user of this machine can create, feed, roll back and drop models",
+                 s->o->listen);
     return 0;
 }
 
@@ -772,6 +868,10 @@ static void stop(struct server *s, const char *why)
         conn_close(c);
     uv_close((uv_handle_t *)&s->sigint, NULL);
     uv_close((uv_handle_t *)&s->sigterm, NULL);
+    uv_close((uv_handle_t *)&s->sighup, NULL);
+    uv_close((uv_handle_t *)&s->sigusr1, NULL);
+    uv_close((uv_handle_t *)&s->sigusr2, NULL);
+    uv_close((uv_handle_t *)&s->sigquit, NULL);
     uv_close((uv_handle_t *)&s->wake, NULL);
     uv_close((uv_handle_t *)&s->idle, NULL);
     uv_close((uv_handle_t *)&s->tick, NULL);
@@ -783,15 +883,42 @@ static char *render_metrics(void *ctx, size_t *len)
     return proto_metrics_text(s->proto, len);
 }
 
+/*
+ * SIGINT, SIGTERM and SIGQUIT stop cleanly.  SIGHUP, SIGUSR1 and SIGUSR2 must
+ * not kill a daemon that operators and scripts signal by habit: HUP says that
+ * nothing can be reloaded in this version, USR1 logs a one-line status, USR2
+ * is ignored (logged).  SIGALRM and SIGPIPE are ignored in main.c.
+ */
 static void on_signal(uv_signal_t *h, int signum)
 {
-    stop(h->data, signum == SIGINT ? "SIGINT" : "SIGTERM");
+    struct server *s = h->data;
+    switch (signum) {
+    case SIGHUP:
+        say_info("SIGHUP: this worthd has nothing to reload; the options stay as started "
+                 "(restart to change them)");
+        return;
+    case SIGUSR1: {
+        size_t models = proto_n_models(s->proto);
+        say_info("status: %zu model%s, %zu connection%s (%zu tcp, %zu not authenticated), "
+                 "buffers %zu of %llu MiB (peak %zu), %llu refused, %llu shed",
+                 models, models == 1 ? "" : "s", s->n_conns, s->n_conns == 1 ? "" : "s", s->n_tcp,
+                 s->n_unauthed, s->budget.used, (unsigned long long)s->o->max_buffer_mb,
+                 s->budget.peak, s->refused, s->shed);
+        return;
+    }
+    case SIGUSR2:
+        say_info("SIGUSR2: ignored");
+        return;
+    default:
+        stop(s, signum == SIGINT ? "SIGINT" : signum == SIGQUIT ? "SIGQUIT" : "SIGTERM");
+    }
 }
 
 int server_run(const server_opts_t *opts)
 {
     struct server *s = mem_calloc(1, sizeof *s);
     s->o = opts;
+    s->budget.cap = (size_t)(opts->max_buffer_mb * 1048576u);
     s->reserve_fd = open("/dev/null", O_RDONLY | O_CLOEXEC);
     int status = 1;
     char err[1024];
@@ -831,11 +958,14 @@ int server_run(const server_opts_t *opts)
     s->idle.data = s;
     uv_timer_init(&s->loop, &s->tick);
     s->tick.data = s;
-    uv_signal_init(&s->loop, &s->sigint);
-    uv_signal_init(&s->loop, &s->sigterm);
-    s->sigint.data = s->sigterm.data = s;
-    uv_signal_start(&s->sigint, on_signal, SIGINT);
-    uv_signal_start(&s->sigterm, on_signal, SIGTERM);
+    uv_signal_t *sigs[] = {&s->sigint,  &s->sigterm, &s->sighup,
+                           &s->sigusr1, &s->sigusr2, &s->sigquit};
+    const int signums[] = {SIGINT, SIGTERM, SIGHUP, SIGUSR1, SIGUSR2, SIGQUIT};
+    for (size_t i = 0; i < sizeof sigs / sizeof sigs[0]; i++) {
+        uv_signal_init(&s->loop, sigs[i]);
+        sigs[i]->data = s;
+        uv_signal_start(sigs[i], on_signal, signums[i]);
+    }
 
     /* Recover before listening: nobody connects to a half-restored daemon. */
     int ready =

@@ -39,6 +39,12 @@ typedef struct server_opts_t {
     unsigned send_timeout_s;   /* cut off a client whose unread replies stay over the cap */
     size_t max_features;       /* features one model may have */
     uint64_t max_model_mb;     /* memory one model may come to hold, in MiB */
+    uint64_t max_buffer_mb;    /* every connection's buffers together, in MiB; 0 = no cap */
+    unsigned auth_timeout_s;   /* a TCP client must authenticate this soon after connecting */
+    size_t max_unauthed;       /* TCP connections not yet authenticated, at once */
+    size_t unix_slots;         /* of max_conns, kept for the Unix socket (TCP gets the rest) */
+    int tcp_without_token;     /* the operator's explicit opt-out: TCP needs no token */
+    size_t max_query_work;     /* one value request's work: states x (features + sd terms) */
 } server_opts_t;
 
 /*
@@ -62,8 +68,14 @@ uint64_t conn_id(const struct conn *c);
 struct proto_conn *conn_proto(struct conn *c);
 /* Closes the connection once everything queued so far is written. */
 void conn_close_after_reply(struct conn *c);
-/* The next nbytes of input are a bulk payload, handed whole to proto_bulk. */
-void conn_expect_bulk(struct conn *c, size_t nbytes);
+/*
+ * The next nbytes of input are a bulk payload, handed whole to proto_bulk.
+ * Returns 0, or -1 when the buffer budget cannot hold it (nothing changed:
+ * answer over_budget and call conn_skip_bulk).
+ */
+int conn_expect_bulk(struct conn *c, size_t nbytes);
+/* The next nbytes of input are a refused bulk payload: dropped as they arrive. */
+void conn_skip_bulk(struct conn *c, size_t nbytes);
 /* Stops handling this connection's input until conn_resume (awaiting an answer). */
 void conn_wait(struct conn *c);
 void conn_resume(struct conn *c);

@@ -722,8 +722,7 @@ static void out_model_head(struct out *o, const struct learner *l, const struct 
 {
     out_s(o, "\"model\":");
     out_str(o, learner_name(l));
-    out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m),
-            model_features(m));
+    out_fmt(o, ",\"dims\":%zu,\"features\":%zu,\"estimators\":", model_dims(m), model_features(m));
     out_est_names(o, m);
 }
 
@@ -768,15 +767,19 @@ static int do_get(struct req *rq)
     return PROTO_DONE;
 }
 
-/* Takes a model out of the registry: its learner stops, its waiting replies fail. */
-static void unregister(struct proto *p, size_t at, int tell_writer)
+/*
+ * Takes a model out of the registry: its learner stops, its waiting replies
+ * fail.  With tell_writer, the writer marks it dropped in the database and
+ * replies to conn_id (0: nobody) whether that was stored.
+ */
+static void unregister(struct proto *p, size_t at, int tell_writer, uint64_t conn_id)
 {
     struct slot *sl = p->models[at];
     p->models[at] = p->models[--p->n];
     sl->gone = 1;
     learner_stop(sl->l, 1);
     if (tell_writer)
-        writer_drop_model(p->w, sl->l);
+        writer_drop_model(p->w, sl->l, conn_id);
     else
         sl->released = 1;
     if (p->n_dropped == p->cap_dropped) {
@@ -796,10 +799,11 @@ static int do_drop(struct req *rq)
     size_t at = 0;
     if (!find_model(p, name, &at))
         return fail_done(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
-    unregister(p, at, 1);
     say_info("model %s dropped", name);
-    out_begin(&p->out, 1, rq->id);
-    out_end(&p->out, rq->c);
+    /* The reply comes from the writer: whether the drop is stored, or only in memory. */
+    keep_id(rq);
+    conn_wait(rq->c);
+    unregister(p, at, 1, conn_id(rq->c));
     return PROTO_DONE;
 }
 
@@ -913,7 +917,15 @@ static int do_bulk_header(struct req *rq)
         if (rq->id)
             snprintf(pc->id, sizeof pc->id, "%s", rq->id);
         size_t d = model_dims(learner_model(l));
-        conn_expect_bulk(rq->c, pc->count * (2 * d + 2) * sizeof(double));
+        size_t bytes = pc->count * (2 * d + 2) * sizeof(double);
+        if (conn_expect_bulk(rq->c, bytes) != 0) {
+            /* The payload is dropped as it arrives; the connection goes on after it. */
+            FAIL(rq, WORTH_E_OVER_BUDGET,
+                 "the daemon's buffer budget (--max-buffer-mb) cannot hold a payload of %zu "
+                 "bytes now; it is skipped, nothing applied; retry later or send smaller bulks",
+                 bytes);
+            conn_skip_bulk(rq->c, bytes);
+        }
         return PROTO_DONE;
     }
     conn_close_after_reply(rq->c);
@@ -947,8 +959,10 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
         memcpy(&r->r, q + d * sizeof(double), sizeof(double));
         memcpy(r->v + d, q + (d + 1) * sizeof(double), d * sizeof(double));
         memcpy(&term, q + (2 * d + 1) * sizeof(double), sizeof(double));
+        /* A terminal record's x_next is ignored (V of a terminal state is 0): any bytes. */
+        size_t check = term == 1.0 ? d : 2 * d;
         int finite = isfinite(r->r);
-        for (size_t j = 0; j < 2 * d && finite; j++)
+        for (size_t j = 0; j < check && finite; j++)
             finite = isfinite(r->v[j]);
         if (!finite) {
             reply_error(p, c, id, WORTH_E_BAD_NUMBER, (long)i,
@@ -1004,6 +1018,21 @@ static double pick_sd(const struct model *m, const double *sd)
         if (!isnan(sd[i]))
             return sd[i];
     return NAN;
+}
+
+/*
+ * The work of answering one state, in multiply-adds: the features (about F per
+ * input dimension for the costliest bases), a dot product per estimator, and
+ * for each rls_td estimator its sd, phi'P phi, F^2.  An upper bound: sparse
+ * bases cost less.
+ */
+static double state_work(const struct model *m)
+{
+    double f = (double)model_features(m), w = f * (double)(model_dims(m) + model_n_est(m));
+    for (size_t i = 0; i < model_n_est(m); i++)
+        if (est_params(model_est(m, i))->kind == EST_RLS_TD)
+            w += f * f;
+    return w;
 }
 
 static int do_value(struct req *rq)
@@ -1074,6 +1103,15 @@ static int do_value(struct req *rq)
     if (k > p->o->max_batch)
         return fail_done(rq, WORTH_E_TOO_LARGE, "%zu states exceed the limit %zu", k,
                          p->o->max_batch);
+    /* The loop answers every client: one request may not hold it longer than its share. */
+    double work = state_work(m);
+    if ((double)k * work > (double)p->o->max_query_work) {
+        size_t most = (size_t)((double)p->o->max_query_work / work);
+        return fail_done(rq, WORTH_E_TOO_LARGE,
+                         "%zu states of this model are %.3g multiply-adds, over --max-query-work "
+                         "%zu; ask at most %zu states per request",
+                         k, (double)k * work, p->o->max_query_work, most ? most : 1);
+    }
     /* Validate every state before answering any. */
     size_t i = 0;
     for (const cJSON *e = xs->child; e; e = e->next, i++) {
@@ -1087,15 +1125,16 @@ static int do_value(struct req *rq)
     out_begin(o, 1, rq->id);
     out_s(o, ",\"values\":[");
     i = 0;
+    /* Every state from one snapshot, as protocol.md promises: one seq for the whole answer. */
+    seq = learner_read_begin(l);
     for (const cJSON *e = xs->child; e; e = e->next, i++) {
         get_vector(e, d, xv, "x", &code, p->err, sizeof p->err, "");
-        uint64_t s = 0;
-        learner_value(l, xv, d, p->vals, p->sds, &s);
-        seq = i == 0 ? s : (s < seq ? s : seq);
+        learner_read_value(l, xv, d, p->vals, p->sds);
         if (i)
             out_s(o, ",");
         out_num(o, p->vals[pick >= 0 ? (size_t)pick : model_primary(m)]);
     }
+    learner_read_end(l);
     out_fmt(o, "],\"seq\":%llu", (unsigned long long)seq);
     out_end(o, rq->c);
     return PROTO_DONE;
@@ -1352,6 +1391,10 @@ static int do_rollback(struct req *rq)
         by_t = wt != NULL;
         if (window(by_t ? wt : ws, &lo, &hi) != 0)
             return fail_done(rq, WORTH_E_BAD_REQUEST, "the window must be two finite numbers");
+        /* Seqs are whole numbers from 1; a double holds them exactly up to 2^53. */
+        if (!by_t && (lo != floor(lo) || hi != floor(hi) || lo < 1 || hi > 9007199254740992.0))
+            return fail_done(rq, WORTH_E_BAD_PARAM,
+                             "an excluded seq window is two whole numbers in 1..2^53");
         if (lo > hi)
             return fail_done(rq, WORTH_E_BAD_PARAM, "the window's start is after its end");
     }
@@ -1389,27 +1432,35 @@ static int do_backup(struct req *rq)
 
 /* ---- dispatch -------------------------------------------------------------------------- */
 
+/* The members a request of each op may have; the handlers with NULL check their own. */
+static const char *const k_bare[] = {"op", "id", NULL};
+static const char *const k_auth[] = {"op", "id", "token", NULL};
+static const char *const k_model[] = {"op", "id", "model", NULL};
+static const char *const k_value[] = {"op", "id", "model", "x", "xs", "estimator", NULL};
+static const char *const k_train[] = {"op", "id", "model", "estimator", "passes", NULL};
+
 static const struct {
     const char *op;
     int (*fn)(struct req *rq);
+    const char *const *keys;
 } ops[] = {
-    {"hello", do_hello},
-    {"auth", do_auth},
-    {"model.create", do_create},
-    {"model.list", do_list},
-    {"model.get", do_get},
-    {"model.drop", do_drop},
-    {"observe", do_observe},
-    {"observe.bulk", do_bulk_header},
-    {"value", do_value},
-    {"train", do_train},
-    {"stats", do_stats},
-    {"checkpoint", do_checkpoint},
-    {"checkpoints", do_checkpoints},
-    {"rollback", do_rollback},
-    {"backup", do_backup},
-    {"history", do_history},
-    {"events", do_events},
+    {"hello", do_hello, k_bare},
+    {"auth", do_auth, k_auth},
+    {"model.create", do_create, NULL},
+    {"model.list", do_list, k_bare},
+    {"model.get", do_get, k_model},
+    {"model.drop", do_drop, k_model},
+    {"observe", do_observe, NULL},
+    {"observe.bulk", do_bulk_header, NULL},
+    {"value", do_value, k_value},
+    {"train", do_train, k_train},
+    {"stats", do_stats, k_model},
+    {"checkpoint", do_checkpoint, NULL},
+    {"checkpoints", do_checkpoints, k_model},
+    {"rollback", do_rollback, NULL},
+    {"backup", do_backup, NULL},
+    {"history", do_history, k_model},
+    {"events", do_events, NULL},
 };
 
 /*
@@ -1570,6 +1621,11 @@ int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
         FAIL(&rq, WORTH_E_UNKNOWN_OP, "unknown op \"%.64s\"", opf->valuestring);
         goto out;
     }
+    const char *bad;
+    if (ops[i].keys && !only_keys(rq.root, ops[i].keys, &bad)) {
+        FAIL(&rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in %s", bad, ops[i].op);
+        goto out;
+    }
     res = ops[i].fn(&rq);
 out:
     cJSON_Delete(rq.root);
@@ -1635,7 +1691,7 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
             pc->creating = NULL;
             size_t at;
             if (ev->rc && find_slot(p, learner_name(ev->l), &at))
-                unregister(p, at, 0); /* the writer never took it */
+                unregister(p, at, 0, 0); /* the writer never took it */
         }
         mem_free(ev->text);
         conn_resume(c);
@@ -1684,6 +1740,11 @@ struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_pos
     ensure_scratch(p, MODEL_MAX_EST);
     out_need(&p->out, 65536);
     return p;
+}
+
+size_t proto_n_models(const struct proto *p)
+{
+    return p->n;
 }
 
 void proto_learner_opts(const struct proto *p, learner_opts_t *o)

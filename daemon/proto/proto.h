@@ -67,6 +67,8 @@ struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_pos
                         learner_wake_fn wake, void *ctx);
 /* Registers a model recovered at start-up (l transferred). */
 void proto_add_recovered(struct proto *p, struct learner *l);
+/* Returns how many models are registered. */
+size_t proto_n_models(const struct proto *p);
 /* Fills *o with the learner options for a model of this daemon. */
 void proto_learner_opts(const struct proto *p, learner_opts_t *o);
 /* Stops every learner after it has applied its queue, joins them and logs their counts. */

@@ -486,21 +486,46 @@ static void job_drop(struct writer *w, struct job *j)
             w->models[i] = w->models[--w->n];
             break;
         }
-    char why[256];
-    if (learner_db_id(j->l) && may_write(w, FILEGUARD_ALL, why, sizeof why) != 0) {
-        say_error("model %s: cannot mark it dropped: %s", learner_name(j->l), why);
-    } else if (learner_db_id(j->l)) {
+    char why[256] = "";
+    int stored = 0;
+    if (!learner_db_id(j->l)) {
+        stored = 1; /* never stored: nothing to mark */
+    } else if (!w->db || may_write(w, FILEGUARD_ALL, why, sizeof why) != 0) {
+        if (!w->db)
+            snprintf(why, sizeof why, "%s", w->lost_why);
+    } else {
         sqlite3_stmt *st = NULL;
         if (sqlite3_prepare_v2(w->db, "UPDATE models SET dropped_at = ? WHERE id = ?", -1, &st,
                                NULL) == SQLITE_OK) {
             sqlite3_bind_double(st, 1, db_now());
             sqlite3_bind_int64(st, 2, learner_db_id(j->l));
-            if (sqlite3_step(st) != SQLITE_DONE)
-                say_error("model %s: cannot mark it dropped: %s", learner_name(j->l),
-                          sqlite3_errmsg(w->db));
+            stored = sqlite3_step(st) == SQLITE_DONE;
         }
+        if (!stored)
+            snprintf(why, sizeof why, "%s: %s", worth_err_name(db_error_code(w->db)),
+                     sqlite3_errmsg(w->db));
         sqlite3_finalize(st);
-        insert_event(w, j->l, "drop", "{}");
+        if (stored)
+            insert_event(w, j->l, "drop", "{}");
+    }
+    if (stored) {
+        post_reply(w, j->l, j->conn_id, 0, ",\"persisted\":true");
+    } else {
+        say_error("model %s: dropped in memory, but the drop could not be stored: %s; it comes "
+                  "back at the next start unless dropped again",
+                  learner_name(j->l), why);
+        size_t len = 0, cap = 512;
+        char *buf = mem_alloc(cap);
+        buf[0] = 0;
+        appendf(&buf, &len, &cap, ",\"persisted\":false,\"warning\":");
+        char msg[512];
+        snprintf(msg, sizeof msg,
+                 "dropped in memory only: the database could not store the drop (%s); the model "
+                 "comes back at the next start unless it is dropped again",
+                 why);
+        json_str(&buf, &len, &cap, msg);
+        post_reply(w, j->l, j->conn_id, 0, "%s", buf);
+        mem_free(buf);
     }
     learner_event_t ev = {.kind = LEV_RELEASED, .l = j->l};
     w->post(w->ctx, &ev);
@@ -1262,9 +1287,9 @@ void writer_create_model(struct writer *w, struct learner *l, const char *name, 
     push(w, j);
 }
 
-void writer_drop_model(struct writer *w, struct learner *l)
+void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id)
 {
-    push(w, job(J_DROP, l, 0));
+    push(w, job(J_DROP, l, conn_id));
 }
 
 void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,

@@ -50,8 +50,12 @@ void writer_add_model(struct writer *w, struct learner *l, int64_t model_id);
  */
 void writer_create_model(struct writer *w, struct learner *l, const char *name, const char *spec,
                          size_t features, uint64_t conn_id);
-/* Marks the model dropped, forgets l, then posts LEV_RELEASED for it. */
-void writer_drop_model(struct writer *w, struct learner *l);
+/*
+ * Marks the model dropped, forgets l, replies to conn_id (0: nobody)
+ * {"persisted":true} or, when the database could not take it,
+ * {"persisted":false,"warning":...}, then posts LEV_RELEASED for l.
+ */
+void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id);
 /*
  * Stores a checkpoint of l (blob transferred, from mem_alloc) at seq and
  * training; label may be NULL.  Replies to conn_id when it is not 0.

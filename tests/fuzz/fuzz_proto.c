@@ -173,7 +173,7 @@ static void toy_run(const uint8_t *d, size_t n, const size_t *cut, size_t ncut, 
 {
     static frame_t f; /* one framer for every run: its buffers outlive them */
     if (!f.in)
-        frame_init(&f, MAX_LINE);
+        frame_init(&f, MAX_LINE, NULL);
     frame_reset(&f);
     unsigned evno = 0;
     size_t pos = 0, next_cut = 0;
@@ -257,6 +257,12 @@ struct conn {
 };
 
 static struct server srv;
+/*
+ * The buffer budget of the one connection: its first input buffer and a
+ * little more, so that bulk payloads of a few records fit and larger ones are
+ * refused (over_budget, payload skipped) -- both paths get fuzzed.
+ */
+static budget_t budget = {.cap = FRAME_IN_START + 3000};
 static struct conn *live; /* the one open connection, or NULL */
 static uint64_t next_conn_id;
 
@@ -295,9 +301,14 @@ void conn_close_after_reply(struct conn *c)
     maybe_close(c);
 }
 
-void conn_expect_bulk(struct conn *c, size_t nbytes)
+int conn_expect_bulk(struct conn *c, size_t nbytes)
 {
-    frame_expect_bulk(&c->fr, nbytes);
+    return frame_expect_bulk(&c->fr, nbytes);
+}
+
+void conn_skip_bulk(struct conn *c, size_t nbytes)
+{
+    frame_skip_bulk(&c->fr, nbytes);
 }
 
 void conn_wait(struct conn *c)
@@ -485,7 +496,9 @@ static void await(const char *what)
 
 static int known_code(const char *name)
 {
-#define KNOWN(suffix, val, wire, msg) if (strcmp(name, wire) == 0 && (val) != 0) return 1;
+#define KNOWN(suffix, val, wire, msg)                                                              \
+    if (strcmp(name, wire) == 0 && (val) != 0)                                                     \
+        return 1;
     WORTH_ERRORS(KNOWN)
 #undef KNOWN
     return 0;
@@ -535,7 +548,8 @@ static void conn_open(struct conn *c, int needs_auth)
     memset(c, 0, sizeof *c);
     c->id = ++next_conn_id;
     proto_conn_init(&c->pc, needs_auth);
-    frame_init(&c->fr, MAX_LINE);
+    if (frame_init(&c->fr, MAX_LINE, &budget) != 0)
+        die("budget", "the first buffer of the only connection does not fit");
     live = c;
 }
 
@@ -543,8 +557,10 @@ static void conn_end(struct conn *c)
 {
     c->closed = 1;
     live = NULL;
-    proto_conn_free(proto, &c->pc);
     frame_close(&c->fr);
+    if (budget.used != 0)
+        die("budget", "bytes stay charged to the budget after the connection closed");
+    proto_conn_free(proto, &c->pc);
     mem_free(c->out);
 }
 
@@ -683,6 +699,7 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
         .sync_full = 0,
         .checkpoint_every = 50,
         .keep = 3,
+        .max_query_work = 100000000,
     };
     char err[512];
     sqlite3 *db = NULL;

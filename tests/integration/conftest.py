@@ -161,8 +161,9 @@ class Client:
 class Daemon:
     """A running worthd: .sock (path), .proc, .stderr (text so far), .client()."""
 
-    def __init__(self, argv, sock, workdir, expect_rc, db=None, respawn=None, user=None):
+    def __init__(self, argv, sock, workdir, expect_rc, db=None, respawn=None, user=None, env=None):
         self.argv, self.sock, self.expect_rc = argv, str(sock), expect_rc
+        self.env = env  # variables added to the environment worthd runs in
         self.user = user  # a uid to run as (Popen user=/group=), for tests of file modes
         self.db = None if db is None else str(db)
         self.respawn = respawn  # set by the daemon fixture: starts the same argv again
@@ -170,8 +171,9 @@ class Daemon:
         self.out_path = os.path.join(workdir, "worthd.stdout")
         with open(self.err_path, "wb") as err, open(self.out_path, "wb") as out:
             as_user = {} if user is None else {"user": user, "group": user, "extra_groups": []}
+            environ = None if env is None else {**os.environ, **env}
             self.proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=out, stderr=err,
-                                         cwd=workdir, **as_user)
+                                         cwd=workdir, env=environ, **as_user)
         self.clients = []
 
     @property
@@ -295,7 +297,8 @@ def sockdir(tmp_path):
 
 @pytest.fixture
 def daemon(tmp_path, sockdir):
-    """Factory: daemon(*args, sock=None, db=None, expect_rc=0, ready=True, user=None) -> Daemon.
+    """Factory: daemon(*args, sock=None, db=None, expect_rc=0, ready=True, user=None, env=None)
+    -> Daemon (env: variables added to worthd's environment).
 
     Starts worthd --socket <sock> --db <db> *args: sock defaults to a new name in sockdir,
     db to <tmp>/worthd.db (shared by the daemons of one test, so that a second daemon started
@@ -309,19 +312,22 @@ def daemon(tmp_path, sockdir):
     started = []
     exe = daemon_path()
 
-    def spawn(argv, sock, db, expect_rc, ready, ready_timeout, user=None):
+    def spawn(argv, sock, db, expect_rc, ready, ready_timeout, user=None, env=None):
         workdir = tmp_path / f"d{len(started)}"
         workdir.mkdir()
-        d = Daemon(argv, sock, str(workdir), expect_rc, db=db, respawn=respawn, user=user)
+        d = Daemon(argv, sock, str(workdir), expect_rc, db=db, respawn=respawn, user=user,
+                   env=env)
         started.append(d)
         if ready:
             d.wait_ready(ready_timeout or READY_TIMEOUT)
         return d
 
     def respawn(old, expect_rc=0, ready=True, ready_timeout=None):
-        return spawn(old.argv, old.sock, old.db, expect_rc, ready, ready_timeout, old.user)
+        return spawn(old.argv, old.sock, old.db, expect_rc, ready, ready_timeout, old.user,
+                     old.env)
 
-    def start(*args, sock=None, db=None, expect_rc=0, ready=True, ready_timeout=None, user=None):
+    def start(*args, sock=None, db=None, expect_rc=0, ready=True, ready_timeout=None, user=None,
+              env=None):
         sock = str(sock or os.path.join(str(sockdir), f"worthd{len(started) or ''}.sock"))
         args = [str(a) for a in args]
         if "--db" in args:
@@ -330,7 +336,7 @@ def daemon(tmp_path, sockdir):
             db = str(db or tmp_path / "worthd.db")
             args = ["--db", db] + args
         return spawn([exe, "--socket", sock, *args], sock, db, expect_rc, ready, ready_timeout,
-                     user)
+                     user, env)
 
     yield start
 

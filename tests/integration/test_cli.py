@@ -148,7 +148,7 @@ def test_create_models_show_drop_and_json(daemon, tmp_path):
     assert "dropped model m2" in ok(run(d, "drop", "m2")).stdout
     rep = one_json(fails(run(d, "--json", "drop", "m2"), 1, "worth: no_such_model:"))
     assert rep["error"]["code"] == "no_such_model"
-    assert one_json(ok(run(d, "--json", "drop", "m"))) == {"ok": True}
+    assert one_json(ok(run(d, "--json", "drop", "m"))) == {"ok": True, "persisted": True}
     fails(run(d, "show", "m"), 1, "worth: no_such_model:")
 
 

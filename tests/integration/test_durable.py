@@ -307,7 +307,7 @@ def test_models_persist_across_restart(daemon):
     assert feed(c, "b", [{"x": [k / 20], "r": 1.0, "x_next": [(k + 1) / 20]}
                          for k in range(20)], first=1) == 20
     feed(c, "gone", [{"x": [0.5], "r": 1.0, "terminal": True}] * 5, first=1)
-    assert c.call({"op": "model.drop", "model": "gone"}) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "gone"}) == {"ok": True, "persisted": True}
     c.wait_applied("a", 300)
     c.wait_applied("b", 20)
     models = sorted(c.ok({"op": "model.list"})["models"], key=lambda m: m["model"])
@@ -357,7 +357,7 @@ def test_create_drop_and_checkpoint_survive_a_crash(daemon):
     assert c.call(small_spec("dropped"))["ok"] is True
     feed(c, "kept", transitions(30, seed=29), first=1)
     cp = checkpoint(c, "kept", label="crash")
-    assert c.call({"op": "model.drop", "model": "dropped"}) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "dropped"}) == {"ok": True, "persisted": True}
     assert c.call(small_spec("new"))["ok"] is True
     d.kill9()
     c = d.restart().client()
@@ -753,7 +753,7 @@ def test_rollback_errors_and_invalidation(daemon):
     assert [e["checkpoint"] for e in listed(c, "b")] == [cpb["checkpoint"]]
     assert snapshot(c, "b") == b_before, "a rollback of a changed another model"
     # a checkpoint of a dropped model does not belong to a new model of the same name
-    assert c.call({"op": "model.drop", "model": "b"}) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "b"}) == {"ok": True, "persisted": True}
     create(c, "b")
     feed(c, "b", trs[:10], first=1)
     c.err({"op": "rollback", "model": "b", "checkpoint": cpb["checkpoint"]},
@@ -1407,7 +1407,7 @@ def test_events(daemon):
     feed(c, "m", transitions(10, seed=18), first=41)
     c.wait_applied("m", 50)
     assert c.ok({"op": "rollback", "model": "m", "checkpoint": cp["checkpoint"]})["undone"] == 10
-    assert c.call({"op": "model.drop", "model": "s"}) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "s"}) == {"ok": True, "persisted": True}
     d.shutdown()
     db = ro(d.db)
     try:

@@ -745,7 +745,7 @@ def test_metrics_content(daemon, free_port):
     parse_exposition(body)
 
     # a dropped model is no longer reported
-    assert c.call({"op": "model.drop", "model": "other.model-1"}) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "other.model-1"}) == {"ok": True, "persisted": True}
     _, _, samples = scrape(free_port)
     assert all(lb.get("model") != "other.model-1" for _, lb, _ in samples), samples
 

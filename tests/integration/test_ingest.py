@@ -363,7 +363,7 @@ def test_drop_with_backlog(daemon):
     print(f"backlog at drop: {n - st1['applied']} transitions, about {left:.1f} s of learning")
     # drop discards what is still queued: it does not wait for it
     t0 = time.monotonic()
-    assert c.call({"op": "model.drop", "model": "slow"}, timeout=30) == {"ok": True}
+    assert c.call({"op": "model.drop", "model": "slow"}, timeout=30) == {"ok": True, "persisted": True}
     took = time.monotonic() - t0
     if left > 1.0:
         assert took < left / 2, f"model.drop took {took:.2f} s with {left:.1f} s of backlog"
@@ -513,8 +513,23 @@ def test_tcp_with_token(daemon, free_port, token_file):
     assert TOKEN not in d.stderr and "s3cret" not in d.stderr
 
 
-def test_tcp_loopback_without_token(daemon, free_port):
-    d = daemon("--listen", f"127.0.0.1:{free_port}")
+def test_tcp_loopback_needs_a_token(daemon, free_port):
+    # On TCP the Unix socket's 0660 mode guards nothing: any local user could connect.  So
+    # even a loopback --listen needs a token; worthd refuses to start before binding.
+    d = daemon("--listen", f"127.0.0.1:{free_port}", ready=False, expect_rc=1)
+    assert d.wait_exit(5) == 1, "worthd listened on loopback TCP without a token"
+    assert "--token-file" in d.stderr and "--allow-tcp-without-token" in d.stderr, d.stderr
+    s = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    try:
+        s.settimeout(1)
+        assert s.connect_ex(("127.0.0.1", free_port)) != 0, "something listens on the port"
+    finally:
+        s.close()
+
+
+def test_tcp_loopback_without_token_by_explicit_opt_out(daemon, free_port):
+    d = daemon("--listen", f"127.0.0.1:{free_port}", "--allow-tcp-without-token")
+    assert "WITHOUT A TOKEN" in d.stderr, d.stderr  # said loudly
     c = wait_tcp(d, free_port)
     rep = c.call({"op": "hello", "id": "tcp"})
     assert rep == {"ok": True, "id": "tcp", "server": "worthd", "version": "0.1.0", "protocol": 1}

@@ -347,7 +347,8 @@ def test_thousand_concurrent_loopback_connections(daemon, free_port):
         if hard != resource.RLIM_INFINITY and hard < need:
             pytest.fail(f"RLIMIT_NOFILE hard limit {hard} < {need}: cannot run the load test")
         resource.setrlimit(resource.RLIMIT_NOFILE, (need, hard))
-    d = daemon("--listen", f"127.0.0.1:{free_port}", "--max-conns", LOAD_CONNS + 24)
+    d = daemon("--listen", f"127.0.0.1:{free_port}", "--allow-tcp-without-token",
+               "--max-conns", LOAD_CONNS + 24, "--unix-slots", 16)
     wait_tcp(free_port).close()
     u = d.client()
     u.ok(model_req())

@@ -48,7 +48,8 @@ def test_disconnect_mid_bulk_under_load(daemon, free_port, how):
     end in the middle of bulk payloads (header only, inside a record, one byte short, of a
     frame larger than a socket buffer).  Nothing of a cut bulk is logged or learnt, the
     producer never notices, worthd goes on."""
-    d = daemon("--listen", f"127.0.0.1:{free_port}", "--checkpoint-every", 0)
+    d = daemon("--listen", f"127.0.0.1:{free_port}", "--allow-tcp-without-token",
+               "--checkpoint-every", 0)
     c = d.client(timeout=30)
     create_model(c)
     stream = Stream(5100)
@@ -119,7 +120,7 @@ def test_writes_to_closed_sockets(daemon, free_port):
     replies, more than the socket buffers hold) and close at once, without reading; half of
     them reset the connection.  worthd writes into closed sockets (EPIPE) and must not die of
     SIGPIPE: it stays up, answers, and learns on."""
-    d = daemon("--listen", f"127.0.0.1:{free_port}")
+    d = daemon("--listen", f"127.0.0.1:{free_port}", "--allow-tcp-without-token")
     assert sigpipe_ignored(d.proc.pid), "worthd does not ignore SIGPIPE"
     c = d.client(timeout=30)
     create_model(c)

@@ -228,7 +228,8 @@ def test_model_get_counts(c):
 def test_model_drop(c):
     c.ok(create_req())
     c.ok(obs())
-    assert c.call({"op": "model.drop", "model": "m", "id": 4}) == {"ok": True, "id": 4}
+    assert c.call({"op": "model.drop", "model": "m", "id": 4}) == {"ok": True, "id": 4,
+                                                                   "persisted": True}
     for req in [{"op": "model.get", "model": "m"}, {"op": "stats", "model": "m"}, obs(),
                 {"op": "value", "model": "m", "x": [0.5, 0.5]},
                 {"op": "train", "model": "m", "estimator": "td"},
