@@ -343,6 +343,9 @@ static void apply(struct learner *l, learner_rec_t *r)
         struct train_ctx t = {l, r->conn_id};
         int rc = model_train(l->m, r->est, r->passes, on_pass, &t, &rep);
         l->model_training = r->ordinal;
+        /* A checkpoint right after the training: recovery then restores its result instead
+         * of training again before worthd can listen. */
+        checkpoint(l, NULL, 0);
         publish(l, wall_s()); /* queries after the reply see the trained weights */
         learner_event_t ev = {.kind = LEV_TRAINED,
                               .l = l,

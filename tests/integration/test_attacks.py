@@ -21,7 +21,8 @@ import time
 
 import pytest
 
-from conftest import Client, Closed, is_closed_error
+from conftest import Client, is_closed_error
+from test_limits import poll_until
 
 TOKEN = "attacks-token-51c0ffee"
 
@@ -48,18 +49,6 @@ def raise_nofile(need):
         assert hard == resource.RLIM_INFINITY or hard >= need, \
             f"RLIMIT_NOFILE hard limit {hard} < {need}: cannot run this test"
         resource.setrlimit(resource.RLIMIT_NOFILE, (need, hard))
-
-
-def poll_until(fn, timeout, what, every=0.02):
-    deadline = time.monotonic() + timeout
-    for _ in range(int(timeout / every) + 10):
-        v = fn()
-        if v:
-            return v
-        if time.monotonic() > deadline:
-            break
-        time.sleep(every)
-    raise AssertionError(f"{what}: not within {timeout} s")
 
 
 def tcp_connect(port):
