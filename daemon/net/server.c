@@ -107,6 +107,9 @@ struct server {
     uv_pipe_t unix_listener;
     uv_tcp_t tcp_listener;
     int have_unix, have_tcp;
+    int have_sock_id; /* sock_dev, sock_ino: the socket file bound (only it is unlinked) */
+    dev_t sock_dev;
+    ino_t sock_ino;
     uv_signal_t sigint, sigterm;
     uv_async_t wake;
     uv_idle_t idle;
@@ -642,6 +645,33 @@ static int check_socket_dir(const char *path)
     return 0;
 }
 
+/*
+ * Creates a Unix stream socket bound to path, mode 0660.  Bound here rather
+ * than by uv_pipe_bind, because libuv's uv_close then unlinks whatever sits at
+ * the path; stop() removes only this socket (unlink_socket).  Returns 0 with
+ * *fd, or a negative errno (a libuv error code).
+ */
+static int bind_unix(const char *path, int *fd)
+{
+    struct sockaddr_un a;
+    memset(&a, 0, sizeof a);
+    a.sun_family = AF_UNIX;
+    snprintf(a.sun_path, sizeof a.sun_path, "%s", path);
+    int sfd = socket(AF_UNIX, SOCK_STREAM | SOCK_CLOEXEC, 0);
+    if (sfd < 0)
+        return -errno;
+    /* Mode 0660: uv_pipe_chmod cannot express it, so set the umask around bind. */
+    mode_t old = umask(0117);
+    int rc = bind(sfd, (struct sockaddr *)&a, sizeof a), e = errno;
+    umask(old);
+    if (rc != 0) {
+        close(sfd);
+        return -e;
+    }
+    *fd = sfd;
+    return 0;
+}
+
 static int listen_unix(struct server *s)
 {
     const char *path = s->o->socket_path;
@@ -668,10 +698,15 @@ static int listen_unix(struct server *s)
     uv_pipe_init(&s->loop, &s->unix_listener, 0);
     s->unix_listener.data = s;
     s->have_unix = 1;
-    /* Mode 0660: uv_pipe_chmod cannot express it, so set the umask around bind. */
-    mode_t old = umask(0117);
-    int rc = uv_pipe_bind(&s->unix_listener, path);
-    umask(old);
+    int fd = -1;
+    int rc = bind_unix(path, &fd);
+    if (rc == 0 && lstat(path, &st) == 0) { /* what stop() may remove: this socket, no other file */
+        s->sock_dev = st.st_dev;
+        s->sock_ino = st.st_ino;
+        s->have_sock_id = 1;
+    }
+    if (rc == 0 && (rc = uv_pipe_open(&s->unix_listener, fd)) != 0)
+        close(fd);
     if (rc == 0)
         rc = uv_listen((uv_stream_t *)&s->unix_listener, 511, on_connection);
     if (rc < 0) {
@@ -745,6 +780,24 @@ static int listen_tcp(struct server *s)
 
 /* ---- start and stop ---------------------------------------------------------------------- */
 
+/*
+ * Removes the socket file, but only while the path still names the socket
+ * worthd bound: whoever replaced it meanwhile keeps their file.  XXX: a
+ * replacement between the lstat and the unlink is still removed.
+ */
+static void unlink_socket(struct server *s)
+{
+    const char *path = s->o->socket_path;
+    struct stat st;
+    if (!s->have_sock_id || lstat(path, &st) != 0)
+        return;
+    if (!S_ISSOCK(st.st_mode) || st.st_dev != s->sock_dev || st.st_ino != s->sock_ino) {
+        say_warn("%s is no longer worthd's socket; left in place", path);
+        return;
+    }
+    unlink(path);
+}
+
 static void stop(struct server *s, const char *why)
 {
     if (s->stopping)
@@ -752,8 +805,8 @@ static void stop(struct server *s, const char *why)
     s->stopping = 1;
     say_info("%s: stopping; applying everything accepted", why);
     if (s->have_unix) {
+        unlink_socket(s); /* before the close, as libuv would: the name goes first */
         uv_close((uv_handle_t *)&s->unix_listener, NULL);
-        unlink(s->o->socket_path);
     }
     if (s->have_tcp)
         uv_close((uv_handle_t *)&s->tcp_listener, NULL);
