@@ -40,6 +40,10 @@ static const char usage[] =
     "options:\n"
     "  --socket PATH       Unix socket to listen on (default ./worthd.sock, mode 0660)\n"
     "  --db PATH           SQLite database: log, models, checkpoints (default ./worthd.db)\n"
+    "  --backup-dir DIR    where backup requests write their copies (default\n"
+    "                      $STATE_DIRECTORY/backups when set, else backups beside --db);\n"
+    "                      created 0700 if missing; must be worthd's or root's, not a\n"
+    "                      symlink, not writable by all\n"
     "  --sync MODE         full (default): an acknowledged transition survives power loss;\n"
     "                      normal: it survives a crash of worthd, not of the machine\n"
     "  --checkpoint-every N  automatic checkpoint every N transitions (default 100000; 0: off)\n"
@@ -69,6 +73,9 @@ static const char usage[] =
     "  --version           print the version\n"
     "\n"
     "Estimates are advisory: never use them in a safety function.\n";
+
+/* Long options without a short letter. */
+enum { OPT_BACKUP_DIR = 1000 };
 
 /* Parses a positive integer option; exits with status 2 on a bad value. */
 static size_t parse_size(const char *name, const char *v, size_t lo, size_t hi)
@@ -155,6 +162,7 @@ int main(int argc, char **argv)
         .send_timeout_s = 30,
         .max_features = 65536,
         .max_model_mb = 2048,
+        .backup_dir = NULL,
     };
     int queue_set = 0;
     static const struct option longopts[] = {
@@ -177,6 +185,7 @@ int main(int argc, char **argv)
         {"send-timeout", required_argument, NULL, 'S'},
         {"max-features", required_argument, NULL, 'F'},
         {"max-model-mb", required_argument, NULL, 'B'},
+        {"backup-dir", required_argument, NULL, OPT_BACKUP_DIR},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -256,6 +265,9 @@ int main(int argc, char **argv)
             break;
         case 'B':
             o.max_model_mb = parse_size("max-model-mb", optarg, 1, 1ull << 30);
+            break;
+        case OPT_BACKUP_DIR:
+            o.backup_dir = optarg;
             break;
         case 'h':
             fputs(usage, stdout);

@@ -54,12 +54,14 @@
 #include <uv.h>
 
 #include "arena.h"
+#include "backup.h"
 #include "db.h"
 #include "frame.h"
 #include "metrics.h"
 #include "mem.h"
 #include "proto.h"
 #include "recover.h"
+#include "safedir.h"
 #include "say.h"
 #include "worth/errors.h"
 #include "writer.h"
@@ -110,6 +112,7 @@ struct server {
     int have_sock_id; /* sock_dev, sock_ino: the socket file bound (only it is unlinked) */
     dev_t sock_dev;
     ino_t sock_ino;
+    struct backup_dir *backups; /* the --backup-dir, handed to the writer */
     uv_signal_t sigint, sigterm;
     uv_async_t wake;
     uv_idle_t idle;
@@ -631,15 +634,9 @@ static int check_socket_dir(const char *path)
         say_error("socket directory %s: %s", dir, strerror(errno));
         return -1;
     }
-    if ((st.st_mode & S_IWOTH) && !(st.st_mode & S_ISVTX)) {
-        say_error("socket directory %s is writable by every user without the sticky bit "
-                  "(mode %04o): anyone could replace the socket; use a directory of worthd's own",
-                  dir, (unsigned)(st.st_mode & 07777));
-        return -1;
-    }
-    if (st.st_uid != geteuid() && st.st_uid != 0) {
-        say_error("socket directory %s belongs to user %u, not to worthd's user %u or root", dir,
-                  (unsigned)st.st_uid, (unsigned)geteuid());
+    char why[sizeof dir + 200];
+    if (safedir_check(dir, &st, "socket directory", "the socket", why, sizeof why) != 0) {
+        say_error("%s", why);
         return -1;
     }
     return 0;
@@ -854,7 +851,11 @@ int server_run(const server_opts_t *opts)
 
     int lock = db_lock(opts->db_path, err, sizeof err);
     sqlite3 *db = NULL;
-    if (lock < 0 || db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
+    /* The backup directory after the lock: its leftovers may be swept only by the one worthd. */
+    if (lock < 0 ||
+        backup_dir_open(opts->backup_dir, opts->db_path, opts->socket_path, 0600,
+                        &s->backups, err, sizeof err) != 0 ||
+        db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
         db_set_max_mb(db, opts->db_max_mb) != 0) {
         if (db)
             snprintf(err, sizeof err, "cannot cap %s at %llu MiB", opts->db_path,
@@ -862,6 +863,7 @@ int server_run(const server_opts_t *opts)
         sqlite3_close(db);
         db = NULL;
         say_error("%s", err);
+        backup_dir_free(s->backups);
         arena_uninstall();
         uv_loop_close(&s->loop);
         pthread_mutex_destroy(&s->mu);
@@ -874,7 +876,7 @@ int server_run(const server_opts_t *opts)
     }
     say_info("database %s (WAL, synchronous=%s)", opts->db_path,
              opts->sync_full ? "FULL" : "NORMAL");
-    writer_opts_t wo = {.keep = opts->keep, .group_max = 4096};
+    writer_opts_t wo = {.keep = opts->keep, .group_max = 4096, .backups = s->backups};
     s->writer = writer_new(db, &wo, post_event, s);
     s->proto = proto_new(opts, s->writer, post_event, wake_loop, s);
 
@@ -915,6 +917,7 @@ int server_run(const server_opts_t *opts)
     }
     writer_free(s->writer);
     proto_free(s->proto);
+    backup_dir_free(s->backups);
     arena_uninstall();
     pthread_mutex_destroy(&s->mu);
     mem_free(s->events);

@@ -39,6 +39,7 @@ typedef struct server_opts_t {
     unsigned send_timeout_s;   /* cut off a client whose unread replies stay over the cap */
     size_t max_features;       /* features one model may have */
     uint64_t max_model_mb;     /* memory one model may come to hold, in MiB */
+    const char *backup_dir;    /* where backups go; NULL: the default (store/backup.h) */
 } server_opts_t;
 
 /*
