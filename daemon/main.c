@@ -5,7 +5,7 @@
  * file (never logging the token), ignores SIGPIPE (a client that goes away
  * must not kill the daemon), raises the soft open-file limit to the hard one
  * (every connection holds a descriptor), and pins OpenBLAS to one thread per
- * learner.
+ * learner.  Sets the umask from --file-mode before anything is created.
  */
 #include <errno.h>
 #include <getopt.h>
@@ -42,8 +42,10 @@ static const char usage[] =
     "  --db PATH           SQLite database: log, models, checkpoints (default ./worthd.db)\n"
     "  --backup-dir DIR    where backup requests write their copies (default\n"
     "                      $STATE_DIRECTORY/backups when set, else backups beside --db);\n"
-    "                      created 0700 if missing; must be worthd's or root's, not a\n"
-    "                      symlink, not writable by all\n"
+    "                      created if missing (0700; 0750 with --file-mode 0640); must be\n"
+    "                      worthd's or root's, not a symlink, not writable by all\n"
+    "  --file-mode MODE    0600 (default) or 0640 (group may read): database, -wal, -shm,\n"
+    "                      backups; an existing database with looser bits is tightened\n"
     "  --sync MODE         full (default): an acknowledged transition survives power loss;\n"
     "                      normal: it survives a crash of worthd, not of the machine\n"
     "  --checkpoint-every N  automatic checkpoint every N transitions (default 100000; 0: off)\n"
@@ -75,7 +77,7 @@ static const char usage[] =
     "Estimates are advisory: never use them in a safety function.\n";
 
 /* Long options without a short letter. */
-enum { OPT_BACKUP_DIR = 1000 };
+enum { OPT_BACKUP_DIR = 1000, OPT_FILE_MODE };
 
 /* Parses a positive integer option; exits with status 2 on a bad value. */
 static size_t parse_size(const char *name, const char *v, size_t lo, size_t hi)
@@ -163,6 +165,7 @@ int main(int argc, char **argv)
         .max_features = 65536,
         .max_model_mb = 2048,
         .backup_dir = NULL,
+        .file_mode = 0600,
     };
     int queue_set = 0;
     static const struct option longopts[] = {
@@ -186,6 +189,7 @@ int main(int argc, char **argv)
         {"max-features", required_argument, NULL, 'F'},
         {"max-model-mb", required_argument, NULL, 'B'},
         {"backup-dir", required_argument, NULL, OPT_BACKUP_DIR},
+        {"file-mode", required_argument, NULL, OPT_FILE_MODE},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -269,6 +273,16 @@ int main(int argc, char **argv)
         case OPT_BACKUP_DIR:
             o.backup_dir = optarg;
             break;
+        case OPT_FILE_MODE:
+            if (strcmp(optarg, "0600") == 0 || strcmp(optarg, "600") == 0)
+                o.file_mode = 0600;
+            else if (strcmp(optarg, "0640") == 0 || strcmp(optarg, "640") == 0)
+                o.file_mode = 0640;
+            else {
+                fprintf(stderr, "worthd: --file-mode must be 0600 or 0640, not \"%s\"\n", optarg);
+                return 2;
+            }
+            break;
         case 'h':
             fputs(usage, stdout);
             return 0;
@@ -312,6 +326,12 @@ int main(int argc, char **argv)
             return 1;
         }
     }
+    /*
+     * Every file worthd creates from here on (database, -wal, -shm, lock,
+     * backups, a rescue copy) gets at most --file-mode, whatever umask it was
+     * started with; the socket sets its own 0660 around bind.
+     */
+    umask(o.file_mode == 0640 ? 027 : 077);
     signal(SIGPIPE, SIG_IGN);
     openblas_set_num_threads(1);
     say_info("worthd %s starting", WORTH_VERSION);

@@ -853,7 +853,7 @@ int server_run(const server_opts_t *opts)
     sqlite3 *db = NULL;
     /* The backup directory after the lock: its leftovers may be swept only by the one worthd. */
     if (lock < 0 ||
-        backup_dir_open(opts->backup_dir, opts->db_path, opts->socket_path, 0600,
+        backup_dir_open(opts->backup_dir, opts->db_path, opts->socket_path, opts->file_mode,
                         &s->backups, err, sizeof err) != 0 ||
         db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
         db_set_max_mb(db, opts->db_max_mb) != 0) {
@@ -876,6 +876,7 @@ int server_run(const server_opts_t *opts)
     }
     say_info("database %s (WAL, synchronous=%s)", opts->db_path,
              opts->sync_full ? "FULL" : "NORMAL");
+    db_tighten(db, opts->file_mode ? opts->file_mode : 0600);
     writer_opts_t wo = {.keep = opts->keep, .group_max = 4096, .backups = s->backups};
     s->writer = writer_new(db, &wo, post_event, s);
     s->proto = proto_new(opts, s->writer, post_event, wake_loop, s);

@@ -40,6 +40,7 @@ typedef struct server_opts_t {
     size_t max_features;       /* features one model may have */
     uint64_t max_model_mb;     /* memory one model may come to hold, in MiB */
     const char *backup_dir;    /* where backups go; NULL: the default (store/backup.h) */
+    unsigned file_mode;        /* of the database, its companions and backups: 0600 or 0640 */
 } server_opts_t;
 
 /*

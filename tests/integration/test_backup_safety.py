@@ -1,8 +1,8 @@
 """Backups land only in worthd's backup directory, never over a file worthd did not write;
-a stop removes only worthd's own socket.
+worthd's files get mode 0600 (or 0640); a stop removes only worthd's own socket.
 
-The contract is schema/protocol.md ("backup", the socket paragraph at the top) and
-worthd --help (--backup-dir).  A backup's bytes are chosen by clients, so the
+The contract is schema/protocol.md ("backup", "File modes", the socket paragraph at the top)
+and worthd --help (--backup-dir, --file-mode).  A backup's bytes are chosen by clients, so the
 attacks here are the ones a client could try: a target name that is a symbolic link out of the
 directory, a file that is not worthd's, a path, a name of worthd's own database or socket.
 Every refused target must be left byte for byte as it was.  Ownership checks need root (the
@@ -342,3 +342,55 @@ def test_stop_leaves_a_file_that_replaced_the_socket(daemon):
     d.shutdown()
     assert not os.path.lexists(d.sock)
 
+
+# file modes -----------------------------------------------------------------------------------
+
+@pytest.fixture
+def umask022():
+    old = os.umask(0o022)  # worthd inherits it: files would be 0644 without worthd's own
+    yield
+    os.umask(old)
+
+
+@pytest.mark.parametrize("file_mode", [None, "0640"])
+def test_file_modes(daemon, tmp_path, umask022, file_mode):
+    want = 0o640 if file_mode else 0o600
+    args = ["--file-mode", file_mode] if file_mode else []
+    d = daemon(*args)
+    c = d.client()
+    fill(c)
+    rep = c.ok({"op": "backup", "name": "b.db"}, timeout=30)
+    db = d.db
+    got = {n: mode(db + n) for n in ("", "-wal", "-shm", ".lock")}
+    assert got == {"": want, "-wal": want, "-shm": want, ".lock": 0o600}, \
+        {k: oct(v) for k, v in got.items()}
+    assert mode(rep["path"]) == want, oct(mode(rep["path"]))
+    assert mode(tmp_path / "backups") == (0o750 if file_mode else 0o700)
+    assert stat.S_IMODE(os.stat(d.sock).st_mode) == 0o660, "the socket lost its 0660"
+
+
+@pytest.mark.parametrize("bad", ["0644", "0666", "644", "0", "0600x", "rw"])
+def test_file_mode_other_values_refused(daemon, tmp_path, bad):
+    d = daemon("--file-mode", bad, ready=False, expect_rc=None)
+    assert d.wait_exit(10) == 2, d.tail()
+    assert "--file-mode must be 0600 or 0640" in d.stderr, d.tail()
+    assert not os.path.exists(tmp_path / "worthd.db")
+
+
+@pytest.mark.parametrize("file_mode,loose,want", [(None, 0o644, 0o600), ("0640", 0o666, 0o640),
+                                                  (None, 0o440, 0o400)])
+def test_existing_loose_database_tightened(daemon, tmp_path, umask022, file_mode, loose, want):
+    if loose == 0o440 and os.geteuid() != 0:
+        pytest.skip("a database of mode 0400 is writable by root only")
+    d = daemon()
+    fill(d.client())
+    d.shutdown()
+    os.chmod(d.db, loose)
+    args = ["--file-mode", file_mode] if file_mode else []
+    d = daemon(*args)
+    c = d.client()
+    assert c.stats("m")["received"] == 20
+    assert mode(d.db) == want, oct(mode(d.db))  # bits removed, none added
+    assert f"had mode {loose:04o}" in d.stderr, d.tail()
+    fill(c, 1, first=21)
+    assert mode(d.db + "-wal") == want and mode(d.db + "-shm") == want
