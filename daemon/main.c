@@ -5,7 +5,7 @@
  * file (never logging the token), ignores SIGPIPE (a client that goes away
  * must not kill the daemon), raises the soft open-file limit to the hard one
  * (every connection holds a descriptor), and pins OpenBLAS to one thread per
- * learner.
+ * learner.  Sets the umask from --file-mode before anything is created.
  */
 #include <errno.h>
 #include <getopt.h>
@@ -40,6 +40,12 @@ static const char usage[] =
     "options:\n"
     "  --socket PATH       Unix socket to listen on (default ./worthd.sock, mode 0660)\n"
     "  --db PATH           SQLite database: log, models, checkpoints (default ./worthd.db)\n"
+    "  --backup-dir DIR    where backup requests write their copies (default\n"
+    "                      $STATE_DIRECTORY/backups when set, else backups beside --db);\n"
+    "                      created if missing (0700; 0750 with --file-mode 0640); must be\n"
+    "                      worthd's or root's, not a symlink, not writable by all\n"
+    "  --file-mode MODE    0600 (default) or 0640 (group may read): database, -wal, -shm,\n"
+    "                      backups; an existing database with looser bits is tightened\n"
     "  --sync MODE         full (default): an acknowledged transition survives power loss;\n"
     "                      normal: it survives a crash of worthd, not of the machine\n"
     "  --checkpoint-every N  automatic checkpoint every N transitions (default 100000; 0: off)\n"
@@ -84,6 +90,9 @@ static const char usage[] =
     "  --version           print the version\n"
     "\n"
     "Estimates are advisory: never use them in a safety function.\n";
+
+/* Long options without a short letter. */
+enum { OPT_BACKUP_DIR = 1000, OPT_FILE_MODE };
 
 /* Parses a positive integer option; exits with status 2 on a bad value. */
 static size_t parse_size(const char *name, const char *v, size_t lo, size_t hi)
@@ -176,6 +185,8 @@ int main(int argc, char **argv)
         .unix_slots = 32,
         .tcp_without_token = 0,
         .max_query_work = 64000000,
+        .backup_dir = NULL,
+        .file_mode = 0600,
     };
     int queue_set = 0, slots_set = 0;
     static const struct option longopts[] = {
@@ -204,6 +215,8 @@ int main(int argc, char **argv)
         {"unix-slots", required_argument, NULL, 'X'},
         {"allow-tcp-without-token", no_argument, NULL, 'O'},
         {"max-query-work", required_argument, NULL, 'W'},
+        {"backup-dir", required_argument, NULL, OPT_BACKUP_DIR},
+        {"file-mode", required_argument, NULL, OPT_FILE_MODE},
         {"help", no_argument, NULL, 'h'},
         {"version", no_argument, NULL, 'V'},
         {NULL, 0, NULL, 0},
@@ -303,6 +316,19 @@ int main(int argc, char **argv)
         case 'W':
             o.max_query_work = parse_size("max-query-work", optarg, 1, 1000000) * 1000000u;
             break;
+        case OPT_BACKUP_DIR:
+            o.backup_dir = optarg;
+            break;
+        case OPT_FILE_MODE:
+            if (strcmp(optarg, "0600") == 0 || strcmp(optarg, "600") == 0)
+                o.file_mode = 0600;
+            else if (strcmp(optarg, "0640") == 0 || strcmp(optarg, "640") == 0)
+                o.file_mode = 0640;
+            else {
+                fprintf(stderr, "worthd: --file-mode must be 0600 or 0640, not \"%s\"\n", optarg);
+                return 2;
+            }
+            break;
         case 'h':
             fputs(usage, stdout);
             return 0;
@@ -361,6 +387,12 @@ int main(int argc, char **argv)
                 o.unix_slots, o.max_conns);
         return 2;
     }
+    /*
+     * Every file worthd creates from here on (database, -wal, -shm, lock,
+     * backups, a rescue copy) gets at most --file-mode, whatever umask it was
+     * started with; the socket sets its own 0660 around bind.
+     */
+    umask(o.file_mode == 0640 ? 027 : 077);
     /* A signal worthd does not handle must not end it uncleanly: SIGPIPE (a client went
      * away), SIGALRM; HUP, USR1 and USR2 until the loop's own handlers take them. */
     signal(SIGPIPE, SIG_IGN);

@@ -740,31 +740,16 @@ int cmd_rollback(struct cli *cli, int argc, char **argv)
 
 int cmd_backup(struct cli *cli, int argc, char **argv)
 {
-    char *pos[1];
+    char *pos[1] = {NULL};
     int np;
-    int ex = parse_args("backup", argc, argv, NULL, pos, 1, 1, &np);
+    int ex = parse_args("backup", argc, argv, NULL, pos, 1, 0, &np);
     if (ex)
         return ex;
-    /*
-     * worthd writes the file on its own machine, relative to its own working
-     * directory.  Over the Unix socket it runs here, so a relative path is made
-     * absolute against ours, which is what the user means.  Over TCP the path
-     * is sent as given.
-     */
-    char abs[PATH_MAX + 2];
-    const char *path = pos[0];
-    if (!cli->host_port && path[0] != '/') {
-        char cwd[PATH_MAX];
-        if (!getcwd(cwd, sizeof cwd))
-            return cli_error(EXIT_USAGE, "backup: cannot get the working directory: %s",
-                             strerror(errno));
-        if (snprintf(abs, sizeof abs, "%s/%s", cwd, path) >= (int)sizeof abs)
-            return cli_usage("backup", "path too long");
-        path = abs;
-    }
+    /* worthd writes into its own --backup-dir; NAME is a file name there, never a path. */
+    const char *name = np ? pos[0] : NULL;
     if (cli->json) {
         cJSON *r = request("backup", NULL);
-        if (r && !cJSON_AddStringToObject(r, "path", path)) {
+        if (r && name && !cJSON_AddStringToObject(r, "name", name)) {
             cJSON_Delete(r);
             r = NULL;
         }
@@ -773,7 +758,8 @@ int cmd_backup(struct cli *cli, int argc, char **argv)
     if ((ex = cli_connect(cli)))
         return ex;
     uint64_t bytes = 0;
-    int rc = worth_backup(cli->c, path, &bytes);
+    char path[4400];
+    int rc = worth_backup(cli->c, name, path, sizeof path, &bytes);
     if (rc)
         return cli_fail(cli, rc);
     printf("backup written to %s (%llu bytes)\n", path, (unsigned long long)bytes);

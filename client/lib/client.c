@@ -761,16 +761,22 @@ int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, c
     return rc;
 }
 
-int worth_backup(worth_client *c, const char *path, uint64_t *bytes)
+int worth_backup(worth_client *c, const char *name, char *path, size_t path_len, uint64_t *bytes)
 {
     begin(c, "backup", NULL);
-    req_s(c, ",\"path\":");
-    req_str(c, path);
+    if (name) {
+        req_s(c, ",\"name\":");
+        req_str(c, name);
+    }
     req_s(c, "}");
     cJSON *root = NULL;
     int rc = call(c, &root);
     if (rc == 0 && bytes)
         *bytes = (uint64_t)num(root, "bytes", 0);
+    if (rc == 0 && path && path_len) {
+        const cJSON *p = cJSON_GetObjectItemCaseSensitive(root, "path");
+        snprintf(path, path_len, "%s", cJSON_IsString(p) && p->valuestring ? p->valuestring : "");
+    }
     cJSON_Delete(root);
     return rc;
 }

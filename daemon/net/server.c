@@ -54,12 +54,14 @@
 #include <uv.h>
 
 #include "arena.h"
+#include "backup.h"
 #include "db.h"
 #include "frame.h"
 #include "metrics.h"
 #include "mem.h"
 #include "proto.h"
 #include "recover.h"
+#include "safedir.h"
 #include "say.h"
 #include "worth/errors.h"
 #include "writer.h"
@@ -110,6 +112,10 @@ struct server {
     uv_pipe_t unix_listener;
     uv_tcp_t tcp_listener;
     int have_unix, have_tcp;
+    int have_sock_id; /* sock_dev, sock_ino: the socket file bound (only it is unlinked) */
+    dev_t sock_dev;
+    ino_t sock_ino;
+    struct backup_dir *backups; /* the --backup-dir, handed to the writer */
     uv_signal_t sigint, sigterm;
     uv_async_t wake;
     uv_idle_t idle;
@@ -712,17 +718,38 @@ static int check_socket_dir(const char *path)
         say_error("socket directory %s: %s", dir, strerror(errno));
         return -1;
     }
-    if ((st.st_mode & S_IWOTH) && !(st.st_mode & S_ISVTX)) {
-        say_error("socket directory %s is writable by every user without the sticky bit "
-                  "(mode %04o): anyone could replace the socket; use a directory of worthd's own",
-                  dir, (unsigned)(st.st_mode & 07777));
+    char why[sizeof dir + 200];
+    if (safedir_check(dir, &st, "socket directory", "the socket", why, sizeof why) != 0) {
+        say_error("%s", why);
         return -1;
     }
-    if (st.st_uid != geteuid() && st.st_uid != 0) {
-        say_error("socket directory %s belongs to user %u, not to worthd's user %u or root", dir,
-                  (unsigned)st.st_uid, (unsigned)geteuid());
-        return -1;
+    return 0;
+}
+
+/*
+ * Creates a Unix stream socket bound to path, mode 0660.  Bound here rather
+ * than by uv_pipe_bind, because libuv's uv_close then unlinks whatever sits at
+ * the path; stop() removes only this socket (unlink_socket).  Returns 0 with
+ * *fd, or a negative errno (a libuv error code).
+ */
+static int bind_unix(const char *path, int *fd)
+{
+    struct sockaddr_un a;
+    memset(&a, 0, sizeof a);
+    a.sun_family = AF_UNIX;
+    snprintf(a.sun_path, sizeof a.sun_path, "%s", path);
+    int sfd = socket(AF_UNIX, SOCK_STREAM | SOCK_CLOEXEC, 0);
+    if (sfd < 0)
+        return -errno;
+    /* Mode 0660: uv_pipe_chmod cannot express it, so set the umask around bind. */
+    mode_t old = umask(0117);
+    int rc = bind(sfd, (struct sockaddr *)&a, sizeof a), e = errno;
+    umask(old);
+    if (rc != 0) {
+        close(sfd);
+        return -e;
     }
+    *fd = sfd;
     return 0;
 }
 
@@ -752,10 +779,15 @@ static int listen_unix(struct server *s)
     uv_pipe_init(&s->loop, &s->unix_listener, 0);
     s->unix_listener.data = s;
     s->have_unix = 1;
-    /* Mode 0660: uv_pipe_chmod cannot express it, so set the umask around bind. */
-    mode_t old = umask(0117);
-    int rc = uv_pipe_bind(&s->unix_listener, path);
-    umask(old);
+    int fd = -1;
+    int rc = bind_unix(path, &fd);
+    if (rc == 0 && lstat(path, &st) == 0) { /* what stop() may remove: this socket, no other file */
+        s->sock_dev = st.st_dev;
+        s->sock_ino = st.st_ino;
+        s->have_sock_id = 1;
+    }
+    if (rc == 0 && (rc = uv_pipe_open(&s->unix_listener, fd)) != 0)
+        close(fd);
     if (rc == 0)
         rc = uv_listen((uv_stream_t *)&s->unix_listener, 511, on_connection);
     if (rc < 0) {
@@ -841,6 +873,24 @@ static int listen_tcp(struct server *s)
 
 /* ---- start and stop ---------------------------------------------------------------------- */
 
+/*
+ * Removes the socket file, but only while the path still names the socket
+ * worthd bound: whoever replaced it meanwhile keeps their file.  XXX: a
+ * replacement between the lstat and the unlink is still removed.
+ */
+static void unlink_socket(struct server *s)
+{
+    const char *path = s->o->socket_path;
+    struct stat st;
+    if (!s->have_sock_id || lstat(path, &st) != 0)
+        return;
+    if (!S_ISSOCK(st.st_mode) || st.st_dev != s->sock_dev || st.st_ino != s->sock_ino) {
+        say_warn("%s is no longer worthd's socket; left in place", path);
+        return;
+    }
+    unlink(path);
+}
+
 static void stop(struct server *s, const char *why)
 {
     if (s->stopping)
@@ -848,8 +898,8 @@ static void stop(struct server *s, const char *why)
     s->stopping = 1;
     say_info("%s: stopping; applying everything accepted", why);
     if (s->have_unix) {
+        unlink_socket(s); /* before the close, as libuv would: the name goes first */
         uv_close((uv_handle_t *)&s->unix_listener, NULL);
-        unlink(s->o->socket_path);
     }
     if (s->have_tcp)
         uv_close((uv_handle_t *)&s->tcp_listener, NULL);
@@ -928,7 +978,11 @@ int server_run(const server_opts_t *opts)
 
     int lock = db_lock(opts->db_path, err, sizeof err);
     sqlite3 *db = NULL;
-    if (lock < 0 || db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
+    /* The backup directory after the lock: its leftovers may be swept only by the one worthd. */
+    if (lock < 0 ||
+        backup_dir_open(opts->backup_dir, opts->db_path, opts->socket_path, opts->file_mode,
+                        &s->backups, err, sizeof err) != 0 ||
+        db_open(opts->db_path, opts->sync_full, &db, err, sizeof err) != 0 ||
         db_set_max_mb(db, opts->db_max_mb) != 0) {
         if (db)
             snprintf(err, sizeof err, "cannot cap %s at %llu MiB", opts->db_path,
@@ -936,6 +990,7 @@ int server_run(const server_opts_t *opts)
         sqlite3_close(db);
         db = NULL;
         say_error("%s", err);
+        backup_dir_free(s->backups);
         arena_uninstall();
         uv_loop_close(&s->loop);
         pthread_mutex_destroy(&s->mu);
@@ -948,7 +1003,8 @@ int server_run(const server_opts_t *opts)
     }
     say_info("database %s (WAL, synchronous=%s)", opts->db_path,
              opts->sync_full ? "FULL" : "NORMAL");
-    writer_opts_t wo = {.keep = opts->keep, .group_max = 4096};
+    db_tighten(db, opts->file_mode ? opts->file_mode : 0600);
+    writer_opts_t wo = {.keep = opts->keep, .group_max = 4096, .backups = s->backups};
     s->writer = writer_new(db, &wo, post_event, s);
     s->proto = proto_new(opts, s->writer, post_event, wake_loop, s);
 
@@ -992,6 +1048,7 @@ int server_run(const server_opts_t *opts)
     }
     writer_free(s->writer);
     proto_free(s->proto);
+    backup_dir_free(s->backups);
     arena_uninstall();
     pthread_mutex_destroy(&s->mu);
     mem_free(s->events);

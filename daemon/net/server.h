@@ -45,6 +45,8 @@ typedef struct server_opts_t {
     size_t unix_slots;         /* of max_conns, kept for the Unix socket (TCP gets the rest) */
     int tcp_without_token;     /* the operator's explicit opt-out: TCP needs no token */
     size_t max_query_work;     /* one value request's work: states x (features + sd terms) */
+    const char *backup_dir;    /* where backups go; NULL: the default (store/backup.h) */
+    unsigned file_mode;        /* of the database, its companions and backups: 0600 or 0640 */
 } server_opts_t;
 
 /*

@@ -24,6 +24,7 @@
 #include <time.h>
 
 #include "arena.h"
+#include "backup.h"
 #include "mem.h"
 #include "say.h"
 #include "spec.h"
@@ -1417,15 +1418,28 @@ static int do_rollback(struct req *rq)
     return PROTO_DONE;
 }
 
+/*
+ * A backup names a file in worthd's --backup-dir, never a path: a copy holds
+ * bytes clients chose, and must not land on a file worthd may write elsewhere.
+ */
 static int do_backup(struct req *rq)
 {
-    const char *path = need_string(rq, "path");
-    if (!path)
-        return PROTO_DONE;
-    if (!*path || strlen(path) > 4000)
-        return fail_done(rq, WORTH_E_BAD_PARAM, "\"path\" must be 1..4000 bytes");
+    static const char *const keys[] = {"op", "id", "name", NULL};
+    const char *bad;
+    if (field(rq->root, "path"))
+        return fail_done(rq, WORTH_E_BAD_PARAM,
+                         "backups go to worthd's --backup-dir: send {\"op\":\"backup\"} for a "
+                         "name of worthd's, or {\"op\":\"backup\",\"name\":\"nightly.db\"}");
+    if (!only_keys(rq->root, keys, &bad))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
+    const cJSON *n = field(rq->root, "name");
+    if (n && (!cJSON_IsString(n) || !n->valuestring))
+        return fail_done(rq, WORTH_E_BAD_REQUEST, "\"name\" must be a string");
+    char why[160];
+    if (n && backup_name_check(n->valuestring, why, sizeof why) != 0)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"name\": %s", why);
     keep_id(rq);
-    writer_backup(rq->p->w, path, conn_id(rq->c));
+    writer_backup(rq->p->w, n ? n->valuestring : NULL, conn_id(rq->c));
     conn_wait(rq->c);
     return PROTO_DONE;
 }

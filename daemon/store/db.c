@@ -24,6 +24,7 @@
 #include <stdio.h>
 #include <string.h>
 #include <sys/file.h>
+#include <sys/stat.h>
 #include <time.h>
 #include <unistd.h>
 
@@ -147,6 +148,31 @@ int db_error_code(sqlite3 *db)
         return WORTH_E_BAD_DATABASE;
     default:
         return WORTH_E_STORAGE_ERROR;
+    }
+}
+
+void db_tighten(sqlite3 *db, unsigned mode)
+{
+    static const char *const suffix[] = {"", "-wal", "-shm"};
+    const char *main_file = sqlite3_db_filename(db, "main");
+    if (!main_file || !*main_file)
+        return;
+    for (size_t i = 0; i < sizeof suffix / sizeof suffix[0]; i++) {
+        char path[PATH_MAX + 8];
+        struct stat st;
+        snprintf(path, sizeof path, "%s%s", main_file, suffix[i]);
+        /* SQLite names the resolved file: a symbolic link here is not one of its files. */
+        if (lstat(path, &st) != 0 || !S_ISREG(st.st_mode))
+            continue;
+        unsigned had = (unsigned)st.st_mode & 07777;
+        if (!(had & ~mode))
+            continue;
+        if (chmod(path, had & mode) == 0)
+            say_warn("%s had mode %04o, readable or writable beyond --file-mode %04o; now %04o",
+                     path, had, mode, had & mode);
+        else
+            say_warn("%s has mode %04o, looser than --file-mode %04o, and cannot be changed: %s",
+                     path, had, mode, strerror(errno));
     }
 }
 

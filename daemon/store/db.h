@@ -44,6 +44,12 @@ int db_lock(const char *path, char *err, size_t errlen);
  * problem: bad_database for a corrupt or foreign file).
  */
 int db_open(const char *path, int sync_full, sqlite3 **out, char *err, size_t errlen);
+/*
+ * Removes from the database file of db, its -wal and -shm every permission
+ * bit that mode (0600 or 0640) does not grant, with a warning for each file
+ * changed; never adds one.  At start-up, before the writer starts.
+ */
+void db_tighten(sqlite3 *db, unsigned mode);
 /* Caps the database at max_mb megabytes (PRAGMA max_page_count); 0 leaves it unbounded. */
 int db_set_max_mb(sqlite3 *db, uint64_t max_mb);
 /*

@@ -39,6 +39,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
+#include "backup.h"
 #include "db.h"
 #include "fileguard.h"
 #include "mem.h"
@@ -660,63 +661,40 @@ static int sync_path(const char *path, int dir)
 
 static void job_backup(struct writer *w, struct job *j)
 {
-    char tmp[4200], dir[4200];
-    const char *path = j->s1;
-    snprintf(tmp, sizeof tmp, "%s.tmp-%ld", path, (long)getpid());
-    dir_of(path, dir, sizeof dir);
-    /* Never over the live database or its companions. */
-    char real[4200], live[4200];
-    const char *main_file = sqlite3_db_filename(w->db, "main");
-    if (db_resolve(path, real, sizeof real) != 0) {
-        post_reply(w, NULL, j->conn_id, WORTH_E_BAD_PARAM, "backup path %s: %s", path,
-                   "its directory does not exist");
+    char why[1024], name[BACKUP_NAME_MAX + 1];
+    uint64_t bytes = 0;
+    int code = WORTH_E_STORAGE_ERROR;
+    if (!w->o.backups)
+        snprintf(why, sizeof why, "worthd has no backup directory");
+    else if (!w->db) /* lost, and not reopened: the data is in the file lost_why names */
+        snprintf(why, sizeof why, "%s", w->lost_why);
+    else
+        code = backup_write(w->o.backups, w->db, j->s1, name, sizeof name, &bytes, why, sizeof why);
+    if (code) {
+        say_warn("backup%s%s failed: %s", j->s1 ? " " : "", j->s1 ? j->s1 : "", why);
+        post_reply(w, NULL, j->conn_id, code, "backup failed: %s", why);
         return;
     }
-    if (main_file && db_resolve(main_file, live, sizeof live) == 0) {
-        static const char *const suffix[] = {"", "-wal", "-shm", "-journal", ".lock"};
-        for (size_t i = 0; i < sizeof suffix / sizeof suffix[0]; i++) {
-            char name[4300];
-            snprintf(name, sizeof name, "%s%s", live, suffix[i]);
-            if (strcmp(name, real) == 0) {
-                post_reply(w, NULL, j->conn_id, WORTH_E_BAD_PARAM,
-                           "backup path %s is worthd's own database", path);
-                return;
-            }
-        }
-    }
-    unlink(tmp);
-    sqlite3_stmt *st = NULL;
-    int ok = sqlite3_prepare_v2(w->db, "VACUUM INTO ?", -1, &st, NULL) == SQLITE_OK;
-    if (ok) {
-        sqlite3_bind_text(st, 1, tmp, -1, SQLITE_STATIC);
-        ok = sqlite3_step(st) == SQLITE_DONE;
-    }
-    char why[512];
-    int code = ok ? 0 : db_error_code(w->db);
-    snprintf(why, sizeof why, "%s", ok ? "" : sqlite3_errmsg(w->db));
-    sqlite3_finalize(st);
-    struct stat sb;
-    if (ok && (sync_path(tmp, 0) != 0 || rename(tmp, path) != 0 || sync_path(dir, 1) != 0 ||
-               stat(path, &sb) != 0)) {
-        ok = 0;
-        code = errno == ENOSPC ? WORTH_E_STORAGE_FULL : WORTH_E_STORAGE_ERROR;
-        snprintf(why, sizeof why, "%s", strerror(errno));
-    }
-    if (!ok) {
-        unlink(tmp);
-        say_warn("backup to %s failed: %s", path, why);
-        post_reply(w, NULL, j->conn_id, code, "backup to %s failed: %s", path, why);
-        return;
-    }
-    say_info("backup written to %s (%lld bytes)", path, (long long)sb.st_size);
+    const char *dir = backup_dir_path(w->o.backups);
+    say_info("backup written to %s/%s (%llu bytes)", dir, name, (unsigned long long)bytes);
     size_t len = 0, cap = 256;
     char *buf = mem_alloc(cap);
     buf[0] = 0;
+    char path[PATH_MAX + sizeof name + 2];
+    snprintf(path, sizeof path, "%s/%s", dir, name);
+    appendf(&buf, &len, &cap, ",\"name\":");
+    json_str(&buf, &len, &cap, name);
     appendf(&buf, &len, &cap, ",\"path\":");
     json_str(&buf, &len, &cap, path);
-    appendf(&buf, &len, &cap, ",\"bytes\":%lld", (long long)sb.st_size);
-    post_reply(w, NULL, j->conn_id, 0, "%s", buf);
-    mem_free(buf);
+    appendf(&buf, &len, &cap, ",\"bytes\":%llu", (unsigned long long)bytes);
+    if (!j->conn_id) {
+        mem_free(buf);
+        return;
+    }
+    /* Posted whole: a long path must not be cut by post_reply's buffer. */
+    learner_event_t ev = {.kind = LEV_REPLY, .conn_id = j->conn_id, .rc = 0};
+    ev.text = buf;
+    w->post(w->ctx, &ev);
 }
 
 static void job_drift(struct writer *w, struct job *j)
@@ -1309,10 +1287,10 @@ void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_
     push(w, job(J_LIST, l, conn_id));
 }
 
-void writer_backup(struct writer *w, const char *path, uint64_t conn_id)
+void writer_backup(struct writer *w, const char *name, uint64_t conn_id)
 {
     struct job *j = job(J_BACKUP, NULL, conn_id);
-    j->s1 = mem_strdup(path);
+    j->s1 = name ? mem_strdup(name) : NULL;
     push(w, j);
 }
 

@@ -21,10 +21,13 @@
 
 struct writer;
 
+struct backup_dir;
+
 /* Plain data: the writer's configuration. */
 typedef struct writer_opts_t {
-    unsigned keep;    /* unlabelled checkpoints kept per model */
-    size_t group_max; /* most records in one transaction */
+    unsigned keep;              /* unlabelled checkpoints kept per model */
+    size_t group_max;           /* most records in one transaction */
+    struct backup_dir *backups; /* where backups go (borrowed; NULL: backups refused) */
 } writer_opts_t;
 
 /*
@@ -64,8 +67,12 @@ void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, 
                              const char *label, uint8_t *blob, size_t len, uint64_t conn_id);
 /* Replies to conn_id with the model's valid checkpoints, newest first. */
 void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id);
-/* Writes a consistent copy of the database to path (copied); replies to conn_id. */
-void writer_backup(struct writer *w, const char *path, uint64_t conn_id);
+/*
+ * Writes a consistent copy of the database into the backup directory as name
+ * (copied; NULL: a new name of worthd's, see backup.h); replies to conn_id
+ * {"name":..,"path":..,"bytes":..} or an error.
+ */
+void writer_backup(struct writer *w, const char *name, uint64_t conn_id);
 /* Records an event (kind and JSON detail copied); l may be NULL for daemon-wide events. */
 void writer_event(struct writer *w, struct learner *l, const char *kind, const char *detail);
 /*

@@ -156,8 +156,14 @@ int worth_checkpoints(worth_client *c, const char *model, const char **json);
  */
 int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, char exclude,
                    double lo, double hi, uint64_t *undone, uint64_t *replayed);
-/* Writes a consistent copy of worthd's database to path (on worthd's machine). */
-int worth_backup(worth_client *c, const char *path, uint64_t *bytes);
+/*
+ * Writes a consistent copy of worthd's database into worthd's --backup-dir
+ * as name (a plain file name, 1..128 bytes of [A-Za-z0-9._-], not starting
+ * with '.'; an earlier backup of that name is replaced), or under a new name
+ * of worthd's when name is NULL.  The file's full path on worthd's machine
+ * goes to path (path_len bytes; path may be NULL).  bytes may be NULL.
+ */
+int worth_backup(worth_client *c, const char *name, char *path, size_t path_len, uint64_t *bytes);
 /* Trains a replay or lstd estimator; progress may be NULL. */
 int worth_train(worth_client *c, const char *model, const char *estimator, unsigned passes,
                 worth_progress_fn progress, void *ctx, worth_train_t *out);

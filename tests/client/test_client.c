@@ -7,6 +7,7 @@
  * server that is down, one that never answers (timeout), and one that hangs
  * up.  Every wait is bounded.
  */
+#include <limits.h>
 #include <math.h>
 #include <setjmp.h>
 #include <signal.h>
@@ -229,12 +230,20 @@ static void checkpoints_rollback_backup_train(void **state)
     assert_int_equal(rep.passes, pr.calls);
     assert_true(rep.passes >= 1 && rep.passes <= 4);
 
-    char path[400];
-    snprintf(path, sizeof path, "%s/backup.db", dir);
+    /* Backups go into worthd's --backup-dir: by default "backups" beside its database. */
+    char path[PATH_MAX + 64], want[PATH_MAX + 64], real[PATH_MAX];
+    assert_non_null(realpath(dir, real));
+    snprintf(want, sizeof want, "%s/backups/backup.db", real);
     uint64_t bytes = 0;
-    OK(worth_backup(c, path, &bytes));
+    OK(worth_backup(c, "backup.db", path, sizeof path, &bytes));
     assert_true(bytes > 0);
+    assert_string_equal(path, want);
     assert_int_equal(access(path, R_OK), 0);
+    OK(worth_backup(c, NULL, path, sizeof path, NULL)); /* a name of worthd's own */
+    assert_int_equal(strncmp(path, want, strlen(want) - strlen("backup.db")), 0);
+    assert_non_null(strstr(path, "/worthd-"));
+    assert_int_equal(worth_backup(c, "../backup.db", path, sizeof path, NULL), WORTH_E_BAD_PARAM);
+    assert_string_equal(worth_error_name(c), "bad_param");
     OK(worth_model_drop(c, "b"));
     worth_close(c);
 }

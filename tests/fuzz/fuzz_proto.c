@@ -24,9 +24,11 @@
  *    a full queue, training, checkpoints, rollbacks, events.  What is not:
  *    the libuv loop and the socket; this file implements the connection API
  *    of server.h over one in-memory connection, and delivers the threads'
- *    events on its own thread as the server's async handle would.  One seam
- *    on purpose: backup's "path" is redirected into the temporary directory
- *    (linker --wrap), so an input can never write elsewhere.
+ *    events on its own thread as the server's async handle would.  Backups
+ *    are real too (store/backup.c, into a backup directory inside the
+ *    temporary one), with one seam on purpose: every backup is named
+ *    backup.db (linker --wrap, after the request's name was validated), so
+ *    inputs cannot fill the disk with backups of names of their own.
  *    Checked for every input: every reply is one line holding a JSON object
  *    with "ok" (or a training "progress" line), every error carries a code
  *    from include/worth/errors.h, and the connection gets exactly one reply
@@ -51,6 +53,7 @@
 #include <unistd.h>
 
 #include "arena.h"
+#include "backup.h"
 #include "db.h"
 #include "frame.h"
 #include "learner.h"
@@ -371,7 +374,8 @@ static void wake_loop(void *ctx)
 static struct proto *proto;
 static struct writer *writer;
 static server_opts_t opts;
-static char dir[256], db_path[300], backup_path[300];
+static char dir[256], db_path[300], backup_dir[300], backup_path[400];
+static struct backup_dir *backups;
 
 /* Delivers every posted event, as the server's async callback does. */
 static void drain_events(void)
@@ -426,14 +430,13 @@ struct learner *__wrap_learner_new(const char *name, char *spec_json, struct mod
     return __real_learner_new(name, spec_json, m, o, post, wake, ctx);
 }
 
-/* Backups go to one file in the temporary directory, whatever path the input names. */
-void __real_writer_backup(struct writer *w, const char *path, uint64_t conn_id);
-void __wrap_writer_backup(struct writer *w, const char *path, uint64_t conn_id);
-void __wrap_writer_backup(struct writer *w, const char *path, uint64_t conn_id)
+/* Backups go to one file in the backup directory, whatever name the input gives (or none). */
+void __real_writer_backup(struct writer *w, const char *name, uint64_t conn_id);
+void __wrap_writer_backup(struct writer *w, const char *name, uint64_t conn_id);
+void __wrap_writer_backup(struct writer *w, const char *name, uint64_t conn_id)
 {
-    (void)path;
-    unlink(backup_path);
-    __real_writer_backup(w, backup_path, conn_id);
+    (void)name;
+    __real_writer_backup(w, "backup.db", conn_id); /* replaces the last: a backup worthd wrote */
 }
 
 /* ---- part 2: driving the dispatcher ------------------------------------------------------ */
@@ -673,7 +676,9 @@ static void teardown(void)
         snprintf(p, sizeof p, "%s%s", db_path, sfx[i]);
         unlink(p);
     }
+    backup_dir_free(backups);
     unlink(backup_path);
+    rmdir(backup_dir);
     rmdir(dir);
 }
 
@@ -687,7 +692,8 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
     if (!mkdtemp(dir))
         die("cannot make a temporary directory", dir);
     snprintf(db_path, sizeof db_path, "%s/fuzz.db", dir);
-    snprintf(backup_path, sizeof backup_path, "%s/backup.db", dir);
+    snprintf(backup_dir, sizeof backup_dir, "%s/backups", dir);
+    snprintf(backup_path, sizeof backup_path, "%s/backup.db", backup_dir);
     opts = (server_opts_t){
         .socket_path = NULL,
         .token = "s3cret",
@@ -703,10 +709,12 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
     };
     char err[512];
     sqlite3 *db = NULL;
+    if (backup_dir_open(backup_dir, db_path, NULL, 0600, &backups, err, sizeof err) != 0)
+        die("cannot open the backup directory", err);
     if (db_open(db_path, 0, &db, err, sizeof err) != 0)
         die("cannot open the database", err);
     arena_install(1u << 20);
-    writer_opts_t wo = {.keep = opts.keep, .group_max = 4096};
+    writer_opts_t wo = {.keep = opts.keep, .group_max = 4096, .backups = backups};
     writer = writer_new(db, &wo, post_event, &srv);
     proto = proto_new(&opts, writer, post_event, wake_loop, &srv);
     writer_start(writer);

@@ -9,6 +9,7 @@ and the help text of every command.  Each CLI run is bounded by a timeout.
 import json
 import os
 import random
+import re
 import subprocess
 
 import pytest
@@ -348,11 +349,22 @@ def test_checkpoint_rollback_backup(daemon, tmp_path):
     fails(run(d, "rollback", "m", cid, "--exclude-seq", "9:1"), 2, "--exclude-seq")
     fails(run(d, "rollback", "m", cid, "--exclude-seq", "1:2", "--exclude-time", "1:2"), 2)
     fails(run(d, "checkpoint", "nosuch"), 1, "no_such_model")
-    p = ok(run(d, "backup", "copy.db", cwd=tmp_path))
-    assert (tmp_path / "copy.db").stat().st_size > 0 and "bytes" in p.stdout
-    rep = one_json(ok(run(d, "--json", "backup", tmp_path / "copy2.db")))
-    assert rep["ok"] is True and rep["bytes"] > 0
-    fails(run(d, "backup", tmp_path / "no" / "dir.db"), 1, "worth: bad_param:")
+    # backups go into worthd's --backup-dir (by default "backups" beside its database)
+    bk = os.path.realpath(tmp_path / "backups")
+    p = ok(run(d, "backup", "copy.db"))
+    assert (tmp_path / "backups" / "copy.db").stat().st_size > 0, os.listdir(bk)
+    assert f"backup written to {bk}/copy.db (" in p.stdout and "bytes" in p.stdout, p.stdout
+    rep = one_json(ok(run(d, "--json", "backup", "copy2.db")))
+    assert rep["ok"] is True and rep["bytes"] > 0 and rep["name"] == "copy2.db", rep
+    assert rep["path"] == f"{bk}/copy2.db", rep
+    p = ok(run(d, "backup"))
+    m = re.search(r"backup written to (\S+/(worthd-\d{8}T\d{6}Z\.db)) \(\d+ bytes\)", p.stdout)
+    assert m and os.path.dirname(m.group(1)) == bk, p.stdout
+    assert os.path.exists(m.group(1))
+    fails(run(d, "backup", "no/dir.db"), 1, "worth: bad_param:")
+    fails(run(d, "backup", tmp_path / "abs.db"), 1, "worth: bad_param:")
+    fails(run(d, "backup", "a.db", "b.db"), 2)
+    assert sorted(os.listdir(bk)) == sorted(["copy.db", "copy2.db", m.group(2)]), os.listdir(bk)
 
 
 # train, stats -------------------------------------------------------------------------------

@@ -1185,18 +1185,19 @@ def test_corrupted_checkpoint_refused(daemon):
 # backup --------------------------------------------------------------------------------------
 
 def test_backup(daemon, tmp_path):
-    d = daemon()
+    bk = tmp_path / "bk"
+    bk.mkdir()
+    d = daemon("--backup-dir", bk)
     c = d.client()
     create(c, "a")
     assert c.call(small_spec("b"))["ok"] is True
     feed(c, "a", transitions(200, seed=15), first=1)
     feed(c, "b", [{"x": [0.5], "r": 1.0, "terminal": True}] * 30, first=1)
     checkpoint(c, "a", label="bk")
-    bk = tmp_path / "bk"
-    bk.mkdir()
-    path = str(bk / "worth.db")
-    rep = c.call({"op": "backup", "path": path, "id": "b1"}, timeout=30)
-    assert rep == {"ok": True, "id": "b1", "path": path, "bytes": os.path.getsize(path)}, rep
+    path = os.path.realpath(bk / "worth.db")
+    rep = c.call({"op": "backup", "name": "worth.db", "id": "b1"}, timeout=30)
+    assert rep == {"ok": True, "id": "b1", "name": "worth.db", "path": path,
+                   "bytes": os.path.getsize(path)}, rep
     assert os.listdir(bk) == ["worth.db"], f"left behind: {os.listdir(bk)}"
 
     def check(expect_a, expect_b):
@@ -1218,14 +1219,14 @@ def test_backup(daemon, tmp_path):
     c.wait_applied("a", 220)
     c.wait_applied("b", 30)
     snap = snapshot(c, "a")
-    rep = c.call({"op": "backup", "path": path}, timeout=30)
-    assert rep == {"ok": True, "path": path, "bytes": os.path.getsize(path)}, rep
+    rep = c.call({"op": "backup", "name": "worth.db"}, timeout=30)
+    assert rep == {"ok": True, "name": "worth.db", "path": path,
+                   "bytes": os.path.getsize(path)}, rep
     assert os.listdir(bk) == ["worth.db"], f"left behind: {os.listdir(bk)}"
     check(220, 30)
-    # a backup into a directory that does not exist fails, and worthd goes on
-    rep = c.call({"op": "backup", "path": str(tmp_path / "nodir" / "x.db")}, timeout=30)
-    assert rep.get("ok") is False and isinstance(rep.get("error"), dict), rep
-    assert not os.path.exists(tmp_path / "nodir")
+    # a name that is a path fails, writes nothing, and worthd goes on
+    c.err({"op": "backup", "name": "nodir/x.db"}, "bad_param", timeout=30)
+    assert not os.path.exists(bk / "nodir") and os.listdir(bk) == ["worth.db"]
     c.assert_open()
     # the copy is a whole worthd database: a daemon started on it has the same models
     d.shutdown()
@@ -1235,16 +1236,20 @@ def test_backup(daemon, tmp_path):
     assert r.stats("a")["received"] == 220
 
 
-def test_backup_onto_the_live_database_loses_nothing(daemon):
-    # A backup whose path is worthd's own database must not replace the live file (worthd
-    # should refuse it): every acknowledged transition stays, the file stays sound.
-    d = daemon()
+def test_backup_onto_the_live_database_loses_nothing(daemon, tmp_path):
+    # With the backup directory the database's own, a backup named as worthd's database (or
+    # one of its companions) must not replace the live file: worthd refuses it (bad_param),
+    # every acknowledged transition stays, the file stays sound.
+    d = daemon("--backup-dir", tmp_path)
     c = d.client()
     assert c.call(small_spec("s"))["ok"] is True
     assert c.call({"op": "observe", "model": "s", "x": [0.5], "r": 1.0, "terminal": True}) == \
         {"ok": True, "seq": 1, "durable": True}
-    rep = c.call({"op": "backup", "path": d.db}, timeout=30)
-    print(f"backup onto the live database: {rep}")
+    base = os.path.basename(d.db)
+    for name in (base, base + "-wal", base + "-shm", base + "-journal", base + ".lock"):
+        err = c.err({"op": "backup", "name": name}, "bad_param", timeout=30)
+        assert "own" in err["message"], err
+    assert not os.path.exists(d.db + "-journal")
     c.assert_open()
     # enough writes (about 4 MB of log) for SQLite to checkpoint its WAL into the main file
     n, bulks = 65536, 4
@@ -1294,15 +1299,16 @@ def test_backup_during_ingest(daemon, tmp_path):
         if acked[0] >= 200 or not t.is_alive() or time.monotonic() > deadline:
             break
         time.sleep(0.002)
-    path = str(tmp_path / "during.db")
+    path = os.path.realpath(tmp_path / "backups" / "during.db")  # the default --backup-dir
     low = acked[0]
-    rep = c.call({"op": "backup", "path": path}, timeout=30)
+    rep = c.call({"op": "backup", "name": "during.db"}, timeout=30)
     high = acked[0] + 10  # a batch may be committed but not yet acknowledged
     stop.set()
     t.join(30)
     assert not t.is_alive() and not errors, errors
     assert low >= 200, low
-    assert rep == {"ok": True, "path": path, "bytes": os.path.getsize(path)}, rep
+    assert rep == {"ok": True, "name": "during.db", "path": path,
+                   "bytes": os.path.getsize(path)}, rep
     db = ro(path, immutable=True)
     try:
         assert db.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
