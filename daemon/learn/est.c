@@ -238,6 +238,11 @@ static int finite_vec(const double *v, size_t n)
     return 1;
 }
 
+int est_train_cancelled(const est_train_opts_t *o)
+{
+    return o->cancel && atomic_load(o->cancel) != 0;
+}
+
 int est_observe(struct est *e, size_t src, const double *phi, double r, const double *phi_next,
                 double g, int terminal)
 {
@@ -263,12 +268,18 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
     return 0;
 }
 
-int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx, est_train_t *rep)
+int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 {
     memset(rep, 0, sizeof *rep);
     if (!e->ops->train)
         return WORTH_E_UNSUPPORTED;
-    return e->ops->train(e, passes, progress, ctx, rep);
+    if (est_train_cancelled(o)) {
+        rep->cancelled = 1;
+        return WORTH_E_CANCELLED;
+    }
+    int rc = e->ops->train(e, o, rep);
+    rep->cancelled = rc == WORTH_E_CANCELLED;
+    return rc;
 }
 
 double est_value(const struct est *e, const double *phi)

@@ -21,6 +21,7 @@
 #ifndef WORTH_EST_H
 #define WORTH_EST_H
 
+#include <stdatomic.h>
 #include <stddef.h>
 #include <stdint.h>
 
@@ -84,15 +85,26 @@ typedef struct est_stats_t {
     double trace_p;   /* rls_td: trace(P); otherwise 0 */
 } est_stats_t;
 
+/* Called after each complete training pass; ctx is borrowed. */
+typedef void (*est_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
+
+/* Plain data: how to run est_train.  Pointers are borrowed for the call. */
+typedef struct est_train_opts_t {
+    unsigned passes;          /* replay: most passes (fewer once converged); lstd: ignored */
+    uint64_t max_steps;       /* replay: stop after exactly this many mini-batch steps; 0: none */
+    est_progress_fn progress; /* after each complete pass; may be NULL */
+    void *ctx;                /* for progress */
+    const atomic_int *cancel; /* nonzero: stop before the next step; NULL = never */
+} est_train_opts_t;
+
 /* Plain data: result of est_train. */
 typedef struct est_train_t {
-    unsigned passes; /* passes run (replay) or 1 (lstd refit) */
+    unsigned passes; /* passes run, a last partial one included (replay), or 1 (lstd refit) */
     double change;   /* |w_after - w_before| / |w_before| of the last pass */
-    int converged;   /* 1 when change < tol */
+    int converged;   /* 1 when a complete pass changed w by less than tol */
+    uint64_t steps;  /* mini-batch steps taken (replay); lstd: 1 when it solved, else 0 */
+    int cancelled;   /* 1 when *cancel stopped the training */
 } est_train_t;
-
-/* Called after each training pass; ctx is borrowed. */
-typedef void (*est_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
 
 /* Lifecycle */
 
@@ -133,12 +145,17 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
                 double g, int terminal);
 
 /*
- * Runs up to passes training passes: replay trains over its buffer and stops
- * early once converged; lstd refits (passes ignored).  Other kinds return
- * WORTH_E_UNSUPPORTED.  progress may be NULL.  Fills *rep.
+ * Trains as o says (borrowed): replay runs up to o->passes passes of
+ * ceil(size/batch) mini-batch steps over its buffer, stops early once
+ * converged, and stops after o->max_steps steps when that is set; lstd
+ * refits once (passes and max_steps ignored: its solve is one step).
+ * o->cancel is read before every step (before lstd's solve, which cannot be
+ * cut); a cancelled training leaves the estimator exactly as a training
+ * with max_steps = rep->steps would (with no step taken: unchanged).
+ * Fills *rep.  Returns 0; WORTH_E_CANCELLED; WORTH_E_UNSUPPORTED for the
+ * other kinds.
  */
-int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx,
-              est_train_t *rep);
+int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep);
 
 /* Query */
 

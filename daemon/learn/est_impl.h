@@ -27,7 +27,12 @@ struct est_ops {
                    double g, int terminal, double v, double vn);
     /* Optional: NULL means unsupported. */
     int (*sd)(const struct est *e, const double *phi, double *sd);
-    int (*train)(struct est *e, unsigned passes, est_progress_fn cb, void *ctx, est_train_t *rep);
+    /*
+     * Optional.  o is valid and o->cancel was clear on entry; the kind checks it
+     * again before every further step (est_train_cancelled).  Fills rep (zeroed
+     * by est.c) and returns 0 or WORTH_E_CANCELLED.
+     */
+    int (*train)(struct est *e, const est_train_opts_t *o, est_train_t *rep);
     /* Kind state after the common part; load may set r->err on bad data. */
     void (*save)(const struct est *e, ser_w *w);
     void (*load)(struct est *e, ser_r *r);
@@ -56,6 +61,9 @@ struct est {
 
 extern const struct est_ops est_td_ops, est_tdn_ops, est_tdlambda_ops, est_mc_ops, est_rls_ops,
     est_lstd_ops, est_replay_ops;
+
+/* Returns 1 when o asks the training to stop now (its cancel flag is set). */
+int est_train_cancelled(const est_train_opts_t *o);
 
 /* Dot product of n doubles (BLAS ddot). */
 double est_dot(size_t n, const double *a, const double *b);

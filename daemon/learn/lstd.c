@@ -165,10 +165,12 @@ static int lstd_observe(struct est *e, size_t src, const double *phi, double r, 
     return 0;
 }
 
-static int lstd_train(struct est *e, unsigned passes, est_progress_fn cb, void *ctx,
-                      est_train_t *rep)
+/*
+ * One solve, which cannot be cut: est_train has read the cancel flag just
+ * before, so a cancelled lstd training takes no step and changes nothing.
+ */
+static int lstd_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 {
-    (void)passes;
     size_t n = e->n;
     double before = sqrt(est_dot(n, e->w, e->w)), diff = 0.0;
     struct lstd *m = e->k;
@@ -177,10 +179,11 @@ static int lstd_train(struct est *e, unsigned passes, est_progress_fn cb, void *
     for (size_t i = 0; i < n; i++)
         diff += (e->w[i] - m->d[i]) * (e->w[i] - m->d[i]);
     rep->passes = 1;
+    rep->steps = 1;
     rep->change = sqrt(diff) / (before > 0 ? before : 1.0);
     rep->converged = 1;
-    if (cb)
-        cb(ctx, 1, 1, rep->change);
+    if (o->progress)
+        o->progress(o->ctx, 1, 1, rep->change);
     return 0;
 }
 

@@ -268,12 +268,11 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     return 0;
 }
 
-int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
-                est_train_t *rep)
+int model_train(struct model *m, size_t i, const est_train_opts_t *o, est_train_t *rep)
 {
     if (i >= m->n_est)
         return WORTH_E_BAD_PARAM;
-    return est_train(m->est[i], passes, cb, ctx, rep);
+    return est_train(m->est[i], o, rep);
 }
 
 size_t model_dims(const struct model *m)

@@ -102,9 +102,11 @@ void model_reset(struct model *m);
 int model_check(const struct model *m, const model_obs_t *t, char *err, size_t errlen);
 /* model_check, then learns from t in every estimator.  Same returns. */
 int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errlen);
-/* Runs est_train on estimator i; returns as est_train, or WORTH_E_BAD_PARAM for a bad i. */
-int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
-                est_train_t *rep);
+/*
+ * Runs est_train on estimator i with options o (borrowed); returns as est_train
+ * (WORTH_E_CANCELLED, ...), or WORTH_E_BAD_PARAM for a bad i.
+ */
+int model_train(struct model *m, size_t i, const est_train_opts_t *o, est_train_t *rep);
 
 /*
  * Replay: a long run of transitions (recovery, rollback with replay) learnt

@@ -327,7 +327,7 @@ static void names_and_optional_operations(void **state)
         int rc = est_sd(e, phi, &sd);
         assert_int_equal(rc, k == EST_RLS_TD ? 0 : WORTH_E_UNSUPPORTED);
         est_train_t rep;
-        rc = est_train(e, 2, NULL, NULL, &rep);
+        rc = est_train(e, &(est_train_opts_t){.passes = 2}, &rep);
         assert_int_equal(rc, (k == EST_LSTD || k == EST_REPLAY) ? 0 : WORTH_E_UNSUPPORTED);
         assert_int_equal(est_features(e), N);
         est_free(e);
