@@ -11,7 +11,9 @@
  * the solve is LU (dgetrf/dgetrs), not Cholesky.  When the LU factor is
  * singular or its reciprocal condition number (dgecon) is below 1e-13, it
  * falls back to a minimum-norm least-squares solve (dgelss, SVD) and counts
- * the step as guarded.  A is stored column-major for LAPACK.
+ * the step as guarded.  A is stored column-major for LAPACK.  A refit inside
+ * est_observe is followed by est.c's divergence check like any update, and
+ * so is the one of est_train.
  *
  * O(n^2) per transition plus O(n^3) per refit; all workspaces (including
  * LAPACK's, sized by a workspace query) are allocated at creation, so no
@@ -203,8 +205,9 @@ static void lstd_save(const struct est *e, ser_w *w)
     est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
-static void lstd_load(struct est *e, ser_r *r)
+static void lstd_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct lstd *m = e->k;
     ser_get_f64v(r, m->A, e->n * e->n);
     ser_get_f64v(r, m->b, e->n);

@@ -185,9 +185,11 @@ static int replay_train(struct est *e, const est_train_opts_t *o, est_train_t *r
         if (k == 0)
             break;
         double diff = 0.0, norm = 0.0;
+        int finite = 1;
         for (size_t i = 0; i < n; i++) {
             diff += (e->w[i] - m->w0[i]) * (e->w[i] - m->w0[i]);
             norm += m->w0[i] * m->w0[i];
+            finite &= isfinite(e->w[i]) != 0;
         }
         rep->passes = p;
         rep->change = sqrt(diff) / (norm > 0 ? sqrt(norm) : 1.0);
@@ -196,7 +198,8 @@ static int replay_train(struct est *e, const est_train_opts_t *o, est_train_t *r
         rep->converged = rep->change < e->p.tol;
         if (o->progress)
             o->progress(o->ctx, p, o->passes, rep->change);
-        if (rep->converged)
+        /* Weights gone non-finite: est_train resets them; more passes would only spin. */
+        if (rep->converged || !finite)
             break;
     }
     return rc;
@@ -225,8 +228,9 @@ static void replay_save(const struct est *e, ser_w *w)
     }
 }
 
-static void replay_load(struct est *e, ser_r *r)
+static void replay_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct replay *m = e->k;
     size_t n = e->n;
     uint64_t size = ser_get_u64(r), next = ser_get_u64(r);

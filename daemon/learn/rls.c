@@ -312,8 +312,9 @@ static void rls_save(const struct est *e, ser_w *w)
     est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
-static void rls_load(struct est *e, ser_r *r)
+static void rls_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct rls *m = e->k;
     ser_get_f64v(r, m->P, e->n * e->n);
     m->s2_sum = ser_get_f64(r);
