@@ -51,16 +51,19 @@
 
 struct est;
 
-/* Version of the byte format written by est_save (2: R_max and the divergence record).
- * Version 1 still loads, the new fields at their defaults. */
+/* Version of the byte format written by est_save (2: R_max and the divergence record; rls_td
+ * its covariance resets).  Version 1 still loads, the new fields at their defaults. */
 #define EST_FORMAT_VERSION 2
 /* Oldest format est_load still reads. */
 #define EST_FORMAT_OLDEST 1
 /* Divergence rule 2: a value beyond this many times max(1, R_max) means divergence. */
 #define EST_DIVERGE_FACTOR 1e10
+/* rls_td: health is unhealthy for this many times n updates from a covariance reset on. */
+#define EST_RLS_RESET_WINDOW 10
 /* The reasons est_stats gives in why (static strings). */
 #define EST_WHY_NONFINITE "non-finite weights"
 #define EST_WHY_BOUND     "value beyond 1e10 x the largest reward"
+#define EST_WHY_P_RESET   "covariance reset"
 /* Most sources one estimator keeps separate state for. */
 #define EST_MAX_SOURCES 1024
 
