@@ -339,9 +339,10 @@ static void apply(struct learner *l, learner_rec_t *r)
     case LREC_OBS:
         break; /* observations go through learn() */
     case LREC_TRAIN: {
-        est_train_t rep = {0, 0, 0};
+        est_train_t rep = {.passes = 0};
         struct train_ctx t = {l, r->conn_id};
-        int rc = model_train(l->m, r->est, r->passes, on_pass, &t, &rep);
+        est_train_opts_t to = {.passes = r->passes, .progress = on_pass, .ctx = &t};
+        int rc = model_train(l->m, r->est, &to, &rep);
         l->model_training = r->ordinal;
         /* A checkpoint right after the training: recovery then restores its result instead
          * of training again before worthd can listen. */

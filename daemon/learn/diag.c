@@ -16,6 +16,13 @@
  * The window's return is then sR + sG * bR.  Both parts are pure functions
  * of the ring's contents and `front`, so a saved ring with its `front`
  * count reloads to the same bits.
+ *
+ * A diverged estimator (NAN prediction) must not poison the figures: it is
+ * left out of the spread, its realised figures freeze (a return completed
+ * while it is out is not scored for it; divergence lasts until the model is
+ * reset or loaded, which resets or loads these diagnostics too), its ring
+ * slot holds 0 so that no NaN is saved, and a NAN TD error (a diverged
+ * primary) leaves the drift test where it was.
  */
 #include "diag.h"
 
@@ -193,10 +200,13 @@ static void build_front(const struct diag *d, struct ring *q, size_t front)
     q->front = front;
 }
 
-/* Scores the predictions of entry e against its realised return G. */
-static void score(struct diag *d, const double *e, double G)
+/* Scores the predictions of entry e against its realised return G, for the estimators
+ * still in (a number in pred, the predictions of the current transition). */
+static void score(struct diag *d, const double *e, double G, const double *pred)
 {
     for (size_t k = 0; k < d->n_est; k++) {
+        if (isnan(pred[k]))
+            continue;
         struct stat *s = &d->st[k];
         double err = e[k] - G;
         s->n++;
@@ -210,6 +220,8 @@ static void score(struct diag *d, const double *e, double G)
 
 static int drift(struct diag *d, double td)
 {
+    if (isnan(td))
+        return 0;
     d->k++;
     if (d->k <= d->p.burn_in) {
         d->b_sum += td;
@@ -252,18 +264,25 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
 {
     d->step++;
     double lo = INFINITY, hi = -INFINITY;
+    size_t in = 0;
     for (size_t k = 0; k < d->n_est; k++) {
+        if (isnan(pred[k]))
+            continue;
         lo = fmin(lo, pred[k]);
         hi = fmax(hi, pred[k]);
+        in++;
     }
-    d->spread_ew = d->keep * d->spread_ew + (hi - lo);
-    d->spread_w = d->keep * d->spread_w + 1.0;
+    if (in) {
+        d->spread_ew = d->keep * d->spread_ew + (hi - lo);
+        d->spread_w = d->keep * d->spread_w + 1.0;
+    }
 
     struct ring *q = &d->q[src];
     if (q->count == q->cap)
         grow(d, q);
     double *e = q->e + ((q->head + q->count) % q->cap) * d->stride;
-    memcpy(e, pred, d->n_est * sizeof *e);
+    for (size_t k = 0; k < d->n_est; k++)
+        e[k] = isnan(pred[k]) ? 0.0 : pred[k];
     e[d->n_est] = r;
     e[d->n_est + 1] = g;
     q->count++;
@@ -279,7 +298,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         }
         for (size_t i = 0; i < q->count; i++) {
             double *x = entry(d, q, i);
-            score(d, x, x[d->n_est]);
+            score(d, x, x[d->n_est], pred);
         }
         q->head = q->count = 0;
         build_front(d, q, 0);
@@ -288,7 +307,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         if (q->front == 0)
             build_front(d, q, q->count);
         const double *x = entry(d, q, 0);
-        score(d, x, x[d->n_est + 2] + x[d->n_est + 3] * q->bR);
+        score(d, x, x[d->n_est + 2] + x[d->n_est + 3] * q->bR, pred);
         q->head = (q->head + 1) % q->cap;
         q->count--;
         q->front--;

@@ -78,7 +78,10 @@ void diag_reset(struct diag *d);
 /*
  * One transition of source src: pred holds each estimator's V(x) before the
  * update, r and g the reward and discount, td the primary estimator's TD
- * error.  Returns 1 when the drift alarm fired on this transition.
+ * error.  A NAN in pred marks an estimator that has diverged (est_last_value):
+ * it is left out of the spread and its realised figures freeze; a NAN td
+ * leaves the drift test alone.  Returns 1 when the drift alarm fired on this
+ * transition.
  */
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td);
@@ -88,7 +91,8 @@ const diag_params_t *diag_params(const struct diag *d);
 unsigned diag_horizon(const struct diag *d);
 void diag_est(const struct diag *d, size_t i, diag_est_t *out);
 void diag_drift(const struct diag *d, diag_drift_t *out);
-/* Running mean of the spread (max - min) of the estimators' predictions. */
+/* Running mean of the spread (max - min) of the predictions of the estimators not
+ * diverged (steps where every one had diverged are left out). */
 double diag_spread(const struct diag *d);
 
 /* Persistence (inside the model's saved state). */

@@ -7,10 +7,16 @@
  * check happens here, before anything is modified, so a rejected call leaves
  * the estimator bit-identical.
  *
+ * It also applies the divergence rule of est.h after every update and
+ * training: the check only reads, so a healthy estimator's bits are those it
+ * would have without it; a diverged one is reset here, by the kind's own
+ * reset, before anything can save or publish a non-finite number.
+ *
  * Saved state layout (all little-endian):
  *   u32 magic "WEST", u32 format version, u32 kind, u32 reserved,
- *   u64 n, u64 sources, the parameters, the common counters, the weights,
- *   the kind's state, and last a u32 CRC-32 of everything before it.
+ *   u64 n, u64 sources, the parameters, the common counters, (format 2:)
+ *   f64 R_max, u32 divergence reason (0 = none), u64 diverged_at, the
+ *   weights, the kind's state, and last a u32 CRC-32 of everything before it.
  */
 #include "est.h"
 
@@ -28,6 +34,10 @@
 #define EST_MAGIC 0x54534557u /* "WEST" */
 /* Weight of the exponentially weighted TD error: about 1000 transitions. */
 #define TD_EW_KEEP (1.0 - 1.0 / 1000.0)
+
+/* Reasons of divergence, by e->diverged. */
+enum { WHY_NONE, WHY_NONFINITE, WHY_BOUND, WHY_COUNT };
+static const char *const why_text[WHY_COUNT] = {NULL, EST_WHY_NONFINITE, EST_WHY_BOUND};
 
 static const char *const kind_names[EST_KIND_COUNT] = {
     "td", "td_n", "td_lambda", "mc", "rls_td", "lstd", "replay",
@@ -152,7 +162,7 @@ static int check_params(const est_params_t *p, size_t n, size_t sources, char *e
 double est_footprint(const est_params_t *p, size_t n, size_t sources)
 {
     double nn = (double)n, S = (double)sources, d = sizeof(double);
-    double state = nn, snap = nn; /* weights, and w in each snapshot */
+    double state = nn, snap = nn + 1; /* weights, and w and the diverged flag in each snapshot */
     switch (p->kind) {
     case EST_TD:
         break;
@@ -217,6 +227,9 @@ void est_reset(struct est *e)
         e->w[i] = e->p.init;
     e->updates = e->guarded = 0;
     e->td_last = e->td_ms = e->td_wsum = e->v_last = 0.0;
+    e->r_max = 0.0;
+    e->diverged = WHY_NONE;
+    e->diverged_at = 0;
     e->ops->reset(e);
 }
 
@@ -238,6 +251,34 @@ static int finite_vec(const double *v, size_t n)
     return 1;
 }
 
+int est_train_cancelled(const est_train_opts_t *o)
+{
+    return o->cancel && atomic_load(o->cancel) != 0;
+}
+
+/* Returns the reason e has diverged by (WHY_*), given v and vn of the last transition. */
+static int divergence(const struct est *e, double v, double vn)
+{
+    if (!finite_vec(e->w, e->n))
+        return WHY_NONFINITE;
+    double bound = EST_DIVERGE_FACTOR * (e->r_max > 1.0 ? e->r_max : 1.0);
+    if (!(fabs(v) <= bound) || !(fabs(vn) <= bound))
+        return WHY_BOUND;
+    return WHY_NONE;
+}
+
+/* Records the divergence and puts the weights and the kind's state back to their initial
+ * values; the common counters stay. */
+static void diverge(struct est *e, int why)
+{
+    e->diverged = why;
+    e->diverged_at = e->updates;
+    for (size_t i = 0; i < e->n; i++)
+        e->w[i] = e->p.init;
+    e->ops->reset(e);
+    e->v_last = NAN;
+}
+
 int est_observe(struct est *e, size_t src, const double *phi, double r, const double *phi_next,
                 double g, int terminal)
 {
@@ -250,12 +291,25 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
     if (!terminal && (!phi_next || !finite_vec(phi_next, e->n)))
         return phi_next ? WORTH_E_BAD_NUMBER : WORTH_E_BAD_PARAM;
 
+    if (e->diverged) { /* counted, not learnt */
+        e->updates++;
+        return 0;
+    }
+
     double v = est_dot(e->n, e->w, phi);
     double vn = terminal ? 0.0 : est_dot(e->n, e->w, phi_next);
     double delta = r + g * vn - v;
     e->guarded += (uint64_t)e->ops->observe(e, src, phi, r, terminal ? NULL : phi_next, g,
                                             terminal != 0, v, vn);
     e->updates++;
+    if (fabs(r) > e->r_max)
+        e->r_max = fabs(r);
+    int why = divergence(e, v, vn);
+    if (why) {
+        /* The TD statistics keep what they had: this delta may not even be finite. */
+        diverge(e, why);
+        return 0;
+    }
     e->td_last = delta;
     e->v_last = v;
     e->td_ms = TD_EW_KEEP * e->td_ms + delta * delta;
@@ -263,34 +317,56 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
     return 0;
 }
 
-int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx, est_train_t *rep)
+int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 {
     memset(rep, 0, sizeof *rep);
     if (!e->ops->train)
         return WORTH_E_UNSUPPORTED;
-    return e->ops->train(e, passes, progress, ctx, rep);
+    if (e->diverged)
+        return WORTH_E_DIVERGED;
+    if (est_train_cancelled(o)) {
+        rep->cancelled = 1;
+        return WORTH_E_CANCELLED;
+    }
+    int rc = e->ops->train(e, o, rep);
+    /* A training computes no values of states, so only rule 1 applies here. */
+    if (!finite_vec(e->w, e->n)) {
+        diverge(e, WHY_NONFINITE);
+        return WORTH_E_DIVERGED;
+    }
+    rep->cancelled = rc == WORTH_E_CANCELLED;
+    return rc;
 }
 
 double est_value(const struct est *e, const double *phi)
 {
-    return est_dot(e->n, e->w, phi);
+    return e->diverged ? NAN : est_dot(e->n, e->w, phi);
 }
 
 int est_sd(const struct est *e, const double *phi, double *sd)
 {
     if (!e->ops->sd)
         return WORTH_E_UNSUPPORTED;
+    if (e->diverged) {
+        *sd = NAN;
+        return 0;
+    }
     return e->ops->sd(e, phi, sd);
 }
 
 double est_last_value(const struct est *e)
 {
-    return e->v_last;
+    return e->diverged ? NAN : e->v_last;
 }
 
 double est_last_td(const struct est *e)
 {
-    return e->td_last;
+    return e->diverged ? NAN : e->td_last;
+}
+
+int est_diverged(const struct est *e)
+{
+    return e->diverged != WHY_NONE;
 }
 
 const double *est_weights(const struct est *e)
@@ -315,25 +391,37 @@ void est_stats(const struct est *e, est_stats_t *out)
     out->guarded = e->guarded;
     out->td_last = e->td_last;
     out->td_rms = e->td_wsum > 0 ? sqrt(e->td_ms / e->td_wsum) : 0.0;
+    out->health = EST_HEALTH_OK;
     if (e->ops->stats)
         e->ops->stats(e, out);
+    if (e->diverged) {
+        out->health = EST_HEALTH_DIVERGED;
+        out->why = why_text[e->diverged];
+        out->diverged_at = e->diverged_at;
+    }
 }
 
+/* Snapshot: w (n), the diverged flag (1 double, 0 or 1), then the kind's extra doubles. */
 size_t est_snap_size(const struct est *e)
 {
-    return e->n + (e->ops->snap_size ? e->ops->snap_size(e) : 0);
+    return e->n + 1 + (e->ops->snap_size ? e->ops->snap_size(e) : 0);
 }
 
 void est_snap(const struct est *e, double *out)
 {
     memcpy(out, e->w, e->n * sizeof *out);
+    out[e->n] = e->diverged ? 1.0 : 0.0;
     if (e->ops->snap)
-        e->ops->snap(e, out + e->n);
+        e->ops->snap(e, out + e->n + 1);
 }
 
 double est_snap_value(const struct est *e, const double *snap, const double *phi, double *sd)
 {
-    *sd = e->ops->snap_sd ? e->ops->snap_sd(e, snap + e->n, phi) : NAN;
+    if (snap[e->n] != 0.0) {
+        *sd = NAN;
+        return NAN;
+    }
+    *sd = e->ops->snap_sd ? e->ops->snap_sd(e, snap + e->n + 1, phi) : NAN;
     return est_dot(e->n, snap, phi);
 }
 
@@ -375,6 +463,9 @@ static void save_all(const struct est *e, ser_w *w)
     ser_put_f64(w, e->td_last);
     ser_put_f64(w, e->td_ms);
     ser_put_f64(w, e->td_wsum);
+    ser_put_f64(w, e->r_max);
+    ser_put_u32(w, (uint32_t)e->diverged);
+    ser_put_u64(w, e->diverged_at);
     ser_put_f64v(w, e->w, e->n);
     e->ops->save(e, w);
 }
@@ -396,7 +487,7 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
 {
     ser_r r = {buf, len - 4, 0, 0};
     ser_get_u32(&r); /* magic and version were checked by the caller */
-    ser_get_u32(&r);
+    unsigned version = ser_get_u32(&r);
     ser_get_u32(&r);
     ser_get_u32(&r);
     ser_get_u64(&r);
@@ -416,8 +507,19 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
     e->td_last = ser_get_f64(&r);
     e->td_ms = ser_get_f64(&r);
     e->td_wsum = ser_get_f64(&r);
+    e->r_max = 0.0; /* format 1: nothing diverged, no reward on record */
+    e->diverged = WHY_NONE;
+    e->diverged_at = 0;
+    if (version >= 2) {
+        e->r_max = ser_get_f64(&r);
+        uint32_t why = ser_get_u32(&r);
+        e->diverged_at = ser_get_u64(&r);
+        if (why >= WHY_COUNT || !(e->r_max >= 0) || !isfinite(e->r_max))
+            return err_fail(err, errlen, WORTH_E_CORRUPT, "state has a bad divergence record");
+        e->diverged = (int)why;
+    }
     ser_get_f64v(&r, e->w, e->n);
-    e->ops->load(e, &r);
+    e->ops->load(e, &r, version);
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "state has the wrong length for its kind");
     return 0;
@@ -436,10 +538,10 @@ int est_load(struct est *e, const uint8_t *buf, size_t len, char *err, size_t er
     ser_r t = {buf + len - 4, 4, 0, 0};
     if (ser_get_u32(&t) != ser_crc32(buf, len - 4))
         return err_fail(err, errlen, WORTH_E_CORRUPT, "estimator state fails its checksum");
-    if (version != EST_FORMAT_VERSION)
+    if (version < EST_FORMAT_OLDEST || version > EST_FORMAT_VERSION)
         return err_fail(err, errlen, WORTH_E_CORRUPT,
-                        "state format version %u, this build reads %d", version,
-                        EST_FORMAT_VERSION);
+                        "state format version %u, this build reads %d to %d", version,
+                        EST_FORMAT_OLDEST, EST_FORMAT_VERSION);
     if (kind != (uint32_t)e->p.kind)
         return err_fail(err, errlen, WORTH_E_MISMATCH, "state is of kind %s, estimator is %s",
                         kind < EST_KIND_COUNT ? kind_names[kind] : "?", kind_names[e->p.kind]);

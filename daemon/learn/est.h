@@ -17,17 +17,53 @@
  * Every estimator is deterministic: the same parameters, seed and transitions
  * give bit-identical weights, and save -> load -> continue gives the same bits
  * as never stopping.
+ *
+ * Divergence.  A step size that is too large for the features (td, replay),
+ * or a numerically broken kind, makes the weights grow geometrically until
+ * they overflow.  After every update (est_observe, and after est_train) the
+ * estimator has diverged when
+ *   1. any weight is not finite (EST_WHY_NONFINITE), or
+ *   2. |v| or |vn|, the values of x and x_next under the weights before the
+ *      update, exceed B = EST_DIVERGE_FACTOR * max(1, R_max), with R_max the
+ *      largest |r| the estimator has seen, this transition's included
+ *      (EST_WHY_BOUND).
+ * Why this bound: a discounted return is at most R_max / (1 - gamma) in size,
+ * so a value beyond 1e10 R_max needs gamma within 1e-10 of 1 (or an episode
+ * of 1e10 steps) to be genuine; any realistic plant stays far inside it.  And
+ * it sits some 290 decades below overflow, so a geometric blow-up is caught
+ * while every number is still finite, rather than after NaN has spread into
+ * the traces and statistics.  XXX: an init of 1e10 R_max or more (an absurd
+ * prior) trips rule 2 on the first transition.
+ * A diverged estimator is reset to its initial weights and kind state (so no
+ * non-finite number is ever saved, snapshotted or published), keeps its
+ * counters, remembers when (diverged_at, its update count then) and why, and
+ * from then on validates and counts transitions but learns nothing; its value
+ * and sd are NAN and est_train returns WORTH_E_DIVERGED.  The flag is part of
+ * the saved state and of the value snapshot; only est_reset (or loading a
+ * state that is not diverged) clears it.
  */
 #ifndef WORTH_EST_H
 #define WORTH_EST_H
 
+#include <stdatomic.h>
 #include <stddef.h>
 #include <stdint.h>
 
 struct est;
 
-/* Version of the byte format written by est_save. */
-#define EST_FORMAT_VERSION 1
+/* Version of the byte format written by est_save (2: R_max and the divergence record; rls_td
+ * its covariance resets).  Version 1 still loads, the new fields at their defaults. */
+#define EST_FORMAT_VERSION 2
+/* Oldest format est_load still reads. */
+#define EST_FORMAT_OLDEST 1
+/* Divergence rule 2: a value beyond this many times max(1, R_max) means divergence. */
+#define EST_DIVERGE_FACTOR 1e10
+/* rls_td: health is unhealthy for this many times n updates from a covariance reset on. */
+#define EST_RLS_RESET_WINDOW 10
+/* The reasons est_stats gives in why (static strings). */
+#define EST_WHY_NONFINITE "non-finite weights"
+#define EST_WHY_BOUND     "value beyond 1e10 x the largest reward"
+#define EST_WHY_P_RESET   "covariance reset"
 /* Most sources one estimator keeps separate state for. */
 #define EST_MAX_SOURCES 1024
 
@@ -74,25 +110,47 @@ typedef struct est_params_t {
     uint64_t seed;          /* replay: RNG seed; 1 */
 } est_params_t;
 
+/* An estimator's health, from its own numerical evidence. */
+enum est_health {
+    EST_HEALTH_OK,        /* nothing known against it */
+    EST_HEALTH_UNHEALTHY, /* answers, but a guard acted recently (rls_td: covariance reset) */
+    EST_HEALTH_DIVERGED   /* diverged (see above): answers NAN, learns nothing */
+};
+
 /* Plain data: counters and figures of one estimator. */
 typedef struct est_stats_t {
-    uint64_t updates; /* transitions observed */
-    uint64_t guarded; /* updates skipped or damped by a numerical guard */
-    uint64_t refits;  /* lstd: solves; replay: mini-batch steps */
-    double td_last;   /* last TD error r + g V(x') - V(x), weights before the update */
-    double td_rms;    /* RMS TD error, exponentially weighted over ~1000 transitions */
-    double trace_p;   /* rls_td: trace(P); otherwise 0 */
+    uint64_t updates;     /* transitions observed (while diverged too) */
+    uint64_t guarded;     /* updates skipped or damped by a numerical guard */
+    uint64_t refits;      /* lstd: solves; replay: mini-batch steps */
+    double td_last;       /* last TD error r + g V(x') - V(x), weights before the update */
+    double td_rms;        /* RMS TD error, exponentially weighted over ~1000 transitions */
+    double trace_p;       /* rls_td: trace(P); otherwise 0 */
+    int health;           /* enum est_health */
+    const char *why;      /* static reason (EST_WHY_*) when not ok, else NULL */
+    uint64_t diverged_at; /* update count when divergence was detected; 0 when not diverged */
+    uint64_t p_resets;    /* rls_td: covariance resets (see rls.c); otherwise 0 */
 } est_stats_t;
+
+/* Called after each complete training pass; ctx is borrowed. */
+typedef void (*est_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
+
+/* Plain data: how to run est_train.  Pointers are borrowed for the call. */
+typedef struct est_train_opts_t {
+    unsigned passes;          /* replay: most passes (fewer once converged); lstd: ignored */
+    uint64_t max_steps;       /* replay: stop after exactly this many mini-batch steps; 0: none */
+    est_progress_fn progress; /* after each complete pass; may be NULL */
+    void *ctx;                /* for progress */
+    const atomic_int *cancel; /* nonzero: stop before the next step; NULL = never */
+} est_train_opts_t;
 
 /* Plain data: result of est_train. */
 typedef struct est_train_t {
-    unsigned passes; /* passes run (replay) or 1 (lstd refit) */
+    unsigned passes; /* passes run, a last partial one included (replay), or 1 (lstd refit) */
     double change;   /* |w_after - w_before| / |w_before| of the last pass */
-    int converged;   /* 1 when change < tol */
+    int converged;   /* 1 when a complete pass changed w by less than tol */
+    uint64_t steps;  /* mini-batch steps taken (replay); lstd: 1 when it solved, else 0 */
+    int cancelled;   /* 1 when *cancel stopped the training */
 } est_train_t;
-
-/* Called after each training pass; ctx is borrowed. */
-typedef void (*est_progress_fn)(void *ctx, unsigned pass, unsigned of, double change);
 
 /* Lifecycle */
 
@@ -128,31 +186,41 @@ void est_reset(struct est *e);
  * n doubles (borrowed); phi_next may be NULL when terminal.  Returns 0, or
  * WORTH_E_BAD_NUMBER / WORTH_E_BAD_PARAM (src or g out of range, g not in
  * [0,1]) with the estimator unchanged.  Inputs are checked for finiteness.
+ * Then applies the divergence rule (above); a diverged estimator validates
+ * and counts the transition but learns nothing, and still returns 0.
  */
 int est_observe(struct est *e, size_t src, const double *phi, double r, const double *phi_next,
                 double g, int terminal);
 
 /*
- * Runs up to passes training passes: replay trains over its buffer and stops
- * early once converged; lstd refits (passes ignored).  Other kinds return
- * WORTH_E_UNSUPPORTED.  progress may be NULL.  Fills *rep.
+ * Trains as o says (borrowed): replay runs up to o->passes passes of
+ * ceil(size/batch) mini-batch steps over its buffer, stops early once
+ * converged, and stops after o->max_steps steps when that is set; lstd
+ * refits once (passes and max_steps ignored: its solve is one step).
+ * o->cancel is read before every step (before lstd's solve, which cannot be
+ * cut); a cancelled training leaves the estimator exactly as a training
+ * with max_steps = rep->steps would (with no step taken: unchanged).
+ * Fills *rep.  Returns 0; WORTH_E_CANCELLED; WORTH_E_DIVERGED when the
+ * estimator had diverged (nothing done) or diverged during the training
+ * (then reset, see above); WORTH_E_UNSUPPORTED for the other kinds.
  */
-int est_train(struct est *e, unsigned passes, est_progress_fn progress, void *ctx,
-              est_train_t *rep);
+int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep);
 
 /* Query */
 
-/* Returns w . phi (phi: n doubles, borrowed). */
+/* Returns w . phi (phi: n doubles, borrowed); NAN when e has diverged. */
 double est_value(const struct est *e, const double *phi);
 /*
  * Writes the standard deviation of the value at phi to *sd: rls_td only,
- * sqrt(s2 * phi'P phi) with s2 the running residual variance.  Returns 0 or
- * WORTH_E_UNSUPPORTED.
+ * sqrt(s2 * phi'P phi) with s2 the running residual variance; NAN when
+ * phi'P phi is not finite or negative (P is broken or indefinite), or when e
+ * has diverged.  Returns 0 or WORTH_E_UNSUPPORTED.
  */
 int est_sd(const struct est *e, const double *phi, double *sd);
 /*
  * Returns V(x) and the TD error of the last transition observed, both under the
  * weights before its update (what est_observe computed; not part of the saved state).
+ * Both are NAN once e has diverged, from the transition that showed it on.
  */
 double est_last_value(const struct est *e);
 double est_last_td(const struct est *e);
@@ -161,17 +229,20 @@ const double *est_weights(const struct est *e);
 size_t est_features(const struct est *e);
 const est_params_t *est_params(const struct est *e);
 void est_stats(const struct est *e, est_stats_t *out);
+/* Returns 1 when e has diverged (see above), else 0. */
+int est_diverged(const struct est *e);
 
 /* Published snapshots: what a query thread needs, copied out by the owner */
 
-/* Returns the doubles a value snapshot of e takes: w, and for rls_td s2 and P. */
+/* Returns the doubles a value snapshot of e takes: w, the diverged flag, and for rls_td s2
+ * and P. */
 size_t est_snap_size(const struct est *e);
 /* Writes e's value snapshot (est_snap_size doubles) into out (borrowed). */
 void est_snap(const struct est *e, double *out);
 /*
  * Returns the value of phi under snap, a snapshot taken from e, and writes its
- * sd (NAN when the kind has none) to *sd.  Reads only e's immutable fields
- * (kind, sizes), so it may run while e's owner updates e.
+ * sd (NAN when the kind has none) to *sd; both NAN when e had diverged.  Reads only e's immutable
+ * fields (kind, sizes), so it may run while e's owner updates e.
  */
 double est_snap_value(const struct est *e, const double *snap, const double *phi, double *sd);
 
@@ -187,7 +258,8 @@ double est_snap_value(const struct est *e, const double *snap, const double *phi
 int est_save(const struct est *e, uint8_t *buf, size_t cap, size_t *len);
 /*
  * Restores the state written by est_save into e, built with the same
- * parameters and sizes.  Returns 0; WORTH_E_CORRUPT (bad magic, version,
+ * parameters and sizes (format EST_FORMAT_OLDEST..EST_FORMAT_VERSION).
+ * Returns 0; WORTH_E_CORRUPT (bad magic, version,
  * length or checksum) or WORTH_E_MISMATCH (other kind, sizes or parameters),
  * with a message in err and e unchanged.
  */

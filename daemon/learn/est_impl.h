@@ -27,15 +27,23 @@ struct est_ops {
                    double g, int terminal, double v, double vn);
     /* Optional: NULL means unsupported. */
     int (*sd)(const struct est *e, const double *phi, double *sd);
-    int (*train)(struct est *e, unsigned passes, est_progress_fn cb, void *ctx, est_train_t *rep);
-    /* Kind state after the common part; load may set r->err on bad data. */
+    /*
+     * Optional.  o is valid and o->cancel was clear on entry; the kind checks it
+     * again before every further step (est_train_cancelled).  Fills rep (zeroed
+     * by est.c) and returns 0 or WORTH_E_CANCELLED; est.c applies the
+     * divergence rule afterwards.
+     */
+    int (*train)(struct est *e, const est_train_opts_t *o, est_train_t *rep);
+    /* Kind state after the common part; load may set r->err on bad data.  version is the
+     * state's format version (EST_FORMAT_OLDEST..EST_FORMAT_VERSION). */
     void (*save)(const struct est *e, ser_w *w);
-    void (*load)(struct est *e, ser_r *r);
+    void (*load)(struct est *e, ser_r *r, unsigned version);
     /* Optional: extra snapshot doubles after w, their writer and the sd they give. */
     size_t (*snap_size)(const struct est *e);
     void (*snap)(const struct est *e, double *out);
     double (*snap_sd)(const struct est *e, const double *extra, const double *phi);
-    /* Optional: fills kind-specific stats (trace_p, refits). */
+    /* Optional: fills kind-specific stats (trace_p, refits, p_resets; health and why when the
+     * kind is unhealthy); est.c then sets health and why of a diverged estimator. */
     void (*stats)(const struct est *e, est_stats_t *s);
 };
 
@@ -48,14 +56,20 @@ struct est {
     uint64_t updates;
     uint64_t guarded;
     double td_last;
-    double v_last;  /* V(x) of the last transition, weights before its update */
-    double td_ms;   /* exponentially weighted mean square of the TD error */
-    double td_wsum; /* its weight sum, for the start-up bias correction */
-    void *k;        /* kind state, owned */
+    double v_last;        /* V(x) of the last transition, weights before its update */
+    double td_ms;         /* exponentially weighted mean square of the TD error */
+    double td_wsum;       /* its weight sum, for the start-up bias correction */
+    double r_max;         /* largest |r| seen (the divergence bound's scale) */
+    int diverged;         /* 0, or the reason: 1 non-finite weights, 2 value beyond the bound */
+    uint64_t diverged_at; /* updates when divergence was detected */
+    void *k;              /* kind state, owned */
 };
 
 extern const struct est_ops est_td_ops, est_tdn_ops, est_tdlambda_ops, est_mc_ops, est_rls_ops,
     est_lstd_ops, est_replay_ops;
+
+/* Returns 1 when o asks the training to stop now (its cancel flag is set). */
+int est_train_cancelled(const est_train_opts_t *o);
 
 /* Dot product of n doubles (BLAS ddot). */
 double est_dot(size_t n, const double *a, const double *b);

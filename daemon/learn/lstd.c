@@ -11,7 +11,9 @@
  * the solve is LU (dgetrf/dgetrs), not Cholesky.  When the LU factor is
  * singular or its reciprocal condition number (dgecon) is below 1e-13, it
  * falls back to a minimum-norm least-squares solve (dgelss, SVD) and counts
- * the step as guarded.  A is stored column-major for LAPACK.
+ * the step as guarded.  A is stored column-major for LAPACK.  A refit inside
+ * est_observe is followed by est.c's divergence check like any update, and
+ * so is the one of est_train.
  *
  * O(n^2) per transition plus O(n^3) per refit; all workspaces (including
  * LAPACK's, sized by a workspace query) are allocated at creation, so no
@@ -165,10 +167,12 @@ static int lstd_observe(struct est *e, size_t src, const double *phi, double r, 
     return 0;
 }
 
-static int lstd_train(struct est *e, unsigned passes, est_progress_fn cb, void *ctx,
-                      est_train_t *rep)
+/*
+ * One solve, which cannot be cut: est_train has read the cancel flag just
+ * before, so a cancelled lstd training takes no step and changes nothing.
+ */
+static int lstd_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 {
-    (void)passes;
     size_t n = e->n;
     double before = sqrt(est_dot(n, e->w, e->w)), diff = 0.0;
     struct lstd *m = e->k;
@@ -177,10 +181,11 @@ static int lstd_train(struct est *e, unsigned passes, est_progress_fn cb, void *
     for (size_t i = 0; i < n; i++)
         diff += (e->w[i] - m->d[i]) * (e->w[i] - m->d[i]);
     rep->passes = 1;
+    rep->steps = 1;
     rep->change = sqrt(diff) / (before > 0 ? before : 1.0);
     rep->converged = 1;
-    if (cb)
-        cb(ctx, 1, 1, rep->change);
+    if (o->progress)
+        o->progress(o->ctx, 1, 1, rep->change);
     return 0;
 }
 
@@ -200,8 +205,9 @@ static void lstd_save(const struct est *e, ser_w *w)
     est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
-static void lstd_load(struct est *e, ser_r *r)
+static void lstd_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct lstd *m = e->k;
     ser_get_f64v(r, m->A, e->n * e->n);
     ser_get_f64v(r, m->b, e->n);

@@ -156,8 +156,9 @@ static void mc_save(const struct est *e, ser_w *w)
     }
 }
 
-static void mc_load(struct est *e, ser_r *r)
+static void mc_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct mc *m = e->k;
     for (size_t s = 0; s < e->nsrc && !r->err; s++) {
         struct ring *q = &m->q[s];

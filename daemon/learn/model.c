@@ -259,7 +259,8 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
         rc = est_observe(m->est[i], (size_t)slot, m->phi, t->r, t->terminal ? NULL : m->phin, g,
                          t->terminal);
         CHECK(rc == 0); /* everything was validated above */
-        /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it. */
+        /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it
+         * (NAN once the estimator has diverged: the diagnostics then leave it out). */
         m->pred[i] = est_last_value(m->est[i]);
     }
     double td = est_last_td(m->est[m->primary]);
@@ -268,12 +269,24 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     return 0;
 }
 
-int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
-                est_train_t *rep)
+int model_train(struct model *m, size_t i, const est_train_opts_t *o, est_train_t *rep)
 {
     if (i >= m->n_est)
         return WORTH_E_BAD_PARAM;
-    return est_train(m->est[i], passes, cb, ctx, rep);
+    return est_train(m->est[i], o, rep);
+}
+
+size_t model_diverged(const struct model *m)
+{
+    size_t k = 0;
+    for (size_t i = 0; i < m->n_est; i++)
+        k += (size_t)est_diverged(m->est[i]);
+    return k;
+}
+
+int model_est_diverged(const struct model *m, size_t i)
+{
+    return i < m->n_est && est_diverged(m->est[i]);
 }
 
 size_t model_dims(const struct model *m)

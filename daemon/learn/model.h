@@ -102,9 +102,11 @@ void model_reset(struct model *m);
 int model_check(const struct model *m, const model_obs_t *t, char *err, size_t errlen);
 /* model_check, then learns from t in every estimator.  Same returns. */
 int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errlen);
-/* Runs est_train on estimator i; returns as est_train, or WORTH_E_BAD_PARAM for a bad i. */
-int model_train(struct model *m, size_t i, unsigned passes, est_progress_fn cb, void *ctx,
-                est_train_t *rep);
+/*
+ * Runs est_train on estimator i with options o (borrowed); returns as est_train
+ * (WORTH_E_CANCELLED, WORTH_E_DIVERGED, ...), or WORTH_E_BAD_PARAM for a bad i.
+ */
+int model_train(struct model *m, size_t i, const est_train_opts_t *o, est_train_t *rep);
 
 /*
  * Replay: a long run of transitions (recovery, rollback with replay) learnt
@@ -162,6 +164,10 @@ size_t model_max_sources(const struct model *m);
 const char *model_est_name(const struct model *m, size_t i);
 /* Returns the index of the estimator named name, or -1. */
 int model_est_find(const struct model *m, const char *name);
+/* Returns how many of the estimators have diverged (see est.h). */
+size_t model_diverged(const struct model *m);
+/* Returns 1 when estimator i has diverged, 0 when not (or i is out of range). */
+int model_est_diverged(const struct model *m, size_t i);
 /* Returns estimator i (borrowed; the model keeps ownership). */
 const struct est *model_est(const struct model *m, size_t i);
 const struct feat *model_feat(const struct model *m);
@@ -175,8 +181,9 @@ size_t model_work_size(const struct model *m);
 /*
  * Evaluates x (len doubles) under every estimator: values[i] for estimator i
  * (n_est doubles, caller's), sd[i] its standard deviation or NAN when it has
- * none (may be NULL).  work: model_work_size doubles.  Returns 0,
- * WORTH_E_BAD_DIMENSION or WORTH_E_BAD_NUMBER.
+ * none (may be NULL); both NAN for an estimator that has diverged.  work:
+ * model_work_size doubles.  Returns 0, WORTH_E_BAD_DIMENSION or
+ * WORTH_E_BAD_NUMBER.
  */
 int model_value(const struct model *m, const double *x, size_t len, double *values, double *sd,
                 double *work);

@@ -10,7 +10,9 @@
  * with alpha_k = alpha / (1 + k/decay) (constant when decay = 0), k the number
  * of steps taken so far.  est_train runs whole passes of ceil(size/batch)
  * steps and stops as soon as a pass changes w by less than tol relative to
- * |w| (converged).
+ * |w| (converged), after max_steps steps when a cap is given, or before the
+ * next step once the caller's cancel flag is set (it may run for tens of
+ * seconds on a large buffer).
  *
  * The buffer (capacity * (2n+1) doubles) and the gradient workspace are
  * allocated at creation; no transition allocates.  O(B n * steps_per_obs)
@@ -23,6 +25,7 @@
 #include "est_impl.h"
 #include "mem.h"
 #include "rng.h"
+#include "worth/errors.h"
 
 struct replay {
     size_t cap, size, next; /* ring of cap entries; size filled; next write position */
@@ -151,36 +154,55 @@ static int replay_observe(struct est *e, size_t src, const double *phi, double r
     return 0;
 }
 
-static int replay_train(struct est *e, unsigned passes, est_progress_fn cb, void *ctx,
-                        est_train_t *rep)
+/*
+ * Passes of ceil(size/batch) steps.  o->cancel is read and o->max_steps
+ * counted before every step, and nothing but the steps changes the saved
+ * state (w0 is a workspace), so a training stopped after k steps by either
+ * leaves the same bits.  A pass cut short reports its change but is not
+ * judged for convergence, and gets no progress call.
+ */
+static int replay_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 {
     struct replay *m = e->k;
     size_t n = e->n;
-    if (m->size == 0) {
-        rep->passes = 0;
-        rep->change = 0.0;
-        rep->converged = 0;
+    if (m->size == 0)
         return 0;
-    }
     size_t per_pass = (m->size + e->p.batch - 1) / e->p.batch;
-    for (unsigned p = 1; p <= passes; p++) {
+    int rc = 0;
+    for (unsigned p = 1; p <= o->passes; p++) {
         memcpy(m->w0, e->w, n * sizeof *m->w0);
-        for (size_t k = 0; k < per_pass; k++)
+        size_t k = 0;
+        for (; k < per_pass; k++) {
+            if (o->max_steps && rep->steps == o->max_steps)
+                break;
+            if (est_train_cancelled(o)) {
+                rc = WORTH_E_CANCELLED;
+                break;
+            }
             step(e, m);
+            rep->steps++;
+        }
+        if (k == 0)
+            break;
         double diff = 0.0, norm = 0.0;
+        int finite = 1;
         for (size_t i = 0; i < n; i++) {
             diff += (e->w[i] - m->w0[i]) * (e->w[i] - m->w0[i]);
             norm += m->w0[i] * m->w0[i];
+            finite &= isfinite(e->w[i]) != 0;
         }
         rep->passes = p;
         rep->change = sqrt(diff) / (norm > 0 ? sqrt(norm) : 1.0);
+        if (k < per_pass)
+            break;
         rep->converged = rep->change < e->p.tol;
-        if (cb)
-            cb(ctx, p, passes, rep->change);
-        if (rep->converged)
+        if (o->progress)
+            o->progress(o->ctx, p, o->passes, rep->change);
+        /* Weights gone non-finite: est_train resets them; more passes would only spin. */
+        if (rep->converged || !finite)
             break;
     }
-    return 0;
+    return rc;
 }
 
 static void replay_stats(const struct est *e, est_stats_t *st)
@@ -206,8 +228,9 @@ static void replay_save(const struct est *e, ser_w *w)
     }
 }
 
-static void replay_load(struct est *e, ser_r *r)
+static void replay_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct replay *m = e->k;
     size_t n = e->n;
     uint64_t size = ser_get_u64(r), next = ser_get_u64(r);

@@ -39,14 +39,38 @@
  *    not finite leaves w and P alone (the trace still advances) and is
  *    counted as guarded.  The pseudo-measurement of the regularised guard has
  *    the same check on 1 + c P_ii.
+ * 3. Re-regularisation.  After each update, if any diagonal entry of P is not
+ *    finite or exceeds delta / DBL_EPSILON (2^52 times the prior's) in
+ *    size, P is set back to delta*I, its prior.  Such a P has wound up
+ *    (guard none with mu < 1 and an unexcited direction: P_ii grows like
+ *    mu^-t, see tests/reference/test_windup.c) or overflowed: the information
+ *    left in that direction is below the rounding error of the prior's, the
+ *    rounding soon turns the sign of such entries to noise (seen there near
+ *    1e178), and then the gains are NaN or point anywhere.  The weights are
+ *    kept (the divergence rule of est.h resets non-finite ones); the reset is
+ *    counted (p_resets) and its update remembered (p_reset_at), both saved.
+ *    Not a rule on the sign: the instrumental P is not positive definite,
+ *    and a diagonal entry <= 0 is a legitimate state of the exact recursion
+ *    while A + I/delta passes through singular (Boyan's chain does it at
+ *    steps 2 to 5); resetting it would break the LSTD identity.  Where such
+ *    a P gives phi'P phi < 0, sd is NAN instead (below).
+ *    For EST_RLS_RESET_WINDOW * n updates from a reset on, the estimator
+ *    reports itself unhealthy ("covariance reset"): until some multiple of n
+ *    transitions have excited every direction again, P and so sd(x) speak
+ *    for the prior delta, not for the data; 10 n is the usual rule of thumb
+ *    for an n-parameter least-squares fit to have seen enough data.  The
+ *    check only reads P, so when no reset happens the bits are those without
+ *    it (the RLS = ridge LSTD identity stays exact).
  *
  * Uncertainty: sd(x) = sqrt(s2 * phi'P phi), s2 the mu-weighted mean of the
- * squared a-priori residual r - d'w (the TD error).  phi'P phi is clamped at 0
- * because the instrumental P need not be positive definite.
+ * squared a-priori residual r - d'w (the TD error).  The instrumental P need
+ * not be positive definite: when phi'P phi is negative or not finite, sd is
+ * NAN (null on the wire), never 0, which would claim full certainty.
  *
  * O(n^2) per transition, workspaces allocated at creation; owning thread only.
  */
 #include <cblas.h>
+#include <float.h>
 #include <math.h>
 #include <string.h>
 
@@ -59,6 +83,8 @@ struct rls {
     double cap;          /* trace cap of the guard */
     double s2_sum, s2_w; /* running residual variance: sum of mu-weighted e^2 and weights */
     uint64_t reg_i;      /* regularised guard: next coordinate to regularise */
+    uint64_t p_resets;   /* re-regularisations of P (guard 3) */
+    uint64_t p_reset_at; /* e->updates of the last one */
     struct est_trace *s; /* nsrc */
 };
 
@@ -90,6 +116,7 @@ static void rls_reset(struct est *e)
     init_p(e, m);
     m->s2_sum = m->s2_w = 0.0;
     m->reg_i = 0;
+    m->p_resets = m->p_reset_at = 0;
     est_traces_reset(m->s, e->nsrc);
 }
 
@@ -250,11 +277,25 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     m->s2_sum = mu * m->s2_sum + err * err;
     m->s2_w = mu * m->s2_w + 1.0;
 
+    /* Guard 3: a wound-up or overflowed diagonal sends P back to its prior. */
+    double ceil_p = e->p.delta / DBL_EPSILON;
+    for (size_t i = 0; i < n; i++) {
+        if (!(fabs(m->P[i * n + i]) <= ceil_p)) {
+            init_p(e, m);
+            m->p_resets++;
+            m->p_reset_at = e->updates + 1; /* est.c counts this update after us */
+            break;
+        }
+    }
+
     est_trace_end(s, n, g, terminal);
     return guarded;
 }
 
-/* sd from a residual variance s2 and a row-major P: sqrt(s2 * max(0, phi'P phi)). */
+/*
+ * sd from a residual variance s2 and a row-major P: sqrt(s2 * phi'P phi), or
+ * NAN when phi'P phi is negative or not finite.
+ */
 static double sd_of(size_t n, double s2, const double *P, const double *phi)
 {
     double q = 0.0;
@@ -263,7 +304,9 @@ static double sd_of(size_t n, double s2, const double *P, const double *phi)
             continue;
         q += phi[i] * est_dot(n, P + i * n, phi);
     }
-    return sqrt(s2 * (q > 0 ? q : 0.0));
+    if (!(q >= 0.0) || !isfinite(q))
+        return NAN;
+    return sqrt(s2 * q);
 }
 
 static double s2_of(const struct rls *m)
@@ -300,6 +343,11 @@ static void rls_stats(const struct est *e, est_stats_t *st)
 {
     const struct rls *m = e->k;
     st->trace_p = trace(m->P, e->n);
+    st->p_resets = m->p_resets;
+    if (m->p_resets && e->updates - m->p_reset_at < (uint64_t)EST_RLS_RESET_WINDOW * e->n) {
+        st->health = EST_HEALTH_UNHEALTHY;
+        st->why = EST_WHY_P_RESET;
+    }
 }
 
 static void rls_save(const struct est *e, ser_w *w)
@@ -309,16 +357,23 @@ static void rls_save(const struct est *e, ser_w *w)
     ser_put_f64(w, m->s2_sum);
     ser_put_f64(w, m->s2_w);
     ser_put_u64(w, m->reg_i);
+    ser_put_u64(w, m->p_resets);
+    ser_put_u64(w, m->p_reset_at);
     est_traces_save(m->s, e->nsrc, e->n, w);
 }
 
-static void rls_load(struct est *e, ser_r *r)
+static void rls_load(struct est *e, ser_r *r, unsigned version)
 {
     struct rls *m = e->k;
     ser_get_f64v(r, m->P, e->n * e->n);
     m->s2_sum = ser_get_f64(r);
     m->s2_w = ser_get_f64(r);
     m->reg_i = ser_get_u64(r);
+    m->p_resets = m->p_reset_at = 0; /* format 1 had no guard 3 */
+    if (version >= 2) {
+        m->p_resets = ser_get_u64(r);
+        m->p_reset_at = ser_get_u64(r);
+    }
     est_traces_load(m->s, e->nsrc, e->n, r);
 }
 

@@ -38,8 +38,9 @@ static void td_save(const struct est *e, ser_w *w)
     (void)w;
 }
 
-static void td_load(struct est *e, ser_r *r)
+static void td_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     (void)e;
     (void)r;
 }

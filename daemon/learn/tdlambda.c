@@ -90,8 +90,9 @@ static void tdl_save(const struct est *e, ser_w *w)
     }
 }
 
-static void tdl_load(struct est *e, ser_r *r)
+static void tdl_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct tdl *t = e->k;
     for (size_t i = 0; i < e->nsrc && !r->err; i++) {
         est_get_opt(r, &t->s[i].z, e->n);

@@ -139,8 +139,9 @@ static void tdn_save(const struct est *e, ser_w *w)
     }
 }
 
-static void tdn_load(struct est *e, ser_r *r)
+static void tdn_load(struct est *e, ser_r *r, unsigned version)
 {
+    (void)version; /* no change between formats 1 and 2 */
     struct tdn *t = e->k;
     for (size_t s = 0; s < e->nsrc && !r->err; s++) {
         struct ring *q = &t->rings[s];

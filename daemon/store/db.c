@@ -305,7 +305,8 @@ static void run_training(struct model *m, const char *est, unsigned passes)
     if (i < 0)
         return; /* cannot happen for a log written by this model's spec */
     est_train_t rep;
-    model_train(m, (size_t)i, passes, NULL, NULL, &rep);
+    est_train_opts_t o = {.passes = passes};
+    model_train(m, (size_t)i, &o, &rep);
 }
 
 int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,

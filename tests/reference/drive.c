@@ -162,7 +162,7 @@ static void print_weights(struct est *e, char sep)
 {
     if (est_params(e)->kind == EST_LSTD) {
         est_train_t rep;
-        int rc = est_train(e, 1, NULL, NULL, &rep);
+        int rc = est_train(e, &(est_train_opts_t){.passes = 1}, &rep);
         if (rc)
             est_failed("est_train", rc, "");
     }

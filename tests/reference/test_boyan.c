@@ -50,7 +50,7 @@ static void lstd_recovers_exact_weights(void **state)
     }
     step(e, 1, 0);
     est_train_t rep;
-    assert_int_equal(est_train(e, 1, NULL, NULL, &rep), 0);
+    assert_int_equal(est_train(e, &(est_train_opts_t){.passes = 1}, &rep), 0);
     const double *w = est_weights(e);
     for (int i = 0; i < BOYAN_N; i++)
         assert_near(w[i], boyan_w[i], 1e-9);
@@ -110,7 +110,7 @@ static void sampled_episodes(void **state)
     for (int k = 0; k < 4; k++) {
         est_train_t rep;
         if (k < 3)
-            assert_int_equal(est_train(e[k], 1, NULL, NULL, &rep), 0);
+            assert_int_equal(est_train(e[k], &(est_train_opts_t){.passes = 1}, &rep), 0);
         const double *w = est_weights(e[k]);
         for (int i = 0; i < BOYAN_N; i++)
             assert_near(w[i], boyan_w[i], 0.5);

@@ -1,9 +1,12 @@
 /*
  * test_diag.c - realised-return checks and the Page-Hinkley drift alarm,
  * against returns worked out by hand, and the alarm on a simulated chain whose
- * reward shifts at a known step (20 seeded runs).
+ * reward shifts at a known step (20 seeded runs), and a diverged estimator (a
+ * NAN prediction) left out of every figure.
  */
 #include "testutil.h"
+
+#include <stdlib.h>
 
 #include "diag.h"
 #include "model.h"
@@ -231,6 +234,126 @@ static void drift_alarm_on_a_reward_shift(void **state)
     assert_true(worst <= MAX_DELAY);
 }
 
+/* Returns d's saved bytes (malloc'd) and their size in *len. */
+static uint8_t *diag_bytes(const struct diag *d, size_t *len)
+{
+    ser_w w = {NULL, 0, 0};
+    diag_save(d, &w);
+    uint8_t *buf = malloc(w.len);
+    assert_non_null(buf);
+    ser_w w2 = {buf, w.len, 0};
+    diag_save(d, &w2);
+    assert_true(ser_fits(&w2));
+    *len = w2.len;
+    return buf;
+}
+
+/*
+ * Three estimators, the third diverged from the first transition (NAN predictions): the
+ * spread and the other two's figures are those of a diagnostics that never had it, bit for
+ * bit; the third is never scored; and no NaN reaches the saved state.
+ */
+static void diverged_estimator_is_left_out(void **state)
+{
+    (void)state;
+    struct diag *three = make(0.9, 20, 3), *two = make(0.9, 20, 2);
+    rng_t g;
+    rng_init(&g, 31);
+    for (int t = 0; t < 500; t++) {
+        double a = rng_unit(&g), b = 3 * rng_unit(&g), r = rng_unit(&g) - 0.5;
+        int term = rng_below(&g, 25) == 0;
+        double p3[3] = {a, b, NAN}, p2[2] = {a, b};
+        diag_observe(three, 0, p3, r, 0.9, term, r - a);
+        diag_observe(two, 0, p2, r, 0.9, term, r - a);
+    }
+    assert_true(diag_spread(three) == diag_spread(two));
+    assert_true(diag_spread(two) > 0);
+    for (size_t k = 0; k < 2; k++) {
+        diag_est_t x, y;
+        diag_est(three, k, &x);
+        diag_est(two, k, &y);
+        assert_true(x.n > 400);
+        assert_memory_equal(&x, &y, sizeof x);
+    }
+    diag_est_t z;
+    diag_est(three, 2, &z);
+    assert_int_equal(z.n, 0);
+    assert_true(z.rms == 0.0 && z.bias == 0.0);
+    diag_drift_t d3, d2;
+    diag_drift(three, &d3);
+    diag_drift(two, &d2);
+    assert_int_equal(d3.alarms, d2.alarms);
+    assert_int_equal(d3.armed, d2.armed);
+    assert_true(d3.statistic == d2.statistic);
+    /* The saved state holds numbers only (the ring keeps 0 for the missing prediction). */
+    size_t len;
+    uint8_t *buf = diag_bytes(three, &len);
+    assert_int_equal(len % 8, 0);
+    for (size_t i = 0; i < len; i += 8) {
+        /* Every field diag_save writes is 8 bytes wide (counters are small: no NaN pattern). */
+        double v;
+        memcpy(&v, buf + i, sizeof v);
+        assert_false(isnan(v));
+    }
+    free(buf);
+    diag_free(three);
+    diag_free(two);
+}
+
+/*
+ * An estimator that diverges mid-run: its realised figures freeze at that transition
+ * (returns completed later are not scored for it, even for states it predicted before),
+ * while the others go on; every estimator out means no spread sample at all.
+ */
+static void realised_figures_freeze_at_divergence(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.5, 0, 2);
+    double pred[2];
+    for (int t = 0; t < 10; t++) { /* one episode of 10, both scored */
+        pred[0] = pred[1] = 1.0;
+        diag_observe(d, 0, pred, 1.0, 0.5, t == 9, 0.0);
+    }
+    for (int t = 0; t < 5; t++) { /* a second, estimator 1 dies in its middle */
+        pred[0] = 1.0;
+        pred[1] = t < 2 ? 1.0 : NAN;
+        diag_observe(d, 0, pred, 1.0, 0.5, t == 4, 0.0);
+    }
+    diag_est_t e0, e1;
+    diag_est(d, 0, &e0);
+    diag_est(d, 1, &e1);
+    assert_int_equal(e0.n, 15);
+    assert_int_equal(e1.n, 10);
+    double spread = diag_spread(d);
+    pred[0] = pred[1] = NAN;
+    for (int t = 0; t < 50; t++)
+        diag_observe(d, 0, pred, 1.0, 0.5, t % 10 == 9, NAN);
+    assert_true(diag_spread(d) == spread);
+    diag_est(d, 0, &e0);
+    assert_int_equal(e0.n, 15);
+    diag_free(d);
+}
+
+/* A NAN TD error (a diverged primary) leaves the drift test alone: it never arms on them. */
+static void nan_td_leaves_the_drift_test_alone(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.9, 0, 1);
+    double pred[1] = {0.0};
+    for (int t = 0; t < 2000; t++)
+        diag_observe(d, 0, pred, 1.0, 0.9, 0, NAN);
+    diag_drift_t dr;
+    diag_drift(d, &dr);
+    assert_false(dr.armed);
+    assert_int_equal(dr.alarms, 0);
+    assert_true(dr.statistic == 0.0);
+    for (int t = 0; t < 600; t++)
+        diag_observe(d, 0, pred, 1.0, 0.9, 0, (t % 2) - 0.5);
+    diag_drift(d, &dr);
+    assert_true(dr.armed);
+    diag_free(d);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -239,6 +362,9 @@ int main(void)
         cmocka_unit_test(window_matches_direct_sums_and_reloads_exactly),
         cmocka_unit_test(bad_parameters),
         cmocka_unit_test(drift_alarm_on_a_reward_shift),
+        cmocka_unit_test(diverged_estimator_is_left_out),
+        cmocka_unit_test(realised_figures_freeze_at_divergence),
+        cmocka_unit_test(nan_td_leaves_the_drift_test_alone),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -3,7 +3,8 @@
  * queries, validation of transitions (exact codes, model bit-identical after a
  * rejection), spec errors, per-step and per-second discounting, terminal
  * transitions, counters, model_value, save/load round trips, corrupted and
- * mismatched states, model_reset, and the footprint checked before building.
+ * mismatched states, model_reset, the footprint checked before building, and
+ * a diverging estimator that must not disturb the others or the diagnostics.
  */
 #include "testutil.h"
 
@@ -1017,6 +1018,145 @@ static void footprint_is_checked_before_building(void **state)
     model_free(m);
 }
 
+/* Returns est_save's bytes of e (malloc'd) and their size in *len. */
+static uint8_t *est_bytes(const struct est *e, size_t *len)
+{
+    est_save(e, NULL, 0, len);
+    uint8_t *buf = malloc(*len);
+    assert_int_equal(est_save(e, buf, *len, len), 0);
+    return buf;
+}
+
+static void assert_same_est(const struct est *a, const struct est *b)
+{
+    size_t la, lb;
+    uint8_t *ba = est_bytes(a, &la), *bb = est_bytes(b, &lb);
+    assert_int_equal(la, lb);
+    assert_memory_equal(ba, bb, la);
+    free(ba);
+    free(bb);
+}
+
+/*
+ * "wild" (td with alpha 1e300) beside the standard td and rls_td: its first update puts its
+ * weights near 1e300, so that the second overflows them and it diverges there.  The other two learn
+ * exactly as they do in a model without it; the diagnostics (spread, realised figures, drift) are
+ * bit for bit those of that model; queries answer NAN for it alone; model_replay gives the same
+ * bits with any number of workers; save -> load keeps the flag.
+ */
+static void diverging_estimator_leaves_the_others_alone(void **state)
+{
+    (void)state;
+    fixture fx, alone;
+    std_fixture(&alone);
+    alone.spec.primary = 0;
+    std_fixture(&fx);
+    est_params_default(EST_TD, &fx.est[0]);
+    fx.est[0].alpha = 1e300;
+    fx.est[1] = alone.est[0];
+    fx.est[2] = alone.est[1];
+    const char *names[3] = {"wild", "td", "rls"};
+    for (int i = 0; i < 3; i++)
+        fx.names[i] = names[i];
+    fx.spec.n_est = 3;
+    fx.spec.primary = 1;
+    struct model *m = build(&fx.spec), *ref = build(&alone.spec);
+    feed(m, 0, 1);
+    assert_int_equal(model_diverged(m), 0);
+    feed(m, 1, 299);
+    feed(ref, 0, 300);
+    assert_int_equal(model_diverged(m), 1);
+    assert_true(model_est_diverged(m, 0));
+    assert_false(model_est_diverged(m, 1));
+    assert_false(model_est_diverged(m, 2));
+    assert_false(model_est_diverged(m, 3));
+    est_stats_t st;
+    est_stats(model_est(m, 0), &st);
+    assert_int_equal(st.health, EST_HEALTH_DIVERGED);
+    assert_string_equal(st.why, EST_WHY_NONFINITE);
+    assert_int_equal(st.diverged_at, 2);
+    assert_int_equal(st.updates, 300);
+
+    /* The others, and the diagnostics, as if it had never been there. */
+    assert_same_est(model_est(m, 1), model_est(ref, 0));
+    assert_same_est(model_est(m, 2), model_est(ref, 1));
+    const struct diag *dm = model_diag(m), *dr = model_diag(ref);
+    assert_true(diag_spread(dm) == diag_spread(dr));
+    assert_true(diag_spread(dr) > 0);
+    for (size_t k = 0; k < 2; k++) {
+        diag_est_t a, b;
+        diag_est(dm, k + 1, &a);
+        diag_est(dr, k, &b);
+        assert_true(b.n > 0);
+        assert_memory_equal(&a, &b, sizeof a);
+    }
+    diag_est_t w;
+    diag_est(dm, 0, &w);
+    assert_int_equal(w.n, 0);
+    diag_drift_t da, db;
+    diag_drift(dm, &da);
+    diag_drift(dr, &db);
+    assert_int_equal(da.alarms, db.alarms);
+    assert_int_equal(da.last_alarm, db.last_alarm);
+    assert_int_equal(da.armed, db.armed);
+    assert_true(da.statistic == db.statistic);
+
+    /* Queries: NAN for it, the others' answers unchanged; live and from a snapshot. */
+    double *work = malloc(model_work_size(m) * sizeof *work);
+    double *snap = malloc(model_snap_size(m) * sizeof *snap);
+    model_snap(m, snap);
+    double x[2] = {0.3, 4.0}, v[3], sd[3], rv[2], rsd[2];
+    assert_int_equal(model_value(ref, x, 2, rv, rsd, work), 0);
+    for (int live = 0; live < 2; live++) {
+        if (live)
+            assert_int_equal(model_value(m, x, 2, v, sd, work), 0);
+        else
+            assert_int_equal(model_snap_value(m, snap, x, 2, v, sd, work), 0);
+        assert_true(isnan(v[0]) && isnan(sd[0]));
+        assert_memory_equal(v + 1, rv, sizeof rv);
+        assert_true(isnan(sd[1]) && isnan(rsd[0]));
+        assert_true(sd[2] == rsd[1] && sd[2] > 0);
+    }
+    for (size_t i = 0; i < model_snap_size(m); i++)
+        assert_true(isfinite(snap[i]));
+
+    /* model_replay: the same bits, on 0 (auto), 1, 2 and 3 workers. */
+    size_t len;
+    uint8_t *buf = saved(m, &len);
+    unsigned threads[] = {0, 1, 2, 3};
+    for (size_t c = 0; c < sizeof threads / sizeof threads[0]; c++) {
+        struct model *r = build(&fx.spec);
+        struct model_replay *rp = model_replay_new(r, threads[c], 0);
+        for (int i = 0; i < 300; i++) {
+            double xi[2] = {sin(0.37 * i), 5.0 + 4.0 * cos(0.21 * i)};
+            double xn[2] = {sin(0.37 * (i + 1)), 5.0 + 4.0 * cos(0.21 * (i + 1))};
+            model_obs_t t = obs(xi, xi[0] - 0.1 * xi[1], xn, i % 17 == 16, i % 3 ? "unit-a" : NULL);
+            if (i % 5 == 0)
+                t.dt_s = 0.5 + (i % 4);
+            char err[256] = "";
+            assert_int_equal(model_replay_push(rp, &t, err, sizeof err), 0);
+        }
+        model_replay_end(rp);
+        assert_state(r, buf, len);
+        model_free(r);
+    }
+
+    /* Save -> load keeps the flag; a reset clears it. */
+    struct model *l = build(&fx.spec);
+    char err[256] = "";
+    assert_int_equal(model_load(l, buf, len, err, sizeof err), 0);
+    assert_int_equal(model_diverged(l), 1);
+    assert_true(model_est_diverged(l, 0));
+    model_reset(l);
+    assert_int_equal(model_diverged(l), 0);
+    free(buf);
+    free(snap);
+    free(work);
+    model_free(l);
+    model_free(m);
+    model_free(ref);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -1034,6 +1174,7 @@ int main(void)
         cmocka_unit_test(replay_equals_observe),
         cmocka_unit_test(corrupted_state_is_refused),
         cmocka_unit_test(mismatched_state_is_refused),
+        cmocka_unit_test(diverging_estimator_leaves_the_others_alone),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

@@ -1,7 +1,9 @@
 /*
  * test_rls.c - RLS-TD specifics: the gain-denominator guard, the uncertainty
- * it reports, and tracking with a forgetting factor.  (The LSTD identity,
- * Boyan's chain and wind-up are in tests/reference/.)
+ * it reports (never 0 from a broken P), tracking with a forgetting factor, and
+ * the covariance reset of a wound-up P with the health it reports.  (The LSTD
+ * identity, Boyan's chain and wind-up are in tests/reference/; a format-1
+ * state loading is in test_est.)
  */
 #include "testutil.h"
 
@@ -124,6 +126,136 @@ static void forgetting_tracks_a_change(void **state)
     est_free(slow);
 }
 
+/*
+ * Guard none, mu = 1/2, and a third feature that is always 0: row and column 3
+ * of P take no part in any update, so P_33 = delta 2^t exactly after t
+ * updates.  It passes the ceiling delta / DBL_EPSILON = delta 2^52 at t = 53,
+ * where P goes back to delta I; again at t = 106.  Health is unhealthy for
+ * 10 n = 30 updates from each reset on.  The sd in the unexcited direction
+ * grows with P but is never 0, and the weights stay finite throughout.
+ */
+static void wound_up_p_is_reset(void **state)
+{
+    (void)state;
+    est_params_t p;
+    est_params_default(EST_RLS_TD, &p);
+    p.forget = 0.5;
+    p.delta = 100.0;
+    p.guard = EST_GUARD_NONE;
+    struct est *e = NULL;
+    char err[200];
+    assert_int_equal(est_new(&p, 3, 1, &e, err, sizeof err), 0);
+    rng_t g;
+    rng_init(&g, 53);
+    double phi[3] = {0}, phin[3] = {0}, e3[3] = {0, 0, 1};
+    for (uint64_t t = 1; t <= 120; t++) {
+        phi[0] = rng_unit(&g);
+        phi[1] = rng_unit(&g);
+        phin[0] = rng_unit(&g);
+        phin[1] = rng_unit(&g);
+        double r = rng_unit(&g) - 0.5;
+        assert_int_equal(est_observe(e, 0, phi, r, phin, 0.9, t % 10 == 0), 0);
+        est_stats_t st;
+        est_stats(e, &st);
+        uint64_t resets = t >= 106 ? 2 : t >= 53 ? 1 : 0;
+        uint64_t since = t >= 106 ? t - 106 : t - 53;
+        int unhealthy = resets > 0 && since < 30;
+        if (st.p_resets != resets || st.health != (unhealthy ? EST_HEALTH_UNHEALTHY : 0))
+            print_error("t %llu: p_resets %llu, health %d\n", (unsigned long long)t,
+                        (unsigned long long)st.p_resets, st.health);
+        assert_int_equal(st.p_resets, resets);
+        assert_int_equal(st.health, unhealthy ? EST_HEALTH_UNHEALTHY : EST_HEALTH_OK);
+        if (unhealthy)
+            assert_string_equal(st.why, EST_WHY_P_RESET);
+        else
+            assert_null(st.why);
+        if (t == 52)
+            assert_near(st.trace_p, 100.0 * ldexp(1.0, 52), 1e3 * ldexp(1.0, 52));
+        if (t == 53 || t == 106)
+            assert_near(st.trace_p, 300.0, 0); /* just reset: delta I */
+        const double *w = est_weights(e);
+        assert_true(isfinite(w[0]) && isfinite(w[1]));
+        assert_true(w[2] == 0.0);
+        double sd = 0;
+        assert_int_equal(est_sd(e, e3, &sd), 0);
+        assert_true(isfinite(sd) && sd > 0);
+        if (t == 60) {
+            /* Saved and loaded, the reset record (and so the health) carries over. */
+            size_t len = 0;
+            est_save(e, NULL, 0, &len);
+            uint8_t *buf = malloc(len);
+            assert_int_equal(est_save(e, buf, len, &len), 0);
+            struct est *c = NULL;
+            assert_int_equal(est_new(&p, 3, 1, &c, err, sizeof err), 0);
+            assert_int_equal(est_load(c, buf, len, err, sizeof err), 0);
+            est_stats_t sc;
+            est_stats(c, &sc);
+            assert_int_equal(sc.p_resets, 1);
+            assert_int_equal(sc.health, EST_HEALTH_UNHEALTHY);
+            free(buf);
+            est_free(c);
+        }
+    }
+    est_free(e);
+
+    /* The regularised guard never needs the reset on the same stream. */
+    p.guard = EST_GUARD_REGULARISE;
+    assert_int_equal(est_new(&p, 3, 1, &e, err, sizeof err), 0);
+    rng_init(&g, 53);
+    for (int t = 1; t <= 120; t++) {
+        phi[0] = rng_unit(&g);
+        phi[1] = rng_unit(&g);
+        phin[0] = rng_unit(&g);
+        phin[1] = rng_unit(&g);
+        assert_int_equal(est_observe(e, 0, phi, rng_unit(&g) - 0.5, phin, 0.9, t % 10 == 0), 0);
+    }
+    est_stats_t st;
+    est_stats(e, &st);
+    assert_int_equal(st.p_resets, 0);
+    assert_int_equal(st.health, EST_HEALTH_OK);
+    est_free(e);
+}
+
+/*
+ * sd is sqrt(s2 phi'P phi) only when phi'P phi is a number >= 0: a P holding NaN or
+ * infinities, or an indefinite one, gives NAN (null on the wire), never 0 ("certain").
+ * Checked on the published snapshot: w (2), the diverged flag, s2, then P row-major.
+ */
+static void sd_from_a_broken_p_is_nan(void **state)
+{
+    (void)state;
+    struct est *e = make(2, 1.0, 100.0);
+    double a[2] = {1, 0}, both[2] = {1, 1};
+    for (int t = 0; t < 20; t++)
+        assert_int_equal(est_observe(e, 0, a, t % 2 ? 1.5 : 0.5, NULL, 0.9, 1), 0);
+    assert_int_equal(est_snap_size(e), 2 + 1 + 1 + 4);
+    double snap[8], bad[8], sd;
+    est_snap(e, snap);
+    assert_true(snap[2] == 0.0 && snap[3] > 0);
+    est_snap_value(e, snap, both, &sd);
+    assert_true(isfinite(sd) && sd > 0);
+
+    const double broken[4][4] = {
+        {NAN, 0, 0, 1},      /* NaN on the diagonal */
+        {1, INFINITY, 0, 1}, /* an infinite entry */
+        {-1, 0, 0, -1},      /* negative definite */
+        {1, -5, 0, 1},       /* positive diagonal, phi'P phi = 1 - 5 + 1 < 0 at [1, 1] */
+    };
+    for (int k = 0; k < 4; k++) {
+        memcpy(bad, snap, sizeof bad);
+        memcpy(bad + 4, broken[k], sizeof broken[k]);
+        double v = est_snap_value(e, bad, both, &sd);
+        if (!isnan(sd))
+            print_error("case %d: sd %g\n", k, sd);
+        assert_true(isnan(sd));
+        assert_true(isfinite(v)); /* the value itself does not depend on P */
+    }
+    /* The indefinite P still answers where phi'P phi >= 0: at [1, 0] it is P_00 = 1. */
+    est_snap_value(e, bad, a, &sd);
+    assert_near(sd, sqrt(snap[3]), 1e-15);
+    est_free(e);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -131,6 +263,8 @@ int main(void)
         cmocka_unit_test(negative_denominator_is_applied),
         cmocka_unit_test(sd_reflects_data),
         cmocka_unit_test(forgetting_tracks_a_change),
+        cmocka_unit_test(wound_up_p_is_reset),
+        cmocka_unit_test(sd_from_a_broken_p_is_nan),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
