@@ -33,6 +33,7 @@
 
 #include <math.h>
 #include <pthread.h>
+#include <stdatomic.h>
 #include <sys/resource.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -51,6 +52,9 @@
  * requests, gets the CPU first, while learning still has every idle cycle.
  */
 #define LEARN_NICE 5
+
+/* What learner_stop adds to cut (rollbacks add one each, far below it). */
+#define CUT_STOP (1 << 24)
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
@@ -86,6 +90,12 @@ struct learner {
     size_t cap, stride;
     uint64_t head, durable, tail;
     int stop, discard, want_space;
+    /*
+     * Nonzero while a training must be cut short (read by est_train before
+     * every mini-batch step): CUT_STOP once the learner is asked to stop, plus
+     * one for each rollback committed and not yet applied.
+     */
+    atomic_int cut;
     uint64_t seq;          /* loop thread: last seq given out */
     uint64_t ckpt_count;   /* under mu: the writer's count of valid checkpoints */
     double ckpt_newest_at; /* under mu */
@@ -98,6 +108,8 @@ struct learner {
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
     uint64_t alarms_seen;    /* drift alarms already reported */
+    size_t diverged_seen;    /* estimators whose divergence has been reported */
+    unsigned diverged_mask;  /* which (bit i: estimator i; MODEL_MAX_EST <= 32) */
     struct model_replay *rp; /* learns observations with the estimators on worker threads */
     uint64_t cb_k;           /* ring index of the next observation observed() reports */
 
@@ -203,8 +215,8 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
     model_save(l->m, NULL, 0, &len);
     uint8_t *blob = mem_alloc(len);
     CHECK(model_save(l->m, blob, len, &len) == 0);
-    writer_store_checkpoint(l->o.writer, l, l->applied_seq, l->model_training, label, blob, len,
-                            conn_id);
+    writer_store_checkpoint(l->o.writer, l, l->applied_seq, l->model_training,
+                            (unsigned)model_diverged(l->m), label, blob, len, conn_id);
     l->since_checkpoint = 0;
 }
 
@@ -285,6 +297,50 @@ static void rollback(struct learner *l, learner_rec_t *r)
 }
 
 /*
+ * Reports each estimator that has diverged since the last look: logged, and
+ * recorded as an event.  Divergence is decided per transition inside the
+ * estimator (est.h), so when and why are the same in every replay; this only
+ * tells the operator.  The seq given is the transition at the update count
+ * the estimator recorded, when no rollback intervened.
+ */
+static void report_divergence(struct learner *l)
+{
+    size_t n = model_diverged(l->m);
+    if (n == l->diverged_seen)
+        return;
+    l->diverged_seen = n;
+    for (size_t i = 0; i < l->n_est; i++) {
+        if (!model_est_diverged(l->m, i) || l->diverged_mask & (1u << i))
+            continue;
+        l->diverged_mask |= 1u << i;
+        est_stats_t st;
+        est_stats(model_est(l->m, i), &st);
+        uint64_t back = st.updates - st.diverged_at;
+        uint64_t seq = l->applied_seq > back ? l->applied_seq - back : 0;
+        say_error("model %s: estimator %s diverged (%s) at its update %llu, about seq %llu; it "
+                  "answers no values and is not checkpointed until the model is rolled back",
+                  l->name, model_est_name(l->m, i), st.why ? st.why : "?",
+                  (unsigned long long)st.diverged_at, (unsigned long long)seq);
+        char detail[256];
+        snprintf(detail, sizeof detail,
+                 "{\"estimator\":\"%s\",\"update\":%llu,\"seq\":%llu,\"reason\":\"%s\"}",
+                 model_est_name(l->m, i), (unsigned long long)st.diverged_at,
+                 (unsigned long long)seq, st.why ? st.why : "");
+        writer_event(l->o.writer, l, "diverged", detail);
+    }
+}
+
+/* The estimators already diverged in a restored state were reported when it happened. */
+static void divergence_seen(struct learner *l)
+{
+    l->diverged_seen = model_diverged(l->m);
+    l->diverged_mask = 0;
+    for (size_t i = 0; i < l->n_est; i++)
+        if (model_est_diverged(l->m, i))
+            l->diverged_mask |= 1u << i;
+}
+
+/*
  * Called in order for each observation once the diagnostics have taken it
  * (model_replay's stage C): the drift alarm is checked per transition, as
  * if each were learnt alone.
@@ -333,37 +389,65 @@ static void learn(struct learner *l, learner_rec_t *r)
     }
 }
 
+/*
+ * Runs a train request.  It is cut short, at a mini-batch step, when the
+ * learner is asked to stop (worthd stopping, the model dropped) or a rollback
+ * waits behind it; what it learnt so far is kept, and the log is told how
+ * many steps it took before anything else is learnt, so a replay runs exactly
+ * those.  A checkpoint follows either way: recovery then restores the result
+ * instead of training again before worthd can listen.
+ */
+static void train(struct learner *l, learner_rec_t *r)
+{
+    est_train_t rep = {.passes = 0};
+    struct train_ctx t = {l, r->conn_id};
+    est_train_opts_t to = {.passes = r->passes, .progress = on_pass, .ctx = &t, .cancel = &l->cut};
+    int rc = model_train(l->m, r->est, &to, &rep);
+    const char *why = NULL;
+    if (rep.cancelled) {
+        why = atomic_load(&l->cut) >= CUT_STOP
+                  ? (l->discard ? "the model was dropped" : "worthd is stopping")
+                  : "a rollback was requested";
+        say_info("model %s: training %llu cut short after %llu mini-batch steps (%u of %u passes): "
+                 "%s",
+                 l->name, (unsigned long long)r->ordinal, (unsigned long long)rep.steps, rep.passes,
+                 r->passes, why);
+        if (!l->discard)
+            writer_cut_training(l->o.writer, l, r->ordinal, rep.steps);
+    }
+    l->model_training = r->ordinal;
+    if (!l->discard)
+        checkpoint(l, NULL, 0);
+    report_divergence(l);
+    publish(l, wall_s()); /* queries after the reply see the trained weights */
+    learner_event_t ev = {.kind = LEV_TRAINED,
+                          .l = l,
+                          .conn_id = r->conn_id,
+                          .rc = rc,
+                          .pass = rep.passes,
+                          .of = r->passes,
+                          .change = rep.change,
+                          .converged = rep.converged,
+                          .seq = rep.steps};
+    if (why)
+        ev.text = mem_strdup(why);
+    l->post(l->ctx, &ev);
+}
+
 static void apply(struct learner *l, learner_rec_t *r)
 {
     switch (r->type) {
     case LREC_OBS:
         break; /* observations go through learn() */
-    case LREC_TRAIN: {
-        est_train_t rep = {.passes = 0};
-        struct train_ctx t = {l, r->conn_id};
-        est_train_opts_t to = {.passes = r->passes, .progress = on_pass, .ctx = &t};
-        int rc = model_train(l->m, r->est, &to, &rep);
-        l->model_training = r->ordinal;
-        /* A checkpoint right after the training: recovery then restores its result instead
-         * of training again before worthd can listen. */
-        checkpoint(l, NULL, 0);
-        publish(l, wall_s()); /* queries after the reply see the trained weights */
-        learner_event_t ev = {.kind = LEV_TRAINED,
-                              .l = l,
-                              .conn_id = r->conn_id,
-                              .rc = rc,
-                              .pass = rep.passes,
-                              .of = r->passes,
-                              .change = rep.change,
-                              .converged = rep.converged};
-        l->post(l->ctx, &ev);
+    case LREC_TRAIN:
+        train(l, r);
         return;
-    }
     case LREC_CHECKPOINT:
         checkpoint(l, r->est ? r->src : NULL, r->conn_id);
         return;
     case LREC_ROLLBACK:
         rollback(l, r);
+        atomic_fetch_sub(&l->cut, 1); /* this rollback no longer cuts a training short */
         l->applied_seq = r->seq;
         l->since_checkpoint = 0;
         mem_free(r->job->blob);
@@ -429,6 +513,7 @@ static void *run(void *arg)
             apply(l, r);
         }
         model_replay_flush(l->rp);
+        report_divergence(l);
         last_update = wall_s();
         dirty = 1;
 
@@ -500,6 +585,7 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     diag_drift_t dr0;
     diag_drift(model_diag(m), &dr0);
     l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
+    divergence_seen(l);
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
     l->rp = model_replay_new(m, 0, LEARN_NICE);
@@ -511,6 +597,8 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
 void learner_stop(struct learner *l, int discard)
 {
     pthread_mutex_lock(&l->mu);
+    if (!l->stop)
+        atomic_fetch_add(&l->cut, CUT_STOP); /* a training running now ends at its next step */
     l->stop = 1;
     l->discard |= discard;
     pthread_cond_signal(&l->cond);
@@ -611,6 +699,8 @@ uint64_t learner_commit(struct learner *l, size_t k)
             }
         } else {
             r->seq = l->seq;
+            if (r->type == LREC_ROLLBACK)
+                atomic_fetch_add(&l->cut, 1); /* cut short a training ahead of it */
         }
     }
     pthread_mutex_lock(&l->mu);
@@ -657,6 +747,11 @@ void learner_set_durable(struct learner *l, uint64_t to)
         l->durable = to;
     pthread_cond_signal(&l->cond);
     pthread_mutex_unlock(&l->mu);
+}
+
+void learner_rollback_gone(struct learner *l)
+{
+    atomic_fetch_sub(&l->cut, 1);
 }
 
 void learner_set_checkpoint_info(struct learner *l, uint64_t count, double newest_at)

@@ -70,7 +70,8 @@ typedef struct learner_rec_t {
 
 enum learner_event_kind {
     LEV_PROGRESS, /* a training pass finished */
-    LEV_TRAINED,  /* a train request finished (rc, passes, change, converged) */
+    LEV_TRAINED,  /* a train request finished (rc, passes, change, converged; seq: the
+                     mini-batch steps; text: why it was cut short, or NULL; owned) */
     LEV_EXITED,   /* the learner thread has ended; join it */
     LEV_REPLY,    /* a reply for conn_id: rc, and text (owned by the event) */
     LEV_DURABLE,  /* the model's records up to seq are committed */
@@ -191,6 +192,8 @@ void learner_pending(struct learner *l, uint64_t *from, uint64_t *to);
 learner_rec_t *learner_rec(struct learner *l, uint64_t k);
 /* Releases records before `to` to the learner thread. */
 void learner_set_durable(struct learner *l, uint64_t to);
+/* A rollback record will never be applied (its commit failed): it no longer cuts a training. */
+void learner_rollback_gone(struct learner *l);
 /* The model's id in the database (set by the writer before any record is written). */
 int64_t learner_db_id(const struct learner *l);
 void learner_set_db_id(struct learner *l, int64_t id);

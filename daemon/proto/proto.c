@@ -1009,12 +1009,11 @@ void proto_line_too_long(struct proto *p, struct conn *c)
                 p->o->max_line);
 }
 
-/* The primary estimator's sd, else the first estimator's that has one. */
-static double pick_sd(const struct model *m, const double *sd)
+/* The headline estimator's sd, else the first estimator's that has one. */
+static double pick_sd(const struct model *m, const double *sd, size_t head)
 {
-    size_t pr = model_primary(m);
-    if (!isnan(sd[pr]))
-        return sd[pr];
+    if (!isnan(sd[head]))
+        return sd[head];
     for (size_t i = 0; i < model_n_est(m); i++)
         if (!isnan(sd[i]))
             return sd[i];
@@ -1034,6 +1033,56 @@ static double state_work(const struct model *m)
         if (est_params(model_est(m, i))->kind == EST_RLS_TD)
             w += f * f;
     return w;
+}
+
+/*
+ * Which estimator answers: the one asked for, else the primary, else (when
+ * that has diverged) the first that has not.  A diverged estimator's values
+ * are NAN in the snapshot, and only then.  Returns its index, or -1 with a
+ * diverged error answered.
+ */
+static long headline(struct req *rq, const struct model *m, long pick, const double *vals)
+{
+    if (pick >= 0) {
+        if (!isnan(vals[pick]))
+            return pick;
+        FAIL(rq, WORTH_E_DIVERGED,
+             "estimator \"%s\" has diverged and answers no values; ask another, or roll the "
+             "model back to a checkpoint taken before it diverged (see events)",
+             model_est_name(m, (size_t)pick));
+        return -1;
+    }
+    size_t pr = model_primary(m);
+    if (!isnan(vals[pr]))
+        return (long)pr;
+    for (size_t i = 0; i < model_n_est(m); i++)
+        if (!isnan(vals[i]))
+            return (long)i;
+    FAIL(rq, WORTH_E_DIVERGED,
+         "every estimator of the model has diverged; roll it back to a checkpoint taken before "
+         "(see events)");
+    return -1;
+}
+
+/* When estimators have diverged: ,"diverged":[names], and the headline's name if not the primary.
+ */
+static void out_diverged(struct out *o, const struct model *m, const double *vals, long head)
+{
+    int any = 0;
+    for (size_t i = 0; i < model_n_est(m); i++) {
+        if (!isnan(vals[i]))
+            continue;
+        out_s(o, any ? "," : ",\"diverged\":[");
+        out_str(o, model_est_name(m, i));
+        any = 1;
+    }
+    if (!any)
+        return;
+    out_s(o, "]");
+    if ((size_t)head != model_primary(m)) {
+        out_s(o, ",\"answered_by\":");
+        out_str(o, model_est_name(m, (size_t)head));
+    }
 }
 
 static int do_value(struct req *rq)
@@ -1065,6 +1114,9 @@ static int do_value(struct req *rq)
         if (!get_vector(x, d, xv, "x", &code, p->err, sizeof p->err, ""))
             return fail_done(rq, code, "%s", p->err);
         learner_value(l, xv, d, p->vals, p->sds, &seq);
+        long head = headline(rq, m, pick, p->vals);
+        if (head < 0)
+            return PROTO_DONE;
         out_begin(o, 1, rq->id);
         out_s(o, ",\"value\":");
         if (pick >= 0) {
@@ -1072,7 +1124,7 @@ static int do_value(struct req *rq)
             out_s(o, ",\"sd\":");
             out_num(o, p->sds[pick]);
         } else {
-            out_num(o, p->vals[model_primary(m)]);
+            out_num(o, p->vals[head]);
             out_s(o, ",\"estimators\":{");
             for (size_t i = 0; i < ne; i++) {
                 if (i)
@@ -1082,7 +1134,7 @@ static int do_value(struct req *rq)
                 out_num(o, p->vals[i]);
             }
             out_s(o, "},\"sd\":");
-            out_num(o, pick_sd(m, p->sds));
+            out_num(o, pick_sd(m, p->sds, (size_t)head));
             /* Agreement: how far apart the estimators are at this state. */
             double lo = INFINITY, hi = -INFINITY;
             for (size_t i = 0; i < ne; i++) {
@@ -1091,6 +1143,7 @@ static int do_value(struct req *rq)
             }
             out_s(o, ",\"spread\":");
             out_num(o, hi - lo);
+            out_diverged(o, m, p->vals, head);
         }
         out_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
         out_end(o, rq->c);
@@ -1123,20 +1176,31 @@ static int do_value(struct req *rq)
             return PROTO_DONE;
         }
     }
+    /* Every state from one snapshot, as protocol.md promises: one seq for the whole answer.
+     * The first state tells which estimators have diverged in it. */
+    seq = learner_read_begin(l);
+    get_vector(xs->child, d, xv, "x", &code, p->err, sizeof p->err, "");
+    learner_read_value(l, xv, d, p->vals, p->sds);
+    long head = headline(rq, m, pick, p->vals);
+    if (head < 0) {
+        learner_read_end(l);
+        return PROTO_DONE;
+    }
     out_begin(o, 1, rq->id);
     out_s(o, ",\"values\":[");
     i = 0;
-    /* Every state from one snapshot, as protocol.md promises: one seq for the whole answer. */
-    seq = learner_read_begin(l);
     for (const cJSON *e = xs->child; e; e = e->next, i++) {
         get_vector(e, d, xv, "x", &code, p->err, sizeof p->err, "");
         learner_read_value(l, xv, d, p->vals, p->sds);
         if (i)
             out_s(o, ",");
-        out_num(o, p->vals[pick >= 0 ? (size_t)pick : model_primary(m)]);
+        out_num(o, p->vals[head]);
     }
     learner_read_end(l);
-    out_fmt(o, "],\"seq\":%llu", (unsigned long long)seq);
+    out_s(o, "]");
+    if (pick < 0)
+        out_diverged(o, m, p->vals, head);
+    out_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
     out_end(o, rq->c);
     return PROTO_DONE;
 }
@@ -1211,6 +1275,15 @@ static int do_stats(struct req *rq)
         out_str(o, est_kind_name(kind));
         out_fmt(o, ",\"updates\":%llu,\"guarded\":%llu", (unsigned long long)e->updates,
                 (unsigned long long)e->guarded);
+        static const char *const health[] = {"ok", "unhealthy", "diverged"};
+        out_s(o, ",\"health\":");
+        out_str(o, e->health >= 0 && e->health <= 2 ? health[e->health] : "?");
+        if (e->why) {
+            out_s(o, ",\"why\":");
+            out_str(o, e->why);
+        }
+        if (e->health == EST_HEALTH_DIVERGED)
+            out_fmt(o, ",\"diverged_at\":%llu", (unsigned long long)e->diverged_at);
         out_s(o, ",\"td_rms\":");
         out_num(o, e->td_rms);
         out_s(o, ",\"td_last\":");
@@ -1218,6 +1291,7 @@ static int do_stats(struct req *rq)
         if (kind == EST_RLS_TD) {
             out_s(o, ",\"trace_p\":");
             out_num(o, e->trace_p);
+            out_fmt(o, ",\"p_resets\":%llu", (unsigned long long)e->p_resets);
         }
         if (kind == EST_LSTD)
             out_fmt(o, ",\"refits\":%llu", (unsigned long long)e->refits);
@@ -1686,7 +1760,7 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
     }
     struct conn *c = server_conn(s, ev->conn_id);
     if (!c) {
-        if (ev->kind == LEV_REPLY)
+        if (ev->kind == LEV_REPLY || ev->kind == LEV_TRAINED)
             mem_free(ev->text);
         return; /* the client left; the work was done all the same */
     }
@@ -1725,7 +1799,16 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
         out_end(o, c);
         return;
     }
-    if (ev->rc) {
+    if (ev->rc == WORTH_E_CANCELLED) {
+        reply_error(p, c, id, ev->rc, -1,
+                    "training cut short after %u of %u passes (%llu mini-batch steps): %s; what "
+                    "it learnt so far is kept",
+                    ev->pass, ev->of, (unsigned long long)ev->seq, ev->text ? ev->text : "");
+    } else if (ev->rc == WORTH_E_DIVERGED) {
+        reply_error(p, c, id, ev->rc, -1,
+                    "the estimator has diverged (see stats and events); roll the model back to "
+                    "a checkpoint taken before it did");
+    } else if (ev->rc) {
         reply_error(p, c, id, ev->rc, -1, "training did not run: %s", worth_strerror(ev->rc));
     } else {
         out_begin(o, 1, id);
@@ -1734,6 +1817,7 @@ void proto_event(struct proto *p, struct server *s, const learner_event_t *ev)
         out_s(o, ev->converged ? ",\"converged\":true" : ",\"converged\":false");
         out_end(o, c);
     }
+    mem_free(ev->text);
     conn_resume(c);
 }
 
@@ -1928,11 +2012,14 @@ char *proto_metrics_text(struct proto *p, size_t *len)
             out_s(&o, "\n");
         }
     }
-    for (int k = 0; k < 2; k++) {
-        const char *name = k ? "worth_realised_return_rms" : "worth_td_error_rms";
+    for (int k = 0; k < 3; k++) {
+        const char *name = k == 2   ? "worth_estimator_diverged"
+                           : k == 1 ? "worth_realised_return_rms"
+                                    : "worth_td_error_rms";
         metric_head(&o, name, "gauge",
-                    k ? "Realised-return RMS error over the sliding window."
-                      : "Running RMS TD error.");
+                    k == 2   ? "1 when the estimator has diverged and answers no values, else 0."
+                    : k == 1 ? "Realised-return RMS error over the sliding window."
+                             : "Running RMS TD error.");
         for (size_t i = 0; i < p->n; i++) {
             const struct model *m = learner_model(p->models[i]->l);
             for (size_t e = 0; e < model_n_est(m); e++) {
@@ -1942,7 +2029,9 @@ char *proto_metrics_text(struct proto *p, size_t *len)
                 out_s(&o, ",estimator=");
                 out_label(&o, model_est_name(m, e));
                 out_s(&o, "} ");
-                out_val(&o, k ? st[i].realised[e].rms_window : st[i].est[e].td_rms);
+                out_val(&o, k == 2   ? (st[i].est[e].health == EST_HEALTH_DIVERGED ? 1.0 : 0.0)
+                            : k == 1 ? st[i].realised[e].rms_window
+                                     : st[i].est[e].td_rms);
                 out_s(&o, "\n");
             }
         }

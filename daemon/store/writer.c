@@ -55,7 +55,8 @@ enum job_kind {
     J_BACKUP,
     J_EVENT,
     J_DRIFT,
-    J_EVENTS
+    J_EVENTS,
+    J_CUT
 };
 
 struct job {
@@ -69,7 +70,16 @@ struct job {
     uint64_t a, b, c; /* J_DRIFT: onset seq, step, onset step */
     double since;     /* J_EVENTS */
     int64_t id;
+    unsigned diverged;     /* J_CHECKPOINT */
+    struct job_done *done; /* set: the poster waits for the job (J_CUT) */
     struct job *next;
+};
+
+/* A poster waiting for its job: signalled once the job has run, whatever came of it. */
+struct job_done {
+    pthread_mutex_t mu;
+    pthread_cond_t cond;
+    int done;
 };
 
 struct writer {
@@ -532,7 +542,11 @@ static void job_drop(struct writer *w, struct job *j)
     w->post(w->ctx, &ev);
 }
 
-/* Deletes unlabelled checkpoints beyond the newest `keep` valid ones; never the newest. */
+/*
+ * Deletes unlabelled checkpoints beyond the newest `keep` valid ones; never the
+ * newest, nor the newest in which no estimator had diverged (a rollback to it
+ * is how a diverged estimator comes back).
+ */
 static int retain(struct writer *w, int64_t model)
 {
     sqlite3_stmt *st = NULL;
@@ -542,7 +556,9 @@ static int retain(struct writer *w, int64_t model)
                  " (SELECT id FROM checkpoints WHERE model = ?1 AND label IS NULL AND invalid = 0"
                  "  ORDER BY seq DESC, id DESC LIMIT ?2)"
                  " AND id NOT IN (SELECT id FROM checkpoints WHERE model = ?1 AND invalid = 0"
-                 "  ORDER BY seq DESC, id DESC LIMIT 1)",
+                 "  ORDER BY seq DESC, id DESC LIMIT 1)"
+                 " AND id NOT IN (SELECT id FROM checkpoints WHERE model = ?1 AND invalid = 0"
+                 "  AND diverged = 0 ORDER BY seq DESC, id DESC LIMIT 1)",
                  -1, &st, NULL) == SQLITE_OK;
     if (ok) {
         sqlite3_bind_int64(st, 1, model);
@@ -568,7 +584,7 @@ static void job_checkpoint(struct writer *w, struct job *j)
     if (ok)
         ok = sqlite3_prepare_v2(w->db,
                                 "INSERT INTO checkpoints(model, seq, training, label, created_at,"
-                                " size, state) VALUES(?,?,?,?,?,?,?)",
+                                " size, state, diverged) VALUES(?,?,?,?,?,?,?,?)",
                                 -1, &st, NULL) == SQLITE_OK;
     if (ok) {
         sqlite3_bind_int64(st, 1, model);
@@ -581,14 +597,19 @@ static void job_checkpoint(struct writer *w, struct job *j)
         sqlite3_bind_double(st, 5, db_now());
         sqlite3_bind_int64(st, 6, (sqlite3_int64)j->len);
         sqlite3_bind_blob(st, 7, j->blob, (int)j->len, SQLITE_STATIC);
+        sqlite3_bind_int(st, 8, (int)j->diverged);
         ok = sqlite3_step(st) == SQLITE_DONE;
         id = sqlite3_last_insert_rowid(w->db);
     }
     sqlite3_finalize(st);
     if (ok) {
         char detail[256];
-        snprintf(detail, sizeof detail, "{\"checkpoint\":%lld,\"seq\":%llu,\"automatic\":%s}",
-                 (long long)id, (unsigned long long)j->seq, j->conn_id ? "false" : "true");
+        int n =
+            snprintf(detail, sizeof detail, "{\"checkpoint\":%lld,\"seq\":%llu,\"automatic\":%s",
+                     (long long)id, (unsigned long long)j->seq, j->conn_id ? "false" : "true");
+        if (j->diverged) /* estimators stored reset (est.h): said only when there are some */
+            n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"diverged\":%u", j->diverged);
+        snprintf(detail + n, sizeof detail - (size_t)n, "}");
         ok = insert_event(w, j->l, "checkpoint", detail) > 0 && retain(w, model) == 0 &&
              exec(w, "COMMIT") == 0;
     }
@@ -704,8 +725,9 @@ static void job_drift(struct writer *w, struct job *j)
         sqlite3_stmt *st = NULL;
         if (sqlite3_prepare_v2(
                 w->db,
-                "INSERT INTO checkpoints(model, seq, training, label, created_at, size, state)"
-                " SELECT model, seq, training, 'pre-drift', ?1, size, state FROM checkpoints"
+                "INSERT INTO checkpoints(model, seq, training, label, created_at, size, state,"
+                " diverged) SELECT model, seq, training, 'pre-drift', ?1, size, state, diverged"
+                " FROM checkpoints"
                 " WHERE model = ?2 AND invalid = 0 AND seq < ?3 ORDER BY seq DESC, id DESC LIMIT 1",
                 -1, &st, NULL) == SQLITE_OK) {
             sqlite3_bind_double(st, 1, db_now());
@@ -777,6 +799,33 @@ static void job_events(struct writer *w, struct job *j)
     w->post(w->ctx, &ev);
 }
 
+static void job_cut(struct writer *w, struct job *j)
+{
+    char why[256];
+    sqlite3_stmt *st = NULL;
+    int ok = may_write(w, FILEGUARD_ALL, why, sizeof why) == 0;
+    if (!ok) {
+        say_error("model %s: cannot record that training %llu was cut short: %s; a replay of "
+                  "the log would run it whole",
+                  learner_name(j->l), (unsigned long long)j->seq, why);
+        return;
+    }
+    if (sqlite3_prepare_v2(w->db, "UPDATE trainings SET steps = ? WHERE model = ? AND ordinal = ?",
+                           -1, &st, NULL) == SQLITE_OK) {
+        sqlite3_bind_int64(st, 1, (sqlite3_int64)j->training);
+        sqlite3_bind_int64(st, 2, learner_db_id(j->l));
+        sqlite3_bind_int64(st, 3, (sqlite3_int64)j->seq);
+        ok = sqlite3_step(st) == SQLITE_DONE;
+    } else {
+        ok = 0;
+    }
+    sqlite3_finalize(st);
+    if (!ok)
+        say_error("model %s: cannot record that training %llu was cut short: %s; a replay of "
+                  "the log would run it whole",
+                  learner_name(j->l), (unsigned long long)j->seq, sqlite3_errmsg(w->db));
+}
+
 static void run_job(struct writer *w, struct job *j)
 {
     char why[256];
@@ -807,6 +856,9 @@ static void run_job(struct writer *w, struct job *j)
         break;
     case J_EVENTS:
         job_events(w, j);
+        break;
+    case J_CUT:
+        job_cut(w, j);
         break;
     case J_CREATE:
         job_create(w, j);
@@ -1001,6 +1053,7 @@ static void fail_records(struct writer *w, struct learner *l, uint64_t from, uin
         } else if (r->type == LREC_CHECKPOINT || r->type == LREC_ROLLBACK) {
             post_reply(w, l, r->conn_id, code, "the log could not be written: %s", why);
             if (r->type == LREC_ROLLBACK) {
+                learner_rollback_gone(l);
                 mem_free(r->job->blob);
                 mem_free(r->job);
                 r->job = NULL;
@@ -1131,6 +1184,12 @@ static int write_group(struct writer *w)
 
 static void free_job(struct job *j)
 {
+    if (j->done) {
+        pthread_mutex_lock(&j->done->mu);
+        j->done->done = 1;
+        pthread_cond_signal(&j->done->cond);
+        pthread_mutex_unlock(&j->done->mu);
+    }
     mem_free(j->s1);
     mem_free(j->s2);
     mem_free(j->blob);
@@ -1271,15 +1330,35 @@ void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id)
 }
 
 void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,
-                             const char *label, uint8_t *blob, size_t len, uint64_t conn_id)
+                             unsigned diverged, const char *label, uint8_t *blob, size_t len,
+                             uint64_t conn_id)
 {
     struct job *j = job(J_CHECKPOINT, l, conn_id);
     j->seq = seq;
     j->training = training;
+    j->diverged = diverged;
     j->s1 = label ? mem_strdup(label) : NULL;
     j->blob = blob;
     j->len = len;
     push(w, j);
+}
+
+void writer_cut_training(struct writer *w, struct learner *l, uint64_t ordinal, uint64_t steps)
+{
+    struct job_done done = {.done = 0};
+    pthread_mutex_init(&done.mu, NULL);
+    pthread_cond_init(&done.cond, NULL);
+    struct job *j = job(J_CUT, l, 0);
+    j->seq = ordinal;
+    j->training = steps;
+    j->done = &done;
+    push(w, j);
+    pthread_mutex_lock(&done.mu);
+    while (!done.done)
+        pthread_cond_wait(&done.cond, &done.mu);
+    pthread_mutex_unlock(&done.mu);
+    pthread_mutex_destroy(&done.mu);
+    pthread_cond_destroy(&done.cond);
 }
 
 void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id)

@@ -61,10 +61,20 @@ void writer_create_model(struct writer *w, struct learner *l, const char *name, 
 void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id);
 /*
  * Stores a checkpoint of l (blob transferred, from mem_alloc) at seq and
- * training; label may be NULL.  Replies to conn_id when it is not 0.
+ * training, in which `diverged` estimators had diverged; label may be NULL.
+ * Replies to conn_id when it is not 0.  Retention never deletes the newest
+ * valid checkpoint in which none had.
  */
 void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,
-                             const char *label, uint8_t *blob, size_t len, uint64_t conn_id);
+                             unsigned diverged, const char *label, uint8_t *blob, size_t len,
+                             uint64_t conn_id);
+/*
+ * Records in the log that training `ordinal` of l was cut short after
+ * `steps` mini-batch steps, so that a replay runs exactly those; returns once
+ * that is committed (or has failed, logged).  For the learner thread, which
+ * learns nothing more until then.
+ */
+void writer_cut_training(struct writer *w, struct learner *l, uint64_t ordinal, uint64_t steps);
 /* Replies to conn_id with the model's valid checkpoints, newest first. */
 void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id);
 /*
