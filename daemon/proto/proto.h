@@ -67,6 +67,13 @@ struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_pos
                         learner_wake_fn wake, void *ctx);
 /* Registers a model recovered at start-up (l transferred). */
 void proto_add_recovered(struct proto *p, struct learner *l);
+/*
+ * Registers a model quarantined at start-up (recover.c): database id, name and reason
+ * (borrowed, copied), the seq of the offending transition (0: none).  Requests naming it
+ * answer damaged; model.list and model.get show it, model.drop drops it.
+ */
+void proto_add_damaged(struct proto *p, int64_t id, const char *name, uint64_t seq,
+                       const char *reason);
 /* Fills *o with the learner options for a model of this daemon. */
 void proto_learner_opts(const struct proto *p, learner_opts_t *o);
 /* Stops every learner after it has applied its queue, joins them and logs their counts. */
