@@ -274,7 +274,7 @@ static void rollback(struct learner *l, learner_rec_t *r)
         db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
         int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err) ? WORTH_E_STORAGE_ERROR : 0;
         if (rc == 0)
-            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, err,
+            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, NULL, err,
                            sizeof err);
         sqlite3_close(ro);
         if (rc) {

@@ -6,7 +6,15 @@
  * (db_restore_newest skips a damaged one), replay the log after it
  * (db_replay), and start its learner with the log's last seq, so new
  * transitions continue the numbering.  Progress is logged per model.  It
- * must never serve a model it could not rebuild: any failure stops start-up.
+ * must never serve a model it could not rebuild.
+ *
+ * A failure that is the model's own (its stored spec does not parse or build,
+ * a row of its log or its trainings is damaged, SQLITE_CORRUPT while reading
+ * its rows) quarantines that model alone: no learner is started, the protocol
+ * registry answers every request naming it with `damaged` (proto_add_damaged),
+ * a `quarantined` event is recorded and the log says what to do; every other
+ * model starts normally.  A failure that is not the model's own (the models
+ * table cannot be read, an I/O error) stops start-up.
  */
 #include "recover.h"
 
@@ -42,49 +50,142 @@ static int max_of(sqlite3 *db, const char *sql, int64_t model, uint64_t *out)
     return rc == SQLITE_ROW ? 0 : -1;
 }
 
+/* What became of one model (recover_one). */
+enum { R_STOP = -1, R_SERVED, R_QUARANTINED, R_READ_DAMAGED, R_CORRUPT };
+
+/*
+ * Models whose pages SQLite reported corrupt.  That is a model's own damage only when it is
+ * confined: they are quarantined once recovery has read some other model's rows without
+ * error, and start-up stops (bad_database) when it read none, for then nothing shows the
+ * damage is not the whole file's.
+ */
+struct suspect {
+    int64_t id;
+    char *name, *why; /* owned */
+};
+
+/* Remedies quarantine() names, by where the damage is. */
+#define FIX_SPEC     "correct its spec in the models table"
+#define FIX_TRAINING "correct or delete the damaged row of its trainings"
+#define FIX_PAGES                                                                                  \
+    "restore the database from a backup (or salvage it with the sqlite3 shell's .recover)"
+
+/*
+ * Quarantines the model with database id `id` (name may be NULL when its row has none): it
+ * is registered as damaged, the event recorded and an error logged that says what to do:
+ * fix, or for seq (the offending transition; 0 when no single row is to blame) the row.
+ */
+static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, const char *why,
+                       const char *fix, struct proto *p, struct writer *w)
+{
+    const char *file = sqlite3_db_filename(db, "main");
+    char row[128];
+    if (seq)
+        snprintf(row, sizeof row,
+                 "correct or delete the damaged row (transitions: model = %lld, seq = %llu)",
+                 (long long)id, (unsigned long long)seq);
+    if (name) {
+        say_error(
+            "model %s is quarantined and not served (requests naming it answer damaged): "
+            "%s.  The other models are not affected.  To repair it, stop worthd, keep a copy of "
+            "%s, %s, and start worthd again; or give it up: model.drop forgets it, and a "
+            "new model of that name may then be created",
+            name, why, file ? file : "the database", seq ? row : fix);
+        proto_add_damaged(p, id, name, seq, why);
+    } else {
+        say_error("the model with id %lld in %s has no name and is not served: %s.  Give its "
+                  "row in the models table a name and start worthd again, or set its dropped_at",
+                  (long long)id, file ? file : "the database", why);
+    }
+    cJSON *d = cJSON_CreateObject();
+    char *detail = NULL;
+    if (d && cJSON_AddNumberToObject(d, "seq", (double)seq) &&
+        cJSON_AddStringToObject(d, "reason", why))
+        detail = cJSON_PrintUnformatted(d);
+    writer_model_event(w, id, "quarantined", detail ? detail : "{}");
+    cJSON_free(detail);
+    cJSON_Delete(d);
+    arena_reset();
+}
+
+/*
+ * Recovers one model.  Returns R_SERVED; R_QUARANTINED (a spec that does not build) or
+ * R_READ_DAMAGED (a damaged row met after the rows before it were read); R_CORRUPT with the
+ * reason in err (nothing done yet: a suspect); or R_STOP with err when start-up must stop.
+ */
 static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *spec_text,
                        struct proto *p, struct writer *w, learner_post_fn post,
                        learner_wake_fn wake, void *ctx, char *err, size_t errlen)
 {
     double t0 = mono_s();
-    cJSON *root = cJSON_Parse(spec_text);
-    spec_t *s = NULL;
     char why[512];
+    if (!name) {
+        quarantine(db, id, NULL, 0, "its name is not text", NULL, p, w);
+        return R_QUARANTINED;
+    }
+    cJSON *root = spec_text ? cJSON_Parse(spec_text) : NULL;
+    spec_t *s = NULL;
     int rc = root ? spec_parse(root, &s, why, sizeof why) : -1;
     cJSON_Delete(root);
     arena_reset();
     if (rc) {
-        snprintf(err, errlen, "model %s: its stored spec does not parse: %s", name,
-                 root ? why : "not JSON");
-        return -1;
+        char what[600];
+        snprintf(what, sizeof what, "its stored spec does not parse: %s",
+                 !spec_text ? "it is not text"
+                 : root     ? why
+                            : "not JSON");
+        quarantine(db, id, name, 0, what, FIX_SPEC, p, w);
+        return R_QUARANTINED;
+    }
+    if (strcmp(s->name, name) != 0) {
+        snprintf(why, sizeof why, "its stored spec names another model (\"%s\")", s->name);
+        spec_free(s);
+        quarantine(db, id, name, 0, why, FIX_SPEC, p, w);
+        return R_QUARANTINED;
     }
     struct model *m = NULL;
     if (model_new(&s->m, &m, why, sizeof why) != 0) {
-        snprintf(err, errlen, "model %s: cannot rebuild it: %s", name, why);
+        char what[600];
+        snprintf(what, sizeof what, "its stored spec does not build: %s", why);
         spec_free(s);
-        return -1;
+        quarantine(db, id, name, 0, what, FIX_SPEC, p, w);
+        return R_QUARANTINED;
     }
     db_start_t start;
-    uint64_t replayed = 0, training = 0, last_seq = 0, cp_seq = 0, last_training = 0;
+    uint64_t replayed = 0, training = 0, last_seq = 0, cp_seq = 0, last_training = 0, bad = 0;
     /*
      * The next seq continues after the log's last row and after every checkpoint:
      * transitions refused for a failed commit use up seqs that only a checkpoint
      * taken afterwards remembers, and a new transition must never sort below it.
+     * SQLITE_CORRUPT while reading the model's rows (bad_database) makes it a
+     * suspect (struct suspect); a damaged row quarantines it; any other failure
+     * is the database's.
      */
-    if (db_restore_newest(db, id, name, m, &start, why, sizeof why) != 0 ||
-        db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, why, sizeof why) != 0 ||
-        max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
-               &last_seq) != 0 ||
-        max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id, &cp_seq) !=
-            0 ||
-        max_of(db, "SELECT COALESCE(MAX(ordinal), 0) FROM trainings WHERE model = ?", id,
-               &last_training) != 0) {
-        int code = db_error_code(db);
-        snprintf(err, errlen, "%smodel %s: recovery failed: %s",
-                 code == WORTH_E_BAD_DATABASE ? "bad_database: " : "", name, why);
+    rc = db_restore_newest(db, id, name, m, &start, why, sizeof why) ? db_error_code(db) : 0;
+    if (rc == 0)
+        rc = db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, &bad, why, sizeof why);
+    if (rc == 0 && (max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
+                           &last_seq) != 0 ||
+                    max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id,
+                           &cp_seq) != 0 ||
+                    max_of(db, "SELECT COALESCE(MAX(ordinal), 0) FROM trainings WHERE model = ?",
+                           id, &last_training) != 0)) {
+        snprintf(why, sizeof why, "%s", sqlite3_errmsg(db));
+        rc = db_error_code(db);
+    }
+    if (rc) {
         model_free(m);
         spec_free(s);
-        return -1;
+        if (rc == WORTH_E_DAMAGED) {
+            quarantine(db, id, name, bad, why, FIX_TRAINING, p, w);
+            return R_READ_DAMAGED;
+        }
+        if (rc == WORTH_E_BAD_DATABASE) {
+            snprintf(err, errlen, "%s", why);
+            return R_CORRUPT;
+        }
+        snprintf(err, errlen, "model %s: recovery failed: %s", name, why);
+        return R_STOP;
     }
     if (cp_seq > last_seq)
         last_seq = cp_seq;
@@ -117,7 +218,7 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
              (unsigned long long)last_seq);
     writer_event(w, l, "recovered", detail);
     spec_free(s);
-    return 0;
+    return R_SERVED;
 }
 
 int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
@@ -131,15 +232,43 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
         snprintf(err, errlen, "%s", sqlite3_errmsg(db));
         return -1;
     }
-    int rc, out = 0;
-    while ((rc = sqlite3_step(st)) == SQLITE_ROW && out == 0)
-        out = recover_one(db, sqlite3_column_int64(st, 0), (const char *)sqlite3_column_text(st, 1),
-                          (const char *)sqlite3_column_text(st, 2), p, w, post, wake, ctx, err,
-                          errlen);
-    if (out == 0 && rc != SQLITE_DONE) {
+    struct suspect *sus = NULL;
+    size_t n_sus = 0, read = 0; /* read: models whose rows were read without SQLITE_CORRUPT */
+    int rc, out = R_SERVED;
+    while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
+        /* A name or spec that is not text is damage of that model's row, never a NULL here. */
+        int named = sqlite3_column_type(st, 1) == SQLITE_TEXT;
+        int specd = sqlite3_column_type(st, 2) == SQLITE_TEXT;
+        int64_t id = sqlite3_column_int64(st, 0);
+        const char *name = named ? (const char *)sqlite3_column_text(st, 1) : NULL;
+        out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL, p,
+                          w, post, wake, ctx, err, errlen);
+        if (out == R_STOP)
+            break;
+        read += out == R_SERVED || out == R_READ_DAMAGED;
+        if (out == R_CORRUPT) {
+            sus = mem_realloc(sus, (n_sus + 1) * sizeof *sus);
+            sus[n_sus++] = (struct suspect){id, mem_strdup(name), mem_strdup(err)};
+        }
+    }
+    if (out != R_STOP && rc != SQLITE_DONE) {
         snprintf(err, errlen, "%s", sqlite3_errmsg(db));
-        out = -1;
+        out = R_STOP;
     }
     sqlite3_finalize(st);
-    return out;
+    if (out != R_STOP && n_sus && !read) {
+        snprintf(err, errlen,
+                 "bad_database: model %s: %s; no model's rows could be read, so the damage is "
+                 "not one model's own: restore the database from a backup",
+                 sus[0].name, sus[0].why);
+        out = R_STOP;
+    }
+    for (size_t i = 0; i < n_sus; i++) {
+        if (out != R_STOP)
+            quarantine(db, sus[i].id, sus[i].name, 0, sus[i].why, FIX_PAGES, p, w);
+        mem_free(sus[i].name);
+        mem_free(sus[i].why);
+    }
+    mem_free(sus);
+    return out == R_STOP ? -1 : 0;
 }

@@ -4,7 +4,8 @@
  * Runs on the main thread before worthd accepts connections: for each live
  * model in the database it rebuilds the model from its spec, restores the
  * newest valid checkpoint and replays the log after it, then hands the model
- * to the protocol registry and the writer.
+ * to the protocol registry and the writer (or, when its own rows are damaged,
+ * quarantines it).
  */
 #ifndef WORTH_RECOVER_H
 #define WORTH_RECOVER_H
@@ -17,8 +18,12 @@
 
 /*
  * Recovers every live model of db (borrowed; the writer must not run yet)
- * into p, registering each with w.  Returns 0, or -1 with err (the daemon
- * then refuses to start rather than serve a partial state).
+ * into p, registering each with w.  A model that fails for a reason of its
+ * own (its spec, a damaged row, corrupt pages of its rows while other models
+ * read) is quarantined: registered with proto_add_damaged, a `quarantined`
+ * event queued, an error logged.  Returns 0, or -1 with err when the failure
+ * is the database's (the daemon then refuses to start rather than serve a
+ * partial state).
  */
 int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
                    learner_wake_fn wake, void *ctx, char *err, size_t errlen);

@@ -62,6 +62,18 @@ struct slot {
     unsigned refs; /* waiting replies that refer to it */
 };
 
+/*
+ * A model that start-up could not rebuild from its own rows (recover.c): quarantined.  It
+ * has no learner; it keeps its name taken (model.create answers model_exists) until
+ * model.drop, and every other request naming it answers damaged.
+ */
+struct damaged {
+    char *name;   /* owned */
+    int64_t id;   /* its row in the models table */
+    uint64_t seq; /* the offending transition, 0 when no single row is to blame */
+    char *reason; /* owned */
+};
+
 struct proto {
     const server_opts_t *o;
     struct writer *w;
@@ -70,6 +82,8 @@ struct proto {
     size_t n;
     struct slot **dropped; /* dropped, not yet freed */
     size_t n_dropped, cap_dropped;
+    struct damaged *damaged; /* quarantined at start-up, first n_damaged used */
+    size_t n_damaged;
     learner_post_fn post;
     learner_wake_fn wake;
     void *ctx;
@@ -256,6 +270,40 @@ static struct learner *find_model(struct proto *p, const char *name, size_t *at)
     return sl ? sl->l : NULL;
 }
 
+/* The quarantined model of that name, or NULL. */
+static struct damaged *find_damaged(struct proto *p, const char *name, size_t *at)
+{
+    for (size_t i = 0; i < p->n_damaged; i++)
+        if (strcmp(p->damaged[i].name, name) == 0) {
+            if (at)
+                *at = i;
+            return &p->damaged[i];
+        }
+    return NULL;
+}
+
+/* Answers a request naming a quarantined model: damaged, with the row and the remedy. */
+static void reply_damaged(struct proto *p, struct conn *c, const char *id, const struct damaged *dm)
+{
+    char msg[900], fix[128] = "Repair it while worthd is stopped (its start-up log says how)";
+    if (dm->seq)
+        snprintf(fix, sizeof fix,
+                 "Correct or delete transition %llu of its log while worthd is stopped",
+                 (unsigned long long)dm->seq);
+    snprintf(msg, sizeof msg,
+             "model \"%.64s\" is quarantined since start-up and not served: %s.  %s, or drop "
+             "the model (model.drop) and create it again",
+             dm->name, dm->reason, fix);
+    struct out *o = &p->out;
+    out_begin(o, 0, id);
+    out_s(o, ",\"error\":{\"code\":");
+    out_str(o, worth_err_name(WORTH_E_DAMAGED));
+    out_s(o, ",\"message\":");
+    out_str(o, msg);
+    out_fmt(o, ",\"seq\":%llu}}\n", (unsigned long long)dm->seq);
+    send_line(c, o->b, o->len);
+}
+
 /* The slot of learner l, live or dropped. */
 static struct slot *slot_of(struct proto *p, const struct learner *l)
 {
@@ -422,9 +470,19 @@ static struct learner *need_model(struct req *rq)
     if (!name)
         return NULL;
     struct learner *l = find_model(rq->p, name, NULL);
-    if (!l)
+    const struct damaged *dm = l ? NULL : find_damaged(rq->p, name, NULL);
+    if (dm)
+        reply_damaged(rq->p, rq->c, rq->id, dm);
+    else if (!l)
         FAIL(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
     return l;
+}
+
+/* The quarantined model the request's "model" names, or NULL (then nothing is answered). */
+static const struct damaged *named_damaged(struct req *rq)
+{
+    const cJSON *f = field(rq->root, "model");
+    return cJSON_IsString(f) && f->valuestring ? find_damaged(rq->p, f->valuestring, NULL) : NULL;
 }
 
 /*
@@ -668,12 +726,13 @@ static int do_create(struct req *rq)
     int rc = spec_parse_within(rq->root, p->o->max_features, &s, p->err, sizeof p->err);
     if (rc)
         return fail_done(rq, rc, "%s", p->err);
-    if (find_model(p, s->name, NULL)) {
-        FAIL(rq, WORTH_E_MODEL_EXISTS, "a model named \"%s\" exists", s->name);
+    if (find_model(p, s->name, NULL) || find_damaged(p, s->name, NULL)) {
+        FAIL(rq, WORTH_E_MODEL_EXISTS, "a model named \"%s\" exists%s", s->name,
+             find_damaged(p, s->name, NULL) ? " (quarantined: drop it first)" : "");
         spec_free(s);
         return PROTO_DONE;
     }
-    if (p->n >= p->o->max_models) {
+    if (p->n + p->n_damaged >= p->o->max_models) {
         FAIL(rq, WORTH_E_TOO_LARGE, "the daemon holds its limit of %zu models", p->o->max_models);
         spec_free(s);
         return PROTO_DONE;
@@ -727,6 +786,15 @@ static void out_model_head(struct out *o, const struct learner *l, const struct 
     out_est_names(o, m);
 }
 
+/* Writes "model":NAME,"state":"damaged","seq":N,"reason":WHY, shared by list and get. */
+static void out_damaged(struct out *o, const struct damaged *dm)
+{
+    out_s(o, "\"model\":");
+    out_str(o, dm->name);
+    out_fmt(o, ",\"state\":\"damaged\",\"seq\":%llu,\"reason\":", (unsigned long long)dm->seq);
+    out_str(o, dm->reason);
+}
+
 static int do_list(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -739,8 +807,13 @@ static int do_list(struct req *rq)
         learner_stats(p->models[i]->l, &st);
         out_s(o, i ? ",{" : "{");
         out_model_head(o, p->models[i]->l, m);
-        out_fmt(o, ",\"received\":%llu,\"applied\":%llu}", (unsigned long long)st.received,
-                (unsigned long long)st.applied);
+        out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"state\":\"ok\"}",
+                (unsigned long long)st.received, (unsigned long long)st.applied);
+    }
+    for (size_t i = 0; i < p->n_damaged; i++) {
+        out_s(o, p->n || i ? ",{" : "{");
+        out_damaged(o, &p->damaged[i]);
+        out_s(o, "}");
     }
     out_s(o, "]");
     out_end(o, rq->c);
@@ -749,6 +822,14 @@ static int do_list(struct req *rq)
 
 static int do_get(struct req *rq)
 {
+    const struct damaged *dm = named_damaged(rq);
+    if (dm) {
+        out_begin(&rq->p->out, 1, rq->id);
+        out_s(&rq->p->out, ",");
+        out_damaged(&rq->p->out, dm);
+        out_end(&rq->p->out, rq->c);
+        return PROTO_DONE;
+    }
     struct learner *l = need_model(rq);
     if (!l)
         return PROTO_DONE;
@@ -761,8 +842,8 @@ static int do_get(struct req *rq)
     out_model_head(o, l, m);
     out_s(o, ",\"primary\":");
     out_str(o, model_est_name(m, model_primary(m)));
-    out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"spec\":", (unsigned long long)st.received,
-            (unsigned long long)st.applied);
+    out_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"state\":\"ok\",\"spec\":",
+            (unsigned long long)st.received, (unsigned long long)st.applied);
     out_s(o, learner_spec(l));
     out_end(o, rq->c);
     return PROTO_DONE;
@@ -791,6 +872,17 @@ static void unregister(struct proto *p, size_t at, int tell_writer, uint64_t con
     server_each_conn(p->srv, flush_one, p);
 }
 
+/* Drops the quarantined model at `at`: marked dropped in the database, its name free again. */
+static void forget_damaged(struct proto *p, size_t at, uint64_t conn_id)
+{
+    struct damaged *dm = &p->damaged[at];
+    writer_drop_damaged(p->w, dm->id, dm->name, conn_id);
+    say_info("model %s (quarantined) dropped", dm->name);
+    mem_free(dm->name);
+    mem_free(dm->reason);
+    p->damaged[at] = p->damaged[--p->n_damaged];
+}
+
 static int do_drop(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -798,6 +890,12 @@ static int do_drop(struct req *rq)
     if (!name)
         return PROTO_DONE;
     size_t at = 0;
+    if (!find_model(p, name, &at) && find_damaged(p, name, &at)) {
+        keep_id(rq); /* the writer replies, as for any drop */
+        conn_wait(rq->c);
+        forget_damaged(p, at, conn_id(rq->c));
+        return PROTO_DONE;
+    }
     if (!find_model(p, name, &at))
         return fail_done(rq, WORTH_E_NO_SUCH_MODEL, "no model named \"%.64s\"", name);
     say_info("model %s dropped", name);
@@ -1368,7 +1466,9 @@ static int do_events(struct req *rq)
     if (!only_keys(rq->root, keys, &bad))
         return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
     struct learner *l = NULL;
-    if (field(rq->root, "model") && !(l = need_model(rq)))
+    /* A quarantined model's events are listed: they say when and why it was quarantined. */
+    const struct damaged *dm = named_damaged(rq);
+    if (!dm && field(rq->root, "model") && !(l = need_model(rq)))
         return PROTO_DONE;
     double since = 0, limit = 1000;
     int code = 0;
@@ -1378,7 +1478,10 @@ static int do_events(struct req *rq)
     if (limit != floor(limit) || limit < 1 || limit > 100000)
         return fail_done(rq, WORTH_E_BAD_PARAM, "\"limit\" must be an integer 1..100000");
     keep_id(rq);
-    writer_list_events(rq->p->w, l, since, (size_t)limit, conn_id(rq->c));
+    if (dm)
+        writer_list_model_events(rq->p->w, dm->id, dm->name, since, (size_t)limit, conn_id(rq->c));
+    else
+        writer_list_events(rq->p->w, l, since, (size_t)limit, conn_id(rq->c));
     conn_wait(rq->c);
     return PROTO_DONE;
 }
@@ -1860,6 +1963,13 @@ void proto_add_recovered(struct proto *p, struct learner *l)
     p->models[p->n++] = new_slot(l, learner_last_seq(l));
 }
 
+void proto_add_damaged(struct proto *p, int64_t id, const char *name, uint64_t seq,
+                       const char *reason)
+{
+    p->damaged = mem_realloc(p->damaged, (p->n_damaged + 1) * sizeof *p->damaged);
+    p->damaged[p->n_damaged++] = (struct damaged){mem_strdup(name), id, seq, mem_strdup(reason)};
+}
+
 void proto_conn_init(proto_conn_t *pc, int needs_auth)
 {
     memset(pc, 0, sizeof *pc);
@@ -1916,6 +2026,11 @@ void proto_free(struct proto *p)
         learner_free(p->dropped[i]->l);
         mem_free(p->dropped[i]);
     }
+    for (size_t i = 0; i < p->n_damaged; i++) {
+        mem_free(p->damaged[i].name);
+        mem_free(p->damaged[i].reason);
+    }
+    mem_free(p->damaged);
     mem_free(p->models);
     mem_free(p->dropped);
     mem_free(p->srcs);
@@ -2035,6 +2150,13 @@ char *proto_metrics_text(struct proto *p, size_t *len)
                 out_s(&o, "\n");
             }
         }
+    }
+    metric_head(&o, "worth_model_damaged", "gauge",
+                "1 for a model quarantined at start-up (not served), 0 for one served.");
+    for (size_t i = 0; i < p->n + p->n_damaged; i++) {
+        out_s(&o, "worth_model_damaged{model=");
+        out_label(&o, i < p->n ? learner_name(p->models[i]->l) : p->damaged[i - p->n].name);
+        out_s(&o, i < p->n ? "} 0\n" : "} 1\n");
     }
     uint64_t counts[WRITER_HIST_N], count = 0;
     double sum = 0;

@@ -69,6 +69,13 @@ struct proto *proto_new(const server_opts_t *opts, struct writer *w, learner_pos
 void proto_add_recovered(struct proto *p, struct learner *l);
 /* Returns how many models are registered. */
 size_t proto_n_models(const struct proto *p);
+/*
+ * Registers a model quarantined at start-up (recover.c): database id, name and reason
+ * (borrowed, copied), the seq of the offending transition (0: none).  Requests naming it
+ * answer damaged; model.list and model.get show it, model.drop drops it.
+ */
+void proto_add_damaged(struct proto *p, int64_t id, const char *name, uint64_t seq,
+                       const char *reason);
 /* Fills *o with the learner options for a model of this daemon. */
 void proto_learner_opts(const struct proto *p, learner_opts_t *o);
 /* Stops every learner after it has applied its queue, joins them and logs their counts. */

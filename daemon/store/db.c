@@ -12,6 +12,9 @@
  * 2. Replay learns rows in exactly the order the live daemon learnt them:
  *    transitions by seq, each training right after the transition it followed,
  *    so a replay rebuilds the same weights bit for bit.
+ * 3. No column of a stored row is used before its type is checked: a damaged
+ *    row is reported (WORTH_E_DAMAGED, naming its seq), never learnt, and no
+ *    NULL blob or text pointer is dereferenced.
  */
 #include "db.h"
 
@@ -278,9 +281,13 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
     int rc;
     while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
         int64_t id = sqlite3_column_int64(st, 0);
-        const void *blob = sqlite3_column_blob(st, 3);
-        int len = sqlite3_column_bytes(st, 3);
-        char why[256];
+        /* Types first: a damaged row (seq NULL, state TEXT) is skipped like a bad checksum. */
+        int typed = sqlite3_column_type(st, 1) == SQLITE_INTEGER &&
+                    sqlite3_column_type(st, 2) == SQLITE_INTEGER &&
+                    sqlite3_column_type(st, 3) == SQLITE_BLOB;
+        const void *blob = typed ? sqlite3_column_blob(st, 3) : NULL;
+        int len = typed ? sqlite3_column_bytes(st, 3) : 0;
+        char why[256] = "a column of the wrong type";
         if (blob && model_load(m, blob, (size_t)len, why, sizeof why) == 0) {
             start->checkpoint = id;
             start->seq = (uint64_t)sqlite3_column_int64(st, 1);
@@ -288,7 +295,7 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
             break;
         }
         say_warn("model %s: checkpoint %lld cannot be restored (%s); trying an older one", name,
-                 (long long)id, blob ? why : "empty state");
+                 (long long)id, blob || !typed ? why : "empty state");
     }
     sqlite3_finalize(st);
     if (rc != SQLITE_ROW && rc != SQLITE_DONE)
@@ -298,23 +305,154 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
     return 0;
 }
 
-/* Runs one logged training on m. */
-static void run_training(struct model *m, const char *est, unsigned passes)
+/* The most passes one logged training may ask for: the protocol's limit on train. */
+#define DB_MAX_PASSES 100000
+
+/* What column col of st holds, for a message: "NULL", "TEXT", "a BLOB of 12 bytes", ... */
+static const char *col_kind(sqlite3_stmt *st, int col, char *buf, size_t len)
 {
+    switch (sqlite3_column_type(st, col)) {
+    case SQLITE_NULL:
+        return "NULL";
+    case SQLITE_INTEGER:
+        snprintf(buf, len, "the integer %lld", (long long)sqlite3_column_int64(st, col));
+        return buf;
+    case SQLITE_FLOAT:
+        return "a real";
+    case SQLITE_TEXT:
+        return "TEXT";
+    default:
+        snprintf(buf, len, "a BLOB of %d bytes", sqlite3_column_bytes(st, col));
+        return buf;
+    }
+}
+
+static int is_number(sqlite3_stmt *st, int col)
+{
+    int t = sqlite3_column_type(st, col);
+    return t == SQLITE_INTEGER || t == SQLITE_FLOAT;
+}
+
+/* A vector column holds exactly d float64 (a BLOB of 8d bytes); copies it into v. */
+static int read_vec(sqlite3_stmt *st, int col, size_t d, double *v)
+{
+    if (sqlite3_column_type(st, col) != SQLITE_BLOB)
+        return -1;
+    const void *b = sqlite3_column_blob(st, col);
+    if (!b || (size_t)sqlite3_column_bytes(st, col) != d * sizeof(double))
+        return -1;
+    memcpy(v, b, d * sizeof(double));
+    return 0;
+}
+
+/*
+ * Reads the transitions row at st (seq, source, x, r, x_next, terminal, dt) into o, x and xn
+ * (d doubles each).  Every column's type is checked before its value is used: a damaged row
+ * (NULL or TEXT where a number or a BLOB belongs, a vector of the wrong length, terminal other
+ * than 0 or 1) must never reach the model, nor hand a NULL pointer to memcpy.  Returns 0, or
+ * -1 with why (the values themselves are then checked by model_check).
+ */
+static int read_row(sqlite3_stmt *st, size_t d, double *x, double *xn, model_obs_t *o, char *why,
+                    size_t len)
+{
+    char k[48];
+    if (sqlite3_column_type(st, 5) != SQLITE_INTEGER ||
+        (sqlite3_column_int64(st, 5) != 0 && sqlite3_column_int64(st, 5) != 1))
+        return err_fail(why, len, -1, "terminal is %s, not 0 or 1", col_kind(st, 5, k, sizeof k));
+    int terminal = sqlite3_column_int(st, 5);
+    if (read_vec(st, 2, d, x) != 0)
+        return err_fail(why, len, -1, "x is %s, not %zu float64 (a BLOB of %zu bytes)",
+                        col_kind(st, 2, k, sizeof k), d, d * sizeof(double));
+    if (!terminal && read_vec(st, 4, d, xn) != 0)
+        return err_fail(why, len, -1, "x_next is %s, not %zu float64 (a BLOB of %zu bytes)",
+                        col_kind(st, 4, k, sizeof k), d, d * sizeof(double));
+    if (terminal && sqlite3_column_type(st, 4) != SQLITE_NULL && read_vec(st, 4, d, xn) != 0)
+        return err_fail(why, len, -1, "x_next of a terminal transition is %s, not NULL",
+                        col_kind(st, 4, k, sizeof k));
+    if (!is_number(st, 3))
+        return err_fail(why, len, -1, "r is %s, not a number", col_kind(st, 3, k, sizeof k));
+    if (sqlite3_column_type(st, 1) != SQLITE_TEXT || !sqlite3_column_text(st, 1))
+        return err_fail(why, len, -1, "source is %s, not text", col_kind(st, 1, k, sizeof k));
+    if (sqlite3_column_type(st, 6) != SQLITE_NULL && !is_number(st, 6))
+        return err_fail(why, len, -1, "dt is %s, not a number or NULL",
+                        col_kind(st, 6, k, sizeof k));
+    *o = (model_obs_t){
+        .x = x,
+        .x_len = d,
+        .r = sqlite3_column_double(st, 3),
+        .x_next = terminal ? NULL : xn,
+        .x_next_len = d,
+        .terminal = terminal,
+        .source = (const char *)sqlite3_column_text(st, 1),
+        .dt_s = sqlite3_column_type(st, 6) == SQLITE_NULL ? NAN : sqlite3_column_double(st, 6),
+    };
+    return 0;
+}
+
+/*
+ * Runs the logged training at tr (ordinal, after_seq, estimator, passes) on m, after checking
+ * its columns.  Returns 0, or -1 with why when the row is damaged (nothing is run).
+ */
+static int run_training(struct model *m, sqlite3_stmt *tr, char *why, size_t len)
+{
+    char k[48];
+    long long ord = sqlite3_column_int64(tr, 0);
+    if (sqlite3_column_type(tr, 0) != SQLITE_INTEGER ||
+        sqlite3_column_type(tr, 1) != SQLITE_INTEGER)
+        return err_fail(why, len, -1, "a training's ordinal or after_seq is not an integer");
+    if (sqlite3_column_type(tr, 2) != SQLITE_TEXT || !sqlite3_column_text(tr, 2))
+        return err_fail(why, len, -1, "training %lld: estimator is %s, not text", ord,
+                        col_kind(tr, 2, k, sizeof k));
+    const char *est = (const char *)sqlite3_column_text(tr, 2);
     int i = model_est_find(m, est);
     if (i < 0)
-        return; /* cannot happen for a log written by this model's spec */
+        return err_fail(why, len, -1, "training %lld names no estimator of the model (\"%.64s\")",
+                        ord, est);
+    if (sqlite3_column_type(tr, 3) != SQLITE_INTEGER || sqlite3_column_int64(tr, 3) < 1 ||
+        sqlite3_column_int64(tr, 3) > DB_MAX_PASSES)
+        return err_fail(why, len, -1, "training %lld: passes is %s, not 1..%d", ord,
+                        col_kind(tr, 3, k, sizeof k), DB_MAX_PASSES);
     est_train_t rep;
-    est_train_opts_t o = {.passes = passes};
+    /* A training cut short (worthd stopping, a rollback, 002_health.sql) runs exactly the
+     * mini-batch steps it took then: the same bits as then. */
+    est_train_opts_t o = {.passes = (unsigned)sqlite3_column_int(tr, 3)};
+    if (sqlite3_column_type(tr, 4) != SQLITE_NULL) {
+        if (sqlite3_column_type(tr, 4) != SQLITE_INTEGER || sqlite3_column_int64(tr, 4) < 0)
+            return err_fail(why, len, -1, "training %lld: steps is %s, not a count", ord,
+                            col_kind(tr, 4, k, sizeof k));
+        o.max_steps = (uint64_t)sqlite3_column_int64(tr, 4);
+        if (o.max_steps == 0)
+            return 0; /* cut before its first step: it changed nothing */
+    }
     model_train(m, (size_t)i, &o, &rep);
+    return 0;
+}
+
+/*
+ * A failed step over the model's rows: SQLITE_CORRUPT there is bad_database (its pages are
+ * damaged; whether only its own, the caller judges), anything else the database's code.
+ */
+static int step_failed(sqlite3 *db, uint64_t after, char *err, size_t errlen)
+{
+    if ((sqlite3_extended_errcode(db) & 0xff) == SQLITE_CORRUPT)
+        return err_fail(err, errlen, WORTH_E_BAD_DATABASE,
+                        "the database is corrupt where it holds the model's log after seq %llu: %s",
+                        (unsigned long long)after, sqlite3_errmsg(db));
+    return err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
 }
 
 int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
-              uint64_t *replayed, uint64_t *last_training, char *err, size_t errlen)
+              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, char *err,
+              size_t errlen)
 {
     sqlite3_stmt *tr = NULL, *tx = NULL;
     struct model_replay *rp = NULL;
     int code = 0;
+    uint64_t seq = from->seq, unused;
+    char why[256];
+    if (!bad_seq)
+        bad_seq = &unused;
+    *bad_seq = 0;
     *replayed = 0;
     *last_training = from->training;
     size_t d = model_dims(m);
@@ -323,7 +461,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
     sqlite3_int64 hi = upto > (uint64_t)INT64_MAX ? INT64_MAX : (sqlite3_int64)upto;
 
     if (sqlite3_prepare_v2(db,
-                           "SELECT ordinal, after_seq, estimator, passes FROM trainings"
+                           "SELECT ordinal, after_seq, estimator, passes, steps FROM trainings"
                            " WHERE model = ?1 AND ordinal > ?2 AND after_seq <= ?3"
                            " AND rolled_back = 0 ORDER BY ordinal",
                            -1, &tr, NULL) != SQLITE_OK ||
@@ -351,63 +489,59 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
     rp = model_replay_new(m, 0, 0);
     int trc = sqlite3_step(tr), xrc;
     while ((xrc = sqlite3_step(tx)) == SQLITE_ROW) {
-        uint64_t seq = (uint64_t)sqlite3_column_int64(tx, 0);
+        if (sqlite3_column_type(tx, 0) != SQLITE_INTEGER) {
+            code = err_fail(err, errlen, WORTH_E_DAMAGED,
+                            "the transition after seq %llu has a seq that is not an integer",
+                            (unsigned long long)seq);
+            goto out;
+        }
+        seq = (uint64_t)sqlite3_column_int64(tx, 0);
         /* Trainings that ran before this transition was learnt. */
         while (trc == SQLITE_ROW && (uint64_t)sqlite3_column_int64(tr, 1) < seq) {
             if (rp) {
                 model_replay_end(rp);
                 rp = NULL;
             }
-            run_training(m, (const char *)sqlite3_column_text(tr, 2),
-                         (unsigned)sqlite3_column_int(tr, 3));
+            if (run_training(m, tr, why, sizeof why) != 0) {
+                code = err_fail(err, errlen, WORTH_E_DAMAGED, "%s", why);
+                goto out;
+            }
             *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
             trc = sqlite3_step(tr);
         }
-        int terminal = sqlite3_column_int(tx, 5);
-        if ((size_t)sqlite3_column_bytes(tx, 2) != d * sizeof(double) ||
-            (!terminal && (size_t)sqlite3_column_bytes(tx, 4) != d * sizeof(double))) {
-            code = err_fail(err, errlen, WORTH_E_CORRUPT,
-                            "transition %llu has vectors of the wrong length",
-                            (unsigned long long)seq);
+        model_obs_t o;
+        if (read_row(tx, d, x, xn, &o, why, sizeof why) != 0) {
+            *bad_seq = seq;
+            code = err_fail(err, errlen, WORTH_E_DAMAGED, "transition %llu is damaged: %s",
+                            (unsigned long long)seq, why);
             goto out;
         }
-        memcpy(x, sqlite3_column_blob(tx, 2), d * sizeof(double));
-        if (!terminal)
-            memcpy(xn, sqlite3_column_blob(tx, 4), d * sizeof(double));
-        model_obs_t o = {
-            .x = x,
-            .x_len = d,
-            .r = sqlite3_column_double(tx, 3),
-            .x_next = terminal ? NULL : xn,
-            .x_next_len = d,
-            .terminal = terminal,
-            .source = (const char *)sqlite3_column_text(tx, 1),
-            .dt_s = sqlite3_column_type(tx, 6) == SQLITE_NULL ? NAN : sqlite3_column_double(tx, 6),
-        };
-        char why[256];
         if (!rp)
             rp = model_replay_new(m, 0, 0);
         if (model_replay_push(rp, &o, why, sizeof why) != 0) {
-            code = err_fail(err, errlen, WORTH_E_CORRUPT, "transition %llu: %s",
+            *bad_seq = seq;
+            code = err_fail(err, errlen, WORTH_E_DAMAGED, "transition %llu is damaged: %s",
                             (unsigned long long)seq, why);
             goto out;
         }
         (*replayed)++;
     }
     if (xrc != SQLITE_DONE) {
-        code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
+        code = step_failed(db, seq, err, errlen);
         goto out;
     }
     model_replay_end(rp);
     rp = NULL;
     while (trc == SQLITE_ROW) {
-        run_training(m, (const char *)sqlite3_column_text(tr, 2),
-                     (unsigned)sqlite3_column_int(tr, 3));
+        if (run_training(m, tr, why, sizeof why) != 0) {
+            code = err_fail(err, errlen, WORTH_E_DAMAGED, "%s", why);
+            goto out;
+        }
         *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
         trc = sqlite3_step(tr);
     }
     if (trc != SQLITE_DONE)
-        code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
+        code = step_failed(db, seq, err, errlen);
 out:
     model_replay_end(rp); /* learns what was pushed before a failure */
     sqlite3_finalize(tr);

@@ -84,9 +84,20 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
  * (from->seq, upto], trainings with ordinal > from->training and after_seq <=
  * upto), skipping rolled-back rows, in the order they were first learnt.
  * Fills *replayed (transitions learnt) and *last_training.  Returns 0, or
- * WORTH_E_IO / WORTH_E_CORRUPT with err.
+ * with err:
+ * - WORTH_E_DAMAGED: a row of the model's own is damaged (a column of the
+ *   wrong type, a vector of the wrong length, terminal not 0 or 1, a value
+ *   model_check refuses, a training naming no estimator or with passes out of
+ *   range); *bad_seq (may be NULL) gets the seq of the offending transition,
+ *   0 when it is a training.  m then holds what was learnt before it.
+ * - WORTH_E_BAD_DATABASE: SQLite found the pages holding the model's rows
+ *   corrupt (SQLITE_CORRUPT while stepping over them): the model's own damage
+ *   if other models can be read, the file's if none can (the caller judges).
+ * - another code of db_error_code (storage_error, storage_full): the database
+ *   could not be read, a failure of the whole database.
  */
 int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
-              uint64_t *replayed, uint64_t *last_training, char *err, size_t errlen);
+              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, char *err,
+              size_t errlen);
 
 #endif /* WORTH_DB_H */

@@ -173,15 +173,16 @@ static int exec(struct writer *w, const char *sql)
     return sqlite3_exec(w->db, sql, NULL, NULL, NULL) == SQLITE_OK ? 0 : -1;
 }
 
-static int64_t insert_event(struct writer *w, struct learner *l, const char *kind,
-                            const char *detail)
+/* Records an event of the model with database id model (0: a daemon-wide event). */
+static int64_t insert_event_id(struct writer *w, int64_t model, const char *kind,
+                               const char *detail)
 {
     sqlite3_stmt *st = NULL;
     int64_t id = 0;
     if (sqlite3_prepare_v2(w->db, "INSERT INTO events(model, at, kind, detail) VALUES(?,?,?,?)", -1,
                            &st, NULL) == SQLITE_OK) {
-        if (l)
-            sqlite3_bind_int64(st, 1, learner_db_id(l));
+        if (model)
+            sqlite3_bind_int64(st, 1, model);
         else
             sqlite3_bind_null(st, 1);
         sqlite3_bind_double(st, 2, db_now());
@@ -192,6 +193,12 @@ static int64_t insert_event(struct writer *w, struct learner *l, const char *kin
     }
     sqlite3_finalize(st);
     return id;
+}
+
+static int64_t insert_event(struct writer *w, struct learner *l, const char *kind,
+                            const char *detail)
+{
+    return insert_event_id(w, l ? learner_db_id(l) : 0, kind, detail);
 }
 
 static void add_model(struct writer *w, struct learner *l)
@@ -492,14 +499,17 @@ static void job_create(struct writer *w, struct job *j)
 
 static void job_drop(struct writer *w, struct job *j)
 {
-    for (size_t i = 0; i < w->n; i++)
+    for (size_t i = 0; j->l && i < w->n; i++)
         if (w->models[i] == j->l) {
             w->models[i] = w->models[--w->n];
             break;
         }
+    /* A quarantined model has no learner: its id and name came with the job. */
+    int64_t id = j->l ? learner_db_id(j->l) : j->id;
+    const char *name = j->l ? learner_name(j->l) : j->s1;
     char why[256] = "";
     int stored = 0;
-    if (!learner_db_id(j->l)) {
+    if (!id) {
         stored = 1; /* never stored: nothing to mark */
     } else if (!w->db || may_write(w, FILEGUARD_ALL, why, sizeof why) != 0) {
         if (!w->db)
@@ -509,7 +519,7 @@ static void job_drop(struct writer *w, struct job *j)
         if (sqlite3_prepare_v2(w->db, "UPDATE models SET dropped_at = ? WHERE id = ?", -1, &st,
                                NULL) == SQLITE_OK) {
             sqlite3_bind_double(st, 1, db_now());
-            sqlite3_bind_int64(st, 2, learner_db_id(j->l));
+            sqlite3_bind_int64(st, 2, id);
             stored = sqlite3_step(st) == SQLITE_DONE;
         }
         if (!stored)
@@ -517,14 +527,14 @@ static void job_drop(struct writer *w, struct job *j)
                      sqlite3_errmsg(w->db));
         sqlite3_finalize(st);
         if (stored)
-            insert_event(w, j->l, "drop", "{}");
+            insert_event_id(w, id, "drop", "{}");
     }
     if (stored) {
         post_reply(w, j->l, j->conn_id, 0, ",\"persisted\":true");
     } else {
         say_error("model %s: dropped in memory, but the drop could not be stored: %s; it comes "
                   "back at the next start unless dropped again",
-                  learner_name(j->l), why);
+                  name, why);
         size_t len = 0, cap = 512;
         char *buf = mem_alloc(cap);
         buf[0] = 0;
@@ -538,6 +548,8 @@ static void job_drop(struct writer *w, struct job *j)
         post_reply(w, j->l, j->conn_id, 0, "%s", buf);
         mem_free(buf);
     }
+    if (!j->l)
+        return;
     learner_event_t ev = {.kind = LEV_RELEASED, .l = j->l};
     w->post(w->ctx, &ev);
 }
@@ -764,22 +776,27 @@ static void job_events(struct writer *w, struct job *j)
     buf[0] = 0;
     appendf(&buf, &len, &cap, ",\"events\":[");
     int rc = SQLITE_ERROR, first = 1;
-    const char *sql = j->l ? "SELECT id, at, kind, detail FROM events WHERE model = ?1 AND at >= ?2"
-                             " ORDER BY id LIMIT ?3"
-                           : "SELECT id, at, kind, detail FROM events WHERE model IS NULL AND"
-                             " at >= ?2 ORDER BY id LIMIT ?3";
+    /* A quarantined model has no learner: its id and name came with the job. */
+    int64_t model = j->l ? learner_db_id(j->l) : j->id;
+    const char *name = j->l ? learner_name(j->l) : j->s1;
+    int scoped = j->l || j->id; /* else the daemon-wide events */
+    const char *sql = scoped
+                          ? "SELECT id, at, kind, detail FROM events WHERE model = ?1 AND at >= ?2"
+                            " ORDER BY id LIMIT ?3"
+                          : "SELECT id, at, kind, detail FROM events WHERE model IS NULL AND"
+                            " at >= ?2 ORDER BY id LIMIT ?3";
     if (sqlite3_prepare_v2(w->db, sql, -1, &st, NULL) == SQLITE_OK) {
-        if (j->l)
-            sqlite3_bind_int64(st, 1, learner_db_id(j->l));
+        if (scoped)
+            sqlite3_bind_int64(st, 1, model);
         sqlite3_bind_double(st, 2, j->since);
         sqlite3_bind_int64(st, 3, (sqlite3_int64)j->len);
         while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
             appendf(&buf, &len, &cap, "%s{\"event\":%lld,\"at\":%.17g,\"kind\":", first ? "" : ",",
                     (long long)sqlite3_column_int64(st, 0), sqlite3_column_double(st, 1));
             json_str(&buf, &len, &cap, (const char *)sqlite3_column_text(st, 2));
-            if (j->l) {
+            if (scoped) {
                 appendf(&buf, &len, &cap, ",\"model\":");
-                json_str(&buf, &len, &cap, learner_name(j->l));
+                json_str(&buf, &len, &cap, name);
             }
             /* detail is JSON written by worthd itself */
             appendf(&buf, &len, &cap, ",\"detail\":%s}", (const char *)sqlite3_column_text(st, 3));
@@ -877,7 +894,7 @@ static void run_job(struct writer *w, struct job *j)
         break;
     case J_EVENT:
         if (may_write(w, FILEGUARD_ALL, why, sizeof why) == 0)
-            insert_event(w, j->l, j->s1, j->s2);
+            insert_event_id(w, j->l ? learner_db_id(j->l) : j->id, j->s1, j->s2);
         else
             say_warn("event %s not recorded: %s", j->s1, why);
         break;
@@ -1381,6 +1398,23 @@ void writer_event(struct writer *w, struct learner *l, const char *kind, const c
     push(w, j);
 }
 
+void writer_model_event(struct writer *w, int64_t model_id, const char *kind, const char *detail)
+{
+    struct job *j = job(J_EVENT, NULL, 0);
+    j->id = model_id;
+    j->s1 = mem_strdup(kind);
+    j->s2 = mem_strdup(detail);
+    push(w, j);
+}
+
+void writer_drop_damaged(struct writer *w, int64_t model_id, const char *name, uint64_t conn_id)
+{
+    struct job *j = job(J_DROP, NULL, conn_id);
+    j->id = model_id;
+    j->s1 = mem_strdup(name);
+    push(w, j);
+}
+
 void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t onset_seq,
                   uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift)
 {
@@ -1398,6 +1432,17 @@ void writer_list_events(struct writer *w, struct learner *l, double since, size_
                         uint64_t conn_id)
 {
     struct job *j = job(J_EVENTS, l, conn_id);
+    j->since = since;
+    j->len = limit;
+    push(w, j);
+}
+
+void writer_list_model_events(struct writer *w, int64_t model_id, const char *name, double since,
+                              size_t limit, uint64_t conn_id)
+{
+    struct job *j = job(J_EVENTS, NULL, conn_id);
+    j->id = model_id;
+    j->s1 = mem_strdup(name);
     j->since = since;
     j->len = limit;
     push(w, j);

@@ -100,6 +100,19 @@ void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t on
 void writer_list_events(struct writer *w, struct learner *l, double since, size_t limit,
                         uint64_t conn_id);
 
+/*
+ * Jobs for a model quarantined at start-up (recover.c): it has no learner, so it is named by
+ * its database id (and name, copied).
+ */
+
+/* Records an event of the model (kind and JSON detail copied). */
+void writer_model_event(struct writer *w, int64_t model_id, const char *kind, const char *detail);
+/* Marks the model dropped and records a drop event; nothing is posted back. */
+void writer_drop_damaged(struct writer *w, int64_t model_id, const char *name, uint64_t conn_id);
+/* As writer_list_events, for the model. */
+void writer_list_model_events(struct writer *w, int64_t model_id, const char *name, double since,
+                              size_t limit, uint64_t conn_id);
+
 /* Buckets of the commit-latency histogram, seconds (the last is +Inf). */
 #define WRITER_HIST_N 12
 extern const double writer_hist_le[WRITER_HIST_N];

@@ -131,8 +131,8 @@ def check_event(e):
     assert isinstance(e["event"], int) and not isinstance(e["event"], bool) and e["event"] > 0, e
     assert isinstance(e["at"], (int, float)) and not isinstance(e["at"], bool), e
     assert abs(e["at"] - time.time()) < 600, f"event time is not now-ish: {e}"
-    assert e["kind"] in ("create", "checkpoint", "rollback", "drift", "recovered", "drop",
-                         "start", "stop", "commit_failed"), e
+    assert e["kind"] in ("create", "checkpoint", "rollback", "drift", "recovered", "quarantined",
+                         "drop", "start", "stop", "commit_failed"), e
     assert isinstance(e["detail"], dict), e
     if e["kind"] in ("start", "stop"):
         assert e.get("model") is None, f"daemon-wide event with a model: {e}"
@@ -616,6 +616,7 @@ DOCUMENTED = {  # name: (type, label names)
     "worth_drift_alarms_total": ("counter", {"model"}),
     "worth_checkpoints": ("gauge", {"model"}),
     "worth_checkpoint_age_seconds": ("gauge", {"model"}),
+    "worth_model_damaged": ("gauge", {"model"}),
     "worth_commit_seconds": ("histogram", set()),
 }
 
