@@ -107,8 +107,9 @@ struct learner {
 
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
-    uint64_t alarms_seen;    /* drift alarms already reported */
-    size_t diverged_seen;    /* estimators whose divergence has been reported */
+    uint64_t alarms_seen; /* drift alarms already reported */
+    int tainted;          /* a replay after a rollback failed: the model is not the log's replay */
+    size_t diverged_seen; /* estimators whose divergence has been reported */
     unsigned diverged_mask;  /* which (bit i: estimator i; MODEL_MAX_EST <= 32) */
     struct model_replay *rp; /* learns observations with the estimators on worker threads */
     uint64_t cb_k;           /* ring index of the next observation observed() reports */
@@ -208,9 +209,25 @@ static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, 
     l->post(l->ctx, &ev);
 }
 
+/* db_abandon_fn: a replay on the learner thread gives up when the learner is asked to stop. */
+static int stopping(void *ctx)
+{
+    struct learner *l = ctx;
+    return atomic_load(&l->cut) >= CUT_STOP;
+}
+
 /* Serialises the model and hands it to the writer. */
 static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
 {
+    if (l->tainted) {
+        if (conn_id)
+            reply(l, conn_id, WORTH_E_DAMAGED,
+                  "model %s holds part of a replay that failed; it is not checkpointed until "
+                  "worthd restarts and rebuilds it from the log",
+                  l->name);
+        l->since_checkpoint = 0;
+        return;
+    }
     size_t len = 0;
     model_save(l->m, NULL, 0, &len);
     uint8_t *blob = mem_alloc(len);
@@ -274,11 +291,24 @@ static void rollback(struct learner *l, learner_rec_t *r)
         db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
         int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err) ? WORTH_E_STORAGE_ERROR : 0;
         if (rc == 0)
-            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, NULL, err,
-                           sizeof err);
+            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, NULL,
+                           stopping, l, err, sizeof err);
         sqlite3_close(ro);
         if (rc) {
-            say_error("model %s: replay after rollback failed: %s", l->name, err);
+            /*
+             * The model now holds part of a replay: it must never be checkpointed,
+             * or a recovery would start from a state the log does not describe.  The
+             * next start rebuilds it from the log (the rollback is committed there).
+             */
+            l->tainted = 1;
+            if (rc == WORTH_E_CANCELLED) {
+                pthread_mutex_lock(&l->mu);
+                l->discard = 1; /* what is queued is in the log: the next start learns it */
+                pthread_mutex_unlock(&l->mu);
+            }
+            say_error("model %s: replay after rollback failed: %s; it is not checkpointed "
+                      "until worthd restarts and rebuilds it from the log",
+                      l->name, err);
             reply(l, r->conn_id, rc, "restored checkpoint %lld but the replay failed: %s",
                   (long long)p->checkpoint, err);
             l->model_training = last_training;

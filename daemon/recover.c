@@ -51,7 +51,7 @@ static int max_of(sqlite3 *db, const char *sql, int64_t model, uint64_t *out)
 }
 
 /* What became of one model (recover_one). */
-enum { R_STOP = -1, R_SERVED, R_QUARANTINED, R_READ_DAMAGED, R_CORRUPT };
+enum { R_ABANDONED = -2, R_STOP = -1, R_SERVED, R_QUARANTINED, R_READ_DAMAGED, R_CORRUPT };
 
 /*
  * Models whose pages SQLite reported corrupt.  That is a model's own damage only when it is
@@ -115,7 +115,8 @@ static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, 
  */
 static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *spec_text,
                        struct proto *p, struct writer *w, learner_post_fn post,
-                       learner_wake_fn wake, void *ctx, char *err, size_t errlen)
+                       learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx,
+                       char *err, size_t errlen)
 {
     double t0 = mono_s();
     char why[512];
@@ -163,7 +164,8 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
      */
     rc = db_restore_newest(db, id, name, m, &start, why, sizeof why) ? db_error_code(db) : 0;
     if (rc == 0)
-        rc = db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, &bad, why, sizeof why);
+        rc = db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, &bad, stop_asked, actx,
+                       why, sizeof why);
     if (rc == 0 && (max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
                            &last_seq) != 0 ||
                     max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id,
@@ -176,6 +178,10 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
     if (rc) {
         model_free(m);
         spec_free(s);
+        if (rc == WORTH_E_CANCELLED) {
+            snprintf(err, errlen, "model %s: %s", name, why);
+            return R_ABANDONED;
+        }
         if (rc == WORTH_E_DAMAGED) {
             quarantine(db, id, name, bad, why, FIX_TRAINING, p, w);
             return R_READ_DAMAGED;
@@ -222,7 +228,8 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
 }
 
 int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
-                   learner_wake_fn wake, void *ctx, char *err, size_t errlen)
+                   learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
+                   size_t errlen)
 {
     sqlite3_stmt *st = NULL;
     if (sqlite3_prepare_v2(db,
@@ -241,9 +248,15 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
         int specd = sqlite3_column_type(st, 2) == SQLITE_TEXT;
         int64_t id = sqlite3_column_int64(st, 0);
         const char *name = named ? (const char *)sqlite3_column_text(st, 1) : NULL;
+        if (stop_asked && stop_asked(actx)) {
+            snprintf(err, errlen, "a stop signal came before model %s was recovered",
+                     name ? name : "?");
+            out = R_ABANDONED;
+            break;
+        }
         out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL, p,
-                          w, post, wake, ctx, err, errlen);
-        if (out == R_STOP)
+                          w, post, wake, ctx, stop_asked, actx, err, errlen);
+        if (out == R_STOP || out == R_ABANDONED)
             break;
         read += out == R_SERVED || out == R_READ_DAMAGED;
         if (out == R_CORRUPT) {
@@ -251,12 +264,12 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
             sus[n_sus++] = (struct suspect){id, mem_strdup(name), mem_strdup(err)};
         }
     }
-    if (out != R_STOP && rc != SQLITE_DONE) {
+    if (out != R_STOP && out != R_ABANDONED && rc != SQLITE_DONE) {
         snprintf(err, errlen, "%s", sqlite3_errmsg(db));
         out = R_STOP;
     }
     sqlite3_finalize(st);
-    if (out != R_STOP && n_sus && !read) {
+    if (out != R_STOP && out != R_ABANDONED && n_sus && !read) {
         snprintf(err, errlen,
                  "bad_database: model %s: %s; no model's rows could be read, so the damage is "
                  "not one model's own: restore the database from a backup",
@@ -264,11 +277,11 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
         out = R_STOP;
     }
     for (size_t i = 0; i < n_sus; i++) {
-        if (out != R_STOP)
+        if (out != R_STOP && out != R_ABANDONED)
             quarantine(db, sus[i].id, sus[i].name, 0, sus[i].why, FIX_PAGES, p, w);
         mem_free(sus[i].name);
         mem_free(sus[i].why);
     }
     mem_free(sus);
-    return out == R_STOP ? -1 : 0;
+    return out == R_ABANDONED ? -2 : out == R_STOP ? -1 : 0;
 }

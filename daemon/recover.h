@@ -13,6 +13,7 @@
 #include <sqlite3.h>
 #include <stddef.h>
 
+#include "db.h"
 #include "proto.h"
 #include "writer.h"
 
@@ -23,9 +24,13 @@
  * read) is quarantined: registered with proto_add_damaged, a `quarantined`
  * event queued, an error logged.  Returns 0, or -1 with err when the failure
  * is the database's (the daemon then refuses to start rather than serve a
- * partial state).
+ * partial state), or -2 with err when stop_asked (may be NULL; called with
+ * actx between models and every DB_ABANDON_EVERY transitions of a replay)
+ * said worthd is to stop: models recovered so far stay registered, the one
+ * being replayed is dropped from memory, its log untouched.
  */
 int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
-                   learner_wake_fn wake, void *ctx, char *err, size_t errlen);
+                   learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
+                   size_t errlen);
 
 #endif /* WORTH_RECOVER_H */

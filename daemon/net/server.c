@@ -71,6 +71,8 @@
 /* Stop reading from a client whose unsent replies exceed this; resume below WRITE_LOW. */
 #define WRITE_HIGH (4u << 20)
 #define WRITE_LOW  (1u << 20)
+/* At stop, how long connections may take to read their last replies. */
+#define LINGER_MS 2000
 /* Period of the timer that enforces the idle and send timeouts. */
 #define TICK_MS 250
 /* Least gap between two log lines about shed or refused connections. */
@@ -120,7 +122,9 @@ struct server {
     uv_async_t wake;
     uv_idle_t idle;
     int idle_on;
-    uv_timer_t tick;                  /* idle and send timeouts */
+    uv_timer_t tick;   /* idle and send timeouts */
+    uv_timer_t linger; /* at stop: the bound on writing the last replies */
+    int lingering;
     unsigned long long shed, refused; /* connections lost to EMFILE, refused over max_conns */
     unsigned long long auth_timeouts; /* TCP connections closed for not authenticating */
     uint64_t auth_log_ms;
@@ -189,6 +193,11 @@ static void on_close(uv_handle_t *h)
     if (c->next)
         c->next->prev = c->prev;
     s->n_conns--;
+    if (s->lingering && !s->conns) { /* the stop's last connection: nothing to wait for */
+        uv_timer_stop(&s->linger);
+        s->lingering = 0;
+        uv_close((uv_handle_t *)&s->linger, NULL);
+    }
     if (c->tcp)
         s->n_tcp--;
     if (c->pending_auth)
@@ -891,6 +900,16 @@ static void unlink_socket(struct server *s)
     unlink(path);
 }
 
+/* The stop's bound on writing the last replies: whatever is still open is closed. */
+static void on_linger(uv_timer_t *t)
+{
+    struct server *s = t->data;
+    for (struct conn *c = s->conns; c; c = c->next)
+        conn_close(c);
+    s->lingering = 0;
+    uv_close((uv_handle_t *)&s->linger, NULL);
+}
+
 static void stop(struct server *s, const char *why)
 {
     if (s->stopping)
@@ -914,8 +933,23 @@ static void stop(struct server *s, const char *why)
     s->writer = NULL;
     /* Deliver what the learners and the writer posted last (final replies, acks). */
     drain_events(s);
-    for (struct conn *c = s->conns; c; c = c->next)
-        conn_close(c);
+    /*
+     * A connection closes once its replies are written (closing at once would
+     * cancel the writes libuv still holds, and with them the last replies); one
+     * whose client does not read is closed after LINGER_MS regardless.
+     */
+    for (struct conn *c = s->conns, *next; c; c = next) {
+        next = c->next;
+        c->close_after = 1;
+        if (c->unsent == 0)
+            conn_close(c);
+    }
+    if (s->conns) {
+        uv_timer_start(&s->linger, on_linger, LINGER_MS, 0);
+        s->lingering = 1;
+    } else {
+        uv_close((uv_handle_t *)&s->linger, NULL);
+    }
     uv_close((uv_handle_t *)&s->sigint, NULL);
     uv_close((uv_handle_t *)&s->sigterm, NULL);
     uv_close((uv_handle_t *)&s->sighup, NULL);
@@ -962,6 +996,25 @@ static void on_signal(uv_signal_t *h, int signum)
     default:
         stop(s, signum == SIGINT ? "SIGINT" : signum == SIGQUIT ? "SIGQUIT" : "SIGTERM");
     }
+}
+
+/*
+ * The stop signal that came during recovery, before the loop could take it.
+ * Written only by note_stop (async-signal-safe: one store), read on the main
+ * thread.
+ */
+static volatile sig_atomic_t stop_signal;
+
+static void note_stop(int signum)
+{
+    stop_signal = signum;
+}
+
+/* db_abandon_fn for recovery: gives a long replay up once a stop signal came. */
+static int stop_noted(void *ctx)
+{
+    (void)ctx;
+    return stop_signal != 0;
 }
 
 int server_run(const server_opts_t *opts)
@@ -1014,6 +1067,8 @@ int server_run(const server_opts_t *opts)
     s->idle.data = s;
     uv_timer_init(&s->loop, &s->tick);
     s->tick.data = s;
+    uv_timer_init(&s->loop, &s->linger);
+    s->linger.data = s;
     uv_signal_t *sigs[] = {&s->sigint,  &s->sigterm, &s->sighup,
                            &s->sigusr1, &s->sigusr2, &s->sigquit};
     const int signums[] = {SIGINT, SIGTERM, SIGHUP, SIGUSR1, SIGUSR2, SIGQUIT};
@@ -1023,12 +1078,28 @@ int server_run(const server_opts_t *opts)
         uv_signal_start(sigs[i], on_signal, signums[i]);
     }
 
-    /* Recover before listening: nobody connects to a half-restored daemon. */
-    int ready =
-        recover_models(db, s->proto, s->writer, post_event, wake_loop, s, err, sizeof err) == 0;
-    if (!ready)
+    /*
+     * Recover before listening: nobody connects to a half-restored daemon.  The
+     * loop does not run meanwhile, so a stop signal only sets a flag that a long
+     * replay looks at (recover.h); it is raised again afterwards for the loop.
+     */
+    const int stops[] = {SIGINT, SIGTERM, SIGQUIT};
+    struct sigaction note = {.sa_handler = note_stop}, was[3];
+    sigemptyset(&note.sa_mask);
+    for (int i = 0; i < 3; i++)
+        sigaction(stops[i], &note, &was[i]);
+    int rec = recover_models(db, s->proto, s->writer, post_event, wake_loop, s, stop_noted, NULL,
+                             err, sizeof err);
+    for (int i = 0; i < 3; i++)
+        sigaction(stops[i], &was[i], NULL);
+    int ready = rec == 0, abandoned = rec == -2;
+    if (abandoned)
+        say_info("%s; stopping before listening", err);
+    else if (!ready)
         say_error("%s", err);
     writer_start(s->writer);
+    if (stop_signal)
+        raise(stop_signal); /* now to the loop's handler */
     writer_event(s->writer, NULL, "start", "{}");
 
     if (ready && listen_unix(s) == 0 && (!opts->listen || listen_tcp(s) == 0) &&
@@ -1036,6 +1107,9 @@ int server_run(const server_opts_t *opts)
                                          &s->metrics) == 0)) {
         status = 0;
         uv_timer_start(&s->tick, on_tick, TICK_MS, TICK_MS);
+    } else if (abandoned) {
+        stop(s, "stop signal during recovery");
+        status = 0;
     } else {
         stop(s, "start-up failed");
         status = 1;

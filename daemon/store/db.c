@@ -442,8 +442,8 @@ static int step_failed(sqlite3 *db, uint64_t after, char *err, size_t errlen)
 }
 
 int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
-              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, char *err,
-              size_t errlen)
+              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, db_abandon_fn abandon,
+              void *actx, char *err, size_t errlen)
 {
     sqlite3_stmt *tr = NULL, *tx = NULL;
     struct model_replay *rp = NULL;
@@ -496,6 +496,12 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
             goto out;
         }
         seq = (uint64_t)sqlite3_column_int64(tx, 0);
+        if (abandon && *replayed % DB_ABANDON_EVERY == DB_ABANDON_EVERY - 1 && abandon(actx)) {
+            code = err_fail(err, errlen, WORTH_E_CANCELLED,
+                            "replay given up at seq %llu: worthd is stopping",
+                            (unsigned long long)seq);
+            goto out;
+        }
         /* Trainings that ran before this transition was learnt. */
         while (trc == SQLITE_ROW && (uint64_t)sqlite3_column_int64(tr, 1) < seq) {
             if (rp) {

@@ -63,6 +63,11 @@ int db_open_ro(const char *path, sqlite3 **out, char *err, size_t errlen);
 /* Seconds since 1970, UTC, as stored in created_at and at. */
 double db_now(void);
 
+/* Asked during a long replay whether to give it up (worthd is stopping); nonzero: yes. */
+typedef int (*db_abandon_fn)(void *ctx);
+/* Transitions a replay learns between two calls of its abandon function. */
+#define DB_ABANDON_EVERY 64
+
 /* Plain data: where a model's replay starts. */
 typedef struct db_start_t {
     int64_t checkpoint; /* id of the checkpoint restored, 0 for none */
@@ -95,9 +100,12 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
  *   if other models can be read, the file's if none can (the caller judges).
  * - another code of db_error_code (storage_error, storage_full): the database
  *   could not be read, a failure of the whole database.
+ * - WORTH_E_CANCELLED: abandon (may be NULL; called with actx every
+ *   DB_ABANDON_EVERY transitions) returned nonzero: worthd is stopping.  m
+ *   then holds part of the replay and must not be served or checkpointed.
  */
 int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
-              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, char *err,
-              size_t errlen);
+              uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, db_abandon_fn abandon,
+              void *actx, char *err, size_t errlen);
 
 #endif /* WORTH_DB_H */
