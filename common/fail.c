@@ -1,7 +1,7 @@
 /*
  * fail.c - error messages into caller buffers (see fail.h).  Any thread.
  */
-#include "fail.h"
+#include "common/fail.h"
 
 #include <stdarg.h>
 #include <stdio.h>

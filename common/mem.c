@@ -4,7 +4,7 @@
  * Thread-safe (it only calls the C library).  Never used on the per-transition
  * hot path: estimators allocate everything they need when they are built.
  */
-#include "mem.h"
+#include "common/mem.h"
 
 #include <stdint.h>
 #include <stdio.h>

@@ -40,11 +40,11 @@
 #include <string.h>
 #include <time.h>
 
-#include "db.h"
-#include "mem.h"
+#include "store/db.h"
+#include "common/mem.h"
 #include "say.h"
 #include "worth/errors.h"
-#include "writer.h"
+#include "store/writer.h"
 
 /*
  * Learning runs at a lower priority than the loop thread (nice + LEARN_NICE,

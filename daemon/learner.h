@@ -22,7 +22,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#include "model.h"
+#include "learn/model.h"
 
 struct learner;
 struct writer;

@@ -17,9 +17,9 @@
 #include <sys/socket.h>
 #include <sys/stat.h>
 
-#include "mem.h"
+#include "common/mem.h"
 #include "say.h"
-#include "server.h"
+#include "net/server.h"
 
 #ifndef WORTH_VERSION
 #define WORTH_VERSION "0.0.0"

@@ -23,11 +23,11 @@
 #include <string.h>
 #include <time.h>
 
-#include "arena.h"
-#include "db.h"
-#include "mem.h"
+#include "proto/arena.h"
+#include "store/db.h"
+#include "common/mem.h"
 #include "say.h"
-#include "spec.h"
+#include "proto/spec.h"
 #include "worth/errors.h"
 
 static double mono_s(void)

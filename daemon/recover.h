@@ -13,9 +13,9 @@
 #include <sqlite3.h>
 #include <stddef.h>
 
-#include "db.h"
-#include "proto.h"
-#include "writer.h"
+#include "store/db.h"
+#include "proto/proto.h"
+#include "store/writer.h"
 
 /*
  * Recovers every live model of db (borrowed; the writer must not run yet)

@@ -9,7 +9,7 @@
 
 #include <unistd.h>
 
-#include "fail.h"
+#include "common/fail.h"
 
 int safedir_check(const char *dir, const struct stat *st, const char *what, const char *thing,
                   char *err, size_t errlen)

@@ -24,13 +24,13 @@
  * slot holds 0 so that no NaN is saved, and a NAN TD error (a diverged
  * primary) leaves the drift test where it was.
  */
-#include "diag.h"
+#include "learn/diag.h"
 
 #include <math.h>
 #include <string.h>
 
-#include "fail.h"
-#include "mem.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "worth/errors.h"
 
 /* Longest horizon, also for gamma = 1 where the auto rule never stops. */

@@ -30,7 +30,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#include "ser.h"
+#include "learn/ser.h"
 
 struct diag;
 

@@ -18,7 +18,7 @@
  *   f64 R_max, u32 divergence reason (0 = none), u64 diverged_at, the
  *   weights, the kind's state, and last a u32 CRC-32 of everything before it.
  */
-#include "est.h"
+#include "learn/est.h"
 
 #include <cblas.h>
 #include <math.h>
@@ -26,9 +26,9 @@
 #include <stdio.h>
 #include <string.h>
 
-#include "est_impl.h"
-#include "fail.h"
-#include "mem.h"
+#include "learn/est_impl.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "worth/errors.h"
 
 #define EST_MAGIC 0x54534557u /* "WEST" */

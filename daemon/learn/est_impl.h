@@ -9,8 +9,8 @@
 #ifndef WORTH_EST_IMPL_H
 #define WORTH_EST_IMPL_H
 
-#include "est.h"
-#include "ser.h"
+#include "learn/est.h"
+#include "learn/ser.h"
 
 struct est_ops {
     /* Allocates and initialises the kind's state in e->k; e->w is already set. */

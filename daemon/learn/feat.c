@@ -10,7 +10,7 @@
  * allocated, so a spec like fourier order 9 on 40 dimensions is refused with
  * too_large instead of exhausting memory.  Evaluation must never allocate.
  */
-#include "feat.h"
+#include "learn/feat.h"
 
 #include <math.h>
 #include <stdarg.h>
@@ -18,8 +18,8 @@
 #include <stdio.h>
 #include <string.h>
 
-#include "fail.h"
-#include "mem.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "worth/errors.h"
 
 static const double PI = 3.14159265358979323846;

@@ -24,8 +24,8 @@
 #include <math.h>
 #include <string.h>
 
-#include "est_impl.h"
-#include "mem.h"
+#include "learn/est_impl.h"
+#include "common/mem.h"
 
 struct lstd {
     double *A, *b;     /* accumulators: n x n column-major, n */

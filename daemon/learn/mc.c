@@ -18,8 +18,8 @@
  */
 #include <string.h>
 
-#include "est_impl.h"
-#include "mem.h"
+#include "learn/est_impl.h"
+#include "common/mem.h"
 
 struct ring {
     size_t head, count, cap;

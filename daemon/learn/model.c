@@ -17,7 +17,7 @@
  * bytes), then each estimator's est_save bytes prefixed by a u64 length, the
  * diagnostics' state (diag_save), and a u32 CRC-32 of everything before it.
  */
-#include "model.h"
+#include "learn/model.h"
 
 #include <math.h>
 #include <pthread.h>
@@ -27,9 +27,9 @@
 #include <string.h>
 #include <unistd.h>
 
-#include "fail.h"
-#include "mem.h"
-#include "ser.h"
+#include "common/fail.h"
+#include "common/mem.h"
+#include "learn/ser.h"
 #include "worth/errors.h"
 
 #define MODEL_MAGIC 0x444f4d57u /* "WMOD" */

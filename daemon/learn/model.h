@@ -15,9 +15,9 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#include "diag.h"
-#include "est.h"
-#include "feat.h"
+#include "learn/diag.h"
+#include "learn/est.h"
+#include "learn/feat.h"
 
 struct model;
 

@@ -22,9 +22,9 @@
 #include <math.h>
 #include <string.h>
 
-#include "est_impl.h"
-#include "mem.h"
-#include "rng.h"
+#include "learn/est_impl.h"
+#include "common/mem.h"
+#include "learn/rng.h"
 #include "worth/errors.h"
 
 struct replay {

@@ -74,8 +74,8 @@
 #include <math.h>
 #include <string.h>
 
-#include "est_impl.h"
-#include "mem.h"
+#include "learn/est_impl.h"
+#include "common/mem.h"
 
 struct rls {
     double *P;           /* n x n, row-major */

@@ -5,7 +5,7 @@
  * owns its rng_t.  The output sequence for a seed is part of the checkpoint
  * format's meaning: changing the algorithm changes what a replayed log rebuilds.
  */
-#include "rng.h"
+#include "learn/rng.h"
 
 static uint64_t splitmix64(uint64_t *x)
 {

@@ -5,7 +5,7 @@
  * buffers it is given.  The checksum is zlib's crc32 rather than a home-made
  * one.
  */
-#include "ser.h"
+#include "learn/ser.h"
 
 #include <string.h>
 #include <zlib.h>

@@ -4,7 +4,7 @@
  * No state beyond the weights.  O(n) per transition, no allocation.  Runs on
  * the estimator's owning thread.
  */
-#include "est_impl.h"
+#include "learn/est_impl.h"
 
 static void td_init(struct est *e)
 {

@@ -12,8 +12,8 @@
  */
 #include <string.h>
 
-#include "est_impl.h"
-#include "mem.h"
+#include "learn/est_impl.h"
+#include "common/mem.h"
 
 struct slot {
     double *z;

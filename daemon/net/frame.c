@@ -24,11 +24,11 @@
  *    buffer's or, while a payload is announced, the whole payload's size.
  * It must never: block, call the protocol, or allocate per line.
  */
-#include "frame.h"
+#include "net/frame.h"
 
 #include <string.h>
 
-#include "mem.h"
+#include "common/mem.h"
 
 /* Charges or gives back the difference between what f holds and want; returns 0 or -1. */
 static int recharge(frame_t *f, size_t want)

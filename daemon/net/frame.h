@@ -25,7 +25,7 @@
 
 #include <stddef.h>
 
-#include "budget.h"
+#include "net/budget.h"
 
 /* Most bytes the framer asks for per read. */
 #define FRAME_READ_CHUNK 65536

@@ -8,7 +8,7 @@
  * MAX_HEADERS headers or a head over HDR_MAX bytes is a 400.  Connections are
  * freed only in their close callback.
  */
-#include "metrics.h"
+#include "net/metrics.h"
 
 #include <stdio.h>
 #include <stdlib.h>
@@ -16,9 +16,9 @@
 #include <strings.h>
 #include <sys/socket.h>
 
-#include "mem.h"
+#include "common/mem.h"
 #include "say.h"
-#include "server.h"
+#include "net/server.h"
 
 #define HDR_MAX     8192
 #define MAX_HEADERS 64

@@ -36,7 +36,7 @@
  *    complete; a payload cut short by EOF applies nothing (frame.c).
  * It must never do disk I/O or O(n^2) work per transition.
  */
-#include "server.h"
+#include "net/server.h"
 
 #include <arpa/inet.h>
 #include <errno.h>
@@ -53,18 +53,18 @@
 #include <unistd.h>
 #include <uv.h>
 
-#include "arena.h"
-#include "backup.h"
-#include "db.h"
-#include "frame.h"
-#include "metrics.h"
-#include "mem.h"
-#include "proto.h"
+#include "proto/arena.h"
+#include "store/backup.h"
+#include "store/db.h"
+#include "net/frame.h"
+#include "net/metrics.h"
+#include "common/mem.h"
+#include "proto/proto.h"
 #include "recover.h"
 #include "safedir.h"
 #include "say.h"
 #include "worth/errors.h"
-#include "writer.h"
+#include "store/writer.h"
 
 /* Lines handled per connection before yielding to others. */
 #define LINES_PER_PUMP 64

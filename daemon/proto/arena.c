@@ -5,13 +5,13 @@
  * allocations are recognised in free() by their address lying outside the
  * block.
  */
-#include "arena.h"
+#include "proto/arena.h"
 
 #include <cjson/cJSON.h>
 #include <stdint.h>
 #include <stdlib.h>
 
-#include "mem.h"
+#include "common/mem.h"
 
 static unsigned char *block;
 static size_t cap, used, spills;

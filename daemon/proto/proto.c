@@ -13,7 +13,7 @@
  * order on its connection (a train request holds the connection until its
  * reply), or log a token.
  */
-#include "proto.h"
+#include "proto/proto.h"
 
 #include <cjson/cJSON.h>
 #include <math.h>
@@ -23,11 +23,11 @@
 #include <stdlib.h>
 #include <time.h>
 
-#include "arena.h"
-#include "backup.h"
-#include "mem.h"
+#include "proto/arena.h"
+#include "store/backup.h"
+#include "common/mem.h"
 #include "say.h"
-#include "spec.h"
+#include "proto/spec.h"
 #include "worth/errors.h"
 
 #if !defined(__BYTE_ORDER__) || __BYTE_ORDER__ != __ORDER_LITTLE_ENDIAN__

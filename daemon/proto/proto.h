@@ -16,9 +16,9 @@
 #include <stdint.h>
 
 #include "learner.h"
-#include "model.h"
-#include "server.h"
-#include "writer.h"
+#include "learn/model.h"
+#include "net/server.h"
+#include "store/writer.h"
 
 struct proto;
 

@@ -22,7 +22,7 @@
  * that read back to the same bits: cJSON's own printer settles for 15 digits
  * when they come within an epsilon, so 0.1 + 0.2 would come back as 0.3.
  */
-#include "spec.h"
+#include "proto/spec.h"
 
 #include <inttypes.h>
 #include <limits.h>
@@ -34,8 +34,8 @@
 #include <stdlib.h>
 #include <string.h>
 
-#include "fail.h"
-#include "mem.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "worth/errors.h"
 
 /* Longest field path in a message, e.g. "estimators[15].steps_per_obs". */

@@ -13,7 +13,7 @@
 #include <cjson/cJSON.h>
 #include <stddef.h>
 
-#include "model.h"
+#include "learn/model.h"
 
 /* Plain data, owned by the caller of spec_parse; free with spec_free. */
 typedef struct spec_t {

@@ -30,7 +30,7 @@
  * still names it, and the directory may be written only by worthd's user or
  * root (safedir.h), so nobody else can swap the name in between.
  */
-#include "backup.h"
+#include "store/backup.h"
 
 #include <dirent.h>
 #include <errno.h>
@@ -45,9 +45,9 @@
 #include <time.h>
 #include <unistd.h>
 
-#include "db.h"
-#include "fail.h"
-#include "mem.h"
+#include "store/db.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "safedir.h"
 #include "say.h"
 #include "worth/errors.h"

@@ -16,7 +16,7 @@
  *    row is reported (WORTH_E_DAMAGED, naming its seq), never learnt, and no
  *    NULL blob or text pointer is dereferenced.
  */
-#include "db.h"
+#include "store/db.h"
 
 #include <errno.h>
 #include <fcntl.h>
@@ -31,8 +31,8 @@
 #include <time.h>
 #include <unistd.h>
 
-#include "fail.h"
-#include "mem.h"
+#include "common/fail.h"
+#include "common/mem.h"
 #include "say.h"
 #include "worth/errors.h"
 

@@ -13,7 +13,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#include "model.h"
+#include "learn/model.h"
 
 /* One embedded migration (generated from schema/NNN_*.sql by schema/embed.py). */
 struct db_migration {

@@ -11,7 +11,7 @@
  * XXX: a change between the check that follows a COMMIT and the next check is
  * seen at that next check; no commit is acknowledged in between.
  */
-#include "fileguard.h"
+#include "store/fileguard.h"
 
 #include <errno.h>
 #include <fcntl.h>

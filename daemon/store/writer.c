@@ -26,7 +26,7 @@
  *    from the open connection, which is then reopened there; a replaced one
  *    is never overwritten.  See "the database file's health" below.
  */
-#include "writer.h"
+#include "store/writer.h"
 
 #include <errno.h>
 #include <fcntl.h>
@@ -39,10 +39,10 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
-#include "backup.h"
-#include "db.h"
-#include "fileguard.h"
-#include "mem.h"
+#include "store/backup.h"
+#include "store/db.h"
+#include "store/fileguard.h"
+#include "common/mem.h"
 #include "say.h"
 #include "worth/errors.h"
 

@@ -24,7 +24,7 @@
 #include <string.h>
 #include <time.h>
 
-#include "est.h"
+#include "learn/est.h"
 
 void openblas_set_num_threads(int n);
 

@@ -52,17 +52,17 @@
 #include <time.h>
 #include <unistd.h>
 
-#include "arena.h"
-#include "backup.h"
-#include "db.h"
-#include "frame.h"
+#include "proto/arena.h"
+#include "store/backup.h"
+#include "store/db.h"
+#include "net/frame.h"
 #include "learner.h"
-#include "mem.h"
-#include "proto.h"
+#include "common/mem.h"
+#include "proto/proto.h"
 #include "say.h"
-#include "server.h"
+#include "net/server.h"
 #include "worth/errors.h"
-#include "writer.h"
+#include "store/writer.h"
 
 #define MAX_LINE   1024
 #define MAX_BATCH  8 /* and the queue: two batches in a row park the second */

@@ -22,8 +22,8 @@
 #include <stdlib.h>
 #include <string.h>
 
-#include "est.h"
-#include "mem.h"
+#include "learn/est.h"
+#include "common/mem.h"
 #include "worth/errors.h"
 
 enum ptype { P_F64, P_UINT, P_U64, P_GUARD };

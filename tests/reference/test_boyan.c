@@ -5,8 +5,8 @@
 #include "testutil.h"
 
 #include "boyan.h"
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 #include "worth/errors.h"
 
 static struct est *make(enum est_kind kind, double lambda, double ridge, double delta,

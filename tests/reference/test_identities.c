@@ -7,8 +7,8 @@
  */
 #include "testutil.h"
 
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 
 #define N 5
 

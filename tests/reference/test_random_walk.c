@@ -9,8 +9,8 @@
  */
 #include "testutil.h"
 
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 
 #define S 5
 

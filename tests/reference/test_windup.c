@@ -20,8 +20,8 @@
 
 #include <float.h>
 
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 
 #define N     4
 #define STEPS 10000

@@ -8,9 +8,9 @@
 
 #include <stdlib.h>
 
-#include "diag.h"
-#include "model.h"
-#include "rng.h"
+#include "learn/diag.h"
+#include "learn/model.h"
+#include "learn/rng.h"
 #include "worth/errors.h"
 
 static struct diag *make(double gamma, unsigned horizon, size_t n_est)

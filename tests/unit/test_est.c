@@ -8,10 +8,10 @@
 
 #include <stdlib.h>
 
-#include "est.h"
+#include "learn/est.h"
 #include "est_v1_states.h"
-#include "rng.h"
-#include "ser.h"
+#include "learn/rng.h"
+#include "learn/ser.h"
 #include "worth/errors.h"
 
 #define N       6

@@ -9,7 +9,7 @@
 #include <sys/resource.h>
 #include <time.h>
 
-#include "feat.h"
+#include "learn/feat.h"
 #include "worth/errors.h"
 
 /* Doubles of guard after every buffer handed to feat_eval. */

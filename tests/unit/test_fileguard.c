@@ -15,7 +15,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
-#include "fileguard.h"
+#include "store/fileguard.h"
 #include "testutil.h"
 
 struct dir {

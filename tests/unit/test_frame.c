@@ -12,7 +12,7 @@
  */
 #include "testutil.h"
 
-#include "frame.h"
+#include "net/frame.h"
 
 #define MAXL 16
 

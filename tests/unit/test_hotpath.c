@@ -14,8 +14,8 @@
 
 #include <stdlib.h>
 
-#include "model.h"
-#include "rng.h"
+#include "learn/model.h"
+#include "learn/rng.h"
 
 void *__real_malloc(size_t n);
 void *__real_calloc(size_t c, size_t n);

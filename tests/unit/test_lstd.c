@@ -7,7 +7,7 @@
 
 #include <stdlib.h>
 
-#include "est.h"
+#include "learn/est.h"
 #include "worth/errors.h"
 
 static struct est *make(size_t n, double ridge, double forget, unsigned refit_every)

@@ -8,8 +8,8 @@
  */
 #include "testutil.h"
 
-#include "model.h"
-#include "ser.h"
+#include "learn/model.h"
+#include "learn/ser.h"
 #include "worth/errors.h"
 
 static struct model *const SENTINEL = (struct model *)(uintptr_t)0x40de1;

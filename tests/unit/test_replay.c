@@ -9,8 +9,8 @@
 #include <stdlib.h>
 #include <time.h>
 
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 #include "worth/errors.h"
 
 #define N 3

@@ -9,8 +9,8 @@
 
 #include <stdlib.h>
 
-#include "est.h"
-#include "rng.h"
+#include "learn/est.h"
+#include "learn/rng.h"
 #include "worth/errors.h"
 
 static struct est *make(size_t n, double mu, double delta)

@@ -3,8 +3,8 @@
  */
 #include "testutil.h"
 
-#include "rng.h"
-#include "ser.h"
+#include "learn/rng.h"
+#include "learn/ser.h"
 #include "worth/errors.h"
 
 static void roundtrip_is_bit_exact(void **state)

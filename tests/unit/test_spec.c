@@ -13,8 +13,8 @@
 
 #include <cjson/cJSON.h>
 
-#include "model.h"
-#include "spec.h"
+#include "learn/model.h"
+#include "proto/spec.h"
 #include "worth/errors.h"
 
 static spec_t *const SENTINEL = (spec_t *)(uintptr_t)0x5bec1;

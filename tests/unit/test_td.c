@@ -5,7 +5,7 @@
  */
 #include "testutil.h"
 
-#include "est.h"
+#include "learn/est.h"
 #include "worth/errors.h"
 
 #define N 4
