@@ -1,15 +1,12 @@
 /*
- * learner.c - a model's queue, learner thread and published snapshot.
+ * learner.c - a model's learner thread and the snapshot its queries read.
  *
- * Owns the model, the record ring, the two snapshot buffers and the thread.
- * Three parties share the ring, each with its own cursor:
- *   the loop thread fills slots at head (learner_slot, learner_commit);
- *   the writer thread appends [durable, head) to the log and, after COMMIT,
- *   advances durable (learner_pending, learner_set_durable);
- *   the learner thread applies [tail, durable) to the model.
- * So a record is learnt only once it is in the log, and the model is always
- * the log's replay.  The learner must never let the loop touch the model's
- * mutable state, and never drop an accepted record.
+ * Owns the model, its record queue (core/queue.h), the two snapshot buffers,
+ * the learning history and the thread.  The loop thread fills the queue, the
+ * writer thread logs it, and this thread applies what is durable, in order:
+ * so a record is learnt only once it is in the log, and the model is always
+ * the log's replay.  It must never let the loop touch the model's mutable
+ * state, and never drop an accepted record.
  *
  * The learner thread pushes observations through a model_replay: it checks
  * them and evaluates features while the estimators learn the previous chunk
@@ -19,15 +16,8 @@
  * a rollback, publishing), so the model is then exactly what learning each
  * record alone would have made.
  *
- * Invariants.
- * 1. tail <= durable <= head, each only grows, head - tail <= cap; all three
- *    change under mu.
- * 2. Slots in [tail, head) are written by nobody; the loop writes only
- *    beyond head, the writer only rewrites a record's type to LREC_DEAD (and
- *    a rollback's plan) before advancing durable past it.
- * 3. Seqs: the loop numbers transitions from 1 per model, never reusing one,
- *    also across restarts (recovery starts from the log's last seq).
- * 4. The front snapshot is read only under snap_mu; the swap is under snap_mu.
+ * Invariant: the front snapshot is read only under snap_mu; the swap is
+ * under snap_mu.
  */
 #include "learner.h"
 
@@ -40,6 +30,7 @@
 #include <string.h>
 #include <time.h>
 
+#include "core/queue.h"
 #include "store/db.h"
 #include "common/mem.h"
 #include "say.h"
@@ -52,9 +43,6 @@
  * requests, gets the CPU first, while learning still has every idle cycle.
  */
 #define LEARN_NICE 5
-
-/* What learner_stop adds to cut (rollbacks add one each, far below it). */
-#define CUT_STOP (1 << 24)
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
@@ -81,25 +69,8 @@ struct learner {
     struct model *m;
     size_t dims, n_est;
     learner_opts_t o;
-    int64_t db_id; /* written by the writer before the first durable advance */
-
-    /* Queue (invariants 1-3). */
-    pthread_mutex_t mu;
-    pthread_cond_t cond;
-    unsigned char *ring;
-    size_t cap, stride;
-    uint64_t head, durable, tail;
-    int stop, discard, want_space;
-    /*
-     * Nonzero while a training must be cut short (read by est_train before
-     * every mini-batch step): CUT_STOP once the learner is asked to stop, plus
-     * one for each rollback committed and not yet applied.
-     */
-    atomic_int cut;
-    uint64_t seq;          /* loop thread: last seq given out */
-    uint64_t ckpt_count;   /* under mu: the writer's count of valid checkpoints */
-    double ckpt_newest_at; /* under mu */
-    uint64_t training;     /* loop thread: last training ordinal given out */
+    struct queue *q;   /* the records, shared with the loop and the writer */
+    uint64_t training; /* loop thread: last training ordinal given out */
 
     /* Loop-side mirror of the model's source table (a superset: rollbacks free no slot). */
     char (*src)[MODEL_NAME_MAX + 1];
@@ -128,8 +99,8 @@ struct learner {
 
     pthread_t thread;
     int joined;
-    learner_post_fn post;
-    learner_wake_fn wake;
+    event_post_fn post;
+    event_wake_fn wake;
     void *ctx;
 };
 
@@ -147,9 +118,9 @@ static uint64_t mono_ns(void)
     return (uint64_t)ts.tv_sec * 1000000000u + (uint64_t)ts.tv_nsec;
 }
 
-static learner_rec_t *rec_at(struct learner *l, uint64_t k)
+static queue_rec_t *rec_at(struct learner *l, uint64_t k)
 {
-    return (learner_rec_t *)(l->ring + (size_t)(k % l->cap) * l->stride);
+    return queue_rec(l->q, k);
 }
 
 /* Fills the back snapshot from the model and swaps it to the front.  Learner thread. */
@@ -204,7 +175,7 @@ static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, 
     va_start(ap, fmt);
     vsnprintf(buf, sizeof buf, fmt, ap);
     va_end(ap);
-    learner_event_t ev = {.kind = LEV_REPLY, .l = l, .conn_id = conn_id, .rc = rc};
+    event_t ev = {.kind = EV_REPLY, .q = l->q, .conn_id = conn_id, .rc = rc};
     ev.text = mem_strdup(buf);
     l->post(l->ctx, &ev);
 }
@@ -213,7 +184,7 @@ static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, 
 static int stopping(void *ctx)
 {
     struct learner *l = ctx;
-    return atomic_load(&l->cut) >= CUT_STOP;
+    return queue_stopping(l->q);
 }
 
 /* Serialises the model and hands it to the writer. */
@@ -232,7 +203,7 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
     model_save(l->m, NULL, 0, &len);
     uint8_t *blob = mem_alloc(len);
     CHECK(model_save(l->m, blob, len, &len) == 0);
-    writer_store_checkpoint(l->o.writer, l, l->applied_seq, l->model_training,
+    writer_store_checkpoint(l->o.writer, l->q, l->applied_seq, l->model_training,
                             (unsigned)model_diverged(l->m), label, blob, len, conn_id);
     l->since_checkpoint = 0;
 }
@@ -248,7 +219,7 @@ static void drift_event(struct learner *l, const diag_drift_t *dr)
     uint64_t onset_seq = l->applied_seq > back ? l->applied_seq - back : 0;
     say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
              (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
-    writer_drift(l->o.writer, l, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
+    writer_drift(l->o.writer, l->q, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
                  dr->alarms, model_diag_params(l->m)->on_drift);
 }
 
@@ -260,19 +231,19 @@ struct train_ctx {
 static void on_pass(void *ctx, unsigned pass, unsigned of, double change)
 {
     struct train_ctx *t = ctx;
-    learner_event_t ev = {.kind = LEV_PROGRESS,
-                          .l = t->l,
-                          .conn_id = t->conn_id,
-                          .pass = pass,
-                          .of = of,
-                          .change = change};
+    event_t ev = {.kind = EV_PROGRESS,
+                  .q = t->l->q,
+                  .conn_id = t->conn_id,
+                  .pass = pass,
+                  .of = of,
+                  .change = change};
     t->l->post(t->l->ctx, &ev);
 }
 
 /* Restores the checkpoint of a rollback plan and replays the log after it. */
-static void rollback(struct learner *l, learner_rec_t *r)
+static void rollback(struct learner *l, queue_rec_t *r)
 {
-    learner_plan_t *p = r->job;
+    queue_plan_t *p = r->job;
     char err[256];
     if (p->rc) {
         reply(l, r->conn_id, p->rc, "%s", p->err);
@@ -291,8 +262,8 @@ static void rollback(struct learner *l, learner_rec_t *r)
         db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
         int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err) ? WORTH_E_STORAGE_ERROR : 0;
         if (rc == 0)
-            rc = db_replay(ro, l->db_id, l->m, &from, r->seq, &replayed, &last_training, NULL,
-                           stopping, l, err, sizeof err);
+            rc = db_replay(ro, queue_db_id(l->q), l->m, &from, r->seq, &replayed, &last_training,
+                           NULL, stopping, l, err, sizeof err);
         sqlite3_close(ro);
         if (rc) {
             /*
@@ -301,11 +272,8 @@ static void rollback(struct learner *l, learner_rec_t *r)
              * next start rebuilds it from the log (the rollback is committed there).
              */
             l->tainted = 1;
-            if (rc == WORTH_E_CANCELLED) {
-                pthread_mutex_lock(&l->mu);
-                l->discard = 1; /* what is queued is in the log: the next start learns it */
-                pthread_mutex_unlock(&l->mu);
-            }
+            if (rc == WORTH_E_CANCELLED)
+                queue_discard(l->q); /* what is queued is in the log: the next start learns it */
             say_error("model %s: replay after rollback failed: %s; it is not checkpointed "
                       "until worthd restarts and rebuilds it from the log",
                       l->name, err);
@@ -356,7 +324,7 @@ static void report_divergence(struct learner *l)
                  "{\"estimator\":\"%s\",\"update\":%llu,\"seq\":%llu,\"reason\":\"%s\"}",
                  model_est_name(l->m, i), (unsigned long long)st.diverged_at,
                  (unsigned long long)seq, st.why ? st.why : "");
-        writer_event(l->o.writer, l, "diverged", detail);
+        writer_event(l->o.writer, l->q, "diverged", detail);
     }
 }
 
@@ -378,7 +346,7 @@ static void divergence_seen(struct learner *l)
 static void observed(void *ctx)
 {
     struct learner *l = ctx;
-    learner_rec_t *r = rec_at(l, l->cb_k++);
+    queue_rec_t *r = rec_at(l, l->cb_k++);
     l->applied_seq = r->seq;
     diag_drift_t dr;
     diag_drift(model_diag(l->m), &dr);
@@ -393,7 +361,7 @@ static void observed(void *ctx)
  * worker threads; observed() runs for it later, in order).  A checkpoint due
  * after it waits until everything pushed has been learnt.
  */
-static void learn(struct learner *l, learner_rec_t *r)
+static void learn(struct learner *l, queue_rec_t *r)
 {
     model_obs_t o = {
         .x = r->v,
@@ -427,64 +395,65 @@ static void learn(struct learner *l, learner_rec_t *r)
  * those.  A checkpoint follows either way: recovery then restores the result
  * instead of training again before worthd can listen.
  */
-static void train(struct learner *l, learner_rec_t *r)
+static void train(struct learner *l, queue_rec_t *r)
 {
     est_train_t rep = {.passes = 0};
     struct train_ctx t = {l, r->conn_id};
-    est_train_opts_t to = {.passes = r->passes, .progress = on_pass, .ctx = &t, .cancel = &l->cut};
+    est_train_opts_t to = {
+        .passes = r->passes, .progress = on_pass, .ctx = &t, .cancel = queue_cut(l->q)};
     int rc = model_train(l->m, r->est, &to, &rep);
     const char *why = NULL;
     if (rep.cancelled) {
-        why = atomic_load(&l->cut) >= CUT_STOP
-                  ? (l->discard ? "the model was dropped" : "worthd is stopping")
+        why = queue_stopping(l->q)
+                  ? (queue_discarding(l->q) ? "the model was dropped" : "worthd is stopping")
                   : "a rollback was requested";
         say_info("model %s: training %llu cut short after %llu mini-batch steps (%u of %u passes): "
                  "%s",
                  l->name, (unsigned long long)r->ordinal, (unsigned long long)rep.steps, rep.passes,
                  r->passes, why);
-        if (!l->discard)
-            writer_cut_training(l->o.writer, l, r->ordinal, rep.steps);
+        if (!queue_discarding(l->q))
+            writer_cut_training(l->o.writer, l->q, r->ordinal, rep.steps);
     }
     l->model_training = r->ordinal;
-    if (!l->discard)
+    if (!queue_discarding(l->q))
         checkpoint(l, NULL, 0);
     report_divergence(l);
     publish(l, wall_s()); /* queries after the reply see the trained weights */
-    learner_event_t ev = {.kind = LEV_TRAINED,
-                          .l = l,
-                          .conn_id = r->conn_id,
-                          .rc = rc,
-                          .pass = rep.passes,
-                          .of = r->passes,
-                          .change = rep.change,
-                          .converged = rep.converged,
-                          .seq = rep.steps};
+    event_t ev = {.kind = EV_TRAINED,
+                  .q = l->q,
+                  .conn_id = r->conn_id,
+                  .rc = rc,
+                  .pass = rep.passes,
+                  .of = r->passes,
+                  .change = rep.change,
+                  .converged = rep.converged,
+                  .seq = rep.steps};
     if (why)
         ev.text = mem_strdup(why);
     l->post(l->ctx, &ev);
 }
 
-static void apply(struct learner *l, learner_rec_t *r)
+static void apply(struct learner *l, queue_rec_t *r)
 {
     switch (r->type) {
-    case LREC_OBS:
+    case QREC_OBS:
         break; /* observations go through learn() */
-    case LREC_TRAIN:
+    case QREC_TRAIN:
         train(l, r);
         return;
-    case LREC_CHECKPOINT:
+    case QREC_CHECKPOINT:
         checkpoint(l, r->est ? r->src : NULL, r->conn_id);
         return;
-    case LREC_ROLLBACK:
+    case QREC_ROLLBACK:
         rollback(l, r);
-        atomic_fetch_sub(&l->cut, 1); /* this rollback no longer cuts a training short */
+        queue_rollback_done(l->q); /* this rollback no longer cuts a training short */
         l->applied_seq = r->seq;
         l->since_checkpoint = 0;
         mem_free(r->job->blob);
         mem_free(r->job);
         r->job = NULL;
         return;
-    case LREC_DEAD:
+    case QREC_DEAD:
         if (r->seq > l->applied_seq)
             l->applied_seq = r->seq;
         return;
@@ -500,31 +469,23 @@ static void *run(void *arg)
     double last_update = 0;
     int dirty = 0;
     for (;;) {
-        pthread_mutex_lock(&l->mu);
-        while (l->durable == l->tail && !(l->stop && (l->discard || l->head == l->tail)))
-            pthread_cond_wait(&l->cond, &l->mu);
-        if (l->stop && (l->discard || l->head == l->tail)) {
-            uint64_t from = l->tail, to = l->head;
-            pthread_mutex_unlock(&l->mu);
+        uint64_t from, to;
+        if (!queue_take(l->q, CHUNK, &from, &to)) {
             /* Dropped: requests still queued get their one reply. */
             for (uint64_t k = from; k < to; k++) {
-                learner_rec_t *r = rec_at(l, k);
-                if (r->type == LREC_TRAIN) {
-                    learner_event_t ev = {.kind = LEV_TRAINED,
-                                          .l = l,
-                                          .conn_id = r->conn_id,
-                                          .rc = WORTH_E_NO_SUCH_MODEL};
+                queue_rec_t *r = rec_at(l, k);
+                if (r->type == QREC_TRAIN) {
+                    event_t ev = {.kind = EV_TRAINED,
+                                  .q = l->q,
+                                  .conn_id = r->conn_id,
+                                  .rc = WORTH_E_NO_SUCH_MODEL};
                     l->post(l->ctx, &ev);
-                } else if (r->type == LREC_CHECKPOINT || r->type == LREC_ROLLBACK) {
+                } else if (r->type == QREC_CHECKPOINT || r->type == QREC_ROLLBACK) {
                     reply(l, r->conn_id, WORTH_E_NO_SUCH_MODEL, "model %s was dropped", l->name);
                 }
             }
             break;
         }
-        uint64_t from = l->tail, to = l->durable;
-        pthread_mutex_unlock(&l->mu);
-        if (to - from > CHUNK)
-            to = from + CHUNK;
 
         /*
          * Observations are pushed to the replay; anything else first waits
@@ -533,8 +494,8 @@ static void *run(void *arg)
          */
         l->cb_k = from;
         for (uint64_t k = from; k < to; k++) {
-            learner_rec_t *r = rec_at(l, k);
-            if (r->type == LREC_OBS) {
+            queue_rec_t *r = rec_at(l, k);
+            if (r->type == QREC_OBS) {
                 learn(l, r);
                 continue;
             }
@@ -547,11 +508,7 @@ static void *run(void *arg)
         last_update = wall_s();
         dirty = 1;
 
-        pthread_mutex_lock(&l->mu);
-        l->tail = to;
-        int empty = l->durable == l->tail, wake = l->want_space;
-        l->want_space = 0;
-        pthread_mutex_unlock(&l->mu);
+        int empty = 0, wake = queue_release(l->q, to, &empty);
         uint64_t now = mono_ns();
         if (empty || now - last_pub >= PUBLISH_NS) {
             publish(l, last_update);
@@ -563,23 +520,22 @@ static void *run(void *arg)
     }
     model_replay_end(l->rp);
     l->rp = NULL;
-    if (!l->discard && l->since_checkpoint > 0)
+    if (!queue_discarding(l->q) && l->since_checkpoint > 0)
         checkpoint(l, NULL, 0); /* the clean-shutdown checkpoint */
     if (dirty)
         publish(l, last_update);
-    learner_event_t ev = {.kind = LEV_EXITED, .l = l};
+    event_t ev = {.kind = EV_EXITED, .q = l->q};
     l->post(l->ctx, &ev);
     return NULL;
 }
 
 double learner_footprint(size_t dims, const learner_opts_t *o)
 {
-    size_t stride = (sizeof(learner_rec_t) + 2 * dims * sizeof(double) + 7) & ~(size_t)7;
-    return (double)o->queue_cap * (double)stride + (double)HIST_MAX * sizeof(learner_sample_t);
+    return queue_footprint(dims, o->queue_cap) + (double)HIST_MAX * sizeof(learner_sample_t);
 }
 
 struct learner *learner_new(const char *name, char *spec_json, struct model *m,
-                            const learner_opts_t *o, learner_post_fn post, learner_wake_fn wake,
+                            const learner_opts_t *o, event_post_fn post, event_wake_fn wake,
                             void *ctx)
 {
     struct learner *l = mem_calloc(1, sizeof *l);
@@ -589,10 +545,8 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     l->o = *o;
     l->dims = model_dims(m);
     l->n_est = model_n_est(m);
-    l->cap = o->queue_cap;
-    l->stride = (sizeof(learner_rec_t) + 2 * l->dims * sizeof(double) + 7) & ~(size_t)7;
-    l->ring = mem_calloc(l->cap, l->stride);
-    l->seq = l->applied_seq = o->seq;
+    l->q = queue_new(name, l->dims, o->queue_cap, o->seq);
+    l->applied_seq = o->seq;
     l->training = o->training;
     l->model_training = o->model_training;
     l->max_src = model_max_sources(m);
@@ -604,8 +558,6 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     l->post = post;
     l->wake = wake;
     l->ctx = ctx;
-    pthread_mutex_init(&l->mu, NULL);
-    pthread_cond_init(&l->cond, NULL);
     pthread_mutex_init(&l->snap_mu, NULL);
     size_t ss = model_snap_size(m);
     for (int i = 0; i < 2; i++)
@@ -626,13 +578,7 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
 
 void learner_stop(struct learner *l, int discard)
 {
-    pthread_mutex_lock(&l->mu);
-    if (!l->stop)
-        atomic_fetch_add(&l->cut, CUT_STOP); /* a training running now ends at its next step */
-    l->stop = 1;
-    l->discard |= discard;
-    pthread_cond_signal(&l->cond);
-    pthread_mutex_unlock(&l->mu);
+    queue_stop(l->q, discard);
 }
 
 void learner_join(struct learner *l)
@@ -649,40 +595,21 @@ void learner_free(struct learner *l)
         return;
     learner_stop(l, 1);
     learner_join(l);
-    /* Plans of rollbacks never reached. */
-    for (uint64_t k = l->tail; k < l->head; k++) {
-        learner_rec_t *r = rec_at(l, k);
-        if (r->type == LREC_ROLLBACK && r->job) {
-            mem_free(r->job->blob);
-            mem_free(r->job);
-        }
-    }
-    pthread_mutex_destroy(&l->mu);
-    pthread_cond_destroy(&l->cond);
     pthread_mutex_destroy(&l->snap_mu);
     for (int i = 0; i < 2; i++)
         mem_free(l->snaps[i].data);
     mem_free(l->qwork);
     mem_free(l->hist);
-    mem_free(l->ring);
+    queue_free(l->q);
     mem_free(l->src);
     mem_free(l->spec_json);
     model_free(l->m);
     mem_free(l);
 }
 
-size_t learner_space(struct learner *l)
+struct queue *learner_queue(const struct learner *l)
 {
-    pthread_mutex_lock(&l->mu);
-    size_t used = (size_t)(l->head - l->tail);
-    pthread_mutex_unlock(&l->mu);
-    return l->cap - used;
-}
-
-learner_rec_t *learner_slot(struct learner *l, size_t i)
-{
-    /* head is written only by this (loop) thread: reading it unlocked is safe. */
-    return rec_at(l, l->head + i);
+    return l->q;
 }
 
 static long mirror_find(const struct learner *l, const char *name)
@@ -719,87 +646,20 @@ int learner_sources_fit(struct learner *l, const char *const *names, size_t k, s
 uint64_t learner_commit(struct learner *l, size_t k)
 {
     for (size_t i = 0; i < k; i++) {
-        learner_rec_t *r = rec_at(l, l->head + i);
-        r->last = i + 1 == k;
-        if (r->type == LREC_OBS) {
-            r->seq = ++l->seq;
-            if (mirror_find(l, r->src) < 0) {
-                CHECK(l->n_src < l->max_src);
-                memcpy(l->src[l->n_src++], r->src, sizeof l->src[0]);
-            }
-        } else {
-            r->seq = l->seq;
-            if (r->type == LREC_ROLLBACK)
-                atomic_fetch_add(&l->cut, 1); /* cut short a training ahead of it */
+        queue_rec_t *r = queue_slot(l->q, i);
+        if (r->type == QREC_OBS && mirror_find(l, r->src) < 0) {
+            CHECK(l->n_src < l->max_src);
+            memcpy(l->src[l->n_src++], r->src, sizeof l->src[0]);
         }
     }
-    pthread_mutex_lock(&l->mu);
-    l->head += k;
-    pthread_mutex_unlock(&l->mu);
+    uint64_t seq = queue_commit(l->q, k);
     writer_kick(l->o.writer);
-    return l->seq;
-}
-
-void learner_want_space(struct learner *l)
-{
-    pthread_mutex_lock(&l->mu);
-    l->want_space = 1;
-    pthread_mutex_unlock(&l->mu);
-}
-
-uint64_t learner_last_seq(const struct learner *l)
-{
-    return l->seq;
+    return seq;
 }
 
 uint64_t learner_next_training(struct learner *l)
 {
     return ++l->training;
-}
-
-void learner_pending(struct learner *l, uint64_t *from, uint64_t *to)
-{
-    pthread_mutex_lock(&l->mu);
-    *from = l->durable;
-    *to = l->head;
-    pthread_mutex_unlock(&l->mu);
-}
-
-learner_rec_t *learner_rec(struct learner *l, uint64_t k)
-{
-    return rec_at(l, k);
-}
-
-void learner_set_durable(struct learner *l, uint64_t to)
-{
-    pthread_mutex_lock(&l->mu);
-    if (to > l->durable)
-        l->durable = to;
-    pthread_cond_signal(&l->cond);
-    pthread_mutex_unlock(&l->mu);
-}
-
-void learner_rollback_gone(struct learner *l)
-{
-    atomic_fetch_sub(&l->cut, 1);
-}
-
-void learner_set_checkpoint_info(struct learner *l, uint64_t count, double newest_at)
-{
-    pthread_mutex_lock(&l->mu);
-    l->ckpt_count = count;
-    l->ckpt_newest_at = newest_at;
-    pthread_mutex_unlock(&l->mu);
-}
-
-int64_t learner_db_id(const struct learner *l)
-{
-    return l->db_id;
-}
-
-void learner_set_db_id(struct learner *l, int64_t id)
-{
-    l->db_id = id;
 }
 
 const char *learner_name(const struct learner *l)
@@ -856,12 +716,9 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->horizon = diag_horizon(model_diag(l->m));
     out->last_update = s->last_update;
     pthread_mutex_unlock(&l->snap_mu);
-    out->received = l->seq;
-    pthread_mutex_lock(&l->mu);
-    out->queued = (size_t)(l->head - l->tail);
-    out->checkpoints = l->ckpt_count;
-    out->newest_checkpoint_at = l->ckpt_newest_at;
-    pthread_mutex_unlock(&l->mu);
+    out->received = queue_last_seq(l->q);
+    out->queued = queue_depth(l->q);
+    queue_checkpoint_info(l->q, &out->checkpoints, &out->newest_checkpoint_at);
 }
 
 size_t learner_history(struct learner *l, learner_sample_t *out, size_t max)

@@ -1,20 +1,17 @@
 /*
- * learner.h - one model at run time: its queue, its learner thread and the
- * snapshot that queries read.
+ * learner.h - one model at run time: its learner thread and the snapshot
+ * that queries read.
  *
- * The loop thread is the only producer: it validates requests, fills record
- * slots and commits them in arrival order, numbering transitions.  The writer
- * thread appends committed records to the log and marks them durable.  The
- * learner thread is the only consumer: it applies durable records to the
- * model in order and publishes a snapshot of every estimator's weights (and
- * what sd needs) at most every millisecond and whenever its queue runs dry.
- * Queries take the snapshot under a short lock and never wait for a batch.  A
- * full queue never drops anything: the producer is told there is no space and
- * parks the request.
+ * The learner owns the model and its record queue (core/queue.h): the loop
+ * thread fills the queue (through learner_commit, which also keeps the
+ * source table's mirror), the writer thread logs it, and the learner thread
+ * applies what is durable, in order, and publishes a snapshot of every
+ * estimator's weights (and what sd needs) at most every millisecond and
+ * whenever its queue runs dry.  Queries take the snapshot under a short lock
+ * and never wait for a batch.
  *
- * Thread rules: [loop] functions are for the loop thread only, [writer] for
- * the writer thread; the callbacks passed to learner_new are called from the
- * learner thread.
+ * Thread rules: [loop] functions are for the loop thread only; the callbacks
+ * passed to learner_new are called from the learner thread.
  */
 #ifndef WORTH_LEARNER_H
 #define WORTH_LEARNER_H
@@ -22,80 +19,12 @@
 #include <stddef.h>
 #include <stdint.h>
 
+#include "core/event.h"
 #include "learn/model.h"
 
 struct learner;
+struct queue;
 struct writer;
-
-/* Record types in the queue. */
-enum {
-    LREC_OBS = 1,        /* a transition */
-    LREC_TRAIN = 2,      /* a train request */
-    LREC_CHECKPOINT = 3, /* a checkpoint request (label in src when est = 1) */
-    LREC_ROLLBACK = 4,   /* a rollback request (plan in job) */
-    LREC_DEAD = 5        /* a record whose commit failed: skipped */
-};
-
-/* Plain data: a rollback, filled by the loop, then the writer, then used by the learner. */
-typedef struct learner_plan_t {
-    int64_t checkpoint; /* requested id */
-    int replay;         /* re-learn the log after it */
-    int by_t;           /* window on t, not seq */
-    double lo, hi;      /* the excluded window, inclusive; empty when lo > hi */
-    /* filled by the writer */
-    int rc; /* 0, or the error to reply */
-    char err[200];
-    uint64_t cp_seq, cp_training, undone;
-    uint8_t *blob; /* the checkpoint's state (mem_alloc, owned by the plan) */
-    size_t blob_len;
-} learner_plan_t;
-
-/* One queue slot; x and x_next follow in v (2 * dims doubles). */
-typedef struct learner_rec_t {
-    uint32_t type;
-    uint32_t terminal;
-    uint64_t seq;     /* OBS: its seq; others: the last transition's seq before it */
-    uint64_t ordinal; /* TRAIN: the training's number */
-    double r;
-    double dt_s;         /* NAN when absent */
-    double t_s;          /* NAN when absent */
-    uint32_t est;        /* TRAIN: estimator index; CHECKPOINT: 1 when labelled */
-    uint32_t passes;     /* TRAIN */
-    uint32_t last;       /* 1 on the last record of a request (a commit never splits one) */
-    uint64_t conn_id;    /* TRAIN, CHECKPOINT, ROLLBACK: who gets the reply */
-    learner_plan_t *job; /* ROLLBACK */
-    char src[MODEL_NAME_MAX + 1]; /* OBS: source; CHECKPOINT: label */
-    double v[];
-} learner_rec_t;
-
-enum learner_event_kind {
-    LEV_PROGRESS, /* a training pass finished */
-    LEV_TRAINED,  /* a train request finished (rc, passes, change, converged; seq: the
-                     mini-batch steps; text: why it was cut short, or NULL; owned) */
-    LEV_EXITED,   /* the learner thread has ended; join it */
-    LEV_REPLY,    /* a reply for conn_id: rc, and text (owned by the event) */
-    LEV_DURABLE,  /* the model's records up to seq are committed */
-    LEV_FAILED,   /* the model's records up to seq failed to commit (text: why, owned) */
-    LEV_RELEASED  /* the writer has forgotten the model */
-};
-
-/* Plain data, passed by pointer to the post callback, which must copy it. */
-typedef struct learner_event_t {
-    enum learner_event_kind kind;
-    struct learner *l;
-    uint64_t conn_id;
-    int rc;
-    unsigned pass, of;
-    double change;
-    int converged;
-    uint64_t seq;
-    char *text; /* LEV_REPLY: the fields after "ok":true, or the error message */
-} learner_event_t;
-
-/* Called on the learner (or writer) thread; must not block for long. */
-typedef void (*learner_post_fn)(void *ctx, const learner_event_t *ev);
-/* Called on the learner thread when it frees queue space a producer waits for. */
-typedef void (*learner_wake_fn)(void *ctx);
 
 /* Plain data: counters and per-estimator figures from the latest snapshot. */
 typedef struct learner_stats_t {
@@ -143,7 +72,7 @@ typedef struct learner_opts_t {
  * the caller; stop, then learner_free after its LEV_EXITED or learner_join).
  */
 struct learner *learner_new(const char *name, char *spec_json, struct model *m,
-                            const learner_opts_t *o, learner_post_fn post, learner_wake_fn wake,
+                            const learner_opts_t *o, event_post_fn post, event_wake_fn wake,
                             void *ctx);
 /* Returns the bytes learner_new allocates for a model of dims inputs besides the model itself
  * (its queue of o->queue_cap records and its history), for a limit checked before it. */
@@ -160,10 +89,8 @@ void learner_free(struct learner *l);
 
 /* Producer side [loop] */
 
-/* Returns how many record slots are free now. */
-size_t learner_space(struct learner *l);
-/* Returns the i-th free slot (i < learner_space) to fill before committing. */
-learner_rec_t *learner_slot(struct learner *l, size_t i);
+/* Returns the model's queue (owned by the learner): queue_space and queue_slot to fill it. */
+struct queue *learner_queue(const struct learner *l);
 /*
  * Checks that the k source names (borrowed; NULL means the default source)
  * would fit in the model's source slots.  Returns 0 or WORTH_E_TOO_MANY_SOURCES
@@ -173,32 +100,13 @@ learner_rec_t *learner_slot(struct learner *l, size_t i);
 int learner_sources_fit(struct learner *l, const char *const *names, size_t k, size_t *bad,
                         char *err, size_t errlen);
 /*
- * Commits the first k filled slots, numbering their transitions, and wakes
- * the writer.  Returns the seq of the last transition accepted so far.
+ * Commits the first k filled slots of the queue (queue_commit), remembering
+ * new sources, and wakes the writer.  Returns the seq of the last transition
+ * accepted so far.
  */
 uint64_t learner_commit(struct learner *l, size_t k);
-/* Asks to be woken (the wake callback) when space is freed. */
-void learner_want_space(struct learner *l);
-/* Returns the seq of the last accepted transition. */
-uint64_t learner_last_seq(const struct learner *l);
 /* Returns the ordinal the next train request gets. */
 uint64_t learner_next_training(struct learner *l);
-
-/* Writer side [writer] */
-
-/* Sets *from and *to to the records committed by the loop but not yet durable. */
-void learner_pending(struct learner *l, uint64_t *from, uint64_t *to);
-/* Returns record k (from <= k < to of learner_pending). */
-learner_rec_t *learner_rec(struct learner *l, uint64_t k);
-/* Releases records before `to` to the learner thread. */
-void learner_set_durable(struct learner *l, uint64_t to);
-/* A rollback record will never be applied (its commit failed): it no longer cuts a training. */
-void learner_rollback_gone(struct learner *l);
-/* The model's id in the database (set by the writer before any record is written). */
-int64_t learner_db_id(const struct learner *l);
-void learner_set_db_id(struct learner *l, int64_t id);
-/* The writer's count of valid checkpoints and the newest one's time (any thread). */
-void learner_set_checkpoint_info(struct learner *l, uint64_t count, double newest_at);
 
 /* Queries [loop] */
 

@@ -20,6 +20,7 @@
 #include "common/mem.h"
 #include "say.h"
 #include "net/server.h"
+#include "worthd.h"
 
 #ifndef WORTH_VERSION
 #define WORTH_VERSION "0.0.0"
@@ -161,7 +162,7 @@ static void raise_nofile(size_t max_conns)
 
 int main(int argc, char **argv)
 {
-    server_opts_t o = {
+    config_t o = {
         .socket_path = "./worthd.sock",
         .listen = NULL,
         .token = NULL,
@@ -403,7 +404,7 @@ int main(int argc, char **argv)
     openblas_set_num_threads(1);
     say_info("worthd %s starting", WORTH_VERSION);
     raise_nofile(o.max_conns);
-    int status = server_run(&o);
+    int status = worthd_run(&o);
     mem_free(token);
     return status;
 }

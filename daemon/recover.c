@@ -11,7 +11,7 @@
  * A failure that is the model's own (its stored spec does not parse or build,
  * a row of its log or its trainings is damaged, SQLITE_CORRUPT while reading
  * its rows) quarantines that model alone: no learner is started, the protocol
- * registry answers every request naming it with `damaged` (proto_add_damaged),
+ * registry answers every request naming it with `damaged` (sink->damaged),
  * a `quarantined` event is recorded and the log says what to do; every other
  * model starts normally.  A failure that is not the model's own (the models
  * table cannot be read, an I/O error) stops start-up.
@@ -76,7 +76,7 @@ struct suspect {
  * fix, or for seq (the offending transition; 0 when no single row is to blame) the row.
  */
 static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, const char *why,
-                       const char *fix, struct proto *p, struct writer *w)
+                       const char *fix, const recover_sink_t *sink, struct writer *w)
 {
     const char *file = sqlite3_db_filename(db, "main");
     char row[128];
@@ -91,7 +91,7 @@ static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, 
             "%s, %s, and start worthd again; or give it up: model.drop forgets it, and a "
             "new model of that name may then be created",
             name, why, file ? file : "the database", seq ? row : fix);
-        proto_add_damaged(p, id, name, seq, why);
+        sink->damaged(sink->ctx, id, name, seq, why);
     } else {
         say_error("the model with id %lld in %s has no name and is not served: %s.  Give its "
                   "row in the models table a name and start worthd again, or set its dropped_at",
@@ -114,14 +114,14 @@ static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, 
  * reason in err (nothing done yet: a suspect); or R_STOP with err when start-up must stop.
  */
 static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *spec_text,
-                       struct proto *p, struct writer *w, learner_post_fn post,
-                       learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx,
+                       const recover_sink_t *sink, struct writer *w, event_post_fn post,
+                       event_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx,
                        char *err, size_t errlen)
 {
     double t0 = mono_s();
     char why[512];
     if (!name) {
-        quarantine(db, id, NULL, 0, "its name is not text", NULL, p, w);
+        quarantine(db, id, NULL, 0, "its name is not text", NULL, sink, w);
         return R_QUARANTINED;
     }
     cJSON *root = spec_text ? cJSON_Parse(spec_text) : NULL;
@@ -135,13 +135,13 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
                  !spec_text ? "it is not text"
                  : root     ? why
                             : "not JSON");
-        quarantine(db, id, name, 0, what, FIX_SPEC, p, w);
+        quarantine(db, id, name, 0, what, FIX_SPEC, sink, w);
         return R_QUARANTINED;
     }
     if (strcmp(s->name, name) != 0) {
         snprintf(why, sizeof why, "its stored spec names another model (\"%s\")", s->name);
         spec_free(s);
-        quarantine(db, id, name, 0, why, FIX_SPEC, p, w);
+        quarantine(db, id, name, 0, why, FIX_SPEC, sink, w);
         return R_QUARANTINED;
     }
     struct model *m = NULL;
@@ -149,7 +149,7 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
         char what[600];
         snprintf(what, sizeof what, "its stored spec does not build: %s", why);
         spec_free(s);
-        quarantine(db, id, name, 0, what, FIX_SPEC, p, w);
+        quarantine(db, id, name, 0, what, FIX_SPEC, sink, w);
         return R_QUARANTINED;
     }
     db_start_t start;
@@ -183,7 +183,7 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
             return R_ABANDONED;
         }
         if (rc == WORTH_E_DAMAGED) {
-            quarantine(db, id, name, bad, why, FIX_TRAINING, p, w);
+            quarantine(db, id, name, bad, why, FIX_TRAINING, sink, w);
             return R_READ_DAMAGED;
         }
         if (rc == WORTH_E_BAD_DATABASE) {
@@ -196,15 +196,15 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
     if (cp_seq > last_seq)
         last_seq = cp_seq;
     learner_opts_t lo;
-    proto_learner_opts(p, &lo);
+    lo = *sink->opts;
     lo.seq = last_seq;
     lo.training = last_training;
     lo.model_training = training;
     char *canonical = s->canonical;
     s->canonical = NULL;
     struct learner *l = learner_new(name, canonical, m, &lo, post, wake, ctx);
-    proto_add_recovered(p, l);
-    writer_add_model(w, l, id);
+    writer_add_model(w, learner_queue(l), id);
+    sink->model(sink->ctx, l);
     double dt = mono_s() - t0;
     if (start.checkpoint)
         say_info("model %s: restored checkpoint %lld (seq %llu), replayed %llu transitions in "
@@ -222,13 +222,13 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
              "{\"checkpoint\":%lld,\"replayed\":%llu,\"seconds\":%.3f,\"seq\":%llu}",
              (long long)start.checkpoint, (unsigned long long)replayed, dt,
              (unsigned long long)last_seq);
-    writer_event(w, l, "recovered", detail);
+    writer_event(w, learner_queue(l), "recovered", detail);
     spec_free(s);
     return R_SERVED;
 }
 
-int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
-                   learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
+int recover_models(sqlite3 *db, const recover_sink_t *sink, struct writer *w, event_post_fn post,
+                   event_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
                    size_t errlen)
 {
     sqlite3_stmt *st = NULL;
@@ -254,8 +254,8 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
             out = R_ABANDONED;
             break;
         }
-        out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL, p,
-                          w, post, wake, ctx, stop_asked, actx, err, errlen);
+        out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL,
+                          sink, w, post, wake, ctx, stop_asked, actx, err, errlen);
         if (out == R_STOP || out == R_ABANDONED)
             break;
         read += out == R_SERVED || out == R_READ_DAMAGED;
@@ -278,7 +278,7 @@ int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_
     }
     for (size_t i = 0; i < n_sus; i++) {
         if (out != R_STOP && out != R_ABANDONED)
-            quarantine(db, sus[i].id, sus[i].name, 0, sus[i].why, FIX_PAGES, p, w);
+            quarantine(db, sus[i].id, sus[i].name, 0, sus[i].why, FIX_PAGES, sink, w);
         mem_free(sus[i].name);
         mem_free(sus[i].why);
     }

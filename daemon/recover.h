@@ -14,12 +14,22 @@
 #include <stddef.h>
 
 #include "store/db.h"
-#include "proto/proto.h"
+#include "learner.h"
 #include "store/writer.h"
+
+/* Where recovered models go (the protocol's registry, through the composition root). */
+typedef struct recover_sink_t {
+    void *ctx;
+    const learner_opts_t *opts; /* the learner options of every model (seq etc. are filled) */
+    /* A model rebuilt and started (l transferred). */
+    void (*model)(void *ctx, struct learner *l);
+    /* A model quarantined: its database id, name, the offending seq (0: none), why. */
+    void (*damaged)(void *ctx, int64_t id, const char *name, uint64_t seq, const char *reason);
+} recover_sink_t;
 
 /*
  * Recovers every live model of db (borrowed; the writer must not run yet)
- * into p, registering each with w.  A model that fails for a reason of its
+ * into sink, registering each with w.  A model that fails for a reason of its
  * own (its spec, a damaged row, corrupt pages of its rows while other models
  * read) is quarantined: registered with proto_add_damaged, a `quarantined`
  * event queued, an error logged.  Returns 0, or -1 with err when the failure
@@ -29,8 +39,8 @@
  * said worthd is to stop: models recovered so far stay registered, the one
  * being replayed is dropped from memory, its log untouched.
  */
-int recover_models(sqlite3 *db, struct proto *p, struct writer *w, learner_post_fn post,
-                   learner_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
+int recover_models(sqlite3 *db, const recover_sink_t *sink, struct writer *w, event_post_fn post,
+                   event_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx, char *err,
                    size_t errlen);
 
 #endif /* WORTH_RECOVER_H */

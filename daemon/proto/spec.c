@@ -656,8 +656,8 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
             else
                 s->diag.lambda = v;
         } else if (strcmp(f->string, "on_drift") == 0) {
-            if (!cJSON_IsString(f) || (strcmp(f->valuestring, "none") != 0 &&
-                                       strcmp(f->valuestring, "checkpoint") != 0))
+            if (!cJSON_IsString(f) ||
+                (strcmp(f->valuestring, "none") != 0 && strcmp(f->valuestring, "checkpoint") != 0))
                 return err_fail(err, errlen, WORTH_E_BAD_PARAM,
                                 "diagnostics.on_drift must be \"none\" or \"checkpoint\"");
             s->diag.on_drift = strcmp(f->valuestring, "checkpoint") == 0;

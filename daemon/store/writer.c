@@ -13,7 +13,7 @@
  * 1. A record is marked durable (released to the learner, acknowledged to the
  *    client) only after the transaction holding it has committed.
  * 2. A failed COMMIT is never reported as success: its records become
- *    LREC_DEAD (never learnt) and their requests are answered with io.
+ *    QREC_DEAD (never learnt) and their requests are answered with io.
  * 3. A checkpoint is one transaction: its row, its event and the retention
  *    that follows commit together or not at all.
  * 4. A rollback marks the log and invalidates later checkpoints in the same
@@ -61,7 +61,7 @@ enum job_kind {
 
 struct job {
     enum job_kind kind;
-    struct learner *l;
+    struct queue *q;
     uint64_t conn_id;
     char *s1, *s2; /* name/spec, label, path, kind/detail */
     uint8_t *blob;
@@ -90,14 +90,14 @@ struct writer {
     pthread_cond_t cond;
     struct job *head, *tail;
     int kicked, stop, started;
-    struct learner **models;
+    struct queue **models;
     size_t n, cap;
     uint64_t *from, *upto; /* per model: records [from, upto) taken into the open transaction */
     sqlite3_stmt *ins_tx, *ins_tr;
     /* Commit-latency histogram (under mu). */
     uint64_t hist[WRITER_HIST_N], hist_count;
     double hist_sum;
-    learner_post_fn post;
+    event_post_fn post;
     void *ctx;
     /* The database file's health (writer thread only). */
     fileguard_t guard;
@@ -108,10 +108,10 @@ struct writer {
     char lost_why[200]; /* why writes are refused while lost or without a connection */
 };
 
-static void post_reply(struct writer *w, struct learner *l, uint64_t conn_id, int rc,
-                       const char *fmt, ...) __attribute__((format(printf, 5, 6)));
-static void post_reply(struct writer *w, struct learner *l, uint64_t conn_id, int rc,
-                       const char *fmt, ...)
+static void post_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt,
+                       ...) __attribute__((format(printf, 5, 6)));
+static void post_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt,
+                       ...)
 {
     if (!conn_id)
         return;
@@ -120,7 +120,7 @@ static void post_reply(struct writer *w, struct learner *l, uint64_t conn_id, in
     va_start(ap, fmt);
     vsnprintf(buf, sizeof buf, fmt, ap);
     va_end(ap);
-    learner_event_t ev = {.kind = LEV_REPLY, .l = l, .conn_id = conn_id, .rc = rc};
+    event_t ev = {.kind = EV_REPLY, .q = q, .conn_id = conn_id, .rc = rc};
     ev.text = mem_strdup(buf);
     w->post(w->ctx, &ev);
 }
@@ -195,13 +195,12 @@ static int64_t insert_event_id(struct writer *w, int64_t model, const char *kind
     return id;
 }
 
-static int64_t insert_event(struct writer *w, struct learner *l, const char *kind,
-                            const char *detail)
+static int64_t insert_event(struct writer *w, struct queue *q, const char *kind, const char *detail)
 {
-    return insert_event_id(w, l ? learner_db_id(l) : 0, kind, detail);
+    return insert_event_id(w, q ? queue_db_id(q) : 0, kind, detail);
 }
 
-static void add_model(struct writer *w, struct learner *l)
+static void add_model(struct writer *w, struct queue *q)
 {
     if (w->n == w->cap) {
         w->cap = w->cap ? 2 * w->cap : 16;
@@ -209,24 +208,24 @@ static void add_model(struct writer *w, struct learner *l)
         w->from = mem_realloc(w->from, w->cap * sizeof *w->from);
         w->upto = mem_realloc(w->upto, w->cap * sizeof *w->upto);
     }
-    w->models[w->n++] = l;
+    w->models[w->n++] = q;
 }
 
 const double writer_hist_le[WRITER_HIST_N] = {0.0005, 0.001, 0.002, 0.005, 0.01, 0.02,
                                               0.05,   0.1,   0.25,  0.5,   1.0,  INFINITY};
 
-/* Tells l how many valid checkpoints it has and when the newest was taken. */
-static void refresh_checkpoint_info(struct writer *w, struct learner *l)
+/* Tells q how many valid checkpoints it has and when the newest was taken. */
+static void refresh_checkpoint_info(struct writer *w, struct queue *q)
 {
     sqlite3_stmt *st = NULL;
     if (sqlite3_prepare_v2(w->db,
                            "SELECT count(*), COALESCE(max(created_at), 0) FROM checkpoints"
                            " WHERE model = ? AND invalid = 0",
                            -1, &st, NULL) == SQLITE_OK) {
-        sqlite3_bind_int64(st, 1, learner_db_id(l));
+        sqlite3_bind_int64(st, 1, queue_db_id(q));
         if (sqlite3_step(st) == SQLITE_ROW)
-            learner_set_checkpoint_info(l, (uint64_t)sqlite3_column_int64(st, 0),
-                                        sqlite3_column_double(st, 1));
+            queue_set_checkpoint_info(q, (uint64_t)sqlite3_column_int64(st, 0),
+                                      sqlite3_column_double(st, 1));
     }
     sqlite3_finalize(st);
 }
@@ -465,7 +464,7 @@ static void job_create(struct writer *w, struct job *j)
     char why[256];
     int code = may_write(w, FILEGUARD_ALL, why, sizeof why);
     if (code) {
-        post_reply(w, j->l, j->conn_id, code, "cannot store the model: %s", why);
+        post_reply(w, j->q, j->conn_id, code, "cannot store the model: %s", why);
         return;
     }
     sqlite3_stmt *st = NULL;
@@ -480,33 +479,33 @@ static void job_create(struct writer *w, struct job *j)
     sqlite3_finalize(st);
     if (!ok) {
         say_error("model %s: cannot store it: %s", j->s1, sqlite3_errmsg(w->db));
-        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot store the model: %s",
+        post_reply(w, j->q, j->conn_id, db_error_code(w->db), "cannot store the model: %s",
                    sqlite3_errmsg(w->db));
         return;
     }
-    learner_set_db_id(j->l, sqlite3_last_insert_rowid(w->db));
-    add_model(w, j->l);
-    insert_event(w, j->l, "create", "{}");
+    queue_set_db_id(j->q, sqlite3_last_insert_rowid(w->db));
+    add_model(w, j->q);
+    insert_event(w, j->q, "create", "{}");
     char *buf = mem_alloc(256);
     size_t len = 0, cap = 256;
     buf[0] = 0;
     appendf(&buf, &len, &cap, ",\"model\":");
     json_str(&buf, &len, &cap, j->s1);
     appendf(&buf, &len, &cap, ",\"features\":%zu", j->features);
-    post_reply(w, j->l, j->conn_id, 0, "%s", buf);
+    post_reply(w, j->q, j->conn_id, 0, "%s", buf);
     mem_free(buf);
 }
 
 static void job_drop(struct writer *w, struct job *j)
 {
-    for (size_t i = 0; j->l && i < w->n; i++)
-        if (w->models[i] == j->l) {
+    for (size_t i = 0; j->q && i < w->n; i++)
+        if (w->models[i] == j->q) {
             w->models[i] = w->models[--w->n];
             break;
         }
     /* A quarantined model has no learner: its id and name came with the job. */
-    int64_t id = j->l ? learner_db_id(j->l) : j->id;
-    const char *name = j->l ? learner_name(j->l) : j->s1;
+    int64_t id = j->q ? queue_db_id(j->q) : j->id;
+    const char *name = j->q ? queue_name(j->q) : j->s1;
     char why[256] = "";
     int stored = 0;
     if (!id) {
@@ -530,7 +529,7 @@ static void job_drop(struct writer *w, struct job *j)
             insert_event_id(w, id, "drop", "{}");
     }
     if (stored) {
-        post_reply(w, j->l, j->conn_id, 0, ",\"persisted\":true");
+        post_reply(w, j->q, j->conn_id, 0, ",\"persisted\":true");
     } else {
         say_error("model %s: dropped in memory, but the drop could not be stored: %s; it comes "
                   "back at the next start unless dropped again",
@@ -545,12 +544,12 @@ static void job_drop(struct writer *w, struct job *j)
                  "comes back at the next start unless it is dropped again",
                  why);
         json_str(&buf, &len, &cap, msg);
-        post_reply(w, j->l, j->conn_id, 0, "%s", buf);
+        post_reply(w, j->q, j->conn_id, 0, "%s", buf);
         mem_free(buf);
     }
-    if (!j->l)
+    if (!j->q)
         return;
-    learner_event_t ev = {.kind = LEV_RELEASED, .l = j->l};
+    event_t ev = {.kind = EV_RELEASED, .q = j->q};
     w->post(w->ctx, &ev);
 }
 
@@ -583,12 +582,12 @@ static int retain(struct writer *w, int64_t model)
 
 static void job_checkpoint(struct writer *w, struct job *j)
 {
-    int64_t model = learner_db_id(j->l), id = 0;
+    int64_t model = queue_db_id(j->q), id = 0;
     char refused[256];
     int code = may_write(w, FILEGUARD_ALL, refused, sizeof refused);
     if (code) {
-        say_error("model %s: checkpoint not stored: %s", learner_name(j->l), refused);
-        post_reply(w, j->l, j->conn_id, code, "checkpoint not stored: %s", refused);
+        say_error("model %s: checkpoint not stored: %s", queue_name(j->q), refused);
+        post_reply(w, j->q, j->conn_id, code, "checkpoint not stored: %s", refused);
         return;
     }
     sqlite3_stmt *st = NULL;
@@ -622,7 +621,7 @@ static void job_checkpoint(struct writer *w, struct job *j)
         if (j->diverged) /* estimators stored reset (est.h): said only when there are some */
             n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"diverged\":%u", j->diverged);
         snprintf(detail + n, sizeof detail - (size_t)n, "}");
-        ok = insert_event(w, j->l, "checkpoint", detail) > 0 && retain(w, model) == 0 &&
+        ok = insert_event(w, j->q, "checkpoint", detail) > 0 && retain(w, model) == 0 &&
              exec(w, "COMMIT") == 0;
     }
     if (!ok) {
@@ -630,14 +629,14 @@ static void job_checkpoint(struct writer *w, struct job *j)
         char why[512];
         snprintf(why, sizeof why, "%s", sqlite3_errmsg(w->db));
         exec(w, "ROLLBACK");
-        say_error("model %s: checkpoint not stored: %s", learner_name(j->l), why);
-        post_reply(w, j->l, j->conn_id, code, "checkpoint not stored: %s", why);
+        say_error("model %s: checkpoint not stored: %s", queue_name(j->q), why);
+        post_reply(w, j->q, j->conn_id, code, "checkpoint not stored: %s", why);
         return;
     }
-    refresh_checkpoint_info(w, j->l);
-    say_debug("model %s: checkpoint %lld at seq %llu (%zu bytes)", learner_name(j->l),
-              (long long)id, (unsigned long long)j->seq, j->len);
-    post_reply(w, j->l, j->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu", (long long)id,
+    refresh_checkpoint_info(w, j->q);
+    say_debug("model %s: checkpoint %lld at seq %llu (%zu bytes)", queue_name(j->q), (long long)id,
+              (unsigned long long)j->seq, j->len);
+    post_reply(w, j->q, j->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu", (long long)id,
                (unsigned long long)j->seq);
 }
 
@@ -653,7 +652,7 @@ static void job_list(struct writer *w, struct job *j)
                            "SELECT id, seq, label, created_at, size FROM checkpoints"
                            " WHERE model = ? AND invalid = 0 ORDER BY seq DESC, id DESC",
                            -1, &st, NULL) == SQLITE_OK) {
-        sqlite3_bind_int64(st, 1, learner_db_id(j->l));
+        sqlite3_bind_int64(st, 1, queue_db_id(j->q));
         while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
             appendf(&buf, &len, &cap,
                     "%s{\"checkpoint\":%lld,\"seq\":%lld,\"label\":", first ? "" : ",",
@@ -670,10 +669,10 @@ static void job_list(struct writer *w, struct job *j)
     sqlite3_finalize(st);
     appendf(&buf, &len, &cap, "]");
     if (rc != SQLITE_DONE)
-        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot list checkpoints: %s",
+        post_reply(w, j->q, j->conn_id, db_error_code(w->db), "cannot list checkpoints: %s",
                    sqlite3_errmsg(w->db));
     else {
-        learner_event_t ev = {.kind = LEV_REPLY, .l = j->l, .conn_id = j->conn_id, .rc = 0};
+        event_t ev = {.kind = EV_REPLY, .q = j->q, .conn_id = j->conn_id, .rc = 0};
         ev.text = buf;
         w->post(w->ctx, &ev);
         return;
@@ -725,14 +724,14 @@ static void job_backup(struct writer *w, struct job *j)
         return;
     }
     /* Posted whole: a long path must not be cut by post_reply's buffer. */
-    learner_event_t ev = {.kind = LEV_REPLY, .conn_id = j->conn_id, .rc = 0};
+    event_t ev = {.kind = EV_REPLY, .conn_id = j->conn_id, .rc = 0};
     ev.text = buf;
     w->post(w->ctx, &ev);
 }
 
 static void job_drift(struct writer *w, struct job *j)
 {
-    int64_t pre = 0, model = learner_db_id(j->l);
+    int64_t pre = 0, model = queue_db_id(j->q);
     if (j->id) { /* on_drift: copy the newest valid checkpoint before the onset, labelled */
         sqlite3_stmt *st = NULL;
         if (sqlite3_prepare_v2(
@@ -750,10 +749,10 @@ static void job_drift(struct writer *w, struct job *j)
         }
         sqlite3_finalize(st);
         if (pre)
-            refresh_checkpoint_info(w, j->l);
+            refresh_checkpoint_info(w, j->q);
         else
             say_warn("model %s: no checkpoint before seq %llu to keep as pre-drift",
-                     learner_name(j->l), (unsigned long long)j->a);
+                     queue_name(j->q), (unsigned long long)j->a);
     }
     char detail[320];
     int n = snprintf(detail, sizeof detail,
@@ -765,7 +764,7 @@ static void job_drift(struct writer *w, struct job *j)
         n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"pre_drift_checkpoint\":%lld",
                       (long long)pre);
     snprintf(detail + n, sizeof detail - (size_t)n, "}");
-    insert_event(w, j->l, "drift", detail);
+    insert_event(w, j->q, "drift", detail);
 }
 
 static void job_events(struct writer *w, struct job *j)
@@ -777,9 +776,9 @@ static void job_events(struct writer *w, struct job *j)
     appendf(&buf, &len, &cap, ",\"events\":[");
     int rc = SQLITE_ERROR, first = 1;
     /* A quarantined model has no learner: its id and name came with the job. */
-    int64_t model = j->l ? learner_db_id(j->l) : j->id;
-    const char *name = j->l ? learner_name(j->l) : j->s1;
-    int scoped = j->l || j->id; /* else the daemon-wide events */
+    int64_t model = j->q ? queue_db_id(j->q) : j->id;
+    const char *name = j->q ? queue_name(j->q) : j->s1;
+    int scoped = j->q || j->id; /* else the daemon-wide events */
     const char *sql = scoped
                           ? "SELECT id, at, kind, detail FROM events WHERE model = ?1 AND at >= ?2"
                             " ORDER BY id LIMIT ?3"
@@ -806,12 +805,12 @@ static void job_events(struct writer *w, struct job *j)
     sqlite3_finalize(st);
     appendf(&buf, &len, &cap, "]");
     if (rc != SQLITE_DONE) {
-        post_reply(w, j->l, j->conn_id, db_error_code(w->db), "cannot list events: %s",
+        post_reply(w, j->q, j->conn_id, db_error_code(w->db), "cannot list events: %s",
                    sqlite3_errmsg(w->db));
         mem_free(buf);
         return;
     }
-    learner_event_t ev = {.kind = LEV_REPLY, .l = j->l, .conn_id = j->conn_id, .rc = 0};
+    event_t ev = {.kind = EV_REPLY, .q = j->q, .conn_id = j->conn_id, .rc = 0};
     ev.text = buf;
     w->post(w->ctx, &ev);
 }
@@ -824,13 +823,13 @@ static void job_cut(struct writer *w, struct job *j)
     if (!ok) {
         say_error("model %s: cannot record that training %llu was cut short: %s; a replay of "
                   "the log would run it whole",
-                  learner_name(j->l), (unsigned long long)j->seq, why);
+                  queue_name(j->q), (unsigned long long)j->seq, why);
         return;
     }
     if (sqlite3_prepare_v2(w->db, "UPDATE trainings SET steps = ? WHERE model = ? AND ordinal = ?",
                            -1, &st, NULL) == SQLITE_OK) {
         sqlite3_bind_int64(st, 1, (sqlite3_int64)j->training);
-        sqlite3_bind_int64(st, 2, learner_db_id(j->l));
+        sqlite3_bind_int64(st, 2, queue_db_id(j->q));
         sqlite3_bind_int64(st, 3, (sqlite3_int64)j->seq);
         ok = sqlite3_step(st) == SQLITE_DONE;
     } else {
@@ -840,7 +839,7 @@ static void job_cut(struct writer *w, struct job *j)
     if (!ok)
         say_error("model %s: cannot record that training %llu was cut short: %s; a replay of "
                   "the log would run it whole",
-                  learner_name(j->l), (unsigned long long)j->seq, sqlite3_errmsg(w->db));
+                  queue_name(j->q), (unsigned long long)j->seq, sqlite3_errmsg(w->db));
 }
 
 static void run_job(struct writer *w, struct job *j)
@@ -849,27 +848,27 @@ static void run_job(struct writer *w, struct job *j)
     if (!w->db) { /* lost after a failed write-back: answer from memory what needs no file */
         snprintf(why, sizeof why, "%s", w->lost_why);
         if (j->kind == J_ADD) {
-            learner_set_db_id(j->l, j->id);
-            add_model(w, j->l);
+            queue_set_db_id(j->q, j->id);
+            add_model(w, j->q);
         } else if (j->kind == J_DROP) {
             job_drop(w, j);
         } else {
-            post_reply(w, j->l, j->conn_id, WORTH_E_STORAGE_ERROR, "the database is unusable: %s",
+            post_reply(w, j->q, j->conn_id, WORTH_E_STORAGE_ERROR, "the database is unusable: %s",
                        why);
         }
         return;
     }
     switch (j->kind) {
     case J_ADD:
-        learner_set_db_id(j->l, j->id);
-        add_model(w, j->l);
-        refresh_checkpoint_info(w, j->l);
+        queue_set_db_id(j->q, j->id);
+        add_model(w, j->q);
+        refresh_checkpoint_info(w, j->q);
         break;
     case J_DRIFT:
         if (may_write(w, FILEGUARD_ALL, why, sizeof why) == 0)
             job_drift(w, j);
         else
-            say_error("model %s: drift alarm not recorded: %s", learner_name(j->l), why);
+            say_error("model %s: drift alarm not recorded: %s", queue_name(j->q), why);
         break;
     case J_EVENTS:
         job_events(w, j);
@@ -894,7 +893,7 @@ static void run_job(struct writer *w, struct job *j)
         break;
     case J_EVENT:
         if (may_write(w, FILEGUARD_ALL, why, sizeof why) == 0)
-            insert_event_id(w, j->l ? learner_db_id(j->l) : j->id, j->s1, j->s2);
+            insert_event_id(w, j->q ? queue_db_id(j->q) : j->id, j->s1, j->s2);
         else
             say_warn("event %s not recorded: %s", j->s1, why);
         break;
@@ -904,10 +903,10 @@ static void run_job(struct writer *w, struct job *j)
 /* ---- records ----------------------------------------------------------------------------- */
 
 /* Marks the log for a rollback inside the open transaction; fills the plan. */
-static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
+static int mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
 {
-    learner_plan_t *p = r->job;
-    int64_t model = learner_db_id(l);
+    queue_plan_t *p = r->job;
+    int64_t model = queue_db_id(q);
     sqlite3_stmt *st = NULL;
     int found = 0;
     if (sqlite3_prepare_v2(w->db,
@@ -931,7 +930,7 @@ static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
         return -1;
     if (!found) {
         p->rc = WORTH_E_NO_SUCH_CHECKPOINT;
-        snprintf(p->err, sizeof p->err, "model %s has no valid checkpoint %lld", learner_name(l),
+        snprintf(p->err, sizeof p->err, "model %s has no valid checkpoint %lld", queue_name(q),
                  (long long)p->checkpoint);
         return 0;
     }
@@ -941,10 +940,10 @@ static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
         p->rc = WORTH_E_BAD_DATABASE;
         snprintf(p->err, sizeof p->err, "checkpoint %lld cannot be restored: %s",
                  (long long)p->checkpoint, why);
-        say_error("model %s: %s", learner_name(l), p->err);
+        say_error("model %s: %s", queue_name(q), p->err);
         return 0;
     }
-    int64_t ev = insert_event(w, l, "rollback", "{}");
+    int64_t ev = insert_event(w, q, "rollback", "{}");
     if (ev <= 0)
         return -1;
     const char *sql_tx =
@@ -1010,19 +1009,19 @@ static int mark_rollback(struct writer *w, struct learner *l, learner_rec_t *r)
     rc = sqlite3_step(st);
     sqlite3_finalize(st);
     if (rc == SQLITE_DONE)
-        refresh_checkpoint_info(w, l);
+        refresh_checkpoint_info(w, q);
     return rc == SQLITE_DONE ? 0 : -1;
 }
 
-static int write_record(struct writer *w, struct learner *l, learner_rec_t *r)
+static int write_record(struct writer *w, struct queue *q, queue_rec_t *r)
 {
     sqlite3_stmt *st;
-    size_t d = model_dims(learner_model(l));
+    size_t d = queue_dims(q);
     switch (r->type) {
-    case LREC_OBS:
+    case QREC_OBS:
         st = w->ins_tx;
         sqlite3_reset(st);
-        sqlite3_bind_int64(st, 1, learner_db_id(l));
+        sqlite3_bind_int64(st, 1, queue_db_id(q));
         sqlite3_bind_int64(st, 2, (sqlite3_int64)r->seq);
         if (isnan(r->t_s))
             sqlite3_bind_null(st, 3);
@@ -1041,48 +1040,48 @@ static int write_record(struct writer *w, struct learner *l, learner_rec_t *r)
         else
             sqlite3_bind_double(st, 9, r->dt_s);
         return sqlite3_step(st) == SQLITE_DONE ? 0 : -1;
-    case LREC_TRAIN:
+    case QREC_TRAIN:
         st = w->ins_tr;
         sqlite3_reset(st);
-        sqlite3_bind_int64(st, 1, learner_db_id(l));
+        sqlite3_bind_int64(st, 1, queue_db_id(q));
         sqlite3_bind_int64(st, 2, (sqlite3_int64)r->ordinal);
         sqlite3_bind_int64(st, 3, (sqlite3_int64)r->seq);
-        sqlite3_bind_text(st, 4, model_est_name(learner_model(l), r->est), -1, SQLITE_STATIC);
+        sqlite3_bind_text(st, 4, r->src, -1, SQLITE_STATIC);
         sqlite3_bind_int(st, 5, (int)r->passes);
         return sqlite3_step(st) == SQLITE_DONE ? 0 : -1;
-    case LREC_ROLLBACK:
-        return mark_rollback(w, l, r);
+    case QREC_ROLLBACK:
+        return mark_rollback(w, q, r);
     default:
         return 0;
     }
 }
 
 /* A commit failed: the records taken are never learnt, and their requests hear io. */
-static void fail_records(struct writer *w, struct learner *l, uint64_t from, uint64_t to, int code,
+static void fail_records(struct writer *w, struct queue *q, uint64_t from, uint64_t to, int code,
                          const char *why)
 {
     uint64_t last_seq = 0;
     for (uint64_t k = from; k < to; k++) {
-        learner_rec_t *r = learner_rec(l, k);
-        if (r->type == LREC_TRAIN) {
-            learner_event_t ev = {.kind = LEV_TRAINED, .l = l, .conn_id = r->conn_id, .rc = code};
+        queue_rec_t *r = queue_rec(q, k);
+        if (r->type == QREC_TRAIN) {
+            event_t ev = {.kind = EV_TRAINED, .q = q, .conn_id = r->conn_id, .rc = code};
             w->post(w->ctx, &ev);
-        } else if (r->type == LREC_CHECKPOINT || r->type == LREC_ROLLBACK) {
-            post_reply(w, l, r->conn_id, code, "the log could not be written: %s", why);
-            if (r->type == LREC_ROLLBACK) {
-                learner_rollback_gone(l);
+        } else if (r->type == QREC_CHECKPOINT || r->type == QREC_ROLLBACK) {
+            post_reply(w, q, r->conn_id, code, "the log could not be written: %s", why);
+            if (r->type == QREC_ROLLBACK) {
+                queue_rollback_gone(q);
                 mem_free(r->job->blob);
                 mem_free(r->job);
                 r->job = NULL;
             }
         }
-        if (r->type == LREC_OBS)
+        if (r->type == QREC_OBS)
             last_seq = r->seq;
-        r->type = LREC_DEAD;
+        r->type = QREC_DEAD;
     }
-    learner_set_durable(l, to);
+    queue_set_durable(q, to);
     if (last_seq) {
-        learner_event_t ev = {.kind = LEV_FAILED, .l = l, .seq = last_seq, .rc = code};
+        event_t ev = {.kind = EV_FAILED, .q = q, .seq = last_seq, .rc = code};
         ev.text = mem_strdup(why);
         w->post(w->ctx, &ev);
     }
@@ -1101,7 +1100,7 @@ static int write_group(struct writer *w)
         from[i] = w->upto[i] = 0;
     for (size_t i = 0; i < nm; i++) {
         uint64_t f, t;
-        learner_pending(w->models[i], &f, &t);
+        queue_pending(w->models[i], &f, &t);
         from[i] = f;
         if (t - f > budget)
             t = f + budget;
@@ -1116,7 +1115,7 @@ static int write_group(struct writer *w)
                 say_error("log not written (%s); pending records not applied", why);
                 for (size_t k = i; k < nm; k++) {
                     uint64_t f2, t2;
-                    learner_pending(w->models[k], &f2, &t2);
+                    queue_pending(w->models[k], &f2, &t2);
                     if (t2 > f2)
                         fail_records(w, w->models[k], f2, t2, code, why);
                 }
@@ -1129,15 +1128,15 @@ static int write_group(struct writer *w)
             began = 1;
         }
         /* Never split a request: run on to the end of the last one begun. */
-        while (t > f && !learner_rec(w->models[i], t - 1)->last) {
+        while (t > f && !queue_rec(w->models[i], t - 1)->last) {
             uint64_t f2, t2;
-            learner_pending(w->models[i], &f2, &t2);
+            queue_pending(w->models[i], &f2, &t2);
             if (t >= t2)
                 break; /* cannot happen: the loop commits whole requests */
             t++;
         }
         for (uint64_t k = f; k < t && ok; k++)
-            ok = write_record(w, w->models[i], learner_rec(w->models[i], k)) == 0;
+            ok = write_record(w, w->models[i], queue_rec(w->models[i], k)) == 0;
         w->upto[i] = t;
         taken += t - f;
         budget = t - f >= budget ? 0 : budget - (t - f);
@@ -1188,10 +1187,10 @@ static int write_group(struct writer *w)
     for (size_t i = 0; i < nm; i++) {
         if (w->upto[i] == from[i])
             continue;
-        struct learner *l = w->models[i];
-        uint64_t last_seq = learner_rec(l, w->upto[i] - 1)->seq;
-        learner_set_durable(l, w->upto[i]);
-        learner_event_t ev = {.kind = LEV_DURABLE, .l = l, .seq = last_seq};
+        struct queue *q = w->models[i];
+        uint64_t last_seq = queue_rec(q, w->upto[i] - 1)->seq;
+        queue_set_durable(q, w->upto[i]);
+        event_t ev = {.kind = EV_DURABLE, .q = q, .seq = last_seq};
         w->post(w->ctx, &ev);
     }
     return taken > 0;
@@ -1245,7 +1244,7 @@ static void *run(void *arg)
     return NULL;
 }
 
-struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, learner_post_fn post, void *ctx)
+struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, event_post_fn post, void *ctx)
 {
     struct writer *w = mem_calloc(1, sizeof *w);
     w->db = db;
@@ -1315,42 +1314,42 @@ static void push(struct writer *w, struct job *j)
     pthread_mutex_unlock(&w->mu);
 }
 
-static struct job *job(enum job_kind kind, struct learner *l, uint64_t conn_id)
+static struct job *job(enum job_kind kind, struct queue *q, uint64_t conn_id)
 {
     struct job *j = mem_calloc(1, sizeof *j);
     j->kind = kind;
-    j->l = l;
+    j->q = q;
     j->conn_id = conn_id;
     return j;
 }
 
-void writer_add_model(struct writer *w, struct learner *l, int64_t model_id)
+void writer_add_model(struct writer *w, struct queue *q, int64_t model_id)
 {
-    struct job *j = job(J_ADD, l, 0);
+    struct job *j = job(J_ADD, q, 0);
     j->id = model_id;
     push(w, j);
 }
 
-void writer_create_model(struct writer *w, struct learner *l, const char *name, const char *spec,
+void writer_create_model(struct writer *w, struct queue *q, const char *name, const char *spec,
                          size_t features, uint64_t conn_id)
 {
-    struct job *j = job(J_CREATE, l, conn_id);
+    struct job *j = job(J_CREATE, q, conn_id);
     j->s1 = mem_strdup(name);
     j->s2 = mem_strdup(spec);
     j->features = features;
     push(w, j);
 }
 
-void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id)
+void writer_drop_model(struct writer *w, struct queue *q, uint64_t conn_id)
 {
-    push(w, job(J_DROP, l, conn_id));
+    push(w, job(J_DROP, q, conn_id));
 }
 
-void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,
+void writer_store_checkpoint(struct writer *w, struct queue *q, uint64_t seq, uint64_t training,
                              unsigned diverged, const char *label, uint8_t *blob, size_t len,
                              uint64_t conn_id)
 {
-    struct job *j = job(J_CHECKPOINT, l, conn_id);
+    struct job *j = job(J_CHECKPOINT, q, conn_id);
     j->seq = seq;
     j->training = training;
     j->diverged = diverged;
@@ -1360,12 +1359,12 @@ void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, 
     push(w, j);
 }
 
-void writer_cut_training(struct writer *w, struct learner *l, uint64_t ordinal, uint64_t steps)
+void writer_cut_training(struct writer *w, struct queue *q, uint64_t ordinal, uint64_t steps)
 {
     struct job_done done = {.done = 0};
     pthread_mutex_init(&done.mu, NULL);
     pthread_cond_init(&done.cond, NULL);
-    struct job *j = job(J_CUT, l, 0);
+    struct job *j = job(J_CUT, q, 0);
     j->seq = ordinal;
     j->training = steps;
     j->done = &done;
@@ -1378,9 +1377,9 @@ void writer_cut_training(struct writer *w, struct learner *l, uint64_t ordinal, 
     pthread_cond_destroy(&done.cond);
 }
 
-void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id)
+void writer_list_checkpoints(struct writer *w, struct queue *q, uint64_t conn_id)
 {
-    push(w, job(J_LIST, l, conn_id));
+    push(w, job(J_LIST, q, conn_id));
 }
 
 void writer_backup(struct writer *w, const char *name, uint64_t conn_id)
@@ -1390,9 +1389,9 @@ void writer_backup(struct writer *w, const char *name, uint64_t conn_id)
     push(w, j);
 }
 
-void writer_event(struct writer *w, struct learner *l, const char *kind, const char *detail)
+void writer_event(struct writer *w, struct queue *q, const char *kind, const char *detail)
 {
-    struct job *j = job(J_EVENT, l, 0);
+    struct job *j = job(J_EVENT, q, 0);
     j->s1 = mem_strdup(kind);
     j->s2 = mem_strdup(detail);
     push(w, j);
@@ -1415,10 +1414,10 @@ void writer_drop_damaged(struct writer *w, int64_t model_id, const char *name, u
     push(w, j);
 }
 
-void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t onset_seq,
+void writer_drift(struct writer *w, struct queue *q, uint64_t seq, uint64_t onset_seq,
                   uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift)
 {
-    struct job *j = job(J_DRIFT, l, 0);
+    struct job *j = job(J_DRIFT, q, 0);
     j->seq = seq;
     j->a = onset_seq;
     j->b = step;
@@ -1428,10 +1427,10 @@ void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t on
     push(w, j);
 }
 
-void writer_list_events(struct writer *w, struct learner *l, double since, size_t limit,
+void writer_list_events(struct writer *w, struct queue *q, double since, size_t limit,
                         uint64_t conn_id)
 {
-    struct job *j = job(J_EVENTS, l, conn_id);
+    struct job *j = job(J_EVENTS, q, conn_id);
     j->since = since;
     j->len = limit;
     push(w, j);

@@ -7,7 +7,7 @@
  * learner and lets the loop acknowledge them.  It also runs the jobs that
  * need the database: creating and dropping models, storing checkpoints,
  * listing them, backups and events.  Results go back to the loop as learner
- * events (LEV_REPLY, LEV_DURABLE, LEV_RELEASED) through the same post
+ * events (EV_REPLY, EV_DURABLE, EV_RELEASED) through the same post
  * callback the learners use.
  */
 #ifndef WORTH_WRITER_H
@@ -17,7 +17,8 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#include "learner.h"
+#include "core/event.h"
+#include "core/queue.h"
 
 struct writer;
 
@@ -34,7 +35,7 @@ typedef struct writer_opts_t {
  * Builds the writer on db (transferred: the writer closes it).  Jobs queue up
  * until writer_start; until then the caller may still use db on its thread.
  */
-struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, learner_post_fn post, void *ctx);
+struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, event_post_fn post, void *ctx);
 /* Starts the thread; from now on only the writer uses the database connection. */
 void writer_start(struct writer *w);
 /* Finishes every queued job and record, stops the thread, closes the database. */
@@ -46,58 +47,58 @@ void writer_kick(struct writer *w);
 /* Jobs, queued in order; any thread.  Strings and blobs are copied or transferred as noted. */
 
 /* Registers a model recovered at start-up (already in the database as model_id). */
-void writer_add_model(struct writer *w, struct learner *l, int64_t model_id);
+void writer_add_model(struct writer *w, struct queue *q, int64_t model_id);
 /*
- * Inserts a new model row (name and spec borrowed, copied) and registers l;
+ * Inserts a new model row (name and spec borrowed, copied) and registers q;
  * replies to conn_id {"model":..,"features":..} or an error.
  */
-void writer_create_model(struct writer *w, struct learner *l, const char *name, const char *spec,
+void writer_create_model(struct writer *w, struct queue *q, const char *name, const char *spec,
                          size_t features, uint64_t conn_id);
 /*
- * Marks the model dropped, forgets l, replies to conn_id (0: nobody)
+ * Marks the model dropped, forgets q, replies to conn_id (0: nobody)
  * {"persisted":true} or, when the database could not take it,
- * {"persisted":false,"warning":...}, then posts LEV_RELEASED for l.
+ * {"persisted":false,"warning":...}, then posts EV_RELEASED for l.
  */
-void writer_drop_model(struct writer *w, struct learner *l, uint64_t conn_id);
+void writer_drop_model(struct writer *w, struct queue *q, uint64_t conn_id);
 /*
- * Stores a checkpoint of l (blob transferred, from mem_alloc) at seq and
+ * Stores a checkpoint of q (blob transferred, from mem_alloc) at seq and
  * training, in which `diverged` estimators had diverged; label may be NULL.
  * Replies to conn_id when it is not 0.  Retention never deletes the newest
  * valid checkpoint in which none had.
  */
-void writer_store_checkpoint(struct writer *w, struct learner *l, uint64_t seq, uint64_t training,
+void writer_store_checkpoint(struct writer *w, struct queue *q, uint64_t seq, uint64_t training,
                              unsigned diverged, const char *label, uint8_t *blob, size_t len,
                              uint64_t conn_id);
 /*
- * Records in the log that training `ordinal` of l was cut short after
+ * Records in the log that training `ordinal` of q was cut short after
  * `steps` mini-batch steps, so that a replay runs exactly those; returns once
  * that is committed (or has failed, logged).  For the learner thread, which
  * learns nothing more until then.
  */
-void writer_cut_training(struct writer *w, struct learner *l, uint64_t ordinal, uint64_t steps);
+void writer_cut_training(struct writer *w, struct queue *q, uint64_t ordinal, uint64_t steps);
 /* Replies to conn_id with the model's valid checkpoints, newest first. */
-void writer_list_checkpoints(struct writer *w, struct learner *l, uint64_t conn_id);
+void writer_list_checkpoints(struct writer *w, struct queue *q, uint64_t conn_id);
 /*
  * Writes a consistent copy of the database into the backup directory as name
  * (copied; NULL: a new name of worthd's, see backup.h); replies to conn_id
  * {"name":..,"path":..,"bytes":..} or an error.
  */
 void writer_backup(struct writer *w, const char *name, uint64_t conn_id);
-/* Records an event (kind and JSON detail copied); l may be NULL for daemon-wide events. */
-void writer_event(struct writer *w, struct learner *l, const char *kind, const char *detail);
+/* Records an event (kind and JSON detail copied); q may be NULL for daemon-wide events. */
+void writer_event(struct writer *w, struct queue *q, const char *kind, const char *detail);
 /*
- * Records a drift alarm of l (alarm at seq, change from onset_seq; steps as the
+ * Records a drift alarm of q (alarm at seq, change from onset_seq; steps as the
  * detector counts them).  With pre_drift, first stores a checkpoint labelled
  * "pre-drift" holding the state of the newest valid checkpoint taken before
  * onset_seq, and names it in the event.
  */
-void writer_drift(struct writer *w, struct learner *l, uint64_t seq, uint64_t onset_seq,
+void writer_drift(struct writer *w, struct queue *q, uint64_t seq, uint64_t onset_seq,
                   uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift);
 /*
- * Replies to conn_id with the events of l (NULL: the daemon-wide ones) at or
+ * Replies to conn_id with the events of q (NULL: the daemon-wide ones) at or
  * after since, oldest first, at most limit.
  */
-void writer_list_events(struct writer *w, struct learner *l, double since, size_t limit,
+void writer_list_events(struct writer *w, struct queue *q, double since, size_t limit,
                         uint64_t conn_id);
 
 /*

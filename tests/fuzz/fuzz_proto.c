@@ -60,7 +60,6 @@
 #include "common/mem.h"
 #include "proto/proto.h"
 #include "say.h"
-#include "net/server.h"
 #include "worth/errors.h"
 #include "store/writer.h"
 
@@ -244,22 +243,23 @@ static void framing_check(const uint8_t *d, size_t n)
     mem_free(alt.b);
 }
 
-/* ---- part 2: the connection API of server.h, over one in-memory connection --------------- */
+/* ---- part 2: the connection API of net/conn.h, over one in-memory connection ------------- */
 
-struct server {
+struct conns {
     int unused;
 };
 
 struct conn {
     uint64_t id;
-    proto_conn_t pc;
+    void *state; /* the protocol's */
     frame_t fr;
     int waiting, parked, close_after, closed;
     char *out; /* every byte sent to the client */
     size_t out_len, out_cap;
 };
 
-static struct server srv;
+static struct conns set;
+static struct proto *proto;
 /*
  * The buffer budget of the one connection: its first input buffer and a
  * little more, so that bulk payloads of a few records fit and larger ones are
@@ -274,9 +274,14 @@ uint64_t conn_id(const struct conn *c)
     return c->id;
 }
 
-struct proto_conn *conn_proto(struct conn *c)
+void *conn_state(struct conn *c)
 {
-    return &c->pc;
+    return c->state;
+}
+
+void conn_set_authed(struct conn *c)
+{
+    (void)c;
 }
 
 void conn_send(struct conn *c, const char *buf, size_t len)
@@ -294,7 +299,7 @@ void conn_send(struct conn *c, const char *buf, size_t len)
 /* As the server: closes once no reply waits (the socket takes every byte at once here). */
 static void maybe_close(struct conn *c)
 {
-    if (c->close_after && !c->closed && proto_conn_quiet(&c->pc))
+    if (c->close_after && !c->closed && proto_conn_quiet(proto, c))
         c->closed = 1;
 }
 
@@ -324,14 +329,14 @@ void conn_resume(struct conn *c)
     c->waiting = 0;
 }
 
-void server_each_conn(struct server *s, void (*fn)(struct conn *c, void *ctx), void *ctx)
+void conns_each(struct conns *s, void (*fn)(struct conn *c, void *ctx), void *ctx)
 {
     (void)s;
     if (live && !live->closed)
         fn(live, ctx);
 }
 
-struct conn *server_conn(struct server *s, uint64_t id)
+struct conn *conns_find(struct conns *s, uint64_t id)
 {
     (void)s;
     return live && live->id == id && !live->closed ? live : NULL;
@@ -341,12 +346,12 @@ struct conn *server_conn(struct server *s, uint64_t id)
 
 static pthread_mutex_t mu = PTHREAD_MUTEX_INITIALIZER;
 static pthread_cond_t cv = PTHREAD_COND_INITIALIZER;
-static learner_event_t *box, *draining;
+static event_t *box, *draining;
 static size_t n_box, cap_box, cap_draining;
 static int woken;
 static unsigned long n_created, n_exited; /* learners started, learner threads ended */
 
-static void post_event(void *ctx, const learner_event_t *ev)
+static void post_event(void *ctx, const event_t *ev)
 {
     (void)ctx;
     pthread_mutex_lock(&mu);
@@ -355,7 +360,7 @@ static void post_event(void *ctx, const learner_event_t *ev)
         box = mem_realloc(box, cap_box * sizeof *box);
     }
     box[n_box++] = *ev;
-    if (ev->kind == LEV_EXITED)
+    if (ev->kind == EV_EXITED)
         n_exited++;
     woken = 1;
     pthread_cond_signal(&cv);
@@ -371,9 +376,8 @@ static void wake_loop(void *ctx)
     pthread_mutex_unlock(&mu);
 }
 
-static struct proto *proto;
 static struct writer *writer;
-static server_opts_t opts;
+static config_t opts;
 static char dir[256], db_path[300], backup_dir[300], backup_path[400];
 static struct backup_dir *backups;
 
@@ -392,7 +396,7 @@ static void drain_events(void)
     n_box = 0;
     pthread_mutex_unlock(&mu);
     for (size_t i = 0; i < n; i++)
-        proto_event(proto, &srv, &draining[i]);
+        proto_event(proto, &draining[i]);
     if (live)
         maybe_close(live);
 }
@@ -415,14 +419,14 @@ static int wait_wake(void)
 
 /* Learners are counted so that cleanup can wait for every one to end. */
 struct learner *__real_learner_new(const char *name, char *spec_json, struct model *m,
-                                   const learner_opts_t *o, learner_post_fn post,
-                                   learner_wake_fn wake, void *ctx);
+                                   const learner_opts_t *o, event_post_fn post, event_wake_fn wake,
+                                   void *ctx);
 struct learner *__wrap_learner_new(const char *name, char *spec_json, struct model *m,
-                                   const learner_opts_t *o, learner_post_fn post,
-                                   learner_wake_fn wake, void *ctx);
+                                   const learner_opts_t *o, event_post_fn post, event_wake_fn wake,
+                                   void *ctx);
 struct learner *__wrap_learner_new(const char *name, char *spec_json, struct model *m,
-                                   const learner_opts_t *o, learner_post_fn post,
-                                   learner_wake_fn wake, void *ctx)
+                                   const learner_opts_t *o, event_post_fn post, event_wake_fn wake,
+                                   void *ctx)
 {
     pthread_mutex_lock(&mu);
     n_created++;
@@ -546,11 +550,11 @@ static size_t check_replies(const char *b, size_t len)
     return answers;
 }
 
-static void conn_open(struct conn *c, int needs_auth)
+static void fuzz_conn_open(struct conn *c, int needs_auth)
 {
     memset(c, 0, sizeof *c);
     c->id = ++next_conn_id;
-    proto_conn_init(&c->pc, needs_auth);
+    c->state = proto_conn_open(proto, c, needs_auth);
     if (frame_init(&c->fr, MAX_LINE, &budget) != 0)
         die("budget", "the first buffer of the only connection does not fit");
     live = c;
@@ -563,7 +567,7 @@ static void conn_end(struct conn *c)
     frame_close(&c->fr);
     if (budget.used != 0)
         die("budget", "bytes stay charged to the budget after the connection closed");
-    proto_conn_free(proto, &c->pc);
+    proto_conn_close(proto, c, c->state);
     mem_free(c->out);
 }
 
@@ -571,7 +575,7 @@ static void real_run(const uint8_t *d, size_t n)
 {
     struct conn c;
     struct tally t = {0};
-    conn_open(&c, n % 8 == 7);
+    fuzz_conn_open(&c, n % 8 == 7);
     size_t pos = 0;
     int eof = 0;
     for (unsigned turns = 0;; turns++) {
@@ -612,7 +616,7 @@ static cJSON *cleanup_request(struct conn *c, const char *line)
 {
     c->out_len = 0;
     CHECK(proto_line(proto, c, line, strlen(line)) == PROTO_DONE);
-    while (c->waiting || !proto_conn_quiet(&c->pc))
+    while (c->waiting || !proto_conn_quiet(proto, c))
         await(line);
     cJSON *j = cJSON_ParseWithLengthOpts(c->out, c->out_len, NULL, 0);
     if (!j)
@@ -624,7 +628,7 @@ static cJSON *cleanup_request(struct conn *c, const char *line)
 static void cleanup(void)
 {
     struct conn c;
-    conn_open(&c, 0);
+    fuzz_conn_open(&c, 0);
     cJSON *list = cleanup_request(&c, "{\"op\":\"model.list\"}");
     const cJSON *models = cJSON_GetObjectItemCaseSensitive(list, "models"), *m;
     char names[MAX_MODELS + 1][MODEL_NAME_MAX + 1];
@@ -694,7 +698,7 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
     snprintf(db_path, sizeof db_path, "%s/fuzz.db", dir);
     snprintf(backup_dir, sizeof backup_dir, "%s/backups", dir);
     snprintf(backup_path, sizeof backup_path, "%s/backup.db", backup_dir);
-    opts = (server_opts_t){
+    opts = (config_t){
         .socket_path = NULL,
         .token = "s3cret",
         .max_line = MAX_LINE,
@@ -715,8 +719,8 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
         die("cannot open the database", err);
     arena_install(1u << 20);
     writer_opts_t wo = {.keep = opts.keep, .group_max = 4096, .backups = backups};
-    writer = writer_new(db, &wo, post_event, &srv);
-    proto = proto_new(&opts, writer, post_event, wake_loop, &srv);
+    writer = writer_new(db, &wo, post_event, &set);
+    proto = proto_new(&opts, writer, &set, post_event, wake_loop, &set);
     writer_start(writer);
     atexit(teardown);
     return 0;

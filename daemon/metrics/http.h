@@ -1,5 +1,5 @@
 /*
- * metrics.h - worthd's optional HTTP listener for GET /metrics.
+ * http.h - worthd's optional HTTP listener for GET /metrics.
  *
  * Serves the Prometheus text exposition format (version 0.0.4) on the loop
  * thread: one short request per connection, answered and closed.  Parses

@@ -1,5 +1,5 @@
 /*
- * metrics.c - the HTTP listener for GET /metrics (see metrics.h).
+ * http.c - the HTTP listener for GET /metrics (see metrics.h).
  *
  * Loop thread.  Each connection buffers at most HDR_MAX bytes until the blank
  * line that ends the request head, then answers once and closes.  The parser
@@ -8,7 +8,7 @@
  * MAX_HEADERS headers or a head over HDR_MAX bytes is a 400.  Connections are
  * freed only in their close callback.
  */
-#include "net/metrics.h"
+#include "metrics/http.h"
 
 #include <stdio.h>
 #include <stdlib.h>
@@ -16,6 +16,8 @@
 #include <strings.h>
 #include <sys/socket.h>
 
+#include "common/ct.h"
+#include "common/list.h"
 #include "common/mem.h"
 #include "say.h"
 #include "net/server.h"
@@ -65,12 +67,7 @@ static void on_handle_closed(uv_handle_t *h)
     if (--c->handles > 0)
         return;
     struct metrics *m = c->m;
-    if (c->prev)
-        c->prev->next = c->next;
-    else
-        m->conns = c->next;
-    if (c->next)
-        c->next->prev = c->prev;
+    LIST_UNLINK(m->conns, c);
     mem_free(c);
     m->n_conns--;
     maybe_free(m);
@@ -123,16 +120,6 @@ static int error(struct mconn *c, int code, const char *reason)
     int n = snprintf(body, sizeof body, "%d %s\n", code, reason);
     respond(c, code, reason, "text/plain; charset=utf-8", body, (size_t)n, 0);
     return 0;
-}
-
-/* Constant-time comparison of the presented token. */
-static int token_ok(const char *have, size_t hl, const char *want)
-{
-    size_t wl = strlen(want);
-    unsigned char diff = (unsigned char)(hl != wl);
-    for (size_t i = 0; i < wl; i++)
-        diff |= (unsigned char)(want[i] ^ (i < hl ? have[i] : 0));
-    return diff == 0;
 }
 
 /* Handles a complete request head in c->buf[0..end). */
@@ -190,7 +177,7 @@ static int handle(struct mconn *c, size_t end)
     if (strcmp(target, "/metrics") != 0)
         return error(c, 404, "Not Found");
     if (c->m->token && (!auth || auth_len < 7 || strncmp(auth, "Bearer ", 7) != 0 ||
-                        !token_ok(auth + 7, auth_len - 7, c->m->token)))
+                        !ct_equal(auth + 7, auth_len - 7, c->m->token, strlen(c->m->token))))
         return error(c, 401, "Unauthorized");
     size_t blen = 0;
     char *body = c->m->render(c->m->ctx, &blen);
@@ -254,10 +241,7 @@ static void on_connection(uv_stream_t *l, int status)
     uv_timer_init(l->loop, &c->timer);
     c->tcp.data = c->timer.data = c;
     c->handles = 2;
-    c->next = m->conns;
-    if (m->conns)
-        m->conns->prev = c;
-    m->conns = c;
+    LIST_PUSH(m->conns, c);
     if (uv_accept(l, (uv_stream_t *)&c->tcp) != 0) {
         mclose(c);
         return;

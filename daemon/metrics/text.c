@@ -1,0 +1,167 @@
+/*
+ * text.c - the Prometheus text exposition of worthd's figures (text.h).
+ *
+ * Loop thread, once per scrape: every served model's counters, its
+ * estimators' errors and health, the quarantined models, and the writer's
+ * commit latencies, read from the learners' snapshots and the registry.  It
+ * must never block a learner for longer than copying its snapshot's figures.
+ */
+#include "metrics/text.h"
+
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+
+#include "common/jw.h"
+#include "common/mem.h"
+#include "learner.h"
+#include "proto/proto.h"
+#include "store/writer.h"
+
+/* A label value, escaped as the exposition format asks (backslash, quote, newline). */
+static void out_label(jw_t *o, const char *s)
+{
+    jw_raw(o, "\"", 1);
+    for (; *s; s++) {
+        if (*s == '\\' || *s == '"') {
+            char e[2] = {'\\', *s};
+            jw_raw(o, e, 2);
+        } else if (*s == '\n') {
+            jw_raw(o, "\\n", 2);
+        } else {
+            jw_raw(o, s, 1);
+        }
+    }
+    jw_raw(o, "\"", 1);
+}
+
+/* A sample value in the exposition format (Go float syntax: NaN, +Inf, -Inf). */
+static void out_val(jw_t *o, double v)
+{
+    if (isnan(v))
+        jw_lit(o, "NaN");
+    else if (isinf(v))
+        jw_lit(o, v > 0 ? "+Inf" : "-Inf");
+    else
+        jw_fmt(o, "%.17g", v);
+}
+
+static void metric_head(jw_t *o, const char *name, const char *type, const char *help)
+{
+    jw_fmt(o, "# HELP %s %s\n# TYPE %s %s\n", name, help, name, type);
+}
+
+char *metrics_text(const struct proto *p, struct writer *w, size_t *len)
+{
+    jw_t o;
+    jw_init(&o);
+    size_t n = proto_n_models(p), n_damaged = proto_n_damaged(p);
+    learner_stats_t *st = mem_calloc(n ? n : 1, sizeof *st);
+    for (size_t i = 0; i < n; i++)
+        learner_stats(proto_model(p, i), &st[i]);
+    static const struct {
+        const char *name, *type, *help;
+    } per_model[] = {
+        {"worth_transitions_received_total", "counter", "Transitions accepted."},
+        {"worth_transitions_applied_total", "counter", "Transitions learnt."},
+        {"worth_queue_depth", "gauge", "Transitions accepted and not yet learnt."},
+        {"worth_drift_alarms_total", "counter", "Drift alarms raised."},
+        {"worth_checkpoints", "gauge", "Valid checkpoints stored."},
+        {"worth_checkpoint_age_seconds", "gauge", "Age of the newest checkpoint."},
+    };
+    struct timespec ts;
+    clock_gettime(CLOCK_REALTIME, &ts);
+    double now = (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+    for (size_t k = 0; k < sizeof per_model / sizeof per_model[0]; k++) {
+        metric_head(&o, per_model[k].name, per_model[k].type, per_model[k].help);
+        for (size_t i = 0; i < n; i++) {
+            double v = 0;
+            switch (k) {
+            case 0:
+                v = (double)st[i].received;
+                break;
+            case 1:
+                v = (double)st[i].applied;
+                break;
+            case 2:
+                v = (double)(st[i].received - st[i].applied);
+                break;
+            case 3:
+                v = (double)st[i].drift.alarms;
+                break;
+            case 4:
+                v = (double)st[i].checkpoints;
+                break;
+            case 5:
+                if (!st[i].checkpoints)
+                    continue; /* no checkpoint: no age */
+                v = now - st[i].newest_checkpoint_at;
+                break;
+            }
+            jw_lit(&o, per_model[k].name);
+            jw_lit(&o, "{model=");
+            out_label(&o, learner_name(proto_model(p, i)));
+            jw_lit(&o, "} ");
+            out_val(&o, v);
+            jw_lit(&o, "\n");
+        }
+    }
+    for (int k = 0; k < 3; k++) {
+        const char *name = k == 2   ? "worth_estimator_diverged"
+                           : k == 1 ? "worth_realised_return_rms"
+                                    : "worth_td_error_rms";
+        metric_head(&o, name, "gauge",
+                    k == 2   ? "1 when the estimator has diverged and answers no values, else 0."
+                    : k == 1 ? "Realised-return RMS error over the sliding window."
+                             : "Running RMS TD error.");
+        for (size_t i = 0; i < n; i++) {
+            const struct model *m = learner_model(proto_model(p, i));
+            for (size_t e = 0; e < model_n_est(m); e++) {
+                jw_lit(&o, name);
+                jw_lit(&o, "{model=");
+                out_label(&o, learner_name(proto_model(p, i)));
+                jw_lit(&o, ",estimator=");
+                out_label(&o, model_est_name(m, e));
+                jw_lit(&o, "} ");
+                out_val(&o, k == 2   ? (st[i].est[e].health == EST_HEALTH_DIVERGED ? 1.0 : 0.0)
+                            : k == 1 ? st[i].realised[e].rms_window
+                                     : st[i].est[e].td_rms);
+                jw_lit(&o, "\n");
+            }
+        }
+    }
+    metric_head(&o, "worth_model_damaged", "gauge",
+                "1 for a model quarantined at start-up (not served), 0 for one served.");
+    for (size_t i = 0; i < n + n_damaged; i++) {
+        jw_lit(&o, "worth_model_damaged{model=");
+        out_label(&o, i < n ? learner_name(proto_model(p, i)) : proto_damaged_name(p, i - n));
+        jw_lit(&o, i < n ? "} 0\n" : "} 1\n");
+    }
+    uint64_t counts[WRITER_HIST_N], count = 0;
+    double sum = 0;
+    writer_commit_hist(w, counts, &sum, &count);
+    metric_head(&o, "worth_commit_seconds", "histogram", "Duration of the log's commits.");
+    for (int b = 0; b < WRITER_HIST_N; b++) {
+        jw_lit(&o, "worth_commit_seconds_bucket{le=\"");
+        if (isinf(writer_hist_le[b]))
+            jw_lit(&o, "+Inf");
+        else
+            jw_fmt(&o, "%g", writer_hist_le[b]);
+        jw_fmt(&o, "\"} %llu\n", (unsigned long long)counts[b]);
+    }
+    jw_lit(&o, "worth_commit_seconds_sum ");
+    out_val(&o, sum);
+    jw_fmt(&o, "\nworth_commit_seconds_count %llu\n", (unsigned long long)count);
+    mem_free(st);
+    /* The caller frees with free(): hand over a malloc'd copy. */
+    char *text = malloc(o.len + 1);
+    if (text) {
+        memcpy(text, o.b, o.len);
+        text[o.len] = 0;
+    }
+    *len = text ? o.len : 0;
+    mem_free(o.b);
+    return text;
+}

@@ -1,0 +1,164 @@
+/*
+ * acks.c - replies in request order, and the ones that wait for durability.
+ *
+ * Loop thread.  Owns each connection's protocol state (proto_conn_t): the
+ * queue of replies not yet sent.  A reply that acknowledges transitions as
+ * durable waits until the writer has committed them (EV_DURABLE), or turns
+ * into the error of a failed commit (EV_FAILED); every reply behind it waits
+ * too, so a connection's replies never overtake each other.  It must never
+ * send a "durable" acknowledgement before the commit that holds it.
+ */
+
+#include <cjson/cJSON.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+
+#include "common/ct.h"
+#include "common/jw.h"
+#include "common/mem.h"
+#include "core/queue.h"
+#include "proto/arena.h"
+#include "proto/internal.h"
+#include "proto/spec.h"
+#include "say.h"
+#include "store/backup.h"
+#include "worth/errors.h"
+
+/* Appends bytes to the connection's ack buffer; returns their offset. */
+static size_t ack_text(proto_conn_t *pc, const char *b, size_t n)
+{
+    if (pc->ack_len + n > pc->ack_cap) {
+        pc->ack_cap = (pc->ack_len + n) * 2;
+        pc->ackbuf = mem_realloc(pc->ackbuf, pc->ack_cap);
+    }
+    memcpy(pc->ackbuf + pc->ack_len, b, n);
+    pc->ack_len += n;
+    return pc->ack_len - n;
+}
+
+/* Queues a reply behind the waiting ones: ready now (slot NULL) or once slot is durable to seq. */
+static void ack_push(proto_conn_t *pc, struct slot *slot, uint64_t seq, const char *b, size_t n,
+                     const char *id)
+{
+    if (pc->n_acks == pc->cap_acks) {
+        pc->cap_acks = pc->cap_acks ? 2 * pc->cap_acks : 16;
+        pc->acks = mem_realloc(pc->acks, pc->cap_acks * sizeof *pc->acks);
+    }
+    struct proto_ack *a = &pc->acks[pc->n_acks++];
+    a->slot = slot;
+    a->seq = seq;
+    a->off = ack_text(pc, b, n);
+    a->len = n;
+    a->id_len = id ? strlen(id) : 0;
+    a->id_off = id ? ack_text(pc, id, a->id_len) : 0;
+    if (slot)
+        slot->refs++;
+}
+
+/* Sends a finished reply line, after any that still wait on this connection. */
+void ack_send(struct conn *c, const char *b, size_t n)
+{
+    proto_conn_t *pc = pconn(c);
+    if (pc->ack_head == pc->n_acks)
+        conn_send(c, b, n);
+    else
+        ack_push(pc, NULL, 0, b, n, NULL);
+}
+
+/* Sends every reply at the front of c's queue that is ready. */
+static void ack_flush(struct proto *p, struct conn *c)
+{
+    proto_conn_t *pc = pconn(c);
+    while (pc->ack_head < pc->n_acks) {
+        struct proto_ack *a = &pc->acks[pc->ack_head];
+        struct slot *sl = a->slot;
+        if (!sl) {
+            conn_send(c, pc->ackbuf + a->off, a->len);
+        } else {
+            char id[PROTO_ID_MAX + 1];
+            memcpy(id, pc->ackbuf + a->id_off, a->id_len);
+            id[a->id_len] = 0;
+            const char *idp = a->id_len ? id : NULL;
+            if (a->seq == 0) { /* marked failed */
+                reply_format_error(p, idp, sl->fail_code, -1, sl->why);
+                conn_send(c, p->out.b, p->out.len);
+            } else if (sl->durable >= a->seq) {
+                conn_send(c, pc->ackbuf + a->off, a->len);
+            } else if (sl->gone) {
+                reply_format_error(p, idp, WORTH_E_NO_SUCH_MODEL, -1,
+                                   "the model was dropped before these transitions were durable");
+                conn_send(c, p->out.b, p->out.len);
+            } else {
+                break;
+            }
+            sl->refs--;
+            reg_maybe_free(p, sl);
+        }
+        pc->ack_head++;
+    }
+    if (pc->ack_head == pc->n_acks)
+        pc->n_acks = pc->ack_head = pc->ack_len = 0;
+}
+
+void ack_flush_one(struct conn *c, void *ctx)
+{
+    ack_flush(ctx, c);
+}
+
+/* Marks the replies waiting for sl's seqs in (durable, upto] as failed. */
+void ack_fail_one(struct conn *c, void *ctx)
+{
+    struct fail_ctx *f = ctx;
+    proto_conn_t *pc = pconn(c);
+    for (size_t i = pc->ack_head; i < pc->n_acks; i++) {
+        struct proto_ack *a = &pc->acks[i];
+        if (a->slot == f->sl && a->seq > f->sl->durable && a->seq <= f->upto)
+            a->seq = 0;
+    }
+    ack_flush(f->p, c);
+}
+
+/* Queues the reply in p->out to be sent once sl's log is durable up to seq. */
+void ack_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id)
+{
+    proto_conn_t *pc = pconn(c);
+    ack_push(pc, sl, seq, p->out.b, p->out.len, id);
+    ack_flush(p, c);
+}
+
+void *proto_conn_open(struct proto *p, struct conn *c, int needs_auth)
+{
+    (void)p;
+    (void)c;
+    proto_conn_t *pc = mem_calloc(1, sizeof *pc);
+    pc->needs_auth = needs_auth;
+    pc->dt_s = NAN;
+    return pc;
+}
+
+int proto_conn_quiet(struct proto *p, struct conn *c)
+{
+    (void)p;
+    const proto_conn_t *pc = pconn(c);
+    return pc->ack_head == pc->n_acks && !pc->creating;
+}
+
+void proto_conn_close(struct proto *p, struct conn *c, void *state)
+{
+    (void)c;
+    proto_conn_t *pc = state;
+    for (size_t i = pc->ack_head; i < pc->n_acks; i++) {
+        struct slot *sl = pc->acks[i].slot;
+        if (sl) {
+            sl->refs--;
+            reg_maybe_free(p, sl);
+        }
+    }
+    mem_free(pc->acks);
+    mem_free(pc->ackbuf);
+    mem_free(pc);
+}

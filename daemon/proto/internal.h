@@ -1,0 +1,191 @@
+/*
+ * internal.h - what the files of proto/ share: the registry's and a request's
+ * structures, and the helpers each file gives the others.  Not for use
+ * outside daemon/proto/.
+ */
+#ifndef WORTH_PROTO_INTERNAL_H
+#define WORTH_PROTO_INTERNAL_H
+
+#include <cjson/cJSON.h>
+#include <stddef.h>
+#include <stdint.h>
+
+#include "common/jw.h"
+#include "learner.h"
+#include "net/conn.h"
+#include "proto/proto.h"
+#include "store/writer.h"
+
+struct slot;
+
+/* One reply waiting its turn on a connection (the transitions it acknowledges, or earlier
+ * ones, are not durable yet). */
+/* One reply waiting its turn on a connection (the transitions it acknowledges, or earlier ones,
+ * are not durable yet). */
+struct proto_ack {
+    struct slot *slot; /* NULL: ready now */
+    uint64_t seq;      /* ready once slot's durable seq reaches it */
+    size_t off, len;   /* the reply's text in the connection's ack buffer */
+    size_t id_off, id_len;
+};
+
+/* Plain data: a connection's protocol state (conn_state). */
+typedef struct proto_conn {
+    int needs_auth; /* TCP listener with a token */
+    int authed;
+    int bulk_applied;         /* pending bulk: "ack":"applied" */
+    struct learner *creating; /* a model.create awaiting the database */
+    struct proto_ack *acks;   /* replies in order; [ack_head, n_acks) wait */
+    size_t n_acks, ack_head, cap_acks;
+    char *ackbuf;
+    size_t ack_len, ack_cap;
+    char model[MODEL_NAME_MAX + 1];  /* pending bulk: target model */
+    size_t count;                    /* pending bulk: records */
+    char source[MODEL_NAME_MAX + 1]; /* pending bulk: source ("" = default) */
+    double dt_s;                     /* pending bulk: NAN when absent */
+    char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
+    int has_id;
+} proto_conn_t;
+
+/*
+ * A model as the loop sees it: its learner and how far its log is durable.
+ * A dropped model's slot lives on until its learner has exited, the writer
+ * has released it and no waiting reply refers to it.
+ */
+struct slot {
+    struct learner *l;
+    uint64_t durable; /* last seq committed */
+    uint64_t failed;  /* last seq whose commit failed */
+    int fail_code;    /* and its error code */
+    char why[200];    /* the reason of the last failure */
+    int gone;         /* dropped */
+    int exited, released;
+    unsigned refs; /* waiting replies that refer to it */
+};
+
+/*
+ * A model that start-up could not rebuild from its own rows (recover.c): quarantined.  It
+ * has no learner; it keeps its name taken (model.create answers model_exists) until
+ * model.drop, and every other request naming it answers damaged.
+ */
+struct damaged {
+    char *name;   /* owned */
+    int64_t id;   /* its row in the models table */
+    uint64_t seq; /* the offending transition, 0 when no single row is to blame */
+    char *reason; /* owned */
+};
+
+struct proto {
+    const config_t *o;
+    struct writer *w;
+    struct conns *conns;  /* every connection, for replies that come later */
+    struct slot **models; /* registry, o->max_models entries, first n used */
+    size_t n;
+    struct slot **dropped; /* dropped, not yet freed */
+    size_t n_dropped, cap_dropped;
+    struct damaged *damaged; /* quarantined at start-up, first n_damaged used */
+    size_t n_damaged;
+    event_post_fn post;
+    event_wake_fn wake;
+    void *ctx;
+    jw_t out; /* the reply being written (reused: no allocation at its high-water mark) */
+    /* Per-request scratch, sized for the largest model (grown on create). */
+    double *vals, *sds;
+    learner_sample_t *hist; /* history request scratch */
+    const char **srcs;      /* max_batch source names of a batch */
+    char err[512];
+};
+
+/* A request being handled: its tree, id text and connection. */
+struct req {
+    struct proto *p;
+    struct conn *c;
+    cJSON *root;
+    const char *id; /* printed id, or NULL */
+};
+
+#define FAIL(rq, code, ...) reply_error((rq)->p, (rq)->c, (rq)->id, (code), -1, __VA_ARGS__)
+/* FAIL, then the value a request handler returns when it has answered. */
+#define fail_done(rq, code, ...) (FAIL(rq, code, __VA_ARGS__), PROTO_DONE)
+
+/* What ack_fail_one marks failed: sl's replies waiting for seqs up to upto. */ struct fail_ctx {
+    struct proto *p;
+    struct slot *sl;
+    uint64_t upto;
+};
+
+/* The member name of obj, or NULL (cJSON's case-sensitive lookup). */
+static inline const cJSON *field(const cJSON *obj, const char *name)
+{
+    return cJSON_GetObjectItemCaseSensitive(obj, name);
+}
+
+/* The protocol state of connection c. */
+static inline proto_conn_t *pconn(struct conn *c)
+{
+    return (proto_conn_t *)conn_state(c);
+}
+
+/* reply.c: the frame of reply lines */
+void reply_begin(jw_t *o, int ok, const char *id);
+void reply_end(jw_t *o, struct conn *c);
+void reply_format_error(struct proto *p, const char *id, int code, long index, const char *msg);
+void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
+                 const char *fmt, ...) __attribute__((format(printf, 6, 7)));
+
+/* acks.c: replies in order, durable acknowledgements */
+void ack_send(struct conn *c, const char *b, size_t n);
+void ack_flush_one(struct conn *c, void *ctx);
+void ack_fail_one(struct conn *c, void *ctx);
+void ack_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id);
+
+/* registry.c: live, dropped and quarantined models */
+struct slot *reg_find_slot(struct proto *p, const char *name, size_t *at);
+struct learner *reg_find_model(struct proto *p, const char *name, size_t *at);
+struct damaged *reg_find_damaged(struct proto *p, const char *name, size_t *at);
+void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const struct damaged *dm);
+struct slot *reg_slot_of(struct proto *p, const struct queue *q);
+struct slot *reg_new_slot(struct learner *l, uint64_t durable);
+void reg_maybe_free(struct proto *p, struct slot *sl);
+void reg_unregister(struct proto *p, size_t at, int tell_writer, uint64_t conn_id);
+void reg_forget_damaged(struct proto *p, size_t at, uint64_t conn_id);
+void proto_learner_opts(const struct proto *p, learner_opts_t *o);
+
+/* fields.c: a request's members */
+int fld_dup_key(const cJSON *obj, const char **which);
+int fld_only_keys(const cJSON *obj, const char *const *allowed, const char **bad);
+const char *fld_string(struct req *rq, const char *name);
+struct learner *fld_model(struct req *rq);
+const struct damaged *fld_damaged(struct req *rq);
+int fld_number(const cJSON *obj, const char *name, double *v, int *code, char *err, size_t errlen,
+               const char *where);
+int fld_vector(const cJSON *arr, size_t n, double *out, const char *name, int *code, char *err,
+               size_t errlen, const char *where);
+void fld_ensure_scratch(struct proto *p, size_t n_est);
+void fld_keep_id(struct req *rq);
+int fld_park(struct learner *l);
+
+/* ingest.c */
+int do_observe(struct req *rq);
+int do_bulk_header(struct req *rq);
+
+/* query.c */
+int do_list(struct req *rq);
+int do_get(struct req *rq);
+int do_value(struct req *rq);
+int do_stats(struct req *rq);
+int do_history(struct req *rq);
+
+/* admin.c */
+int do_hello(struct req *rq);
+int do_auth(struct req *rq);
+int do_create(struct req *rq);
+int do_drop(struct req *rq);
+int do_train(struct req *rq);
+int do_events(struct req *rq);
+int do_checkpoint(struct req *rq);
+int do_checkpoints(struct req *rq);
+int do_rollback(struct req *rq);
+int do_backup(struct req *rq);
+
+#endif /* WORTH_PROTO_INTERNAL_H */
