@@ -154,7 +154,7 @@ static void ack_observe(struct proto *p, struct conn *c, const char *id, struct 
         return;
     }
     jw_lit(o, ",\"durable\":true}\n");
-    ack_durable(p, c, reg_slot_of(p, learner_queue(l)), seq, id);
+    reply_durable(p, c, reg_slot_of(p, learner_queue(l)), seq, id);
 }
 
 int do_observe(struct req *rq)

@@ -108,7 +108,7 @@ struct req {
 /* FAIL, then the value a request handler returns when it has answered. */
 #define fail_done(rq, code, ...) (FAIL(rq, code, __VA_ARGS__), PROTO_DONE)
 
-/* What ack_fail_one marks failed: sl's replies waiting for seqs up to upto. */ struct fail_ctx {
+/* What reply_fail_one marks failed: sl's replies waiting for seqs up to upto. */ struct fail_ctx {
     struct proto *p;
     struct slot *sl;
     uint64_t upto;
@@ -126,18 +126,22 @@ static inline proto_conn_t *pconn(struct conn *c)
     return (proto_conn_t *)conn_state(c);
 }
 
-/* reply.c: the frame of reply lines */
+/* reply.c: the frame of reply lines, their order, durable acknowledgements */
 void reply_begin(jw_t *o, int ok, const char *id);
 void reply_end(jw_t *o, struct conn *c);
 void reply_format_error(struct proto *p, const char *id, int code, long index, const char *msg);
 void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
                  const char *fmt, ...) __attribute__((format(printf, 6, 7)));
 
-/* acks.c: replies in order, durable acknowledgements */
-void ack_send(struct conn *c, const char *b, size_t n);
-void ack_flush_one(struct conn *c, void *ctx);
-void ack_fail_one(struct conn *c, void *ctx);
-void ack_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id);
+void reply_send(struct conn *c, const char *b, size_t n);
+void reply_flush_one(struct conn *c, void *ctx);
+void reply_fail_one(struct conn *c, void *ctx);
+void reply_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id);
+/* A connection's reply state: new, with nothing waiting (quiet), and freed (its waiting
+ * replies' slot references dropped: reg_sweep then frees what they held). */
+proto_conn_t *reply_conn_new(int needs_auth);
+int reply_conn_quiet(const proto_conn_t *pc);
+void reply_conn_free(proto_conn_t *pc);
 
 /* registry.c: live, dropped and quarantined models */
 struct slot *reg_find_slot(struct proto *p, const char *name, size_t *at);
@@ -147,6 +151,8 @@ void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const st
 struct slot *reg_slot_of(struct proto *p, const struct queue *q);
 struct slot *reg_new_slot(struct learner *l, uint64_t durable);
 void reg_maybe_free(struct proto *p, struct slot *sl);
+/* Frees every dropped slot nothing refers to any more (after replies were flushed). */
+void reg_sweep(struct proto *p);
 void reg_unregister(struct proto *p, size_t at, int tell_writer, uint64_t conn_id);
 void reg_forget_damaged(struct proto *p, size_t at, uint64_t conn_id);
 void proto_learner_opts(const struct proto *p, learner_opts_t *o);

@@ -259,14 +259,16 @@ void proto_event(struct proto *p, const event_t *ev)
     case EV_DURABLE:
         if (sl && ev->seq > sl->durable)
             sl->durable = ev->seq;
-        conns_each(p->conns, ack_flush_one, p);
+        conns_each(p->conns, reply_flush_one, p);
+        reg_sweep(p);
         return;
     case EV_FAILED:
         if (sl) {
             snprintf(sl->why, sizeof sl->why, "commit failed: %s; not applied", ev->text);
             sl->fail_code = ev->rc;
             struct fail_ctx f = {p, sl, ev->seq};
-            conns_each(p->conns, ack_fail_one, &f);
+            conns_each(p->conns, reply_fail_one, &f);
+            reg_sweep(p);
             if (ev->seq > sl->failed)
                 sl->failed = ev->seq;
         }
@@ -357,6 +359,26 @@ struct proto *proto_new(const config_t *opts, struct writer *w, struct conns *co
     return p;
 }
 
+void *proto_conn_open(struct proto *p, struct conn *c, int needs_auth)
+{
+    (void)p;
+    (void)c;
+    return reply_conn_new(needs_auth);
+}
+
+int proto_conn_quiet(struct proto *p, struct conn *c)
+{
+    (void)p;
+    return reply_conn_quiet(pconn(c));
+}
+
+void proto_conn_close(struct proto *p, struct conn *c, void *state)
+{
+    (void)c;
+    reply_conn_free(state);
+    reg_sweep(p);
+}
+
 /* The handler's callbacks: the connections' way up to the protocol (net/conn.h). */
 static void *h_open(void *ctx, struct conn *c, int needs_auth)
 {
@@ -370,12 +392,16 @@ static void h_close(void *ctx, struct conn *c, void *state)
 
 static int h_line(void *ctx, struct conn *c, const char *line, size_t len)
 {
-    return proto_line(ctx, c, line, len);
+    int rc = proto_line(ctx, c, line, len);
+    reg_sweep(ctx); /* replies sent may have let go of dropped models */
+    return rc;
 }
 
 static int h_bulk(void *ctx, struct conn *c, const unsigned char *data, size_t len)
 {
-    return proto_bulk(ctx, c, data, len);
+    int rc = proto_bulk(ctx, c, data, len);
+    reg_sweep(ctx);
+    return rc;
 }
 
 static void h_truncated(void *ctx, struct conn *c, size_t got)

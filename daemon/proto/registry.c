@@ -78,7 +78,7 @@ void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const st
     jw_lit(o, ",\"message\":");
     jw_str(o, msg);
     jw_fmt(o, ",\"seq\":%llu}}\n", (unsigned long long)dm->seq);
-    ack_send(c, o->b, o->len);
+    reply_send(c, o->b, o->len);
 }
 
 /* The slot of learner l, live or dropped. */
@@ -93,6 +93,12 @@ struct slot *reg_slot_of(struct proto *p, const struct queue *q)
         if (learner_queue(p->dropped[i]->l) == q)
             return p->dropped[i];
     return NULL;
+}
+
+void reg_sweep(struct proto *p)
+{
+    for (size_t i = p->n_dropped; i-- > 0;)
+        reg_maybe_free(p, p->dropped[i]);
 }
 
 struct learner *proto_model(const struct proto *p, size_t i)
@@ -152,7 +158,7 @@ void reg_unregister(struct proto *p, size_t at, int tell_writer, uint64_t conn_i
         p->dropped = mem_realloc(p->dropped, p->cap_dropped * sizeof *p->dropped);
     }
     p->dropped[p->n_dropped++] = sl;
-    conns_each(p->conns, ack_flush_one, p);
+    conns_each(p->conns, reply_flush_one, p);
 }
 
 /* Drops the quarantined model at `at`: marked dropped in the database, its name free again. */

@@ -28,7 +28,7 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
-#include "store/writer_impl.h"
+#include "store/wr.h"
 #include "worth/errors.h"
 
 /* Tells q how many valid checkpoints it has and when the newest was taken. */

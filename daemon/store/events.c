@@ -23,7 +23,7 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
-#include "store/writer_impl.h"
+#include "store/wr.h"
 #include "worth/errors.h"
 
 /* Records an event of the model with database id model (0: a daemon-wide event). */

@@ -36,25 +36,11 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
-#include "store/writer_impl.h"
+#include "store/wr.h"
 #include "worth/errors.h"
 
 const double writer_hist_le[WRITER_HIST_N] = {0.0005, 0.001, 0.002, 0.005, 0.01, 0.02,
                                               0.05,   0.1,   0.25,  0.5,   1.0,  INFINITY};
-
-int log_prepare(struct writer *w)
-{
-    return sqlite3_prepare_v3(w->db,
-                              "INSERT INTO transitions(model, seq, t, source, x, r, x_next,"
-                              " terminal, dt) VALUES(?,?,?,?,?,?,?,?,?)",
-                              -1, SQLITE_PREPARE_PERSISTENT, &w->ins_tx, NULL) == SQLITE_OK &&
-                   sqlite3_prepare_v3(w->db,
-                                      "INSERT INTO trainings(model, ordinal, after_seq, estimator,"
-                                      " passes) VALUES(?,?,?,?,?)",
-                                      -1, SQLITE_PREPARE_PERSISTENT, &w->ins_tr, NULL) == SQLITE_OK
-               ? 0
-               : -1;
-}
 
 /* ---- records ----------------------------------------------------------------------------- */
 

@@ -29,7 +29,7 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
-#include "store/writer_impl.h"
+#include "store/wr.h"
 #include "worth/errors.h"
 
 /* ---- the database file's health ---------------------------------------------------------- */
@@ -136,7 +136,7 @@ static int rescue_write_back(struct writer *w, char *why, size_t len)
     w->ins_tx = w->ins_tr = NULL;
     if (sqlite3_close(w->db) != SQLITE_OK) {
         rescue_msgf(why, len, "cannot close the old connection: %s", sqlite3_errmsg(w->db));
-        if (log_prepare(w) != 0)
+        if (wr_prepare(w) != 0)
             CHECK(!"statements that compiled before compile again");
         if (copy)
             unlink(tmp);
@@ -160,7 +160,7 @@ static int rescue_write_back(struct writer *w, char *why, size_t len)
         snprintf(sql, sizeof sql, "PRAGMA max_page_count = %lld", (long long)max_pages);
         sqlite3_exec(w->db, sql, NULL, NULL, NULL);
     }
-    if (log_prepare(w) != 0 || fileguard_init(&w->guard, path) != 0) {
+    if (wr_prepare(w) != 0 || fileguard_init(&w->guard, path) != 0) {
         rescue_msgf(why, len, "cannot use %s again: %s", path, sqlite3_errmsg(w->db));
         sqlite3_finalize(w->ins_tx);
         sqlite3_finalize(w->ins_tr);

@@ -31,29 +31,11 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
-#include "store/writer_impl.h"
+#include "store/wr.h"
 #include "worth/errors.h"
 
 void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt, ...)
     __attribute__((format(printf, 5, 6)));
-void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt, ...)
-{
-    if (!conn_id)
-        return;
-    char buf[1024];
-    va_list ap;
-    va_start(ap, fmt);
-    vsnprintf(buf, sizeof buf, fmt, ap);
-    va_end(ap);
-    event_t ev = {.kind = EV_REPLY, .q = q, .conn_id = conn_id, .rc = rc};
-    ev.text = mem_strdup(buf);
-    w->post(w->ctx, &ev);
-}
-
-int wr_exec(struct writer *w, const char *sql)
-{
-    return sqlite3_exec(w->db, sql, NULL, NULL, NULL) == SQLITE_OK ? 0 : -1;
-}
 
 static void wr_add_model(struct writer *w, struct queue *q)
 {
@@ -314,7 +296,7 @@ struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, event_post_fn pos
     w->ctx = ctx;
     pthread_mutex_init(&w->mu, NULL);
     pthread_cond_init(&w->cond, NULL);
-    CHECK(log_prepare(w) == 0);
+    CHECK(wr_prepare(w) == 0);
     const char *file = sqlite3_db_filename(db, "main");
     if (file && *file && fileguard_init(&w->guard, file) == 0)
         w->guarded = 1;
@@ -371,15 +353,6 @@ static void push(struct writer *w, struct job *j)
     w->tail = j;
     pthread_cond_signal(&w->cond);
     pthread_mutex_unlock(&w->mu);
-}
-
-struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id)
-{
-    struct job *j = mem_calloc(1, sizeof *j);
-    j->kind = kind;
-    j->q = q;
-    j->conn_id = conn_id;
-    return j;
 }
 
 void writer_add_model(struct writer *w, struct queue *q, int64_t model_id)

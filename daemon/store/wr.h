@@ -1,10 +1,10 @@
 /*
- * writer_impl.h - what the files of the writer share (writer.c, log.c,
- * ckpt.c, rescue.c, events.c): the writer's state and its jobs.  Not for use
+ * wr.h - what the files of the writer share (writer.c, log.c, ckpt.c,
+ * rescue.c, events.c, wr.c): the writer's state, its jobs and wr.c's helpers.  Not for use
  * outside daemon/store/.
  */
-#ifndef WORTH_WRITER_IMPL_H
-#define WORTH_WRITER_IMPL_H
+#ifndef WORTH_WR_H
+#define WORTH_WR_H
 
 #include <pthread.h>
 #include <sqlite3.h>
@@ -79,14 +79,15 @@ struct writer {
     char lost_why[200]; /* why writes are refused while lost or without a connection */
 };
 
-/* writer.c */
+/* wr.c: replies, SQL, jobs, the log's statements */
 void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt, ...)
     __attribute__((format(printf, 5, 6)));
 int wr_exec(struct writer *w, const char *sql);
 struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id);
+/* Prepares the log's insert statements on w->db; 0 or -1. */
+int wr_prepare(struct writer *w);
 
 /* log.c: the transition log */
-int log_prepare(struct writer *w);
 int log_write_group(struct writer *w);
 
 /* ckpt.c: checkpoints */
@@ -105,4 +106,4 @@ int64_t events_insert_id(struct writer *w, int64_t model, const char *kind, cons
 int64_t events_insert(struct writer *w, struct queue *q, const char *kind, const char *detail);
 void events_job_list(struct writer *w, struct job *j);
 
-#endif /* WORTH_WRITER_IMPL_H */
+#endif /* WORTH_WR_H */

@@ -1,0 +1,55 @@
+/*
+ * wr.c - what every part of the writer thread uses: replies to the loop,
+ * plain SQL, jobs, and the log's prepared statements.
+ *
+ * Writer thread (wr_job on any thread: it only allocates).  The bottom of
+ * store/'s writer files: it calls none of them.
+ */
+#include "store/wr.h"
+
+#include <stdarg.h>
+#include <stdio.h>
+#include <string.h>
+
+#include "common/mem.h"
+void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt, ...)
+{
+    if (!conn_id)
+        return;
+    char buf[1024];
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(buf, sizeof buf, fmt, ap);
+    va_end(ap);
+    event_t ev = {.kind = EV_REPLY, .q = q, .conn_id = conn_id, .rc = rc};
+    ev.text = mem_strdup(buf);
+    w->post(w->ctx, &ev);
+}
+
+int wr_exec(struct writer *w, const char *sql)
+{
+    return sqlite3_exec(w->db, sql, NULL, NULL, NULL) == SQLITE_OK ? 0 : -1;
+}
+
+struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id)
+{
+    struct job *j = mem_calloc(1, sizeof *j);
+    j->kind = kind;
+    j->q = q;
+    j->conn_id = conn_id;
+    return j;
+}
+
+int wr_prepare(struct writer *w)
+{
+    return sqlite3_prepare_v3(w->db,
+                              "INSERT INTO transitions(model, seq, t, source, x, r, x_next,"
+                              " terminal, dt) VALUES(?,?,?,?,?,?,?,?,?)",
+                              -1, SQLITE_PREPARE_PERSISTENT, &w->ins_tx, NULL) == SQLITE_OK &&
+                   sqlite3_prepare_v3(w->db,
+                                      "INSERT INTO trainings(model, ordinal, after_seq, estimator,"
+                                      " passes) VALUES(?,?,?,?,?)",
+                                      -1, SQLITE_PREPARE_PERSISTENT, &w->ins_tr, NULL) == SQLITE_OK
+               ? 0
+               : -1;
+}
