@@ -27,6 +27,7 @@
 #include <string.h>
 
 #include "learn/est_impl.h"
+#include "learn/ring.h"
 #include "common/fail.h"
 #include "common/mem.h"
 #include "worth/errors.h"
@@ -241,6 +242,22 @@ double est_dot(size_t n, const double *a, const double *b)
 void est_axpy(size_t n, double a, const double *x, double *y)
 {
     cblas_daxpy((int)n, a, x, 1, y, 1);
+}
+
+void est_step(struct est *e, const double *phi, double target)
+{
+    double v = est_dot(e->n, e->w, phi);
+    est_axpy(e->n, e->p.alpha * (target - v), phi, e->w);
+}
+
+/* The returns do not depend on the weights, so computing them all first gives the bits of
+ * taking each in turn while the weights move. */
+void est_ring_flush(struct est *e, struct ring *q)
+{
+    ring_returns(q);
+    for (size_t i = 0; i < q->count; i++)
+        est_step(e, ring_phi(q, i, e->n), ring_r(q, i));
+    ring_clear(q);
 }
 
 static int finite_vec(const double *v, size_t n)

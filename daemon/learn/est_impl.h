@@ -76,6 +76,13 @@ double est_dot(size_t n, const double *a, const double *b);
 /* y += a * x over n doubles (BLAS daxpy). */
 void est_axpy(size_t n, double a, const double *x, double *y);
 
+struct ring;
+/* The step of tdn and mc towards a target: w += alpha * (target - w.phi) * phi (phi borrowed). */
+void est_step(struct est *e, const double *phi, double target);
+/* An episode's end for tdn and mc: steps every waiting state of q (learn/ring.h), oldest first,
+ * towards its return to the end (V(terminal) = 0), and empties q. */
+void est_ring_flush(struct est *e, struct ring *q);
+
 /*
  * The accumulating trace of one source, shared by rls_td and lstd (the
  * instrument of LSTD(lambda)): z = g_prev*lambda*z + phi, reset at a terminal

@@ -3,8 +3,8 @@
  *
  * Owns its feature map, estimators, source table and the phi workspaces.  Run
  * by the model's learner thread; model_value may run elsewhere on a copy.
- * model_replay (at the end) lends each estimator to one worker thread while
- * the calling thread evaluates features and feeds the diagnostics in order.
+ * The replay over worker threads (model_replay_*) is model_replay.c; the
+ * struct and the two helpers it shares with this file are in model_impl.h.
  * It must never hand an estimator a transition it has not fully validated,
  * and never allocate per transition (only the first transition of a new
  * source allocates that source's buffers inside the estimators).
@@ -20,34 +20,17 @@
 #include "learn/model.h"
 
 #include <math.h>
-#include <pthread.h>
-#include <sys/resource.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
-#include <unistd.h>
 
 #include "common/fail.h"
 #include "common/mem.h"
+#include "learn/model_impl.h"
 #include "learn/ser.h"
 #include "worth/errors.h"
 
 #define MODEL_MAGIC 0x444f4d57u /* "WMOD" */
-
-struct model {
-    struct feat *feat;
-    size_t dims, n;
-    double gamma, gamma_per_s;
-    size_t n_est, primary;
-    struct est *est[MODEL_MAX_EST];
-    char names[MODEL_MAX_EST][MODEL_NAME_MAX + 1];
-    size_t max_sources, n_sources;
-    char (*sources)[MODEL_NAME_MAX + 1];
-    double *phi, *phin, *work; /* learner workspaces */
-    double *pred;              /* each estimator's V(x) before an update */
-    struct diag *diag;
-    uint64_t applied, clipped;
-};
 
 int model_new(const model_spec_t *spec, struct model **out, char *err, size_t errlen)
 {
@@ -224,8 +207,7 @@ int model_check(const struct model *m, const model_obs_t *t, char *err, size_t e
     return 0;
 }
 
-/* Returns t's source slot, taking a new one for a new source (model_check passed). */
-static long source_slot(struct model *m, const model_obs_t *t)
+long model_source_slot(struct model *m, const model_obs_t *t)
 {
     const char *src = t->source ? t->source : "";
     long slot = find_source(m, src);
@@ -236,8 +218,7 @@ static long source_slot(struct model *m, const model_obs_t *t)
     return slot;
 }
 
-/* The discount of t: gamma_per_s^dt when both are there, else gamma. */
-static double discount(const struct model *m, const model_obs_t *t)
+double model_discount(const struct model *m, const model_obs_t *t)
 {
     if (!isnan(t->dt_s) && m->gamma_per_s > 0)
         return pow(m->gamma_per_s, t->dt_s);
@@ -249,8 +230,8 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     int rc = model_check(m, t, err, errlen);
     if (rc)
         return rc;
-    long slot = source_slot(m, t);
-    double g = discount(m, t);
+    long slot = model_source_slot(m, t);
+    double g = model_discount(m, t);
 
     m->clipped += feat_eval(m->feat, t->x, m->phi, m->work);
     if (!t->terminal)
@@ -527,329 +508,4 @@ int model_load(struct model *m, const uint8_t *buf, size_t len, char *err, size_
     }
     mem_free(backup);
     return rc;
-}
-
-/* ---- replay over worker threads ------------------------------------------------------- */
-
-/*
- * Three stages per chunk of transitions: (A) on the pushing thread, check,
- * source slot, discount and features; (B) on the workers, each estimator
- * over the whole chunk in order (a worker owns a fixed set of estimators, so
- * no estimator is ever touched by two threads); (C) on the pushing thread,
- * the diagnostics and the counters in order.  Two chunks alternate: while the
- * workers run B on one, the pusher runs A on the other, then waits, runs C
- * and hands the full chunk over.  Stage A touches only the source table, the
- * feature workspace and clipped; B only its estimators; C only the
- * diagnostics and applied: the stages share no mutable state but the chunk,
- * whose hand-over goes through the mutex.
- */
-
-/* Bytes of features a chunk holds at most (phi and phi' of every transition). */
-#define CHUNK_BYTES (1u << 20)
-/* Most transitions a chunk holds: small enough to pipeline a learner's blocks of records. */
-#define CHUNK_MAX 128
-/*
- * Rough flops per transition below which worker threads cost more than they
- * save (a hand-over is some microseconds): td alone at any n the daemon
- * sees, or RLS-TD below about 40 features.
- */
-#define PARALLEL_MIN_COST 10000.0
-
-struct chunk {
-    size_t count;
-    double *phi, *phin; /* cap x n each */
-    double *r, *g;      /* cap each */
-    int *term;          /* cap */
-    size_t *slot;       /* cap */
-    double *pred;       /* cap x n_est: each estimator's V(x) before its update */
-    double *td;         /* cap: the primary estimator's TD error */
-};
-
-struct worker {
-    struct model_replay *r;
-    pthread_t thread;
-    size_t n_est;
-    size_t est[MODEL_MAX_EST]; /* the estimators this worker updates */
-};
-
-struct model_replay {
-    struct model *m;
-    size_t cap;        /* transitions a chunk holds */
-    struct chunk ch[2];
-    int fill;          /* index of the chunk stage A fills */
-    int busy;          /* the other chunk is with the workers */
-    size_t n_workers;  /* 0: stage B runs on the pushing thread */
-    struct worker *w;
-    size_t all[MODEL_MAX_EST]; /* every estimator, for the single-thread case */
-    pthread_mutex_t mu;
-    pthread_cond_t go, done;
-    uint64_t gen;      /* chunks handed out so far */
-    size_t pending;    /* workers still learning the chunk handed out */
-    int stop;
-    int nice;          /* added to each worker's nice value */
-    /* The last x_next pushed and its features: a stream whose x is the previous
-     * x_next (the usual case) evaluates features once per transition, not twice.
-     * feat_eval is a pure function of x, so the bits are the same. */
-    int have_last;
-    size_t last_clip;
-    double *last_x, *last_phi;
-    model_replay_fn after; /* stage C callback, or NULL */
-    void *after_ctx;
-};
-
-/* Rough flops per transition of estimator e, to balance the workers. */
-static double est_cost(const struct est *e, size_t n)
-{
-    const est_params_t *p = est_params(e);
-    double dn = (double)n;
-    switch (p->kind) {
-    case EST_RLS_TD:
-        return 6.0 * dn * dn * (p->forget < 1.0 ? 1.5 : 1.0);
-    case EST_LSTD:
-        return 2.0 * dn * dn + dn * dn * dn / (3.0 * p->refit_every);
-    case EST_REPLAY:
-        return 4.0 * dn * p->batch * p->steps_per_obs + 4.0 * dn;
-    default:
-        return 6.0 * dn;
-    }
-}
-
-/* Stage B: the estimators in est[0..k) over chunk c, each in transition order. */
-static void learn_chunk(struct model *m, struct chunk *c, const size_t *est, size_t k)
-{
-    size_t n = m->n, ne = m->n_est;
-    for (size_t j = 0; j < k; j++) {
-        size_t i = est[j];
-        struct est *e = m->est[i];
-        for (size_t t = 0; t < c->count; t++) {
-            int rc = est_observe(e, c->slot[t], c->phi + t * n, c->r[t],
-                                 c->term[t] ? NULL : c->phin + t * n, c->g[t], c->term[t]);
-            CHECK(rc == 0); /* stage A validated it */
-            c->pred[t * ne + i] = est_last_value(e);
-            if (i == m->primary)
-                c->td[t] = est_last_td(e);
-        }
-    }
-}
-
-/* Stage C: diagnostics, counters and the callback, in transition order. */
-static void finish_chunk(struct model_replay *r, struct chunk *c)
-{
-    struct model *m = r->m;
-    for (size_t t = 0; t < c->count; t++) {
-        diag_observe(m->diag, c->slot[t], c->pred + t * m->n_est, c->r[t], c->g[t], c->term[t],
-                     c->td[t]);
-        m->applied++;
-        if (r->after)
-            r->after(r->after_ctx);
-    }
-    c->count = 0;
-}
-
-static void *work(void *arg)
-{
-    struct worker *w = arg;
-    struct model_replay *r = w->r;
-    uint64_t seen = 0;
-    /* Linux keeps a nice value per thread; failing to change it only costs latency. */
-    if (r->nice)
-        (void)setpriority(PRIO_PROCESS, 0, getpriority(PRIO_PROCESS, 0) + r->nice);
-    pthread_mutex_lock(&r->mu);
-    for (;;) {
-        while (r->gen == seen && !r->stop)
-            pthread_cond_wait(&r->go, &r->mu);
-        if (r->gen == seen)
-            break; /* stopped, and nothing handed out is left */
-        seen = r->gen;
-        struct chunk *c = &r->ch[r->fill ^ 1];
-        pthread_mutex_unlock(&r->mu);
-        learn_chunk(r->m, c, w->est, w->n_est);
-        pthread_mutex_lock(&r->mu);
-        if (--r->pending == 0)
-            pthread_cond_signal(&r->done);
-    }
-    pthread_mutex_unlock(&r->mu);
-    return NULL;
-}
-
-/* Waits for the chunk with the workers, if any, and runs stage C on it. */
-static void collect(struct model_replay *r)
-{
-    if (!r->busy)
-        return;
-    pthread_mutex_lock(&r->mu);
-    while (r->pending)
-        pthread_cond_wait(&r->done, &r->mu);
-    pthread_mutex_unlock(&r->mu);
-    finish_chunk(r, &r->ch[r->fill ^ 1]);
-    r->busy = 0;
-}
-
-/* Hands the chunk being filled to the workers (or learns it here) and switches chunks. */
-static void hand_over(struct model_replay *r)
-{
-    struct chunk *c = &r->ch[r->fill];
-    if (c->count == 0)
-        return;
-    collect(r);
-    if (r->n_workers == 0) {
-        learn_chunk(r->m, c, r->all, r->m->n_est);
-        finish_chunk(r, c);
-        return;
-    }
-    pthread_mutex_lock(&r->mu);
-    r->fill ^= 1; /* workers read ch[fill ^ 1]: the chunk just filled */
-    r->pending = r->n_workers;
-    r->gen++;
-    pthread_cond_broadcast(&r->go);
-    pthread_mutex_unlock(&r->mu);
-    r->busy = 1;
-}
-
-static void chunk_init(struct chunk *c, size_t cap, size_t n, size_t n_est)
-{
-    c->count = 0;
-    c->phi = mem_alloc(cap * n * sizeof *c->phi);
-    c->phin = mem_alloc(cap * n * sizeof *c->phin);
-    c->r = mem_alloc(cap * sizeof *c->r);
-    c->g = mem_alloc(cap * sizeof *c->g);
-    c->term = mem_alloc(cap * sizeof *c->term);
-    c->slot = mem_alloc(cap * sizeof *c->slot);
-    c->pred = mem_alloc(cap * n_est * sizeof *c->pred);
-    c->td = mem_alloc(cap * sizeof *c->td);
-}
-
-static void chunk_free(struct chunk *c)
-{
-    mem_free(c->phi);
-    mem_free(c->phin);
-    mem_free(c->r);
-    mem_free(c->g);
-    mem_free(c->term);
-    mem_free(c->slot);
-    mem_free(c->pred);
-    mem_free(c->td);
-}
-
-struct model_replay *model_replay_new(struct model *m, unsigned threads, int nice)
-{
-    struct model_replay *r = mem_calloc(1, sizeof *r);
-    r->m = m;
-    r->nice = nice;
-    r->last_x = mem_alloc(m->dims * sizeof *r->last_x);
-    r->last_phi = mem_alloc(m->n * sizeof *r->last_phi);
-    size_t cap = CHUNK_BYTES / (2 * sizeof(double) * m->n);
-    r->cap = cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
-    for (int i = 0; i < 2; i++)
-        chunk_init(&r->ch[i], r->cap, m->n, m->n_est);
-    for (size_t i = 0; i < m->n_est; i++)
-        r->all[i] = i;
-
-    double load[MODEL_MAX_EST] = {0}, cost[MODEL_MAX_EST], total = 0;
-    int taken[MODEL_MAX_EST] = {0};
-    for (size_t i = 0; i < m->n_est; i++)
-        total += cost[i] = est_cost(m->est[i], m->n);
-    size_t want = threads;
-    if (want == 0) {
-        long cores = sysconf(_SC_NPROCESSORS_ONLN);
-        /* One core: nothing runs alongside the pusher, so learn on it. */
-        want = cores > 1 && total >= PARALLEL_MIN_COST ? (size_t)cores : 0;
-    }
-    if (want > m->n_est)
-        want = m->n_est;
-    r->n_workers = want;
-    if (want == 0)
-        return r;
-
-    /* Costliest estimator first, each to the least loaded worker. */
-    r->w = mem_calloc(want, sizeof *r->w);
-    for (size_t k = 0; k < m->n_est; k++) {
-        size_t best = m->n_est;
-        for (size_t i = 0; i < m->n_est; i++)
-            if (!taken[i] && (best == m->n_est || cost[i] > cost[best]))
-                best = i;
-        taken[best] = 1;
-        size_t to = 0;
-        for (size_t j = 1; j < want; j++)
-            if (load[j] < load[to])
-                to = j;
-        load[to] += cost[best];
-        r->w[to].est[r->w[to].n_est++] = best;
-    }
-    pthread_mutex_init(&r->mu, NULL);
-    pthread_cond_init(&r->go, NULL);
-    pthread_cond_init(&r->done, NULL);
-    for (size_t j = 0; j < want; j++) {
-        r->w[j].r = r;
-        CHECK(pthread_create(&r->w[j].thread, NULL, work, &r->w[j]) == 0);
-    }
-    return r;
-}
-
-int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, size_t errlen)
-{
-    struct model *m = r->m;
-    int rc = model_check(m, t, err, errlen);
-    if (rc) {
-        model_replay_flush(r);
-        return rc;
-    }
-    struct chunk *c = &r->ch[r->fill];
-    size_t k = c->count, n = m->n;
-    c->slot[k] = (size_t)source_slot(m, t);
-    c->g[k] = discount(m, t);
-    c->r[k] = t->r;
-    c->term[k] = t->terminal != 0;
-    if (r->have_last && memcmp(t->x, r->last_x, m->dims * sizeof *t->x) == 0) {
-        memcpy(c->phi + k * n, r->last_phi, n * sizeof *r->last_phi);
-        m->clipped += r->last_clip;
-    } else {
-        m->clipped += feat_eval(m->feat, t->x, c->phi + k * n, m->work);
-    }
-    r->have_last = !t->terminal;
-    if (!t->terminal) {
-        r->last_clip = feat_eval(m->feat, t->x_next, c->phin + k * n, m->work);
-        m->clipped += r->last_clip;
-        memcpy(r->last_x, t->x_next, m->dims * sizeof *t->x_next);
-        memcpy(r->last_phi, c->phin + k * n, n * sizeof *r->last_phi);
-    }
-    if (++c->count == r->cap)
-        hand_over(r);
-    return 0;
-}
-
-void model_replay_set_after(struct model_replay *r, model_replay_fn fn, void *ctx)
-{
-    r->after = fn;
-    r->after_ctx = ctx;
-}
-
-void model_replay_flush(struct model_replay *r)
-{
-    hand_over(r);
-    collect(r);
-}
-
-void model_replay_end(struct model_replay *r)
-{
-    if (!r)
-        return;
-    model_replay_flush(r);
-    if (r->n_workers) {
-        pthread_mutex_lock(&r->mu);
-        r->stop = 1;
-        pthread_cond_broadcast(&r->go);
-        pthread_mutex_unlock(&r->mu);
-        for (size_t j = 0; j < r->n_workers; j++)
-            pthread_join(r->w[j].thread, NULL);
-        pthread_mutex_destroy(&r->mu);
-        pthread_cond_destroy(&r->go);
-        pthread_cond_destroy(&r->done);
-        mem_free(r->w);
-    }
-    for (int i = 0; i < 2; i++)
-        chunk_free(&r->ch[i]);
-    mem_free(r->last_x);
-    mem_free(r->last_phi);
-    mem_free(r);
 }

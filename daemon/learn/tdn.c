@@ -1,5 +1,5 @@
 /*
- * tdn.c - n-step semi-gradient TD with a ring buffer per source.
+ * tdn.c - n-step semi-gradient TD with a ring buffer per source (learn/ring.c).
  *
  * For source s the last n transitions (phi, r, g) wait in a ring.  When the
  * ring is full, its oldest state is updated towards the n-step target
@@ -11,18 +11,9 @@
  * Rings are allocated the first time a source is seen.  O(n_features + n)
  * per transition; no allocation afterwards.  Owning thread only.
  */
-#include <string.h>
-
 #include "learn/est_impl.h"
+#include "learn/ring.h"
 #include "common/mem.h"
-
-struct ring {
-    size_t head;  /* index of the oldest entry */
-    size_t count; /* entries waiting */
-    double *phi;  /* cap x n features */
-    double *r;    /* cap rewards */
-    double *g;    /* cap discounts */
-};
 
 struct tdn {
     size_t cap;         /* n of n-step */
@@ -37,46 +28,19 @@ static void tdn_init(struct est *e)
     e->k = t;
 }
 
-static void ring_free(struct ring *q)
-{
-    mem_free(q->phi);
-    mem_free(q->r);
-    mem_free(q->g);
-    memset(q, 0, sizeof *q);
-}
-
-static void ring_alloc(struct ring *q, size_t cap, size_t n)
-{
-    q->phi = mem_calloc(cap * n, sizeof *q->phi);
-    q->r = mem_calloc(cap, sizeof *q->r);
-    q->g = mem_calloc(cap, sizeof *q->g);
-    q->head = q->count = 0;
-}
-
-static void tdn_free(struct est *e)
-{
-    struct tdn *t = e->k;
-    for (size_t s = 0; s < e->nsrc; s++)
-        ring_free(&t->rings[s]);
-    mem_free(t->rings);
-    mem_free(t);
-}
-
 static void tdn_reset(struct est *e)
 {
     struct tdn *t = e->k;
     for (size_t s = 0; s < e->nsrc; s++)
-        ring_free(&t->rings[s]);
+        ring_close(&t->rings[s]);
 }
 
-/* Updates the oldest waiting state towards target and drops it from the ring. */
-static void pop_update(struct est *e, struct tdn *t, struct ring *q, double target)
+static void tdn_free(struct est *e)
 {
-    const double *phi = q->phi + q->head * e->n;
-    double v = est_dot(e->n, e->w, phi);
-    est_axpy(e->n, e->p.alpha * (target - v), phi, e->w);
-    q->head = (q->head + 1) % t->cap;
-    q->count--;
+    tdn_reset(e);
+    struct tdn *t = e->k;
+    mem_free(t->rings);
+    mem_free(t);
 }
 
 static int tdn_observe(struct est *e, size_t src, const double *phi, double r, const double *phin,
@@ -86,36 +50,20 @@ static int tdn_observe(struct est *e, size_t src, const double *phi, double r, c
     (void)vn;
     struct tdn *t = e->k;
     struct ring *q = &t->rings[src];
-    size_t cap = t->cap, n = e->n;
+    size_t n = e->n;
     if (!q->phi)
-        ring_alloc(q, cap, n);
-
-    size_t at = (q->head + q->count) % cap;
-    memcpy(q->phi + at * n, phi, n * sizeof *phi);
-    q->r[at] = r;
-    q->g[at] = g;
-    q->count++;
+        ring_grow(q, t->cap, n);
+    ring_push(q, n, phi, r, g);
 
     if (terminal) {
-        /* Flush: returns to the episode end, newest first, then update oldest first. */
-        while (q->count > 0) {
-            double G = 0.0;
-            for (size_t i = q->count; i-- > 0;) {
-                size_t j = (q->head + i) % cap;
-                G = q->r[j] + q->g[j] * G;
-            }
-            pop_update(e, t, q, G);
-        }
-        q->head = 0;
+        /* Flush: each waiting state gets its return to the episode end. */
+        est_ring_flush(e, q);
         return 0;
     }
-    if (q->count == cap) {
-        double G = est_dot(n, e->w, phin); /* bootstrap with the current weights */
-        for (size_t i = cap; i-- > 0;) {
-            size_t j = (q->head + i) % cap;
-            G = q->r[j] + q->g[j] * G;
-        }
-        pop_update(e, t, q, G);
+    if (q->count == t->cap) {
+        /* Bootstrap with the current weights. */
+        est_step(e, ring_phi(q, 0, n), ring_return(q, est_dot(n, e->w, phin)));
+        ring_pop(q);
     }
     return 0;
 }
@@ -126,16 +74,8 @@ static void tdn_save(const struct est *e, ser_w *w)
     for (size_t s = 0; s < e->nsrc; s++) {
         const struct ring *q = &t->rings[s];
         ser_put_u32(w, q->phi != NULL);
-        if (!q->phi)
-            continue;
-        /* Oldest first, so the loaded ring starts at head 0. */
-        ser_put_u64(w, q->count);
-        for (size_t i = 0; i < q->count; i++) {
-            size_t j = (q->head + i) % t->cap;
-            ser_put_f64v(w, q->phi + j * e->n, e->n);
-            ser_put_f64(w, q->r[j]);
-            ser_put_f64(w, q->g[j]);
-        }
+        if (q->phi)
+            ring_save(q, e->n, w); /* oldest first, so the loaded ring starts at head 0 */
     }
 }
 
@@ -146,21 +86,14 @@ static void tdn_load(struct est *e, ser_r *r, unsigned version)
     for (size_t s = 0; s < e->nsrc && !r->err; s++) {
         struct ring *q = &t->rings[s];
         uint32_t present = ser_get_u32(r);
-        ring_free(q);
+        ring_close(q);
         if (!present)
             continue;
-        uint64_t count = ser_get_u64(r);
-        if (r->err || present != 1 || count >= t->cap) {
+        if (present != 1) {
             r->err = 1;
             return;
         }
-        ring_alloc(q, t->cap, e->n);
-        q->count = count;
-        for (size_t i = 0; i < count; i++) {
-            ser_get_f64v(r, q->phi + i * e->n, e->n);
-            q->r[i] = ser_get_f64(r);
-            q->g[i] = ser_get_f64(r);
-        }
+        ring_load(q, e->n, t->cap, t->cap, r);
     }
 }
 
