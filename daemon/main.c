@@ -18,7 +18,7 @@
 #include <sys/stat.h>
 
 #include "common/mem.h"
-#include "say.h"
+#include "common/say.h"
 #include "net/server.h"
 #include "worthd.h"
 

@@ -19,7 +19,7 @@
 #include "common/ct.h"
 #include "common/list.h"
 #include "common/mem.h"
-#include "say.h"
+#include "common/say.h"
 #include "net/server.h"
 
 #define HDR_MAX     8192

@@ -16,7 +16,7 @@
 
 #include "common/jw.h"
 #include "common/mem.h"
-#include "learner.h"
+#include "live/learner.h"
 #include "proto/proto.h"
 #include "store/writer.h"
 

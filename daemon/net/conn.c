@@ -39,7 +39,7 @@
 #include "common/list.h"
 #include "common/mem.h"
 #include "net/frame.h"
-#include "say.h"
+#include "common/say.h"
 #include "worth/errors.h"
 
 /* Lines handled per connection before yielding to others. */

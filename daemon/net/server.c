@@ -37,8 +37,8 @@
 
 #include "common/mem.h"
 #include "net/conn.h"
-#include "safedir.h"
-#include "say.h"
+#include "common/safedir.h"
+#include "common/say.h"
 #include "worth/errors.h"
 
 /* Least gap between two log lines about shed or refused connections. */

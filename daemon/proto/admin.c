@@ -23,7 +23,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 
@@ -36,6 +36,29 @@
 
 /* ---- requests -------------------------------------------------------------------------- */
 
+/*
+ * A request the model's learner carries out in order with its transitions
+ * (train, checkpoint, rollback): the free slot it goes in, zeroed, of type
+ * (the caller made sure there is one) ...
+ */
+static queue_rec_t *request_record(struct req *rq, struct learner *l, uint32_t type)
+{
+    queue_rec_t *r = queue_slot(learner_queue(l), 0);
+    memset(r, 0, sizeof *r);
+    r->type = type;
+    r->conn_id = conn_id(rq->c);
+    return r;
+}
+
+/* ... then committed; the connection waits for the learner's reply. */
+static int submit(struct req *rq, struct learner *l)
+{
+    fld_keep_id(rq);
+    learner_commit(l, 1);
+    conn_wait(rq->c);
+    return PROTO_DONE;
+}
+
 int do_hello(struct req *rq)
 {
     jw_t *o = &rq->p->out;
@@ -46,16 +69,6 @@ int do_hello(struct req *rq)
     return PROTO_DONE;
 }
 
-/* Constant-time comparison: the time taken does not depend on where the strings differ. */
-static int token_equal(const char *a, const char *b)
-{
-    size_t la = strlen(a), lb = strlen(b);
-    volatile unsigned char diff = (unsigned char)(la != lb);
-    for (size_t i = 0; i < lb; i++)
-        diff |= (unsigned char)(a[i % (la ? la : 1)] ^ b[i]);
-    return diff == 0 && la == lb;
-}
-
 int do_auth(struct req *rq)
 {
     proto_conn_t *pc = pconn(rq->c);
@@ -63,7 +76,8 @@ int do_auth(struct req *rq)
     const char *want = rq->p->o->token;
     if (!want) {
         pc->authed = 1; /* nothing to check: accept, as a client may always send auth */
-    } else if (cJSON_IsString(t) && t->valuestring && token_equal(t->valuestring, want)) {
+    } else if (cJSON_IsString(t) && t->valuestring &&
+               ct_equal(t->valuestring, strlen(t->valuestring), want, strlen(want))) {
         pc->authed = 1;
     } else {
         say_warn("connection %llu: authentication failed", (unsigned long long)conn_id(rq->c));
@@ -177,18 +191,12 @@ int do_train(struct req *rq)
     }
     if (queue_space(learner_queue(l)) < 1)
         return fld_park(l);
-    queue_rec_t *r = queue_slot(learner_queue(l), 0);
-    memset(r, 0, sizeof *r);
-    r->type = QREC_TRAIN;
+    queue_rec_t *r = request_record(rq, l, QREC_TRAIN);
     r->est = (uint32_t)e;
     snprintf(r->src, sizeof r->src, "%s", name); /* the log names the estimator */
     r->passes = (uint32_t)passes;
-    r->conn_id = conn_id(rq->c);
     r->ordinal = learner_next_training(l);
-    fld_keep_id(rq);
-    learner_commit(l, 1);
-    conn_wait(rq->c); /* its progress and reply come before anything else on this connection */
-    return PROTO_DONE;
+    return submit(rq, l); /* its progress and reply come before anything else here */
 }
 
 int do_events(struct req *rq)
@@ -221,13 +229,9 @@ int do_events(struct req *rq)
 
 int do_checkpoint(struct req *rq)
 {
-    static const char *const keys[] = {"op", "id", "model", "label", NULL};
-    const char *bad;
     struct learner *l = fld_model(rq);
     if (!l)
         return PROTO_DONE;
-    if (!fld_only_keys(rq->root, keys, &bad))
-        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
     const cJSON *lab = field(rq->root, "label");
     if (lab && !cJSON_IsString(lab))
         return fail_done(rq, WORTH_E_BAD_REQUEST, "\"label\" must be a string");
@@ -235,17 +239,11 @@ int do_checkpoint(struct req *rq)
         return fail_done(rq, WORTH_E_BAD_PARAM, "\"label\" must be 1..%d bytes", MODEL_NAME_MAX);
     if (queue_space(learner_queue(l)) < 1)
         return fld_park(l);
-    queue_rec_t *r = queue_slot(learner_queue(l), 0);
-    memset(r, 0, sizeof *r);
-    r->type = QREC_CHECKPOINT;
+    queue_rec_t *r = request_record(rq, l, QREC_CHECKPOINT);
     r->est = lab != NULL;
     if (lab)
         snprintf(r->src, sizeof r->src, "%s", lab->valuestring);
-    r->conn_id = conn_id(rq->c);
-    fld_keep_id(rq);
-    learner_commit(l, 1);
-    conn_wait(rq->c);
-    return PROTO_DONE;
+    return submit(rq, l);
 }
 
 int do_checkpoints(struct req *rq)
@@ -273,14 +271,9 @@ int window(const cJSON *a, double *lo, double *hi)
 
 int do_rollback(struct req *rq)
 {
-    static const char *const keys[] = {"op",     "id",      "model", "checkpoint",
-                                       "replay", "exclude", NULL};
-    const char *bad;
     struct learner *l = fld_model(rq);
     if (!l)
         return PROTO_DONE;
-    if (!fld_only_keys(rq->root, keys, &bad))
-        return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
     const cJSON *cp = field(rq->root, "checkpoint"), *rp = field(rq->root, "replay"),
                 *ex = field(rq->root, "exclude");
     if (!cJSON_IsNumber(cp))
@@ -317,15 +310,9 @@ int do_rollback(struct req *rq)
     plan->by_t = by_t;
     plan->lo = lo;
     plan->hi = hi;
-    queue_rec_t *r = queue_slot(learner_queue(l), 0);
-    memset(r, 0, sizeof *r);
-    r->type = QREC_ROLLBACK;
+    queue_rec_t *r = request_record(rq, l, QREC_ROLLBACK);
     r->job = plan;
-    r->conn_id = conn_id(rq->c);
-    fld_keep_id(rq);
-    learner_commit(l, 1);
-    conn_wait(rq->c);
-    return PROTO_DONE;
+    return submit(rq, l);
 }
 
 /*

@@ -23,7 +23,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 

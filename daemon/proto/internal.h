@@ -11,7 +11,7 @@
 #include <stdint.h>
 
 #include "common/jw.h"
-#include "learner.h"
+#include "live/learner.h"
 #include "net/conn.h"
 #include "proto/proto.h"
 #include "store/writer.h"
@@ -130,6 +130,9 @@ static inline proto_conn_t *pconn(struct conn *c)
 void reply_begin(jw_t *o, int ok, const char *id);
 void reply_end(jw_t *o, struct conn *c);
 void reply_format_error(struct proto *p, const char *id, int code, long index, const char *msg);
+/* The same with more members (raw JSON, e.g. ",\"seq\":4") after message and index. */
+void reply_format_error_with(struct proto *p, const char *id, int code, long index, const char *msg,
+                             const char *more);
 void reply_error(struct proto *p, struct conn *c, const char *id, int code, long index,
                  const char *fmt, ...) __attribute__((format(printf, 6, 7)));
 

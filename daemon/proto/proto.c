@@ -31,7 +31,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 
@@ -43,6 +43,9 @@ static const char *const k_auth[] = {"op", "id", "token", NULL};
 static const char *const k_model[] = {"op", "id", "model", NULL};
 static const char *const k_value[] = {"op", "id", "model", "x", "xs", "estimator", NULL};
 static const char *const k_train[] = {"op", "id", "model", "estimator", "passes", NULL};
+static const char *const k_checkpoint[] = {"op", "id", "model", "label", NULL};
+static const char *const k_rollback[] = {"op",     "id",      "model", "checkpoint",
+                                         "replay", "exclude", NULL};
 
 static const struct {
     const char *op;
@@ -60,9 +63,9 @@ static const struct {
     {"value", do_value, k_value},
     {"train", do_train, k_train},
     {"stats", do_stats, k_model},
-    {"checkpoint", do_checkpoint, NULL},
+    {"checkpoint", do_checkpoint, k_checkpoint},
     {"checkpoints", do_checkpoints, k_model},
-    {"rollback", do_rollback, NULL},
+    {"rollback", do_rollback, k_rollback},
     {"backup", do_backup, NULL},
     {"history", do_history, k_model},
     {"events", do_events, NULL},

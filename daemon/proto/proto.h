@@ -21,7 +21,7 @@
 
 #include "config.h"
 #include "core/event.h"
-#include "learner.h"
+#include "live/learner.h"
 #include "net/conn.h"
 
 struct proto;

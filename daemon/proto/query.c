@@ -22,7 +22,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 
@@ -131,6 +131,22 @@ static void out_damaged(jw_t *o, const struct damaged *dm)
     jw_str(o, dm->reason);
 }
 
+/*
+ * The model a request names (its model in *m), its figures from the latest
+ * snapshot in *st, and the reply begun; NULL (answered) when there is no such model.
+ */
+static struct learner *begin_with_stats(struct req *rq, learner_stats_t *st,
+                                        const struct model **m)
+{
+    struct learner *l = fld_model(rq);
+    if (!l)
+        return NULL;
+    *m = learner_model(l);
+    learner_stats(l, st);
+    reply_begin(&rq->p->out, 1, rq->id);
+    return l;
+}
+
 int do_list(struct req *rq)
 {
     struct proto *p = rq->p;
@@ -166,14 +182,12 @@ int do_get(struct req *rq)
         reply_end(&rq->p->out, rq->c);
         return PROTO_DONE;
     }
-    struct learner *l = fld_model(rq);
+    learner_stats_t st;
+    const struct model *m;
+    struct learner *l = begin_with_stats(rq, &st, &m);
     if (!l)
         return PROTO_DONE;
-    const struct model *m = learner_model(l);
-    learner_stats_t st;
-    learner_stats(l, &st);
     jw_t *o = &rq->p->out;
-    reply_begin(o, 1, rq->id);
     jw_lit(o, ",");
     out_model_head(o, l, m);
     jw_lit(o, ",\"primary\":");
@@ -307,14 +321,12 @@ int do_value(struct req *rq)
 
 int do_stats(struct req *rq)
 {
-    struct learner *l = fld_model(rq);
+    learner_stats_t st;
+    const struct model *m;
+    struct learner *l = begin_with_stats(rq, &st, &m);
     if (!l)
         return PROTO_DONE;
-    const struct model *m = learner_model(l);
-    learner_stats_t st;
-    learner_stats(l, &st);
     jw_t *o = &rq->p->out;
-    reply_begin(o, 1, rq->id);
     jw_lit(o, ",\"model\":");
     jw_str(o, learner_name(l));
     jw_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"queue\":%zu,\"clipped\":%llu,\"sources\":%zu",

@@ -24,7 +24,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 
@@ -71,14 +71,10 @@ void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const st
              "model \"%.64s\" is quarantined since start-up and not served: %s.  %s, or drop "
              "the model (model.drop) and create it again",
              dm->name, dm->reason, fix);
-    jw_t *o = &p->out;
-    reply_begin(o, 0, id);
-    jw_lit(o, ",\"error\":{\"code\":");
-    jw_str(o, worth_err_name(WORTH_E_DAMAGED));
-    jw_lit(o, ",\"message\":");
-    jw_str(o, msg);
-    jw_fmt(o, ",\"seq\":%llu}}\n", (unsigned long long)dm->seq);
-    reply_send(c, o->b, o->len);
+    char seq[40];
+    snprintf(seq, sizeof seq, ",\"seq\":%llu", (unsigned long long)dm->seq);
+    reply_format_error_with(p, id, WORTH_E_DAMAGED, -1, msg, seq);
+    reply_send(c, p->out.b, p->out.len);
 }
 
 /* The slot of learner l, live or dropped. */

@@ -29,7 +29,7 @@
 #include "proto/arena.h"
 #include "proto/internal.h"
 #include "proto/spec.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "worth/errors.h"
 
@@ -53,6 +53,12 @@ void reply_end(jw_t *o, struct conn *c)
 /* Formats an error reply line into p->out. */
 void reply_format_error(struct proto *p, const char *id, int code, long index, const char *msg)
 {
+    reply_format_error_with(p, id, code, index, msg, "");
+}
+
+void reply_format_error_with(struct proto *p, const char *id, int code, long index, const char *msg,
+                             const char *more)
+{
     jw_t *o = &p->out;
     reply_begin(o, 0, id);
     jw_lit(o, ",\"error\":{\"code\":");
@@ -61,6 +67,7 @@ void reply_format_error(struct proto *p, const char *id, int code, long index, c
     jw_str(o, msg);
     if (index >= 0)
         jw_fmt(o, ",\"index\":%ld", index);
+    jw_lit(o, more);
     jw_lit(o, "}}\n");
 }
 

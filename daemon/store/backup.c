@@ -48,8 +48,8 @@
 #include "store/db.h"
 #include "common/fail.h"
 #include "common/mem.h"
-#include "safedir.h"
-#include "say.h"
+#include "common/safedir.h"
+#include "common/say.h"
 #include "worth/errors.h"
 
 #ifndef RENAME_NOREPLACE

@@ -24,7 +24,7 @@
 #include "common/mem.h"
 #include "core/event.h"
 #include "core/queue.h"
-#include "say.h"
+#include "common/say.h"
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"

@@ -33,7 +33,7 @@
 
 #include "common/fail.h"
 #include "common/mem.h"
-#include "say.h"
+#include "common/say.h"
 #include "worth/errors.h"
 
 double db_now(void)

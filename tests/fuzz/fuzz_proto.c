@@ -56,10 +56,10 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "net/frame.h"
-#include "learner.h"
+#include "live/learner.h"
 #include "common/mem.h"
 #include "proto/proto.h"
-#include "say.h"
+#include "common/say.h"
 #include "worth/errors.h"
 #include "store/writer.h"
 

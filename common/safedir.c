@@ -5,7 +5,7 @@
  * user, so the caller decides whether a symbolic link is followed.  It never
  * logs; the caller does, with the message it fills.
  */
-#include "safedir.h"
+#include "common/safedir.h"
 
 #include <unistd.h>
 

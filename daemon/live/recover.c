@@ -16,7 +16,7 @@
  * model starts normally.  A failure that is not the model's own (the models
  * table cannot be read, an I/O error) stops start-up.
  */
-#include "recover.h"
+#include "live/recover.h"
 
 #include <cjson/cJSON.h>
 #include <stdio.h>
@@ -26,7 +26,7 @@
 #include "proto/arena.h"
 #include "store/db.h"
 #include "common/mem.h"
-#include "say.h"
+#include "common/say.h"
 #include "proto/spec.h"
 #include "worth/errors.h"
 

@@ -5,7 +5,7 @@
  * written with one fwrite so lines from different threads do not interleave.
  * The level is set once at start-up, before threads exist.
  */
-#include "say.h"
+#include "common/say.h"
 
 #include <stdarg.h>
 #include <stdio.h>

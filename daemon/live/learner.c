@@ -19,7 +19,7 @@
  * Invariant: the front snapshot is read only under snap_mu; the swap is
  * under snap_mu.
  */
-#include "learner.h"
+#include "live/learner.h"
 
 #include <math.h>
 #include <pthread.h>
@@ -33,7 +33,7 @@
 #include "core/queue.h"
 #include "store/db.h"
 #include "common/mem.h"
-#include "say.h"
+#include "common/say.h"
 #include "worth/errors.h"
 #include "store/writer.h"
 

@@ -14,7 +14,7 @@
 #include <stddef.h>
 
 #include "store/db.h"
-#include "learner.h"
+#include "live/learner.h"
 #include "store/writer.h"
 
 /* Where recovered models go (the protocol's registry, through the composition root). */
