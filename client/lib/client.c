@@ -47,6 +47,11 @@ struct worth_client {
     size_t batch_len, batch_cap;
 };
 
+const char *worth_version(void)
+{
+    return WORTH_VERSION;
+}
+
 /* ---- errors ------------------------------------------------------------------------------ */
 
 static int set_err(worth_client *c, int code, const char *fmt, ...)
