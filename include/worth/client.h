@@ -11,6 +11,10 @@
  * worth_error_message); failures on this side are WORTH_E_IO (cannot connect,
  * connection lost, timeout) with a message saying which.
  *
+ * Memory: the library allocates through one wrapper that prints a message and
+ * aborts the program when memory runs out (as worthd does); no call returns
+ * an out-of-memory error.
+ *
  * Threads: a connection is not thread-safe.  Use one connection per thread
  * (worthd serves many connections at once); different connections need no
  * locking.
