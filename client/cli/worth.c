@@ -125,6 +125,9 @@ int cli_connect(struct cli *cli)
         if (rc == WORTH_E_IO)
             return err[0] ? cli_error(EXIT_CONNECT, "%s (is worthd running?)", err)
                           : cli_error(EXIT_CONNECT, "cannot connect to worthd at %s", where);
+        /* A worthd of another protocol version: nothing it says can be trusted to parse. */
+        if (rc == WORTH_E_UNSUPPORTED)
+            return cli_error(EXIT_CONNECT, "%s: %s", worth_err_name(rc), err);
         /* Connected but refused, e.g. a wrong token: err reads "CODE: message". */
         if (rc == WORTH_E_UNAUTHORIZED || strchr(err, ':'))
             return cli_error(EXIT_SERVER, "%s", err[0] ? err : worth_err_name(rc));

@@ -1,6 +1,6 @@
 /*
- * wire.c - the transport of libworth-client: connecting (Unix socket or TCP,
- * then auth when a token is given), sending with a deadline, cutting the
+ * wire.c - the transport of libworth-client: connecting (Unix socket or TCP),
+ * auth when a token is given and hello, sending with a deadline, cutting the
  * received bytes into reply lines, reading a reply's status, and the raw
  * worth_request.
  *
@@ -8,10 +8,12 @@
  * Every wait is bounded by the connection's timeout with poll().  It never
  * raises SIGPIPE (MSG_NOSIGNAL) and never leaves a half-read reply behind: a
  * timeout or a lost connection closes the socket, and later calls fail with
- * io at once.  The buffers grow through common/mem (which aborts on
- * exhaustion) to their high-water mark and are reused.  It knows no request
- * but auth; requests.c builds the others.  A connection belongs to one thread
- * at a time.
+ * io at once.  worth_connect says hello after auth and refuses a peer that is
+ * not worthd (io) or a worthd of another protocol version (unsupported), so
+ * a mismatch fails at connect, not at some later request.  The buffers grow
+ * through common/mem (which aborts on exhaustion) to their high-water mark
+ * and are reused.  It builds no request but auth and hello; requests.c
+ * builds the others.  A connection belongs to one thread at a time.
  */
 #include "wire.h"
 
@@ -293,6 +295,73 @@ bad:
     return -1;
 }
 
+/* s as shown in a message: at most len - 4 bytes, non-printable ones as '?', "..." when cut. */
+static const char *excerpt(const char *s, char *buf, size_t len)
+{
+    size_t i = 0;
+    for (; s[i] && i + 4 < len; i++)
+        buf[i] = s[i] >= 0x20 && s[i] < 0x7f ? s[i] : '?';
+    if (s[i] && i >= 3)
+        memcpy(buf + i - 3, "...", 3);
+    buf[i] = 0;
+    return buf;
+}
+
+/*
+ * Says hello and checks the answer (schema/protocol.md, hello): the peer must
+ * be worthd ("server") and speak WORTH_PROTOCOL_VERSION ("protocol").  where
+ * names the peer in messages.  Returns 0, or a code with its message in err.
+ */
+static int hello(worth_client *c, const char *where, char *err, size_t errlen)
+{
+    jw_reset(&c->req);
+    jw_lit(&c->req, "{\"op\":\"hello\"}\n");
+    struct timespec dl;
+    wire_deadline(&dl, c->timeout_ms);
+    int rc = wire_send(c, c->req.b, c->req.len, &dl);
+    if (rc == 0)
+        rc = wire_recv_line(c, &dl);
+    if (rc) {
+        snprintf(err, errlen, "%s: %s", where, c->err_msg);
+        return rc;
+    }
+    cJSON *root = cJSON_Parse(c->line);
+    const cJSON *ok = cJSON_GetObjectItemCaseSensitive(root, "ok");
+    const cJSON *server = cJSON_GetObjectItemCaseSensitive(root, "server");
+    int worthd = cJSON_IsString(server) && strcmp(server->valuestring, "worthd") == 0;
+    if (!cJSON_IsObject(root) || (cJSON_IsTrue(ok) && !worthd)) {
+        char shown[64];
+        c->line[strcspn(c->line, "\r")] = 0; /* a text protocol's line end, not worth showing */
+        snprintf(err, errlen, "%s is not worthd: it answered hello with \"%s\"", where,
+                 excerpt(c->line, shown, sizeof shown));
+        cJSON_Delete(root);
+        return WORTH_E_IO;
+    }
+    if (!cJSON_IsTrue(ok)) { /* worthd refused, e.g. unauthorized on TCP without a token */
+        cJSON_Delete(root);
+        rc = wire_status(c, NULL);
+        snprintf(err, errlen, "%s: %s", c->err_name, c->err_msg);
+        return rc;
+    }
+    const cJSON *proto = cJSON_GetObjectItemCaseSensitive(root, "protocol");
+    const cJSON *version = cJSON_GetObjectItemCaseSensitive(root, "version");
+    if (!cJSON_IsNumber(proto) || proto->valuedouble != WORTH_PROTOCOL_VERSION) {
+        char theirs[32];
+        if (cJSON_IsNumber(proto))
+            snprintf(theirs, sizeof theirs, "%.17g", proto->valuedouble);
+        else
+            snprintf(theirs, sizeof theirs, "(none given)");
+        snprintf(err, errlen,
+                 "worthd %s at %s speaks protocol %s; this libworth-client %s speaks protocol %d",
+                 cJSON_IsString(version) ? version->valuestring : "(of unknown version)", where,
+                 theirs, WORTH_VERSION, WORTH_PROTOCOL_VERSION);
+        cJSON_Delete(root);
+        return WORTH_E_UNSUPPORTED;
+    }
+    cJSON_Delete(root);
+    return 0;
+}
+
 int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t errlen)
 {
     char dummy[8];
@@ -312,16 +381,20 @@ int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t err
     c->fd = fd;
     c->timeout_ms = o->timeout_ms > 0 ? o->timeout_ms : 30000;
     c->batch_max = 256;
+    int rc = 0;
     if (o->token) {
         jw_lit(&c->req, "{\"op\":\"auth\",\"token\":");
         jw_str(&c->req, o->token);
         jw_lit(&c->req, "}");
-        int rc = wire_call(c, NULL);
-        if (rc) {
+        rc = wire_call(c, NULL);
+        if (rc)
             snprintf(err, errlen, "%s: %s", c->err_name, c->err_msg);
-            worth_close(c);
-            return rc;
-        }
+    }
+    if (rc == 0)
+        rc = hello(c, o->socket_path ? o->socket_path : o->host_port, err, errlen);
+    if (rc) {
+        worth_close(c);
+        return rc;
     }
     *out = c;
     return 0;

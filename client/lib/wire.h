@@ -32,7 +32,8 @@ struct worth_client {
 };
 
 /* Sets the last error of c (name from code, message from fmt) and returns code. */
-int wire_fail(worth_client *c, int code, const char *fmt, ...) __attribute__((format(printf, 3, 4)));
+int wire_fail(worth_client *c, int code, const char *fmt, ...)
+    __attribute__((format(printf, 3, 4)));
 
 /* *d gets the monotonic time ms milliseconds from now. */
 void wire_deadline(struct timespec *d, int ms);

@@ -4,12 +4,15 @@
  * For plant gateways and tools written in C: connect to worthd over its Unix
  * socket or TCP, and call every request of protocol v1 (schema/protocol.md)
  * without writing protocol code.  Calls are synchronous, each bounded by the
- * connection's timeout.
+ * connection's timeout.  worth_connect says hello first and refuses a peer
+ * that is not worthd or speaks another protocol version
+ * (WORTH_PROTOCOL_VERSION in worth/protocol.h).
  *
  * Errors: every call returns 0 or a negative code of worth/errors.h.  A code
  * sent by worthd keeps its wire name and message (worth_error_name and
  * worth_error_message); failures on this side are WORTH_E_IO (cannot connect,
- * connection lost, timeout) with a message saying which.
+ * connection lost, timeout, a peer that is not worthd) with a message saying
+ * which, and WORTH_E_UNSUPPORTED for a worthd of another protocol version.
  *
  * Memory: the library allocates through one wrapper that prints a message and
  * aborts the program when memory runs out (as worthd does); no call returns
@@ -90,9 +93,14 @@ typedef void (*worth_progress_fn)(void *ctx, unsigned pass, unsigned of, double 
 WORTH_API const char *worth_version(void);
 
 /*
- * Connects (and authenticates when a token is given).  Returns 0 with *out
- * owned by the caller (free with worth_close), or a negative code with a
- * message in err (errlen bytes).
+ * Connects, authenticates when a token is given, and says hello: the peer
+ * must answer as worthd of protocol WORTH_PROTOCOL_VERSION.  Returns 0 with
+ * *out owned by the caller (free with worth_close), or a negative code with
+ * a message in err (errlen bytes; err may be NULL): WORTH_E_IO when it cannot
+ * connect, the peer does not answer in time or is not worthd;
+ * WORTH_E_UNSUPPORTED when worthd speaks another protocol version (the
+ * message names both); worthd's own code (e.g. WORTH_E_UNAUTHORIZED) when it
+ * refuses, with err reading "CODE: message".
  */
 WORTH_API int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t errlen);
 /* Closes the connection and frees it; NULL is fine. */
