@@ -295,18 +295,6 @@ bad:
     return -1;
 }
 
-/* s as shown in a message: at most len - 4 bytes, non-printable ones as '?', "..." when cut. */
-static const char *excerpt(const char *s, char *buf, size_t len)
-{
-    size_t i = 0;
-    for (; s[i] && i + 4 < len; i++)
-        buf[i] = s[i] >= 0x20 && s[i] < 0x7f ? s[i] : '?';
-    if (s[i] && i >= 3)
-        memcpy(buf + i - 3, "...", 3);
-    buf[i] = 0;
-    return buf;
-}
-
 /*
  * Says hello and checks the answer (schema/protocol.md, hello): the peer must
  * be worthd ("server") and speak WORTH_PROTOCOL_VERSION ("protocol").  where
@@ -330,10 +318,14 @@ static int hello(worth_client *c, const char *where, char *err, size_t errlen)
     const cJSON *server = cJSON_GetObjectItemCaseSensitive(root, "server");
     int worthd = cJSON_IsString(server) && strcmp(server->valuestring, "worthd") == 0;
     if (!cJSON_IsObject(root) || (cJSON_IsTrue(ok) && !worthd)) {
-        char shown[64];
-        c->line[strcspn(c->line, "\r")] = 0; /* a text protocol's line end, not worth showing */
-        snprintf(err, errlen, "%s is not worthd: it answered hello with \"%s\"", where,
-                 excerpt(c->line, shown, sizeof shown));
+        /* The start of what it said, as a JSON string: control bytes come out escaped. */
+        char said[48];
+        size_t n = strcspn(c->line, "\r");
+        snprintf(said, sizeof said, "%.*s", (int)n, c->line);
+        jw_reset(&c->req);
+        jw_str(&c->req, said);
+        snprintf(err, errlen, "%s is not worthd: it answered hello with %s%s", where, c->req.b,
+                 n >= sizeof said ? " (cut)" : "");
         cJSON_Delete(root);
         return WORTH_E_IO;
     }
