@@ -1,10 +1,13 @@
 /*
  * cli.h - what the modules of the `worth` command-line client share.
  *
- * The CLI is one client of libworth-client (include/worth/client.h): worth.c
- * parses the global options, connects and dispatches; cmds.c holds the short
- * commands, feed.c the CSV/JSON-lines ingest, table.c the aligned tables,
- * csv.c the CSV cell splitter and help.c every help text.  Internal to the CLI.
+ * The CLI is one client of libworth-client (include/worth/client.h), in layers
+ * that only call downwards: worth.c (main) finds a command in the one table of
+ * commands.c and runs its handler; the handlers live in models.c, feed.c
+ * (ingest), query.c, admin.c, watch.c and plot.c; they build on table.c
+ * (aligned tables) and csv.c (the CSV cell splitter), and all of these on
+ * cli.c (the connection, messages, argument parsing, formatting), which calls
+ * nothing of the CLI.  Internal to the CLI.
  */
 #ifndef WORTH_CLI_H
 #define WORTH_CLI_H
@@ -34,18 +37,32 @@ struct cli {
     worth_client *c;         /* NULL until cli_connect */
 };
 
-/* One command: name, handler (argv[0] is the command name), help text. */
+/* One command of the table in commands.c. */
 struct cmd {
     const char *name;
-    int (*run)(struct cli *cli, int argc, char **argv);
-    const char *summary;
-    const char *help;
+    int (*run)(struct cli *cli, int argc, char **argv); /* argv[0] is the command name */
+    const char *args;    /* its arguments in the global list, e.g. "MODEL X1 X2 ..." */
+    const char *summary; /* one line in the global list */
+    const char *usage;   /* its page's usage lines, after "usage: " (no final newline) */
+    const char *help;    /* the rest of its page, after a blank line */
 };
 
-/* worth.c */
+/* A command option: "--name" with a value (*value set) or a flag (*flag set to 1). */
+struct opt {
+    const char *name;
+    const char **value;
+    int *flag;
+};
+
+/* commands.c: the table, and every help text printed from it */
+/* The command of that name (static storage), or NULL. */
 const struct cmd *cmd_find(const char *name);
-extern const struct cmd cmds[];
-extern const size_t ncmds;
+/* The global usage: options, the commands with their summaries, exit codes. */
+void help_global(FILE *f);
+/* The page of cmd. */
+void help_command(FILE *f, const struct cmd *cmd);
+
+/* cli.c */
 /* Opens the connection; returns EXIT_OK or EXIT_CONNECT (message printed). */
 int cli_connect(struct cli *cli);
 /* Prints the error of a failed library call; returns EXIT_SERVER or EXIT_CONNECT. */
@@ -59,21 +76,23 @@ int cli_error(int code, const char *fmt, ...) __attribute__((format(printf, 2, 3
  * line unchanged on stdout.  Returns EXIT_OK, EXIT_SERVER or EXIT_CONNECT.
  */
 int cli_raw(struct cli *cli, cJSON *req);
+/* A new request {"op":op,"model":model} (model may be NULL; owned by the caller), or NULL. */
+cJSON *cli_request(const char *op, const char *model);
+/* The same with a string member key:value after them when value is not NULL. */
+cJSON *cli_request_opt(const char *op, const char *model, const char *key, const char *value);
+/* Parses a reply owned by the library (owned by the caller); prints a message, NULL if not JSON. */
+cJSON *cli_reply(const char *json);
+/* o's member k, or NULL (o may be NULL). */
+const cJSON *json_get(const cJSON *o, const char *k);
 /* A finite double filling the whole of s; 0 or -1. */
 int parse_double(const char *s, double *out);
 /* A decimal integer lo..hi filling the whole of s; 0 or -1. */
 int parse_int(const char *s, long long lo, long long hi, long long *out);
 /*
- * model.get of model: *dims and, when spec is not NULL, a parsed copy of the
- * reply (*spec owned by the caller, cJSON_Delete).  Returns an exit code.
+ * model.get of model: *dims and, when reply is not NULL, a parsed copy of the
+ * reply (*reply owned by the caller, cJSON_Delete).  Returns an exit code.
  */
 int cli_model(struct cli *cli, const char *model, size_t *dims, cJSON **reply);
-/* A command option: "--name" with a value (*value set) or a flag (*flag set to 1). */
-struct opt {
-    const char *name;
-    const char **value;
-    int *flag;
-};
 /*
  * Parses argv[1..] of cmd: options from opts (terminated by a zero entry),
  * positional arguments into pos (at most maxpos, at least minpos; "--" ends
@@ -81,39 +100,59 @@ struct opt {
  */
 int parse_args(const char *cmd, int argc, char **argv, const struct opt *opts, char **pos,
                int maxpos, int minpos, int *npos);
+/*
+ * The start of a command of one model and no options (CMD MODEL): parses
+ * argv and, with --json, sends {"op":op,"model":MODEL} and prints worthd's
+ * reply unchanged.  *model gets MODEL (borrowed from argv) when the command
+ * goes on, NULL when it is done (a usage error, or --json).  Returns the exit code.
+ */
+int cli_model_arg(struct cli *cli, const char *cmd, const char *op, int argc, char **argv,
+                  const char **model);
+/*
+ * Connects and calls fetch (worth_model_info, worth_stats, ...) for model
+ * (may be NULL); its reply is parsed into *r (owned by the caller; stays NULL
+ * on failure, the message printed).  Returns the exit code.
+ */
+int cli_fetch(struct cli *cli, const char *model,
+              int (*fetch)(worth_client *, const char *, const char **), cJSON **r);
+/*
+ * A command that shows one model's reply (CMD MODEL, op CMD): cli_model_arg,
+ * then cli_fetch (*r stays NULL when the command is done).  Returns the exit code.
+ */
+int cli_query(struct cli *cli, const char *cmd, int argc, char **argv,
+              int (*fetch)(worth_client *, const char *, const char **), cJSON **r);
 /* A cell as shown in a message: non-printable bytes as '?', cut to len - 4 bytes with "...". */
 const char *show_cell(const char *s, char *buf, size_t len);
 /* Whether stderr is a terminal (progress bars go there). */
 int cli_tty(void);
 /* Formats a double for a table cell (%.6g; "-" for NAN). */
 void fmt_num(char *buf, size_t len, double v);
+/* Formats a JSON scalar (or a short array) for a table cell; "-" for NULL or null. */
+void fmt_json(char *buf, size_t len, const cJSON *v);
 
-/* help.c */
-int cmd_help(struct cli *cli, int argc, char **argv);
-void help_global(FILE *f);
-/* Prints the help of one command (to f); 0, or -1 when there is no such command. */
-int help_command(FILE *f, const char *name);
-
-/* cmds.c */
+/* The command handlers (argv[0] is the command's name; each returns an exit code). */
+/* models.c */
 int cmd_models(struct cli *cli, int argc, char **argv);
 int cmd_create(struct cli *cli, int argc, char **argv);
 int cmd_drop(struct cli *cli, int argc, char **argv);
 int cmd_show(struct cli *cli, int argc, char **argv);
+/* feed.c */
+int cmd_feed(struct cli *cli, int argc, char **argv);
+/* query.c */
 int cmd_value(struct cli *cli, int argc, char **argv);
+int cmd_stats(struct cli *cli, int argc, char **argv);
+int cmd_events(struct cli *cli, int argc, char **argv);
+/* admin.c */
 int cmd_checkpoint(struct cli *cli, int argc, char **argv);
 int cmd_checkpoints(struct cli *cli, int argc, char **argv);
 int cmd_rollback(struct cli *cli, int argc, char **argv);
 int cmd_backup(struct cli *cli, int argc, char **argv);
 int cmd_train(struct cli *cli, int argc, char **argv);
-int cmd_stats(struct cli *cli, int argc, char **argv);
-int cmd_events(struct cli *cli, int argc, char **argv);
-
-/* plot.c, watch.c */
-int cmd_plot(struct cli *cli, int argc, char **argv);
+/* watch.c, plot.c */
 int cmd_watch(struct cli *cli, int argc, char **argv);
-
-/* feed.c */
-int cmd_feed(struct cli *cli, int argc, char **argv);
+int cmd_plot(struct cli *cli, int argc, char **argv);
+/* commands.c: `worth help [CMD]` */
+int cmd_help(struct cli *cli, int argc, char **argv);
 
 /* csv.c */
 /*
@@ -132,6 +171,12 @@ struct table *table_new(size_t ncols); /* NULL when out of memory */
 int table_row(struct table *t, const char *const *cells);
 /* Convenience: a row given as ncols variadic const char * arguments. */
 int table_rowv(struct table *t, ...);
+/*
+ * The table for the entries of a reply's list, with ncols columns; NULL when
+ * there is none to fill: the list is empty (empty is printed on stdout,
+ * *ex = EXIT_OK) or memory ran out (said, *ex = EXIT_USAGE).
+ */
+struct table *table_list(const cJSON *list, const char *empty, size_t ncols, int *ex);
 /* Aligns every column left (key/value listings). */
 void table_left(struct table *t);
 void table_print(const struct table *t, FILE *f);

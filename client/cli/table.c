@@ -5,9 +5,12 @@
  * widest cell; cells that read as numbers are right-aligned so that digits
  * line up, everything else is left-aligned.  Widths count bytes, so a cell
  * with multi-byte UTF-8 text may shift its row (XXX: names are ASCII in
- * protocol v1, labels may not be).  Single-threaded, like the whole CLI.
+ * protocol v1, labels may not be).  table_list starts the table of a
+ * reply's list, or prints the list's "no ..." line when it is empty.
+ * Single-threaded, like the whole CLI.
  */
 #include <stdarg.h>
+#include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 
@@ -100,6 +103,19 @@ void table_print(const struct table *t, FILE *f)
         fputc('\n', f);
     }
     free(w);
+}
+
+struct table *table_list(const cJSON *list, const char *empty, size_t ncols, int *ex)
+{
+    *ex = EXIT_OK;
+    if (!cJSON_GetArraySize(list)) {
+        printf("%s\n", empty);
+        return NULL;
+    }
+    struct table *t = table_new(ncols);
+    if (!t)
+        *ex = cli_error(EXIT_USAGE, "out of memory");
+    return t;
 }
 
 void table_left(struct table *t)

@@ -20,6 +20,7 @@
 #include <stdint.h>
 
 #include "config.h"
+#include "worth/protocol.h"
 #include "core/event.h"
 #include "live/learner.h"
 #include "net/conn.h"
@@ -27,8 +28,8 @@
 struct proto;
 struct writer;
 
-/* Protocol version spoken. */
-#define PROTO_VERSION 1
+/* Protocol version spoken: the one the client library checks (include/worth/protocol.h). */
+#define PROTO_VERSION WORTH_PROTOCOL_VERSION
 /* Longest request id, printed as JSON. */
 #define PROTO_ID_MAX 256
 

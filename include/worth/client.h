@@ -4,12 +4,19 @@
  * For plant gateways and tools written in C: connect to worthd over its Unix
  * socket or TCP, and call every request of protocol v1 (schema/protocol.md)
  * without writing protocol code.  Calls are synchronous, each bounded by the
- * connection's timeout.
+ * connection's timeout.  worth_connect says hello first and refuses a peer
+ * that is not worthd or speaks another protocol version
+ * (WORTH_PROTOCOL_VERSION in worth/protocol.h).
  *
  * Errors: every call returns 0 or a negative code of worth/errors.h.  A code
  * sent by worthd keeps its wire name and message (worth_error_name and
  * worth_error_message); failures on this side are WORTH_E_IO (cannot connect,
- * connection lost, timeout) with a message saying which.
+ * connection lost, timeout, a peer that is not worthd) with a message saying
+ * which, and WORTH_E_UNSUPPORTED for a worthd of another protocol version.
+ *
+ * Memory: the library allocates through one wrapper that prints a message and
+ * aborts the program when memory runs out (as worthd does); no call returns
+ * an out-of-memory error.
  *
  * Threads: a connection is not thread-safe.  Use one connection per thread
  * (worthd serves many connections at once); different connections need no
@@ -17,6 +24,9 @@
  *
  * Ownership: strings returned by the library (replies, names) are owned by
  * the connection and valid until its next call; copy what you keep.
+ *
+ * Symbols: the shared library exports the worth_* functions below (WORTH_API)
+ * and nothing else.
  */
 #ifndef WORTH_CLIENT_H
 #define WORTH_CLIENT_H
@@ -25,6 +35,8 @@
 #include <stdint.h>
 
 #include "worth/errors.h"
+#include "worth/export.h"
+#include "worth/protocol.h"
 
 #ifdef __cplusplus
 extern "C" {
@@ -77,18 +89,26 @@ typedef void (*worth_progress_fn)(void *ctx, unsigned pass, unsigned of, double 
 
 /* Lifecycle */
 
+/* The library's version, e.g. "0.1.0" (static storage). */
+WORTH_API const char *worth_version(void);
+
 /*
- * Connects (and authenticates when a token is given).  Returns 0 with *out
- * owned by the caller (free with worth_close), or a negative code with a
- * message in err (errlen bytes).
+ * Connects, authenticates when a token is given, and says hello: the peer
+ * must answer as worthd of protocol WORTH_PROTOCOL_VERSION.  Returns 0 with
+ * *out owned by the caller (free with worth_close), or a negative code with
+ * a message in err (errlen bytes; err may be NULL): WORTH_E_IO when it cannot
+ * connect, the peer does not answer in time or is not worthd;
+ * WORTH_E_UNSUPPORTED when worthd speaks another protocol version (the
+ * message names both); worthd's own code (e.g. WORTH_E_UNAUTHORIZED) when it
+ * refuses, with err reading "CODE: message".
  */
-int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t errlen);
+WORTH_API int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t errlen);
 /* Closes the connection and frees it; NULL is fine. */
-void worth_close(worth_client *c);
+WORTH_API void worth_close(worth_client *c);
 
 /* Errors of the last failed call (owned by c). */
-const char *worth_error_name(const worth_client *c);
-const char *worth_error_message(const worth_client *c);
+WORTH_API const char *worth_error_name(const worth_client *c);
+WORTH_API const char *worth_error_message(const worth_client *c);
 
 /* Any request */
 
@@ -98,64 +118,65 @@ const char *worth_error_message(const worth_client *c);
  * Returns 0 when the reply says ok, the reply's error code otherwise; when no
  * reply came (WORTH_E_IO), *reply is "".
  */
-int worth_request(worth_client *c, const char *json, const char **reply);
+WORTH_API int worth_request(worth_client *c, const char *json, const char **reply);
 
 /* Models */
 
 /* Creates a model from a model.create spec (JSON object; "op" is added).  *features may be NULL. */
-int worth_model_create(worth_client *c, const char *spec_json, size_t *features);
-int worth_model_drop(worth_client *c, const char *model);
+WORTH_API int worth_model_create(worth_client *c, const char *spec_json, size_t *features);
+WORTH_API int worth_model_drop(worth_client *c, const char *model);
 /* The model.list reply, or model.get's when model is not NULL (owned by c). */
-int worth_model_info(worth_client *c, const char *model, const char **json);
+WORTH_API int worth_model_info(worth_client *c, const char *model, const char **json);
 
 /* Transitions */
 
 /* One transition; *seq (may be NULL) gets its number.  Waits until it is durable. */
-int worth_observe(worth_client *c, const char *model, size_t dims, const worth_transition *t,
-                  uint64_t *seq);
+WORTH_API int worth_observe(worth_client *c, const char *model, size_t dims,
+                            const worth_transition *t, uint64_t *seq);
 /*
  * Automatic batching: worth_observe_queue adds a transition to the
  * connection's batch for model (sending it when it reaches batch_max, 256 by
  * default) and worth_flush sends what is left.  *seq gets the last seq sent.
  * A batch is all-or-nothing: an error names the index within the batch.
  */
-int worth_observe_queue(worth_client *c, const char *model, size_t dims, const worth_transition *t,
-                        uint64_t *seq);
-int worth_flush(worth_client *c, uint64_t *seq);
-void worth_set_batch_max(worth_client *c, size_t n);
+WORTH_API int worth_observe_queue(worth_client *c, const char *model, size_t dims,
+                                  const worth_transition *t, uint64_t *seq);
+WORTH_API int worth_flush(worth_client *c, uint64_t *seq);
+WORTH_API void worth_set_batch_max(worth_client *c, size_t n);
 /*
  * Bulk frames: count records of 2*dims+2 doubles each (x, r, x_next,
  * terminal as 0 or 1), sent as one observe.bulk.  *seq gets the last seq.
  * With applied set, the reply does not wait for durability (weaker).
  */
-int worth_observe_bulk(worth_client *c, const char *model, size_t dims, const double *records,
-                       size_t count, int applied, uint64_t *seq);
+WORTH_API int worth_observe_bulk(worth_client *c, const char *model, size_t dims,
+                                 const double *records, size_t count, int applied, uint64_t *seq);
 
 /* Queries */
 
 /* Value of one state under every estimator (estimator NULL) or one. */
-int worth_value(worth_client *c, const char *model, const double *x, size_t dims,
-                const char *estimator, worth_value_t *out);
+WORTH_API int worth_value(worth_client *c, const char *model, const double *x, size_t dims,
+                          const char *estimator, worth_value_t *out);
 /* Values of count states (row-major count x dims) into out (count doubles). */
-int worth_values(worth_client *c, const char *model, const double *xs, size_t count, size_t dims,
-                 const char *estimator, double *out, uint64_t *seq);
+WORTH_API int worth_values(worth_client *c, const char *model, const double *xs, size_t count,
+                           size_t dims, const char *estimator, double *out, uint64_t *seq);
 /* The stats reply (owned by c). */
-int worth_stats(worth_client *c, const char *model, const char **json);
+WORTH_API int worth_stats(worth_client *c, const char *model, const char **json);
 
 /* Checkpoints and history */
 
 /* label may be NULL.  *id and *seq may be NULL. */
-int worth_checkpoint(worth_client *c, const char *model, const char *label, int64_t *id,
-                     uint64_t *seq);
+WORTH_API int worth_checkpoint(worth_client *c, const char *model, const char *label, int64_t *id,
+                               uint64_t *seq);
 /* The checkpoints reply (owned by c). */
-int worth_checkpoints(worth_client *c, const char *model, const char **json);
+WORTH_API int worth_checkpoints(worth_client *c, const char *model, const char **json);
 /*
  * Rolls back to checkpoint id.  With replay, re-learns the log after it,
  * skipping [lo, hi] of seq (exclude 's') or of t (exclude 't'); exclude 0 for
  * no window.  undone and replayed may be NULL.
  */
-int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, char exclude,
-                   double lo, double hi, uint64_t *undone, uint64_t *replayed);
+WORTH_API int worth_rollback(worth_client *c, const char *model, int64_t id, int replay,
+                             char exclude, double lo, double hi, uint64_t *undone,
+                             uint64_t *replayed);
 /*
  * Writes a consistent copy of worthd's database into worthd's --backup-dir
  * as name (a plain file name, 1..128 bytes of [A-Za-z0-9._-], not starting
@@ -163,10 +184,12 @@ int worth_rollback(worth_client *c, const char *model, int64_t id, int replay, c
  * of worthd's when name is NULL.  The file's full path on worthd's machine
  * goes to path (path_len bytes; path may be NULL).  bytes may be NULL.
  */
-int worth_backup(worth_client *c, const char *name, char *path, size_t path_len, uint64_t *bytes);
+WORTH_API int worth_backup(worth_client *c, const char *name, char *path, size_t path_len,
+                           uint64_t *bytes);
 /* Trains a replay or lstd estimator; progress may be NULL. */
-int worth_train(worth_client *c, const char *model, const char *estimator, unsigned passes,
-                worth_progress_fn progress, void *ctx, worth_train_t *out);
+WORTH_API int worth_train(worth_client *c, const char *model, const char *estimator,
+                          unsigned passes, worth_progress_fn progress, void *ctx,
+                          worth_train_t *out);
 
 #ifdef __cplusplus
 }

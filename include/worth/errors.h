@@ -11,6 +11,12 @@
 #ifndef WORTH_ERRORS_H
 #define WORTH_ERRORS_H
 
+#include "worth/export.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
 /* X(ENUM_SUFFIX, value, wire_name, message) */
 #define WORTH_ERRORS(X)                                                                            \
     X(OK, 0, "ok", "success")                                                                      \
@@ -57,9 +63,13 @@ enum worth_err {
 };
 
 /* Stable wire name of code, e.g. "bad_dimension"; "unknown_error" for a code not in the table. */
-const char *worth_err_name(int code);
+WORTH_API const char *worth_err_name(int code);
 
 /* Default message of code; never NULL, static storage. */
-const char *worth_strerror(int code);
+WORTH_API const char *worth_strerror(int code);
+
+#ifdef __cplusplus
+}
+#endif
 
 #endif /* WORTH_ERRORS_H */

@@ -4,11 +4,14 @@
  * Starts worthd (path in $WORTH_DAEMON) on a Unix socket and database in a
  * fresh temporary folder, and calls every function of include/worth/client.h,
  * checking replies exactly; then the error paths: worthd's own codes, a
- * server that is down, one that never answers (timeout), and one that hangs
- * up.  Every wait is bounded.
+ * server that is down, the hello of worth_connect against worthd and against
+ * fake peers (a thread on a Unix socket in the same folder) that speak
+ * another protocol version, are not worthd or never answer, and peers that
+ * go silent or hang up after hello.  Every wait is bounded.
  */
 #include <limits.h>
 #include <math.h>
+#include <pthread.h>
 #include <setjmp.h>
 #include <signal.h>
 #include <spawn.h>
@@ -19,6 +22,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <sys/socket.h>
+#include <sys/time.h>
 #include <sys/un.h>
 #include <sys/wait.h>
 #include <time.h>
@@ -299,30 +303,147 @@ static void server_down(void **state)
     assert_int_equal(worth_connect(&both, &c, err, sizeof err), WORTH_E_BAD_PARAM);
 }
 
-/* A listener that accepts and then never answers (or hangs up at once). */
-static int fake_server(const char *path)
+/*
+ * A fake peer on a Unix socket: a thread accepts one connection, keeps what
+ * the client sends until the first newline, answers it with reply (nothing
+ * when reply is NULL), then hangs up at once (hang_up) or waits until the
+ * client does.  Every wait is bounded: the listener and the connection time
+ * out after 10 s.
+ */
+struct peer {
+    char path[400];
+    const char *reply;
+    int hang_up;
+    int lfd;
+    char got[256]; /* the first line received, with its newline */
+    pthread_t th;
+};
+
+static void *peer_run(void *arg)
 {
-    int fd = socket(AF_UNIX, SOCK_STREAM, 0);
+    struct peer *p = arg;
+    struct timeval tv = {10, 0};
+    int fd = accept(p->lfd, NULL, NULL);
+    if (fd < 0)
+        return NULL;
+    setsockopt(fd, SOL_SOCKET, SO_RCVTIMEO, &tv, sizeof tv);
+    size_t n = 0;
+    while (n + 1 < sizeof p->got && !memchr(p->got, '\n', n)) {
+        ssize_t k = recv(fd, p->got + n, sizeof p->got - 1 - n, 0);
+        if (k <= 0)
+            break;
+        n += (size_t)k;
+    }
+    p->got[n] = 0;
+    if (p->reply)
+        (void)!send(fd, p->reply, strlen(p->reply), MSG_NOSIGNAL);
+    char buf[256];
+    while (!p->hang_up && recv(fd, buf, sizeof buf, 0) > 0)
+        ;
+    close(fd);
+    return NULL;
+}
+
+static void peer_start(struct peer *p, const char *name, const char *reply, int hang_up)
+{
+    memset(p, 0, sizeof *p);
+    snprintf(p->path, sizeof p->path, "%s/%s", dir, name);
+    p->reply = reply;
+    p->hang_up = hang_up;
+    p->lfd = socket(AF_UNIX, SOCK_STREAM, 0);
     struct sockaddr_un a;
     memset(&a, 0, sizeof a);
     a.sun_family = AF_UNIX;
-    assert_true(strlen(path) < sizeof a.sun_path);
-    memcpy(a.sun_path, path, strlen(path) + 1);
-    unlink(path);
-    assert_int_equal(bind(fd, (struct sockaddr *)&a, sizeof a), 0);
-    assert_int_equal(listen(fd, 4), 0);
-    return fd;
+    assert_true(strlen(p->path) < sizeof a.sun_path);
+    memcpy(a.sun_path, p->path, strlen(p->path) + 1);
+    unlink(p->path);
+    assert_int_equal(bind(p->lfd, (struct sockaddr *)&a, sizeof a), 0);
+    assert_int_equal(listen(p->lfd, 4), 0);
+    struct timeval tv = {10, 0};
+    setsockopt(p->lfd, SOL_SOCKET, SO_RCVTIMEO, &tv, sizeof tv); /* bounds accept */
+    assert_int_equal(pthread_create(&p->th, NULL, peer_run, p), 0);
+}
+
+static void peer_stop(struct peer *p)
+{
+    pthread_join(p->th, NULL);
+    close(p->lfd);
+    unlink(p->path);
+}
+
+/* The answer of a worthd of protocol v1 (schema/protocol.md, hello). */
+static const char HELLO_V1[] =
+    "{\"ok\":true,\"server\":\"worthd\",\"version\":\"0.1.0\",\"protocol\":1}\n";
+
+static void hello_against_worthd(void **state)
+{
+    (void)state;
+    worth_client *c = open_client(); /* worth_connect said hello and accepted the answer */
+    const char *reply = NULL;
+    assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), 0);
+    char want[64];
+    snprintf(want, sizeof want, "\"protocol\":%d", WORTH_PROTOCOL_VERSION);
+    assert_non_null(strstr(reply, want));
+    snprintf(want, sizeof want, "\"version\":\"%s\"", worth_version());
+    assert_non_null(strstr(reply, want)); /* worthd and the library are of one build */
+    assert_non_null(strstr(reply, "\"server\":\"worthd\""));
+    worth_close(c);
+}
+
+static void hello_refuses_other_protocols_and_peers(void **state)
+{
+    (void)state;
+    char err[512] = "";
+    worth_client *c = NULL;
+    struct peer p;
+
+    /* A worthd of protocol 2: unsupported, naming both versions. */
+    peer_start(&p, "v2.sock",
+               "{\"ok\":true,\"server\":\"worthd\",\"version\":\"9.1.0\",\"protocol\":2}\n", 0);
+    worth_opts o = {.socket_path = p.path, .timeout_ms = 5000};
+    assert_int_equal(worth_connect(&o, &c, err, sizeof err), WORTH_E_UNSUPPORTED);
+    assert_null(c);
+    peer_stop(&p);
+    assert_string_equal(p.got, "{\"op\":\"hello\"}\n"); /* the one request it sent */
+    char want[128];
+    snprintf(want, sizeof want, "speaks protocol %d", WORTH_PROTOCOL_VERSION);
+    assert_non_null(strstr(err, "worthd 9.1.0"));
+    assert_non_null(strstr(err, "speaks protocol 2;"));
+    assert_non_null(strstr(err, want));
+    assert_non_null(strstr(err, worth_version()));
+
+    /* A peer that is not worthd: a line that is not JSON, or another server's JSON. */
+    peer_start(&p, "ssh.sock", "SSH-2.0-OpenSSH_9.2p1 Debian-2\r\n", 0);
+    o.socket_path = p.path;
+    assert_int_equal(worth_connect(&o, &c, err, sizeof err), WORTH_E_IO);
+    peer_stop(&p);
+    assert_non_null(strstr(err, "is not worthd"));
+    assert_non_null(strstr(err, "SSH-2.0"));
+    peer_start(&p, "other.sock", "{\"ok\":true,\"server\":\"other\",\"protocol\":1}\n", 0);
+    o.socket_path = p.path;
+    assert_int_equal(worth_connect(&o, &c, err, sizeof err), WORTH_E_IO);
+    peer_stop(&p);
+    assert_non_null(strstr(err, "is not worthd"));
+
+    /* A peer that never answers: connect itself times out. */
+    peer_start(&p, "mute.sock", NULL, 0);
+    o.socket_path = p.path;
+    o.timeout_ms = 200;
+    assert_int_equal(worth_connect(&o, &c, err, sizeof err), WORTH_E_IO);
+    peer_stop(&p);
+    assert_non_null(strstr(err, "timed out"));
+    assert_null(c);
 }
 
 static void timeout_and_hang_up(void **state)
 {
     (void)state;
-    char path[400];
-    snprintf(path, sizeof path, "%s/silent.sock", dir);
-    int lfd = fake_server(path);
-    worth_opts o = {.socket_path = path, .timeout_ms = 200};
+    /* A peer that answers hello and then never again. */
+    struct peer p;
+    peer_start(&p, "silent.sock", HELLO_V1, 0);
+    worth_opts o = {.socket_path = p.path, .timeout_ms = 200};
     worth_client *c = NULL;
-    assert_int_equal(worth_connect(&o, &c, NULL, 0), 0); /* the kernel accepts for it */
+    assert_int_equal(worth_connect(&o, &c, NULL, 0), 0);
     struct timespec t0, t1;
     clock_gettime(CLOCK_MONOTONIC, &t0);
     const char *reply;
@@ -334,19 +455,17 @@ static void timeout_and_hang_up(void **state)
     /* After a timeout the connection is closed: later calls fail at once. */
     assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), WORTH_E_IO);
     worth_close(c);
+    peer_stop(&p);
 
-    /* A server that hangs up. */
+    /* A peer that answers hello and hangs up. */
+    peer_start(&p, "gone.sock", HELLO_V1, 1);
+    o.socket_path = p.path;
     assert_int_equal(worth_connect(&o, &c, NULL, 0), 0);
-    int afd = accept(lfd, NULL, NULL);
-    int afd2 = accept(lfd, NULL, NULL); /* the first client's connection, then this one */
-    close(afd);
-    close(afd2);
+    peer_stop(&p); /* joined: the peer has closed its end */
     assert_int_equal(worth_request(c, "{\"op\":\"hello\"}", &reply), WORTH_E_IO);
     const char *m = worth_error_message(c);
     assert_true(strstr(m, "closed") || strstr(m, "lost")); /* EOF, or a reset on send */
     worth_close(c);
-    close(lfd);
-    unlink(path);
 }
 
 int main(void)
@@ -356,6 +475,8 @@ int main(void)
         cmocka_unit_test(checkpoints_rollback_backup_train),
         cmocka_unit_test(server_errors_keep_their_codes),
         cmocka_unit_test(server_down),
+        cmocka_unit_test(hello_against_worthd),
+        cmocka_unit_test(hello_refuses_other_protocols_and_peers),
         cmocka_unit_test(timeout_and_hang_up),
     };
     return cmocka_run_group_tests(tests, start_daemon, stop_daemon);

@@ -1,0 +1,306 @@
+/*
+ * commands.c - the one table of `worth`'s commands: for each its name, its
+ * handler, the arguments and one-line summary of the global list, and its
+ * help page (usage lines and text).  Every help text is printed from it:
+ * `worth help` and `worth --help` (the global usage: options, the list of
+ * commands, exit codes), the same on stderr when no command is given, and
+ * `worth help CMD` or `worth CMD --help` (the command's page).
+ *
+ * The pages are the CLI's documentation: each gives the usage, every option
+ * and an example; keep them in step with the parsers in models.c, feed.c,
+ * query.c, admin.c, watch.c and plot.c.  Static data and lookups only; it
+ * calls the command handlers and nothing calls back into it but worth.c.
+ */
+#include <string.h>
+
+#include "cli.h"
+
+/*
+ * Name, handler, arguments and summary in the global list, usage lines, page
+ * (struct cmd), in the order of the global list.  Kept one field group a line.
+ */
+/* clang-format off */
+static const struct cmd cmds[] = {
+    {"models", cmd_models, "", "list the models",
+     "worth models",
+     "Lists the models: name, dims, features, transitions applied, estimators.\n"
+     "With --json: worthd's model.list reply.\n"
+     "\n"
+     "example:\n"
+     "  worth models\n"},
+    {"create", cmd_create, "SPEC.json", "create a model from a model.create spec",
+     "worth create SPEC.json|-",
+     "Creates a model from a JSON object with the fields of model.create\n"
+     "(schema/protocol.md): model, dims, gamma, ranges, features, estimators, ...\n"
+     "\"op\" is added.  A file that is not a JSON object exits 2 with its line and\n"
+     "column; a spec worthd refuses exits 1 (e.g. model_exists, bad_param).\n"
+     "\n"
+     "example:\n"
+     "  worth create station-1.json\n"
+     "  with station-1.json:\n"
+     "  {\"model\":\"station-1\",\"dims\":2,\"gamma\":0.99,\"ranges\":[[0,12],[0,400]],\n"
+     "   \"features\":[{\"basis\":\"bias\"},{\"basis\":\"rbf\",\"centers\":5,\"width\":0.15}],\n"
+     "   \"estimators\":[{\"name\":\"td\",\"kind\":\"td\",\"alpha\":0.05}]}\n"},
+    {"drop", cmd_drop, "MODEL", "forget a model",
+     "worth drop MODEL",
+     "Stops the model's learner and forgets the model (queued transitions are\n"
+     "discarded).\n"
+     "\n"
+     "example:\n"
+     "  worth drop station-1\n"},
+    {"show", cmd_show, "MODEL", "a model's spec and counters",
+     "worth show MODEL",
+     "The model's spec as created (defaults filled in), its counters, ranges, bases\n"
+     "and estimators with their parameters.  With --json: the model.get reply.\n"
+     "\n"
+     "example:\n"
+     "  worth show station-1\n"},
+    {"feed", cmd_feed, "MODEL FILE|-", "send transitions from CSV or JSON lines",
+     "worth feed MODEL FILE|- [--on-error stop|skip] [--x COL,...] [--x-next COL,...]\n"
+     "                  [--r COL] [--terminal COL] [--format csv|jsonl] [--frame N]",
+     "Sends the transitions of FILE (\"-\": standard input) to MODEL, in file order.\n"
+     "The model's dimension D comes from worthd (model.get).\n"
+     "\n"
+     "Input is JSON lines when FILE ends in .jsonl or .json or its first non-blank\n"
+     "character is '{'; otherwise CSV with a header row.  CSV columns (by name, any\n"
+     "order; other columns are ignored):\n"
+     "  x0 .. x{D-1}        the state (or x_0 .. x_{D-1})\n"
+     "  r                   the reward\n"
+     "  xn0 .. xn{D-1}      the next state (or x_next0 .., x_next_0 ..); may be empty\n"
+     "                      on a terminal row\n"
+     "  terminal            optional: 0/1/true/false (empty = 0)\n"
+     "  source              optional: the source's name (empty = the default source)\n"
+     "  t, dt               optional: time of the transition and its duration in s\n"
+     "JSON lines: one object a line, {\"x\":[...],\"r\":R,\"x_next\":[...],\n"
+     "\"terminal\":false,\"source\":\"s\",\"t\":T,\"dt\":DT} (terminal, source, t, dt optional).\n"
+     "\n"
+     "Rows without source, t and dt go in observe.bulk frames of --frame rows (default\n"
+     "4096; at most worthd's --max-batch); rows with them in observe batches of 1024.\n"
+     "Every row is acknowledged as durable before the summary is printed.\n"
+     "\n"
+     "options:\n"
+     "  --on-error stop     (default) at the first malformed row, send the rows before it,\n"
+     "                      say how many were fed, and exit 2 (1 when worthd refused it)\n"
+     "  --on-error skip     report each malformed row, skip it, count it in the summary\n"
+     "  --x COL,COL,...     the D columns of the state, in order\n"
+     "  --x-next COL,...    the D columns of the next state\n"
+     "  --r COL             the reward column\n"
+     "  --terminal COL      the terminal column\n"
+     "  --format csv|jsonl  do not guess the format\n"
+     "  --frame N           rows per bulk frame (1..65536)\n"
+     "\n"
+     "A malformed row is reported as FILE:LINE: column C: reason (JSON lines: field F).\n"
+     "On a terminal a progress bar shows rows, rate and ETA; otherwise one summary line\n"
+     "ends the feed: \"fed N rows in S s (R rows/s), K skipped\".  With --json the\n"
+     "summary is one JSON object: {\"ok\":...,\"fed\":N,\"skipped\":K,\"seq\":S,...}.\n"
+     "\n"
+     "examples:\n"
+     "  worth feed station-1 log.csv --on-error skip\n"
+     "  worth feed station-1 log.csv --x level,flow --x-next level2,flow2 --r reward\n"
+     "  gateway-export | worth feed station-1 -\n"},
+    {"value", cmd_value, "MODEL X1 X2 ...", "value of a state (or --file STATES.csv)",
+     "worth value MODEL X1 X2 ... [--estimator E]\n"
+     "       worth value MODEL --file STATES.csv [--estimator E]",
+     "The value of a state: the primary estimator's value and sd, and every\n"
+     "estimator's value, as a table.  Give exactly D numbers (put \"--\" before\n"
+     "them if the first is negative and looks like an option).\n"
+     "With --file, one state per row: a header naming x0..x{D-1} (or x_0..), or\n"
+     "the first D columns by position (a header row of other names is skipped);\n"
+     "prints each state with its value.\n"
+     "\n"
+     "options:\n"
+     "  --file FILE     states to value, CSV (\"-\": standard input)\n"
+     "  --estimator E   answer with estimator E only\n"
+     "\n"
+     "examples:\n"
+     "  worth value station-1 4.2 180\n"
+     "  worth value station-1 --file states.csv\n"},
+    {"checkpoint", cmd_checkpoint, "MODEL", "store the model's state now",
+     "worth checkpoint MODEL [--label L]",
+     "Stores the state of every estimator of MODEL, after every transition\n"
+     "accepted before it; prints the checkpoint's id and seq.  A labelled\n"
+     "checkpoint is never deleted automatically.\n"
+     "\n"
+     "options:\n"
+     "  --label L   a name for the checkpoint (1..63 bytes)\n"
+     "\n"
+     "example:\n"
+     "  worth checkpoint station-1 --label before-retune\n"},
+    {"checkpoints", cmd_checkpoints, "MODEL", "list a model's checkpoints",
+     "worth checkpoints MODEL",
+     "Lists MODEL's valid checkpoints, newest first: id, seq, time, size, label.\n"
+     "\n"
+     "example:\n"
+     "  worth checkpoints station-1\n"},
+    {"rollback", cmd_rollback, "MODEL ID", "restore a checkpoint (optionally replaying the log)",
+     "worth rollback MODEL ID [--replay] [--exclude-seq A:B | --exclude-time T0:T1]",
+     "Restores every estimator of MODEL to checkpoint ID.  Without --replay every\n"
+     "transition after it is marked rolled back.  With --replay the log after the\n"
+     "checkpoint is learnt again, skipping the window given by sequence numbers or by\n"
+     "the transitions' t (both inclusive); an exclude implies --replay.\n"
+     "\n"
+     "options:\n"
+     "  --replay             re-learn the log after the checkpoint\n"
+     "  --exclude-seq A:B    skip the transitions with seq A..B\n"
+     "  --exclude-time T0:T1 skip the transitions with t in T0..T1\n"
+     "\n"
+     "examples:\n"
+     "  worth rollback station-1 7\n"
+     "  worth rollback station-1 7 --exclude-seq 2500:3100\n"},
+    {"backup", cmd_backup, "[NAME]", "copy worthd's database into its --backup-dir",
+     "worth backup [NAME]",
+     "Writes a consistent copy of worthd's whole database into worthd's backup\n"
+     "directory (worthd --backup-dir, on worthd's machine) and prints its path.\n"
+     "Without NAME worthd names it worthd-YYYYMMDDTHHMMSSZ.db (UTC).  NAME is a\n"
+     "plain file name: 1..128 bytes of A-Z a-z 0-9 . _ -, not starting with '.';\n"
+     "an earlier backup of that name is replaced, any other file is not.\n"
+     "\n"
+     "examples:\n"
+     "  worth backup\n"
+     "  worth backup nightly.db\n"},
+    {"train", cmd_train, "MODEL", "train a replay or lstd estimator",
+     "worth train MODEL [--estimator E] [--passes K]",
+     "Runs training passes of a replay estimator over its buffer, or a refit of an\n"
+     "lstd estimator, and prints the weight change after each pass (a bar on a\n"
+     "terminal), then whether it converged.\n"
+     "\n"
+     "options:\n"
+     "  --estimator E   the estimator (default: the model's first replay or lstd)\n"
+     "  --passes K      at most K passes, 1..100000 (default 10)\n"
+     "\n"
+     "example:\n"
+     "  worth train station-1 --estimator replay --passes 50\n"},
+    {"stats", cmd_stats, "MODEL", "per-estimator figures and counters",
+     "worth stats MODEL",
+     "The model's counters (received, applied, queue, clipped, sources) and a\n"
+     "table of each estimator's figures (updates, td_rms, td_last, guarded, ...).\n"
+     "\n"
+     "example:\n"
+     "  worth stats station-1\n"},
+    {"events", cmd_events, "[MODEL]", "checkpoints, rollbacks, drift alarms, restarts",
+     "worth events [MODEL] [--since T] [--limit N]",
+     "The model's recorded events, oldest first: create, checkpoint, rollback,\n"
+     "drift (with the estimated onset and any pre-drift checkpoint), recovered,\n"
+     "drop; without MODEL, the daemon's start and stop. Events are kept in the\n"
+     "database and survive restarts.\n"
+     "\n"
+     "options:\n"
+     "  --since T   only events at or after T (seconds since 1970; default 0)\n"
+     "  --limit N   at most N events, 1..100000 (default 1000)\n"
+     "\n"
+     "example:\n"
+     "  worth events station-1 --since 1764633600\n"},
+    {"watch", cmd_watch, "MODEL", "a refreshing view of the stats (q quits)",
+     "worth watch MODEL [--every SECONDS] [--count N]",
+     "A refreshing view of the model's stats: counters, the ingest rate since the\n"
+     "last refresh, and each estimator's figures. On a terminal it redraws in\n"
+     "place; press q to quit. Elsewhere it prints one block per refresh.\n"
+     "\n"
+     "options:\n"
+     "  --every SECONDS  time between refreshes, 0.05..3600 (default 1)\n"
+     "  --count N        stop after N refreshes (default: until q)\n"
+     "\n"
+     "example:\n"
+     "  worth watch station-1 --every 2\n"},
+    {"plot", cmd_plot, "MODEL ...", "value map or error history as SVG",
+     "worth plot MODEL --x DIM --y DIM [--at X1,X2,...] [--estimator E]\n"
+     "                  [--grid N] --out FILE.svg\n"
+     "       worth plot MODEL --history --out FILE.svg",
+     "The first form draws V as a heat map over state dimensions DIM (horizontal)\n"
+     "and DIM (vertical), each across its declared range, the other dimensions held\n"
+     "at --at (default: the middle of each range), with axes, ticks and a colour\n"
+     "bar. The second draws each estimator's running RMS TD error against the\n"
+     "transition number (worthd's history since it started).\n"
+     "\n"
+     "options:\n"
+     "  --x DIM, --y DIM   dimensions (0-based) for the two axes\n"
+     "  --at X1,X2,...     one value per dimension for those not plotted\n"
+     "  --estimator E      plot that estimator (default: the model's primary)\n"
+     "  --grid N           N x N cells, 2..400 (default 48)\n"
+     "  --hour SIN,COS     instead of --y: the hour of day 0..24, for a time of day\n"
+     "                     encoded as sin and cos in those two dimensions\n"
+     "  --history          plot the RMS TD error history instead\n"
+     "  --out FILE.svg     the file to write (replaced atomically)\n"
+     "\n"
+     "examples:\n"
+     "  worth plot station-1 --x 0 --y 2 --at 0,180,0,1 --out value-map.svg\n"
+     "  worth plot station-1 --history --out history.svg\n"},
+    {"help", cmd_help, "[COMMAND]", "this text, or a command's",
+     "worth help [COMMAND]",
+     "The global usage, or a command's options and an example.\n"
+     "`worth COMMAND --help` is the same as `worth help COMMAND`.\n"
+     "\n"
+     "example:\n"
+     "  worth help feed\n"},
+};
+/* clang-format on */
+
+static const char global_head[] =
+    "usage: worth [--socket PATH | --connect HOST:PORT] [--token-file FILE] [--json]\n"
+    "             [--timeout SECONDS] COMMAND [ARGS...]\n"
+    "\n"
+    "The command-line client of worthd, the value-estimation daemon.\n"
+    "\n"
+    "global options (before the command; --json may also follow it):\n"
+    "  --socket PATH        worthd's Unix socket (default $WORTH_SOCKET, else ./worthd.sock)\n"
+    "  --connect HOST:PORT  connect over TCP instead (numeric host or localhost)\n"
+    "  --token-file FILE    send the token in FILE (its first line) with auth first\n"
+    "  --json               print worthd's reply line unchanged instead of a table\n"
+    "  --timeout SECONDS    bound on each call (default 30; 0 = default)\n"
+    "  --help, --version\n"
+    "\n"
+    "commands:\n";
+
+static const char global_tail[] =
+    "\n"
+    "exit codes:\n"
+    "  0  success\n"
+    "  1  worthd answered with an error (printed as \"worth: CODE: message\")\n"
+    "  2  usage: bad arguments, an unreadable file, malformed input\n"
+    "  3  cannot connect to worthd, or the connection was lost\n"
+    "\n"
+    "example:\n"
+    "  worth --socket /run/worthd.sock stats station-1\n"
+    "\n"
+    "See 'worth help COMMAND' for a command's options.\n";
+
+const struct cmd *cmd_find(const char *name)
+{
+    for (size_t i = 0; i < sizeof cmds / sizeof cmds[0]; i++)
+        if (strcmp(cmds[i].name, name) == 0)
+            return &cmds[i];
+    return NULL;
+}
+
+void help_global(FILE *f)
+{
+    fputs(global_head, f);
+    for (size_t i = 0; i < sizeof cmds / sizeof cmds[0]; i++) {
+        char synopsis[64];
+        snprintf(synopsis, sizeof synopsis, "%s%s%s", cmds[i].name, cmds[i].args[0] ? " " : "",
+                 cmds[i].args);
+        fprintf(f, "  %-28s%s\n", synopsis, cmds[i].summary);
+    }
+    fputs(global_tail, f);
+}
+
+void help_command(FILE *f, const struct cmd *cmd)
+{
+    fprintf(f, "usage: %s\n\n%s", cmd->usage, cmd->help);
+}
+
+int cmd_help(struct cli *cli, int argc, char **argv)
+{
+    (void)cli;
+    if (argc < 2) {
+        help_global(stdout);
+        return EXIT_OK;
+    }
+    if (argc > 2)
+        return cli_usage("help", "at most one command");
+    const struct cmd *cmd = cmd_find(argv[1]);
+    if (!cmd)
+        return cli_usage("help", "no command \"%s\"", argv[1]);
+    help_command(stdout, cmd);
+    return EXIT_OK;
+}

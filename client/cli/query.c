@@ -1,0 +1,414 @@
+/*
+ * query.c - the commands of `worth` that ask a model what it knows: value
+ * (of one state, or of every state of a CSV file), stats (counters,
+ * per-estimator figures and realised returns) and events (the recorded
+ * history of a model or of the daemon).
+ *
+ * Arguments are checked before connecting; answers are printed as aligned
+ * tables, or with --json as worthd's reply lines unchanged.  A states file is
+ * read whole and checked cell by cell before the first request, then valued
+ * in requests of at most 4096 states.  Replies are parsed defensively: a
+ * missing field prints as "-".  Runs on the CLI's only thread; owns the
+ * states of one value --file while it runs.
+ */
+#include <errno.h>
+#include <stdlib.h>
+#include <string.h>
+#include <time.h>
+
+#include "cli.h"
+
+/* Values of the states of a CSV file (header x0.. or positional columns). */
+static int value_file(struct cli *cli, const char *model, const char *path, size_t dims,
+                      const char *estimator)
+{
+    FILE *f = strcmp(path, "-") == 0 ? stdin : fopen(path, "r");
+    if (!f)
+        return cli_error(EXIT_USAGE, "%s: cannot open: %s", path, strerror(errno));
+    char *line = NULL, **cells = NULL;
+    size_t lcap = 0, ccap = 0, n = 0, cap = 0, lineno = 0;
+    size_t col[64];
+    int have_cols = 0, ex = EXIT_OK;
+    double *xs = NULL;
+    ssize_t len;
+    while ((len = getline(&line, &lcap, f)) >= 0) {
+        lineno++;
+        if (strspn(line, " \t\r\n") == (size_t)len)
+            continue;
+        long nc = csv_split(line, &cells, &ccap);
+        if (nc < 0) {
+            ex = cli_error(EXIT_USAGE, "%s:%zu: %s", path, lineno,
+                           nc == -1 ? "unterminated quote" : "out of memory");
+            goto out;
+        }
+        if (!have_cols) {
+            have_cols = 1;
+            double tmp;
+            if (parse_double(cells[0], &tmp) != 0) {
+                /* A header: x0.. or x_0.. columns, else the first D columns by position. */
+                for (size_t d = 0; d < dims; d++) {
+                    char a[32], b[32];
+                    snprintf(a, sizeof a, "x%zu", d);
+                    snprintf(b, sizeof b, "x_%zu", d);
+                    col[d] = (size_t)-1;
+                    for (long k = 0; k < nc; k++)
+                        if (strcmp(cells[k], a) == 0 || strcmp(cells[k], b) == 0)
+                            col[d] = (size_t)k;
+                    if (col[d] == (size_t)-1) {
+                        if (d == 0) {
+                            for (size_t j = 0; j < dims; j++)
+                                col[j] = j;
+                            break;
+                        }
+                        ex = cli_error(EXIT_USAGE, "%s:%zu: no column %s (have x0..x%zu?)", path,
+                                       lineno, a, dims - 1);
+                        goto out;
+                    }
+                }
+                continue;
+            }
+            for (size_t j = 0; j < dims; j++)
+                col[j] = j;
+        }
+        if (n == cap) {
+            cap = cap ? 2 * cap : 256;
+            double *g = realloc(xs, cap * dims * sizeof *g);
+            if (!g) {
+                ex = cli_error(EXIT_USAGE, "out of memory");
+                goto out;
+            }
+            xs = g;
+        }
+        for (size_t d = 0; d < dims; d++) {
+            if (col[d] >= (size_t)nc) {
+                ex = cli_error(EXIT_USAGE, "%s:%zu: column %zu: missing (the model has %zu dims)",
+                               path, lineno, col[d] + 1, dims);
+                goto out;
+            }
+            if (parse_double(cells[col[d]], &xs[n * dims + d]) != 0) {
+                char shown[48];
+                ex =
+                    cli_error(EXIT_USAGE, "%s:%zu: column %zu: \"%s\" is not a finite number", path,
+                              lineno, col[d] + 1, show_cell(cells[col[d]], shown, sizeof shown));
+                goto out;
+            }
+        }
+        n++;
+    }
+    if (ferror(f)) {
+        ex = cli_error(EXIT_USAGE, "%s: read error: %s", path, strerror(errno));
+        goto out;
+    }
+    if (n == 0) {
+        ex = cli_error(EXIT_USAGE, "%s: no states", path);
+        goto out;
+    }
+    /* At most CHUNK states a request keeps the line far below worthd's --max-line. */
+    enum { CHUNK = 4096 };
+    struct table *t = cli->json ? NULL : table_new(dims + 1);
+    if (!cli->json && !t) {
+        ex = cli_error(EXIT_USAGE, "out of memory");
+        goto out;
+    }
+    if (t) {
+        const char *hdr[65];
+        char names[64][24];
+        for (size_t d = 0; d < dims; d++) {
+            snprintf(names[d], sizeof names[d], "x%zu", d);
+            hdr[d] = names[d];
+        }
+        hdr[dims] = estimator ? estimator : "VALUE";
+        table_row(t, hdr);
+    }
+    double *vals = malloc((n < CHUNK ? n : CHUNK) * sizeof *vals);
+    if (!vals) {
+        table_free(t);
+        ex = cli_error(EXIT_USAGE, "out of memory");
+        goto out;
+    }
+    for (size_t i = 0; i < n && ex == EXIT_OK; i += CHUNK) {
+        size_t k = n - i < CHUNK ? n - i : CHUNK;
+        if (cli->json) {
+            cJSON *r = cli_request("value", model);
+            cJSON *arr = cJSON_AddArrayToObject(r, "xs");
+            for (size_t j = 0; arr && j < k; j++) {
+                cJSON *v = cJSON_CreateDoubleArray(xs + (i + j) * dims, (int)dims);
+                if (!v || !cJSON_AddItemToArray(arr, v)) {
+                    cJSON_Delete(v);
+                    arr = NULL;
+                }
+            }
+            if (estimator)
+                cJSON_AddStringToObject(r, "estimator", estimator);
+            if (!arr) {
+                cJSON_Delete(r);
+                r = NULL;
+            }
+            ex = cli_raw(cli, r);
+            continue;
+        }
+        if ((ex = cli_connect(cli)))
+            break;
+        uint64_t seq;
+        int rc = worth_values(cli->c, model, xs + i * dims, k, dims, estimator, vals, &seq);
+        if (rc) {
+            ex = cli_fail(cli, rc);
+            break;
+        }
+        for (size_t j = 0; j < k; j++) {
+            char cellbuf[65][32];
+            const char *row[65];
+            for (size_t d = 0; d < dims; d++) {
+                fmt_num(cellbuf[d], sizeof cellbuf[d], xs[(i + j) * dims + d]);
+                row[d] = cellbuf[d];
+            }
+            fmt_num(cellbuf[dims], sizeof cellbuf[dims], vals[j]);
+            row[dims] = cellbuf[dims];
+            table_row(t, row);
+        }
+    }
+    if (t && ex == EXIT_OK)
+        table_print(t, stdout);
+    table_free(t);
+    free(vals);
+out:
+    free(xs);
+    free(cells);
+    free(line);
+    if (f != stdin)
+        fclose(f);
+    return ex;
+}
+
+int cmd_value(struct cli *cli, int argc, char **argv)
+{
+    char *pos[66];
+    int np;
+    const char *file = NULL, *estimator = NULL;
+    const struct opt opts[] = {{"--file", &file, NULL}, {"--estimator", &estimator, NULL}, {0}};
+    int ex = parse_args("value", argc, argv, opts, pos, 66, 1, &np);
+    if (ex)
+        return ex;
+    const char *model = pos[0];
+    if (file && np > 1)
+        return cli_usage("value", "give the state either as values or with --file, not both");
+    if (!file && np < 2)
+        return cli_usage("value", "missing the state (X1 X2 ... or --file STATES.csv)");
+    double x[64];
+    for (int i = 1; i < np; i++)
+        if (parse_double(pos[i], &x[i - 1]) != 0)
+            return cli_usage("value", "X%d \"%s\" is not a finite number", i, pos[i]);
+    size_t dims;
+    if ((ex = cli_model(cli, model, &dims, NULL)))
+        return ex;
+    if (file)
+        return value_file(cli, model, file, dims, estimator);
+    if ((size_t)(np - 1) != dims)
+        return cli_usage("value", "model %s has %zu dims, got %d values", model, dims, np - 1);
+    if (cli->json) {
+        cJSON *r = cli_request("value", model);
+        cJSON *a = cJSON_CreateDoubleArray(x, (int)dims);
+        if (!a || !cJSON_AddItemToObject(r, "x", a)) {
+            cJSON_Delete(a);
+            cJSON_Delete(r);
+            r = NULL;
+        }
+        if (r && estimator)
+            cJSON_AddStringToObject(r, "estimator", estimator);
+        return cli_raw(cli, r);
+    }
+    worth_value_t v;
+    memset(&v, 0, sizeof v);
+    int rc = worth_value(cli->c, model, x, dims, estimator, &v);
+    if (rc)
+        return cli_fail(cli, rc);
+    struct table *t = table_new(3);
+    if (!t)
+        return cli_error(EXIT_USAGE, "out of memory");
+    char a[32], b[32];
+    table_rowv(t, "ESTIMATOR", "VALUE", "SD");
+    fmt_num(a, sizeof a, v.value);
+    fmt_num(b, sizeof b, v.sd);
+    table_rowv(t, estimator ? estimator : "(primary)", a, b);
+    for (size_t i = 0; i < v.n && i < WORTH_MAX_ESTIMATORS; i++) {
+        fmt_num(a, sizeof a, v.values[i]);
+        char name[64];
+        snprintf(name, sizeof name, "%.63s", v.names[i]);
+        table_rowv(t, name, a, "");
+    }
+    table_print(t, stdout);
+    table_free(t);
+    printf("(seq %llu)\n", (unsigned long long)v.seq);
+    return EXIT_OK;
+}
+
+int cmd_stats(struct cli *cli, int argc, char **argv)
+{
+    cJSON *r = NULL;
+    int ex = cli_query(cli, "stats", argc, argv, worth_stats, &r);
+    if (!r)
+        return ex;
+    struct table *t = table_new(2);
+    if (t)
+        table_left(t);
+    const cJSON *e;
+    char v[128];
+    for (e = r->child; t && e; e = e->next) {
+        if (strcmp(e->string, "ok") == 0 || strcmp(e->string, "id") == 0 || cJSON_IsArray(e) ||
+            strcmp(e->string, "estimators") == 0)
+            continue;
+        if (cJSON_IsObject(e)) { /* e.g. drift: one row per figure, "drift.alarms" */
+            const cJSON *f;
+            cJSON_ArrayForEach(f, e)
+            {
+                char key[96];
+                snprintf(key, sizeof key, "%s.%s", e->string, f->string);
+                fmt_json(v, sizeof v, f);
+                table_rowv(t, key, v);
+            }
+            continue;
+        }
+        fmt_json(v, sizeof v, e);
+        table_rowv(t, e->string, v);
+    }
+    if (t)
+        table_print(t, stdout);
+    table_free(t);
+    /* Per-estimator figures: the union of their keys, in order of first appearance. */
+    const cJSON *ests = json_get(r, "estimators");
+    const char *keys[32];
+    size_t nk = 0;
+    cJSON_ArrayForEach(e, ests)
+    {
+        const cJSON *f;
+        cJSON_ArrayForEach(f, e)
+        {
+            if (cJSON_IsObject(f))
+                continue; /* realised: its own table below */
+            size_t k = 0;
+            while (k < nk && strcmp(keys[k], f->string) != 0)
+                k++;
+            if (k == nk && nk < 31)
+                keys[nk++] = f->string;
+        }
+    }
+    t = cJSON_GetArraySize(ests) ? table_new(nk + 1) : NULL;
+    if (t) {
+        const char *row[33];
+        char cellbuf[33][64];
+        row[0] = "ESTIMATOR";
+        for (size_t k = 0; k < nk; k++) {
+            size_t j = 0;
+            for (; keys[k][j] && j < 63; j++)
+                cellbuf[k][j] =
+                    (char)(keys[k][j] >= 'a' && keys[k][j] <= 'z' ? keys[k][j] - 32 : keys[k][j]);
+            cellbuf[k][j] = 0;
+            row[k + 1] = cellbuf[k];
+        }
+        table_row(t, row);
+        cJSON_ArrayForEach(e, ests)
+        {
+            row[0] = e->string;
+            for (size_t k = 0; k < nk; k++) {
+                const cJSON *f = json_get(e, keys[k]);
+                if (f && strcmp(keys[k], "last_update") == 0 && cJSON_IsNumber(f) &&
+                    f->valuedouble > 0) {
+                    time_t s = (time_t)f->valuedouble;
+                    struct tm tm;
+                    if (localtime_r(&s, &tm))
+                        strftime(cellbuf[k], sizeof cellbuf[k], "%Y-%m-%dT%H:%M:%S", &tm);
+                } else {
+                    fmt_json(cellbuf[k], sizeof cellbuf[k], f);
+                }
+                row[k + 1] = cellbuf[k];
+            }
+            table_row(t, row);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
+    /* Realised returns: how each estimator's predictions compared with what happened. */
+    t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
+    if (t) {
+        table_rowv(t, "REALISED", "N", "BIAS", "RMS", "BIAS_WINDOW", "RMS_WINDOW");
+        cJSON_ArrayForEach(e, ests)
+        {
+            const cJSON *re = json_get(e, "realised");
+            char c[5][64];
+            static const char *const k5[5] = {"n", "bias", "rms", "bias_window", "rms_window"};
+            for (int k = 0; k < 5; k++)
+                fmt_json(c[k], sizeof c[k], json_get(re, k5[k]));
+            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4]);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
+    cJSON_Delete(r);
+    return EXIT_OK;
+}
+
+int cmd_events(struct cli *cli, int argc, char **argv)
+{
+    const char *since = NULL, *limit = NULL;
+    struct opt opts[] = {{"--since", &since, NULL}, {"--limit", &limit, NULL}, {NULL, NULL, NULL}};
+    char *pos[1] = {NULL};
+    int np;
+    int ex = parse_args("events", argc, argv, opts, pos, 1, 0, &np);
+    if (ex)
+        return ex;
+    double sv = 0;
+    long long lv = 1000;
+    if (since && parse_double(since, &sv))
+        return cli_usage("events", "--since must be a time in seconds since 1970");
+    if (limit && parse_int(limit, 1, 100000, &lv))
+        return cli_usage("events", "--limit must be an integer 1..100000");
+    cJSON *req = cJSON_CreateObject();
+    if (!req)
+        return cli_error(EXIT_USAGE, "out of memory");
+    cJSON_AddStringToObject(req, "op", "events");
+    if (np)
+        cJSON_AddStringToObject(req, "model", pos[0]);
+    cJSON_AddNumberToObject(req, "since", sv);
+    cJSON_AddNumberToObject(req, "limit", (double)lv);
+    if (cli->json)
+        return cli_raw(cli, req);
+    if ((ex = cli_connect(cli))) {
+        cJSON_Delete(req);
+        return ex;
+    }
+    char *text = cJSON_PrintUnformatted(req);
+    cJSON_Delete(req);
+    const char *json;
+    int rc = worth_request(cli->c, text ? text : "{}", &json);
+    cJSON_free(text);
+    if (rc)
+        return cli_fail(cli, rc);
+    cJSON *r = cli_reply(json);
+    if (!r)
+        return EXIT_SERVER;
+    struct table *t = table_new(4);
+    if (t) {
+        table_left(t);
+        table_rowv(t, "EVENT", "TIME", "KIND", "DETAIL");
+        const cJSON *e;
+        cJSON_ArrayForEach(e, json_get(r, "events"))
+        {
+            char id[32], when[64], detail[256];
+            fmt_json(id, sizeof id, json_get(e, "event"));
+            time_t at = (time_t)json_get(e, "at")->valuedouble;
+            struct tm tm;
+            if (localtime_r(&at, &tm))
+                strftime(when, sizeof when, "%Y-%m-%d %H:%M:%S", &tm);
+            else
+                snprintf(when, sizeof when, "-");
+            fmt_json(detail, sizeof detail, json_get(e, "detail"));
+            table_rowv(t, id, when, json_get(e, "kind")->valuestring, detail);
+        }
+        table_print(t, stdout);
+        table_free(t);
+    }
+    cJSON_Delete(r);
+    return EXIT_OK;
+}
