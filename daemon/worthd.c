@@ -38,7 +38,7 @@
 #include "metrics/text.h"
 #include "net/conn.h"
 #include "net/server.h"
-#include "proto/arena.h"
+#include "core/arena.h"
 #include "proto/proto.h"
 #include "live/recover.h"
 #include "common/say.h"

@@ -23,11 +23,11 @@
 #include <string.h>
 #include <time.h>
 
-#include "proto/arena.h"
+#include "core/arena.h"
 #include "store/db.h"
 #include "common/mem.h"
 #include "common/say.h"
-#include "proto/spec.h"
+#include "core/spec.h"
 #include "worth/errors.h"
 
 static double mono_s(void)

@@ -52,7 +52,7 @@
 #include <time.h>
 #include <unistd.h>
 
-#include "proto/arena.h"
+#include "core/arena.h"
 #include "store/backup.h"
 #include "store/db.h"
 #include "net/frame.h"

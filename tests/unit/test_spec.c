@@ -14,7 +14,7 @@
 #include <cjson/cJSON.h>
 
 #include "learn/model.h"
-#include "proto/spec.h"
+#include "core/spec.h"
 #include "worth/errors.h"
 
 static spec_t *const SENTINEL = (spec_t *)(uintptr_t)0x5bec1;

@@ -22,7 +22,7 @@
  * that read back to the same bits: cJSON's own printer settles for 15 digits
  * when they come within an epsilon, so 0.1 + 0.2 would come back as 0.3.
  */
-#include "proto/spec.h"
+#include "core/spec.h"
 
 #include <inttypes.h>
 #include <limits.h>

@@ -5,7 +5,7 @@
  * allocations are recognised in free() by their address lying outside the
  * block.
  */
-#include "proto/arena.h"
+#include "core/arena.h"
 
 #include <cjson/cJSON.h>
 #include <stdint.h>
