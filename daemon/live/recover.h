@@ -31,7 +31,7 @@ typedef struct recover_sink_t {
  * Recovers every live model of db (borrowed; the writer must not run yet)
  * into sink, registering each with w.  A model that fails for a reason of its
  * own (its spec, a damaged row, corrupt pages of its rows while other models
- * read) is quarantined: registered with proto_add_damaged, a `quarantined`
+ * read) is quarantined: handed to sink->damaged, a `quarantined`
  * event queued, an error logged.  Returns 0, or -1 with err when the failure
  * is the database's (the daemon then refuses to start rather than serve a
  * partial state), or -2 with err when stop_asked (may be NULL; called with

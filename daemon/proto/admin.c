@@ -207,7 +207,7 @@ int do_events(struct req *rq)
         return fail_done(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\"", bad);
     struct learner *l = NULL;
     /* A quarantined model's events are listed: they say when and why it was quarantined. */
-    const struct damaged *dm = fld_damaged(rq);
+    const struct quarantined *dm = fld_damaged(rq);
     if (!dm && field(rq->root, "model") && !(l = fld_model(rq)))
         return PROTO_DONE;
     double since = 0, limit = 1000;
@@ -258,7 +258,7 @@ int do_checkpoints(struct req *rq)
 }
 
 /* Reads a window [lo, hi] from a two-number array. */
-int window(const cJSON *a, double *lo, double *hi)
+static int read_window(const cJSON *a, double *lo, double *hi)
 {
     if (!cJSON_IsArray(a) || cJSON_GetArraySize(a) != 2 || !cJSON_IsNumber(a->child) ||
         !cJSON_IsNumber(a->child->next) || !isfinite(a->child->valuedouble) ||
@@ -293,7 +293,7 @@ int do_rollback(struct req *rq)
             return fail_done(rq, WORTH_E_BAD_REQUEST,
                              "\"exclude\" must be {\"seq\":[a,b]} or {\"t\":[t0,t1]}");
         by_t = wt != NULL;
-        if (window(by_t ? wt : ws, &lo, &hi) != 0)
+        if (read_window(by_t ? wt : ws, &lo, &hi) != 0)
             return fail_done(rq, WORTH_E_BAD_REQUEST, "the window must be two finite numbers");
         /* Seqs are whole numbers from 1; a double holds them exactly up to 2^53. */
         if (!by_t && (lo != floor(lo) || hi != floor(hi) || lo < 1 || hi > 9007199254740992.0))

@@ -71,7 +71,7 @@ struct learner *fld_model(struct req *rq)
     if (!name)
         return NULL;
     struct learner *l = reg_find_model(rq->p, name, NULL);
-    const struct damaged *dm = l ? NULL : reg_find_damaged(rq->p, name, NULL);
+    const struct quarantined *dm = l ? NULL : reg_find_damaged(rq->p, name, NULL);
     if (dm)
         reg_reply_damaged(rq->p, rq->c, rq->id, dm);
     else if (!l)
@@ -80,7 +80,7 @@ struct learner *fld_model(struct req *rq)
 }
 
 /* The quarantined model the request's "model" names, or NULL (then nothing is answered). */
-const struct damaged *fld_damaged(struct req *rq)
+const struct quarantined *fld_damaged(struct req *rq)
 {
     const cJSON *f = field(rq->root, "model");
     return cJSON_IsString(f) && f->valuestring ? reg_find_damaged(rq->p, f->valuestring, NULL)

@@ -68,7 +68,7 @@ struct slot {
  * has no learner; it keeps its name taken (model.create answers model_exists) until
  * model.drop, and every other request naming it answers damaged.
  */
-struct damaged {
+struct quarantined {
     char *name;   /* owned */
     int64_t id;   /* its row in the models table */
     uint64_t seq; /* the offending transition, 0 when no single row is to blame */
@@ -83,7 +83,7 @@ struct proto {
     size_t n;
     struct slot **dropped; /* dropped, not yet freed */
     size_t n_dropped, cap_dropped;
-    struct damaged *damaged; /* quarantined at start-up, first n_damaged used */
+    struct quarantined *damaged; /* quarantined at start-up, first n_damaged used */
     size_t n_damaged;
     event_post_fn post;
     event_wake_fn wake;
@@ -149,8 +149,9 @@ void reply_conn_free(proto_conn_t *pc);
 /* registry.c: live, dropped and quarantined models */
 struct slot *reg_find_slot(struct proto *p, const char *name, size_t *at);
 struct learner *reg_find_model(struct proto *p, const char *name, size_t *at);
-struct damaged *reg_find_damaged(struct proto *p, const char *name, size_t *at);
-void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const struct damaged *dm);
+struct quarantined *reg_find_damaged(struct proto *p, const char *name, size_t *at);
+void reg_reply_damaged(struct proto *p, struct conn *c, const char *id,
+                       const struct quarantined *dm);
 struct slot *reg_slot_of(struct proto *p, const struct queue *q);
 struct slot *reg_new_slot(struct learner *l, uint64_t durable);
 void reg_maybe_free(struct proto *p, struct slot *sl);
@@ -165,7 +166,7 @@ int fld_dup_key(const cJSON *obj, const char **which);
 int fld_only_keys(const cJSON *obj, const char *const *allowed, const char **bad);
 const char *fld_string(struct req *rq, const char *name);
 struct learner *fld_model(struct req *rq);
-const struct damaged *fld_damaged(struct req *rq);
+const struct quarantined *fld_damaged(struct req *rq);
 int fld_number(const cJSON *obj, const char *name, double *v, int *code, char *err, size_t errlen,
                const char *where);
 int fld_vector(const cJSON *arr, size_t n, double *out, const char *name, int *code, char *err,

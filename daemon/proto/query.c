@@ -123,7 +123,7 @@ static void out_model_head(jw_t *o, const struct learner *l, const struct model 
 }
 
 /* Writes "model":NAME,"state":"damaged","seq":N,"reason":WHY, shared by list and get. */
-static void out_damaged(jw_t *o, const struct damaged *dm)
+static void out_damaged(jw_t *o, const struct quarantined *dm)
 {
     jw_lit(o, "\"model\":");
     jw_str(o, dm->name);
@@ -135,8 +135,7 @@ static void out_damaged(jw_t *o, const struct damaged *dm)
  * The model a request names (its model in *m), its figures from the latest
  * snapshot in *st, and the reply begun; NULL (answered) when there is no such model.
  */
-static struct learner *begin_with_stats(struct req *rq, learner_stats_t *st,
-                                        const struct model **m)
+static struct learner *begin_with_stats(struct req *rq, learner_stats_t *st, const struct model **m)
 {
     struct learner *l = fld_model(rq);
     if (!l)
@@ -174,7 +173,7 @@ int do_list(struct req *rq)
 
 int do_get(struct req *rq)
 {
-    const struct damaged *dm = fld_damaged(rq);
+    const struct quarantined *dm = fld_damaged(rq);
     if (dm) {
         reply_begin(&rq->p->out, 1, rq->id);
         jw_lit(&rq->p->out, ",");

@@ -48,7 +48,7 @@ struct learner *reg_find_model(struct proto *p, const char *name, size_t *at)
 }
 
 /* The quarantined model of that name, or NULL. */
-struct damaged *reg_find_damaged(struct proto *p, const char *name, size_t *at)
+struct quarantined *reg_find_damaged(struct proto *p, const char *name, size_t *at)
 {
     for (size_t i = 0; i < p->n_damaged; i++)
         if (strcmp(p->damaged[i].name, name) == 0) {
@@ -60,7 +60,8 @@ struct damaged *reg_find_damaged(struct proto *p, const char *name, size_t *at)
 }
 
 /* Answers a request naming a quarantined model: damaged, with the row and the remedy. */
-void reg_reply_damaged(struct proto *p, struct conn *c, const char *id, const struct damaged *dm)
+void reg_reply_damaged(struct proto *p, struct conn *c, const char *id,
+                       const struct quarantined *dm)
 {
     char msg[900], fix[128] = "Repair it while worthd is stopped (its start-up log says how)";
     if (dm->seq)
@@ -160,7 +161,7 @@ void reg_unregister(struct proto *p, size_t at, int tell_writer, uint64_t conn_i
 /* Drops the quarantined model at `at`: marked dropped in the database, its name free again. */
 void reg_forget_damaged(struct proto *p, size_t at, uint64_t conn_id)
 {
-    struct damaged *dm = &p->damaged[at];
+    struct quarantined *dm = &p->damaged[at];
     writer_drop_damaged(p->w, dm->id, dm->name, conn_id);
     say_info("model %s (quarantined) dropped", dm->name);
     mem_free(dm->name);
@@ -192,5 +193,6 @@ void proto_add_damaged(struct proto *p, int64_t id, const char *name, uint64_t s
                        const char *reason)
 {
     p->damaged = mem_realloc(p->damaged, (p->n_damaged + 1) * sizeof *p->damaged);
-    p->damaged[p->n_damaged++] = (struct damaged){mem_strdup(name), id, seq, mem_strdup(reason)};
+    p->damaged[p->n_damaged++] =
+        (struct quarantined){mem_strdup(name), id, seq, mem_strdup(reason)};
 }
