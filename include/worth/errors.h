@@ -54,7 +54,10 @@ extern "C" {
       "the estimator diverged (non-finite or exploding weights) and no longer answers")            \
     X(DAMAGED, -30, "damaged", "the model's stored log is damaged; the model is quarantined")      \
     X(OVER_BUDGET, -31, "over_budget", "the daemon's buffer budget is spent; retry later")         \
-    X(AUTH_TIMEOUT, -32, "auth_timeout", "no authentication within the deadline; connection closed")
+    X(AUTH_TIMEOUT, -32, "auth_timeout",                                                           \
+      "no authentication within the deadline; connection closed")                                  \
+    X(OUT_OF_ORDER, -33, "out_of_order", "samples of a source go back in time within one request") \
+    X(FORBIDDEN, -34, "forbidden", "the connection's role does not allow this request")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),
