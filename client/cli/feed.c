@@ -164,8 +164,8 @@ static int send_rows(struct feed *fd, int bulk, size_t n)
         rc = 0;
         for (size_t i = 0; i < n && rc == 0; i++) {
             const struct rec *r = &fd->batch[i];
-            worth_transition t = {r->x, r->r, r->xn, r->terminal, r->source[0] ? r->source : NULL,
-                                  r->t, r->dt};
+            worth_transition t = {r->x, r->r,  r->xn, r->terminal, r->source[0] ? r->source : NULL,
+                                  r->t, r->dt, 0};
             rc = worth_observe_queue(c, fd->model, fd->dims, &t, &seq);
         }
         if (rc == 0)

@@ -8,9 +8,11 @@
  * is the library's own, in req_num: a non-finite number is sent as the string
  * "NaN", so that worthd answers bad_number for it (JSON has no literal for
  * NaN, and jw writes null).  Replies are parsed with cJSON and read
- * defensively: a missing field reads as 0 or NAN, never crashes.  Automatic
- * batching keeps the queued elements in the connection's batch buffer.  Runs
- * on the caller's thread; owns nothing beyond the connection's buffers.
+ * defensively: a missing field reads as 0 or NAN, never crashes.  Every
+ * ingest reply (observe, a batch, a bulk, samples) leaves its counts in the
+ * connection for worth_last_ingest.  Automatic batching keeps the queued
+ * elements in the connection's batch buffer.  Runs on the caller's thread;
+ * owns nothing beyond the connection's buffers.
  */
 #include <math.h>
 #include <stdio.h>
@@ -80,6 +82,26 @@ static void req_transition(jw_t *j, size_t dims, const worth_transition *t)
         jw_lit(j, ",\"dt\":");
         req_num(j, t->dt);
     }
+    if (t->pseq)
+        jw_fmt(j, ",\"pseq\":%llu", (unsigned long long)t->pseq);
+}
+
+/* The members of one sample, "source":S,"t":T,"x":[...],"r":R (no braces). */
+static void req_sample(jw_t *j, size_t dims, const worth_sample *s)
+{
+    if (s->source) {
+        jw_lit(j, "\"source\":");
+        jw_str(j, s->source);
+        jw_lit(j, ",");
+    }
+    jw_lit(j, "\"t\":");
+    req_num(j, s->t);
+    jw_lit(j, ",\"x\":");
+    req_vec(j, s->x, dims);
+    jw_lit(j, ",\"r\":");
+    req_num(j, s->r);
+    if (s->terminal)
+        jw_lit(j, ",\"terminal\":true");
 }
 
 /* ---- reading replies --------------------------------------------------------------------- */
@@ -95,6 +117,61 @@ static void get_u64(const cJSON *root, const char *key, uint64_t *out)
 {
     if (out)
         *out = (uint64_t)num(root, key, 0);
+}
+
+/* c->ingest (and *out, when not NULL) from an ingest reply: seq, paired, skipped, gaps. */
+static void get_ingest(worth_client *c, const cJSON *root, worth_ingest_t *out)
+{
+    get_u64(root, "seq", &c->ingest.seq);
+    get_u64(root, "paired", &c->ingest.paired);
+    get_u64(root, "skipped", &c->ingest.skipped);
+    get_u64(root, "gaps", &c->ingest.gaps);
+    if (out)
+        *out = c->ingest;
+}
+
+/* Sends c->req as an ingest request: 0 with the counts read (get_ingest), or the error. */
+static int call_ingest(worth_client *c, worth_ingest_t *out, uint64_t *seq)
+{
+    cJSON *root = NULL;
+    int rc = wire_call(c, &root);
+    if (rc == 0) {
+        get_ingest(c, root, out);
+        if (seq)
+            *seq = c->ingest.seq;
+    }
+    cJSON_Delete(root);
+    return rc;
+}
+
+/* Sends c->req (a bulk header ending in a newline) and count records of width doubles. */
+static int call_bulk(worth_client *c, const double *records, size_t count, size_t width,
+                     worth_ingest_t *out, uint64_t *seq)
+{
+    struct timespec dl;
+    wire_deadline(&dl, c->timeout_ms);
+    /* The header and the records go out together; worthd reads them as one stream. */
+    int rc = wire_send(c, c->req.b, c->req.len, &dl);
+    if (rc == 0)
+        rc = wire_send(c, records, count * width * sizeof(double), &dl);
+    if (rc == 0)
+        rc = wire_recv_line(c, &dl);
+    if (rc)
+        return rc;
+    cJSON *root = NULL;
+    rc = wire_status(c, &root);
+    if (rc == 0) {
+        get_ingest(c, root, out);
+        if (seq)
+            *seq = c->ingest.seq;
+    }
+    cJSON_Delete(root);
+    return rc;
+}
+
+void worth_last_ingest(const worth_client *c, worth_ingest_t *out)
+{
+    *out = c->ingest;
 }
 
 /* Sends c->req and reads the counts named ka and kb (kb may be NULL) of its reply. */
@@ -163,7 +240,7 @@ int worth_observe(worth_client *c, const char *model, size_t dims, const worth_t
     jw_lit(&c->req, ",");
     req_transition(&c->req, dims, t);
     jw_lit(&c->req, "}");
-    return call_u64(c, "seq", seq, NULL, NULL);
+    return call_ingest(c, NULL, seq);
 }
 
 void worth_set_batch_max(worth_client *c, size_t n)
@@ -183,8 +260,11 @@ int worth_flush(worth_client *c, uint64_t *seq)
     jw_reset(&c->batch);
     cJSON *root = NULL;
     int rc = wire_call(c, &root);
-    if (rc == 0)
-        get_u64(root, "seq", seq);
+    if (rc == 0) {
+        get_ingest(c, root, NULL);
+        if (seq)
+            *seq = c->ingest.seq;
+    }
     if (rc && root) {
         const cJSON *idx = cJSON_GetObjectItemCaseSensitive(
             cJSON_GetObjectItemCaseSensitive(root, "error"), "index");
@@ -220,28 +300,60 @@ int worth_observe_queue(worth_client *c, const char *model, size_t dims, const w
 int worth_observe_bulk(worth_client *c, const char *model, size_t dims, const double *records,
                        size_t count, int applied, uint64_t *seq)
 {
+    int rc = worth_observe_bulk_pseq(c, model, dims, records, count, NULL, 0, applied, NULL);
+    if (rc == 0 && seq)
+        *seq = c->ingest.seq;
+    return rc;
+}
+
+int worth_observe_bulk_pseq(worth_client *c, const char *model, size_t dims, const double *records,
+                            size_t count, const char *source, uint64_t pseq, int applied,
+                            worth_ingest_t *out)
+{
     req_begin(c, "observe.bulk", model);
     jw_fmt(&c->req, ",\"count\":%zu", count);
+    req_opt_str(&c->req, "source", source);
+    if (pseq)
+        jw_fmt(&c->req, ",\"pseq\":%llu", (unsigned long long)pseq);
     if (applied)
         jw_lit(&c->req, ",\"ack\":\"applied\"");
     jw_lit(&c->req, "}\n");
-    struct timespec dl;
-    wire_deadline(&dl, c->timeout_ms);
-    /* The header and the records go out together; worthd reads them as one stream. */
-    size_t bytes = count * (2 * dims + 2) * sizeof(double);
-    int rc = wire_send(c, c->req.b, c->req.len, &dl);
-    if (rc == 0)
-        rc = wire_send(c, records, bytes, &dl);
-    if (rc == 0)
-        rc = wire_recv_line(c, &dl);
-    if (rc)
-        return rc;
-    cJSON *root = NULL;
-    rc = wire_status(c, &root);
-    if (rc == 0)
-        get_u64(root, "seq", seq);
-    cJSON_Delete(root);
-    return rc;
+    return call_bulk(c, records, count, 2 * dims + 2, out, NULL);
+}
+
+/* ---- samples ----------------------------------------------------------------------------- */
+
+int worth_observe_samples(worth_client *c, const char *model, size_t dims, const worth_sample *s,
+                          size_t n, worth_ingest_t *out)
+{
+    req_begin(c, "observe", model);
+    if (n == 1) {
+        jw_lit(&c->req, ",\"sample\":{");
+        req_sample(&c->req, dims, s);
+        jw_lit(&c->req, "}}");
+    } else {
+        jw_lit(&c->req, ",\"samples\":[");
+        for (size_t i = 0; i < n; i++) {
+            jw_lit(&c->req, i ? ",{" : "{");
+            req_sample(&c->req, dims, &s[i]);
+            jw_lit(&c->req, "}");
+        }
+        jw_lit(&c->req, "]}");
+    }
+    return call_ingest(c, out, NULL);
+}
+
+int worth_observe_samples_bulk(worth_client *c, const char *model, size_t dims, const char *source,
+                               const double *records, size_t count, int applied,
+                               worth_ingest_t *out)
+{
+    req_begin(c, "observe.bulk", model);
+    jw_fmt(&c->req, ",\"form\":\"samples\",\"count\":%zu", count);
+    req_opt_str(&c->req, "source", source);
+    if (applied)
+        jw_lit(&c->req, ",\"ack\":\"applied\"");
+    jw_lit(&c->req, "}\n");
+    return call_bulk(c, records, count, dims + 3, out, NULL);
 }
 
 /* ---- queries ----------------------------------------------------------------------------- */

@@ -42,6 +42,7 @@ const char *worth_version(void)
 int wire_fail(worth_client *c, int code, const char *fmt, ...)
 {
     snprintf(c->err_name, sizeof c->err_name, "%s", worth_err_name(code));
+    c->err_index = -1;
     va_list ap;
     va_start(ap, fmt);
     vsnprintf(c->err_msg, sizeof c->err_msg, fmt, ap);
@@ -57,6 +58,11 @@ const char *worth_error_name(const worth_client *c)
 const char *worth_error_message(const worth_client *c)
 {
     return c->err_msg;
+}
+
+long worth_error_index(const worth_client *c)
+{
+    return c->err_index;
 }
 
 /* ---- transport --------------------------------------------------------------------------- */
@@ -195,6 +201,10 @@ int wire_status(worth_client *c, cJSON **root_out)
 #undef X
     snprintf(c->err_name, sizeof c->err_name, "%s", name);
     snprintf(c->err_msg, sizeof c->err_msg, "%s", cJSON_IsString(msg) ? msg->valuestring : "");
+    const cJSON *idx = cJSON_GetObjectItemCaseSensitive(e, "index");
+    c->err_index = cJSON_IsNumber(idx) && idx->valuedouble >= 0 && idx->valuedouble < 1e15
+                       ? (long)idx->valuedouble
+                       : -1;
     if (rc == 0)
         rc = WORTH_E_INTERNAL;
     if (root_out)
@@ -373,6 +383,7 @@ int worth_connect(const worth_opts *o, worth_client **out, char *err, size_t err
     c->fd = fd;
     c->timeout_ms = o->timeout_ms > 0 ? o->timeout_ms : 30000;
     c->batch_max = 256;
+    c->err_index = -1;
     int rc = 0;
     if (o->token) {
         jw_lit(&c->req, "{\"op\":\"auth\",\"token\":");

@@ -25,6 +25,8 @@ struct worth_client {
     jw_t req; /* the request being built */
     char err_name[64];
     char err_msg[512];
+    long err_index;        /* the error's "index", -1 when it names none */
+    worth_ingest_t ingest; /* the counts of the last successful ingest reply */
     /* automatic batching (worth_observe_queue) */
     char batch_model[64];
     size_t batch_dims, batch_n, batch_max;

@@ -75,7 +75,25 @@ typedef struct worth_transition {
     const char *source; /* NULL for the default source */
     double t;           /* NAN when absent */
     double dt;          /* NAN when absent */
+    uint64_t pseq;      /* producer sequence (>= 1, per source), 0 when absent */
 } worth_transition;
+
+/* Plain data: one sample of a plant (schema/protocol.md, "Samples"). */
+typedef struct worth_sample {
+    const char *source; /* NULL for the default source */
+    double t;           /* seconds since 1970, UTC */
+    const double *x;    /* dims values, in the model's order (borrowed) */
+    double r;
+    int terminal; /* the sample's state is terminal: its source's chain ends there */
+} worth_sample;
+
+/* Plain data: what one ingest request did (fields the reply lacks read 0). */
+typedef struct worth_ingest_t {
+    uint64_t seq;     /* the model's last transition seq after the request */
+    uint64_t paired;  /* transitions worthd made from the request's samples */
+    uint64_t skipped; /* samples or transitions skipped as already logged (resends) */
+    uint64_t gaps;    /* chains broken by a gap longer than the model's limit */
+} worth_ingest_t;
 
 /* Plain data: the answer of worth_train. */
 typedef struct worth_train_t {
@@ -109,6 +127,11 @@ WORTH_API void worth_close(worth_client *c);
 /* Errors of the last failed call (owned by c). */
 WORTH_API const char *worth_error_name(const worth_client *c);
 WORTH_API const char *worth_error_message(const worth_client *c);
+/*
+ * The element of a batch, samples or bulk that the last error names (its
+ * "index": 0 for the first), or -1 when it names none.
+ */
+WORTH_API long worth_error_index(const worth_client *c);
 
 /* Any request */
 
@@ -150,6 +173,41 @@ WORTH_API void worth_set_batch_max(worth_client *c, size_t n);
  */
 WORTH_API int worth_observe_bulk(worth_client *c, const char *model, size_t dims,
                                  const double *records, size_t count, int applied, uint64_t *seq);
+/*
+ * The same with the header's source (NULL: the default source) and producer
+ * sequence: the records are numbered pseq, pseq + 1, ... (pseq 0: none), and
+ * worthd skips those at or below the last it logged for the source.  *out
+ * (may be NULL) gets seq and skipped.
+ */
+WORTH_API int worth_observe_bulk_pseq(worth_client *c, const char *model, size_t dims,
+                                      const double *records, size_t count, const char *source,
+                                      uint64_t pseq, int applied, worth_ingest_t *out);
+/*
+ * The counts of the last successful ingest call of c (observe, a batch sent
+ * by worth_observe_queue or worth_flush, a bulk, samples); zeros before any.
+ */
+WORTH_API void worth_last_ingest(const worth_client *c, worth_ingest_t *out);
+
+/* Samples: worthd pairs consecutive samples of a source into transitions */
+
+/*
+ * n samples (n >= 1, at most worthd's --max-batch) in one observe request:
+ * all-or-nothing; within it each source's samples must go forward in time
+ * (else out_of_order, worth_error_index naming the first that does not).  A
+ * sample at or before the last one worthd logged for its source is skipped
+ * and counted, so resending is safe.  *out (may be NULL) gets the counts.
+ */
+WORTH_API int worth_observe_samples(worth_client *c, const char *model, size_t dims,
+                                    const worth_sample *s, size_t n, worth_ingest_t *out);
+/*
+ * count samples of one source (NULL: the default source) as one observe.bulk
+ * of "form":"samples": records of dims + 3 doubles each, t, x[0..dims-1], r,
+ * terminal (0 or 1).  With applied set, the reply does not wait for
+ * durability (weaker).  *out (may be NULL) gets the counts.
+ */
+WORTH_API int worth_observe_samples_bulk(worth_client *c, const char *model, size_t dims,
+                                         const char *source, const double *records, size_t count,
+                                         int applied, worth_ingest_t *out);
 
 /* Queries */
 
