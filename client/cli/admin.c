@@ -120,9 +120,12 @@ int cmd_rollback(struct cli *cli, int argc, char **argv)
         exclude = 's';
     }
     if (xtime) {
-        if (parse_window(xtime, &lo, &hi) != 0)
-            return cli_usage("rollback", "--exclude-time wants T0:T1 with T0 <= T1, not \"%s\"",
-                             xtime);
+        char why[300];
+        if (parse_time_window(xtime, &lo, &hi, why, sizeof why) != 0)
+            return cli_usage("rollback",
+                             "--exclude-time wants T0/T1 (ISO-8601 with a zone, or seconds since "
+                             "1970; A:B for numbers) with T0 <= T1, not \"%s\": %s",
+                             xtime, why);
         exclude = 't';
     }
     if (exclude)

@@ -22,6 +22,7 @@
 #include <unistd.h>
 
 #include "cli.h"
+#include "isotime.h"
 
 int cli_error(int code, const char *fmt, ...)
 {
@@ -205,6 +206,52 @@ int parse_double(const char *s, double *out)
     return 0;
 }
 
+int parse_time(const char *s, double *t_s, char *err, size_t errlen)
+{
+    if (parse_double(s, t_s) == 0)
+        return 0;
+    return isotime_parse(s, t_s, err, errlen);
+}
+
+int parse_time_window(const char *s, double *lo, double *hi, char *err, size_t errlen)
+{
+    char a[128];
+    const char *sep = strchr(s, '/');
+    if (!sep) {
+        /* "A:B" holds numbers only: an ISO time has colons of its own. */
+        sep = strchr(s, ':');
+        if (!sep || strchr(sep + 1, ':')) {
+            snprintf(err, errlen, "expected T0/T1 (or A:B in seconds since 1970)");
+            return -1;
+        }
+        snprintf(a, sizeof a, "%.*s", (int)(sep - s), s);
+        if (parse_double(a, lo) != 0 || parse_double(sep + 1, hi) != 0) {
+            snprintf(err, errlen, "A:B takes two numbers; write ISO-8601 times as T0/T1");
+            return -1;
+        }
+    } else {
+        if ((size_t)(sep - s) >= sizeof a) {
+            snprintf(err, errlen, "the window's start is too long");
+            return -1;
+        }
+        snprintf(a, sizeof a, "%.*s", (int)(sep - s), s);
+        char e[200];
+        if (parse_time(a, lo, e, sizeof e) != 0) {
+            snprintf(err, errlen, "start \"%s\": %s", a, e);
+            return -1;
+        }
+        if (parse_time(sep + 1, hi, e, sizeof e) != 0) {
+            snprintf(err, errlen, "end \"%s\": %s", sep + 1, e);
+            return -1;
+        }
+    }
+    if (*lo > *hi) {
+        snprintf(err, errlen, "the start is after the end");
+        return -1;
+    }
+    return 0;
+}
+
 int parse_int(const char *s, long long lo, long long hi, long long *out)
 {
     char *end;
@@ -218,7 +265,77 @@ int parse_int(const char *s, long long lo, long long hi, long long *out)
     return 0;
 }
 
-int cli_model(struct cli *cli, const char *model, size_t *dims, cJSON **reply)
+int mspec_read(const cJSON *reply, struct mspec *ms)
+{
+    memset(ms, 0, sizeof *ms);
+    ms->period_s = NAN;
+    const cJSON *spec = cJSON_GetObjectItemCaseSensitive(reply, "spec");
+    const cJSON *d = cJSON_GetObjectItemCaseSensitive(spec, "dims");
+    if (!d)
+        d = cJSON_GetObjectItemCaseSensitive(reply, "dims");
+    if (cJSON_IsArray(d)) {
+        /* The named form: [{"name":"level","unit":"m","range":[0,12]}, ...]. */
+        int n = cJSON_GetArraySize(d);
+        if (n < 1 || n > MAXDIMS)
+            return -1;
+        ms->dims = (size_t)n;
+        ms->named = 1;
+        size_t i = 0;
+        const cJSON *e;
+        cJSON_ArrayForEach(e, d)
+        {
+            const cJSON *nm = cJSON_GetObjectItemCaseSensitive(e, "name");
+            const cJSON *un = cJSON_GetObjectItemCaseSensitive(e, "unit");
+            const cJSON *rg = cJSON_GetObjectItemCaseSensitive(e, "range");
+            if (cJSON_IsString(nm) && nm->valuestring[0])
+                snprintf(ms->name[i], sizeof ms->name[i], "%s", nm->valuestring);
+            else
+                snprintf(ms->name[i], sizeof ms->name[i], "x%zu", i);
+            if (cJSON_IsString(un))
+                snprintf(ms->unit[i], sizeof ms->unit[i], "%s", un->valuestring);
+            if (cJSON_GetArraySize(rg) == 2 && cJSON_IsNumber(cJSON_GetArrayItem(rg, 0)) &&
+                cJSON_IsNumber(cJSON_GetArrayItem(rg, 1))) {
+                ms->lo[i] = cJSON_GetArrayItem(rg, 0)->valuedouble;
+                ms->hi[i] = cJSON_GetArrayItem(rg, 1)->valuedouble;
+            } else {
+                ms->lo[i] = ms->hi[i] = NAN;
+            }
+            i++;
+        }
+    } else if (cJSON_IsNumber(d) && d->valuedouble >= 1 && d->valuedouble <= MAXDIMS) {
+        ms->dims = (size_t)d->valuedouble;
+        for (size_t i = 0; i < ms->dims; i++) {
+            snprintf(ms->name[i], sizeof ms->name[i], "x%zu", i);
+            ms->lo[i] = ms->hi[i] = NAN;
+        }
+    } else {
+        return -1;
+    }
+    /* Ranges in the numeric form (and in the named form too, if the spec lists them). */
+    const cJSON *ranges = cJSON_GetObjectItemCaseSensitive(spec, "ranges");
+    if (cJSON_GetArraySize(ranges) == (int)ms->dims) {
+        size_t i = 0;
+        const cJSON *r;
+        cJSON_ArrayForEach(r, ranges)
+        {
+            if (cJSON_GetArraySize(r) == 2 && cJSON_IsNumber(cJSON_GetArrayItem(r, 0)) &&
+                cJSON_IsNumber(cJSON_GetArrayItem(r, 1))) {
+                ms->lo[i] = cJSON_GetArrayItem(r, 0)->valuedouble;
+                ms->hi[i] = cJSON_GetArrayItem(r, 1)->valuedouble;
+            }
+            i++;
+        }
+    }
+    const cJSON *ru = cJSON_GetObjectItemCaseSensitive(spec, "reward_unit");
+    if (cJSON_IsString(ru))
+        snprintf(ms->reward_unit, sizeof ms->reward_unit, "%s", ru->valuestring);
+    const cJSON *ps = cJSON_GetObjectItemCaseSensitive(spec, "period_s");
+    if (cJSON_IsNumber(ps))
+        ms->period_s = ps->valuedouble;
+    return 0;
+}
+
+int cli_spec(struct cli *cli, const char *model, struct mspec *ms, cJSON **reply)
 {
     int ex = cli_connect(cli);
     if (ex)
@@ -228,20 +345,68 @@ int cli_model(struct cli *cli, const char *model, size_t *dims, cJSON **reply)
     if (rc != 0)
         return cli_fail(cli, rc);
     cJSON *root = json ? cJSON_Parse(json) : NULL;
-    const cJSON *spec = cJSON_GetObjectItemCaseSensitive(root, "spec");
-    const cJSON *d = cJSON_GetObjectItemCaseSensitive(spec, "dims");
-    if (!cJSON_IsNumber(d))
-        d = cJSON_GetObjectItemCaseSensitive(root, "dims");
-    if (!cJSON_IsNumber(d) || d->valuedouble < 1 || d->valuedouble > 64) {
+    if (mspec_read(root, ms) != 0) {
         cJSON_Delete(root);
         return cli_error(EXIT_SERVER, "internal: model.get reply for %s has no dims", model);
     }
-    *dims = (size_t)d->valuedouble;
     if (reply)
         *reply = root;
     else
         cJSON_Delete(root);
     return EXIT_OK;
+}
+
+int cli_model(struct cli *cli, const char *model, size_t *dims, cJSON **reply)
+{
+    struct mspec ms;
+    int ex = cli_spec(cli, model, &ms, reply);
+    if (ex == EXIT_OK)
+        *dims = ms.dims;
+    return ex;
+}
+
+void mspec_label(const struct mspec *ms, size_t d, char *buf, size_t len)
+{
+    if (!ms->named)
+        snprintf(buf, len, "x[%zu]", d);
+    else if (ms->unit[d][0])
+        snprintf(buf, len, "%s [%s]", ms->name[d], ms->unit[d]);
+    else
+        snprintf(buf, len, "%s", ms->name[d]);
+}
+
+void mspec_vlabel(const struct mspec *ms, const char *what, char *buf, size_t len)
+{
+    if (ms && ms->reward_unit[0])
+        snprintf(buf, len, "%s [%s]", what, ms->reward_unit);
+    else
+        snprintf(buf, len, "%s", what);
+}
+
+long mspec_dim(const struct mspec *ms, const char *word)
+{
+    for (size_t d = 0; d < ms->dims; d++)
+        if (strcmp(ms->name[d], word) == 0)
+            return (long)d;
+    long long i;
+    if (parse_int(word, 0, (long long)ms->dims - 1, &i) == 0)
+        return (long)i;
+    return -1;
+}
+
+void mspec_names(const struct mspec *ms, char *buf, size_t len)
+{
+    size_t n = 0;
+    buf[0] = 0;
+    for (size_t d = 0; d < ms->dims && n + 1 < len; d++) {
+        int w = snprintf(buf + n, len - n, "%s%s", d ? ", " : "", ms->name[d]);
+        if (w < 0 || (size_t)w >= len - n) {
+            if (len > 4)
+                memcpy(buf + len - 4, "...", 4);
+            break;
+        }
+        n += (size_t)w;
+    }
 }
 
 int parse_args(const char *cmd, int argc, char **argv, const struct opt *opts, char **pos,

@@ -26,6 +26,25 @@
 #define EXIT_USAGE   2 /* bad arguments, unreadable file, malformed input */
 #define EXIT_CONNECT 3 /* cannot connect to worthd, or the connection was lost */
 
+/* The most dimensions a model has (protocol v1). */
+#define MAXDIMS 64
+
+/*
+ * A model's dimensions as a person reads them, from model.get's spec: names
+ * and units of the named form ("dims":[{"name","unit","range"}, ...]), or
+ * x0, x1, ... for the numeric form; the declared ranges; the reward's unit
+ * and the control period.  Plain data.
+ */
+struct mspec {
+    size_t dims;
+    int named;                       /* the spec names its dimensions */
+    char name[MAXDIMS][64];          /* "level"; "x0", "x1", ... when not named */
+    char unit[MAXDIMS][32];          /* "m"; "" when none */
+    double lo[MAXDIMS], hi[MAXDIMS]; /* declared range */
+    char reward_unit[32];            /* "EUR"; "" when none */
+    double period_s;                 /* the control period; NAN when not declared */
+};
+
 /* Global options and the connection (opened lazily by cli_connect). */
 struct cli {
     const char *socket_path; /* Unix socket (default $WORTH_SOCKET or ./worthd.sock) */
@@ -86,6 +105,16 @@ cJSON *cli_reply(const char *json);
 const cJSON *json_get(const cJSON *o, const char *k);
 /* A finite double filling the whole of s; 0 or -1. */
 int parse_double(const char *s, double *out);
+/*
+ * A time on the command line: seconds since 1970 (a number) or ISO-8601 with
+ * a zone (isotime.h); 0, or -1 with the reason in err.
+ */
+int parse_time(const char *s, double *t_s, char *err, size_t errlen);
+/*
+ * A time window "T0/T1" (ISO-8601's interval form; either end a number or an
+ * ISO time) or "A:B" (numbers only), with T0 <= T1; 0, or -1 with the reason.
+ */
+int parse_time_window(const char *s, double *lo, double *hi, char *err, size_t errlen);
 /* A decimal integer lo..hi filling the whole of s; 0 or -1. */
 int parse_int(const char *s, long long lo, long long hi, long long *out);
 /*
@@ -93,6 +122,21 @@ int parse_int(const char *s, long long lo, long long hi, long long *out);
  * reply (*reply owned by the caller, cJSON_Delete).  Returns an exit code.
  */
 int cli_model(struct cli *cli, const char *model, size_t *dims, cJSON **reply);
+/*
+ * model.get of model into *ms, and when reply is not NULL a parsed copy of the
+ * reply (*reply owned by the caller).  Returns an exit code (message printed).
+ */
+int cli_spec(struct cli *cli, const char *model, struct mspec *ms, cJSON **reply);
+/* Reads *ms from a model.get reply (borrowed); 0, or -1 when it has no usable dims. */
+int mspec_read(const cJSON *reply, struct mspec *ms);
+/* Dimension d as a person reads it: "level [m]", "level", or "x[0]" when not named. */
+void mspec_label(const struct mspec *ms, size_t d, char *buf, size_t len);
+/* A quantity in the reward's unit: "V [EUR]" for what "V", or what alone without a unit. */
+void mspec_vlabel(const struct mspec *ms, const char *what, char *buf, size_t len);
+/* The dimension a command-line word names: its name, or its 0-based index; -1 for none. */
+long mspec_dim(const struct mspec *ms, const char *word);
+/* "level, demand" (or "x0, x1, ...") into buf: the names a message lists. */
+void mspec_names(const struct mspec *ms, char *buf, size_t len);
 /*
  * Parses argv[1..] of cmd: options from opts (terminated by a zero entry),
  * positional arguments into pos (at most maxpos, at least minpos; "--" ends

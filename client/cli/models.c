@@ -59,7 +59,11 @@ int cmd_models(struct cli *cli, int argc, char **argv)
     {
         char name[128], dims[32], feat[32], applied[32], ests[512] = "";
         fmt_json(name, sizeof name, json_get(m, "model"));
-        fmt_json(dims, sizeof dims, json_get(m, "dims"));
+        const cJSON *dj = json_get(m, "dims");
+        if (cJSON_IsArray(dj))
+            snprintf(dims, sizeof dims, "%d", cJSON_GetArraySize(dj));
+        else
+            fmt_json(dims, sizeof dims, dj);
         fmt_json(feat, sizeof feat, json_get(m, "features"));
         fmt_json(applied, sizeof applied, json_get(m, "applied"));
         const cJSON *e;
@@ -221,20 +225,34 @@ int cmd_show(struct cli *cli, int argc, char **argv)
             fmt_json(v, sizeof v, e);
             table_rowv(t, e->string, v);
         }
-    /* Ranges as [lo, hi] pairs, bases as "basis k=v". */
+    /* The dimensions (named: their count here, a table below), ranges as [lo, hi] pairs. */
+    struct mspec ms;
+    int have_ms = mspec_read(r, &ms) == 0;
+    if (have_ms && ms.named) {
+        char nd[32];
+        snprintf(nd, sizeof nd, "%zu", ms.dims);
+        table_rowv(t, "dims", nd);
+    }
     size_t n = 0;
     v[0] = 0;
-    cJSON_ArrayForEach(e, json_get(spec, "ranges"))
-    {
+    for (size_t d = 0; have_ms && d < ms.dims; d++) {
         char lo[32], hi[32];
-        fmt_json(lo, sizeof lo, cJSON_GetArrayItem(e, 0));
-        fmt_json(hi, sizeof hi, cJSON_GetArrayItem(e, 1));
+        fmt_num(lo, sizeof lo, ms.lo[d]);
+        fmt_num(hi, sizeof hi, ms.hi[d]);
         int w = snprintf(v + n, sizeof v - n, "%s[%s, %s]", n ? " " : "", lo, hi);
         if (w < 0 || (size_t)w >= sizeof v - n)
             break;
         n += (size_t)w;
     }
     table_rowv(t, "ranges", v);
+    /* How samples pair ("samples": {"reward": "next", "max_gap_periods": 3}). */
+    static const char *const skip_none[] = {NULL};
+    const cJSON *smp = json_get(spec, "samples");
+    if (cJSON_IsObject(smp)) {
+        fmt_params(v, sizeof v, smp, skip_none);
+        table_rowv(t, "samples", v);
+    }
+    /* Bases as "basis k=v". */
     static const char *const skip_basis[] = {"basis", NULL};
     cJSON_ArrayForEach(e, json_get(spec, "features"))
     {
@@ -247,6 +265,20 @@ int cmd_show(struct cli *cli, int argc, char **argv)
     }
     table_print(t, stdout);
     table_free(t);
+    if (have_ms && ms.named && (t = table_new(4))) {
+        table_rowv(t, "DIM", "NAME", "UNIT", "RANGE");
+        for (size_t d = 0; d < ms.dims; d++) {
+            char idx[16], lo[32], hi[32], rg[80];
+            snprintf(idx, sizeof idx, "%zu", d);
+            fmt_num(lo, sizeof lo, ms.lo[d]);
+            fmt_num(hi, sizeof hi, ms.hi[d]);
+            snprintf(rg, sizeof rg, "[%s, %s]", lo, hi);
+            table_rowv(t, idx, ms.name[d], ms.unit[d][0] ? ms.unit[d] : "-", rg);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
     t = table_new(3);
     if (t) {
         static const char *const skip_est[] = {"name", "kind", NULL};

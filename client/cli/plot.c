@@ -154,65 +154,87 @@ static int close_rename(FILE *f, const char *tmp, const char *path)
     return EXIT_OK;
 }
 
+/* "NAME=V,..." or "V1,V2,..." of --at into base (the other dimensions keep the middle). */
+static int parse_at(const struct mspec *ms, const char *at, double *base)
+{
+    char *copy = strdup(at), *save = NULL, *tok;
+    if (!copy)
+        return cli_error(EXIT_USAGE, "out of memory");
+    size_t k = 0;
+    int named = strchr(at, '=') != NULL, ex = EXIT_OK;
+    for (tok = strtok_r(copy, ",", &save); tok && ex == EXIT_OK;
+         tok = strtok_r(NULL, ",", &save), k++) {
+        char *eq = strchr(tok, '=');
+        if (named != (eq != NULL)) {
+            ex = cli_usage("plot", "--at takes X1,X2,... or NAME=X,..., not both");
+            break;
+        }
+        size_t d = k;
+        if (eq) {
+            *eq = 0;
+            long i = mspec_dim(ms, tok);
+            if (i < 0) {
+                char names[512];
+                mspec_names(ms, names, sizeof names);
+                ex = cli_usage("plot", "--at: no dimension \"%s\" (the model's dims: %s)", tok,
+                               names);
+                break;
+            }
+            d = (size_t)i;
+        } else if (k >= ms->dims) {
+            break;
+        }
+        if (parse_double(eq ? eq + 1 : tok, &base[d]))
+            ex = cli_usage("plot", "--at: \"%s\" is not a number", eq ? eq + 1 : tok);
+    }
+    if (ex == EXIT_OK && !named && (k != ms->dims || tok))
+        ex =
+            cli_usage("plot", "--at needs %zu values (one per dimension), or NAME=X,...", ms->dims);
+    free(copy);
+    return ex;
+}
+
 static int value_map(struct cli *cli, const char *model, const char *xs, const char *ys,
                      const char *at, const char *est, const char *grid_s, const char *out,
                      const char *hour)
 {
-    size_t dims;
-    long long hs = -1, hc = -1; /* --hour SIN,COS: the y axis is the hour of day */
-    cJSON *reply = NULL;
-    int ex = cli_model(cli, model, &dims, &reply);
+    struct mspec ms;
+    long hs = -1, hc = -1; /* --hour SIN,COS: the y axis is the hour of day */
+    int ex = cli_spec(cli, model, &ms, NULL);
     if (ex)
         return ex;
-    long long dx, dy, grid = 48;
+    size_t dims = ms.dims;
+    long dx, dy = -1;
+    long long grid = 48;
+    char names[512];
+    mspec_names(&ms, names, sizeof names);
     if (hour) {
-        char a[32], b[32];
-        if (sscanf(hour, "%31[^,],%31s", a, b) != 2 || parse_int(a, 0, (long long)dims - 1, &hs) ||
-            parse_int(b, 0, (long long)dims - 1, &hc) || hs == hc) {
-            cJSON_Delete(reply);
-            return cli_usage("plot", "--hour takes SIN_DIM,COS_DIM (two dimensions 0..%zu)",
-                             dims - 1);
-        }
+        char a[64], b[64];
+        if (sscanf(hour, "%63[^,],%63s", a, b) != 2 || (hs = mspec_dim(&ms, a)) < 0 ||
+            (hc = mspec_dim(&ms, b)) < 0 || hs == hc)
+            return cli_usage("plot",
+                             "--hour takes SIN_DIM,COS_DIM (two dimensions, by name or 0..%zu: "
+                             "%s)",
+                             dims - 1, names);
         dy = hs;
     }
-    if (parse_int(xs, 0, (long long)dims - 1, &dx) ||
-        (!hour && parse_int(ys, 0, (long long)dims - 1, &dy)) || dx == dy || dx == hc) {
-        cJSON_Delete(reply);
-        return cli_usage("plot", "--x and --y must be two different dimensions 0..%zu", dims - 1);
-    }
-    if (grid_s && parse_int(grid_s, 2, 400, &grid)) {
-        cJSON_Delete(reply);
+    if ((dx = mspec_dim(&ms, xs)) < 0 || (!hour && (dy = mspec_dim(&ms, ys)) < 0) || dx == dy ||
+        dx == hc)
+        return cli_usage("plot",
+                         "--x and --y must be two different dimensions, by name or 0..%zu (%s)",
+                         dims - 1, names);
+    if (grid_s && parse_int(grid_s, 2, 400, &grid))
         return cli_usage("plot", "--grid must be an integer 2..400");
-    }
     double lo[64], hi[64], base[64];
-    const cJSON *ranges =
-        cJSON_GetObjectItemCaseSensitive(cJSON_GetObjectItemCaseSensitive(reply, "spec"), "ranges");
-    size_t i = 0;
-    const cJSON *r;
-    cJSON_ArrayForEach(r, ranges)
-    {
-        if (i < 64 && cJSON_GetArraySize(r) == 2) {
-            lo[i] = cJSON_GetArrayItem(r, 0)->valuedouble;
-            hi[i] = cJSON_GetArrayItem(r, 1)->valuedouble;
-            base[i] = (lo[i] + hi[i]) / 2;
-        }
-        i++;
+    for (size_t i = 0; i < dims; i++) {
+        lo[i] = ms.lo[i];
+        hi[i] = ms.hi[i];
+        base[i] = (lo[i] + hi[i]) / 2;
+        if (!(hi[i] > lo[i]))
+            return cli_error(EXIT_SERVER, "model %s: its spec has no usable ranges", model);
     }
-    cJSON_Delete(reply);
-    if (i != dims || dims > 64)
-        return cli_error(EXIT_SERVER, "model %s: its spec has no usable ranges", model);
-    if (at) {
-        char *copy = strdup(at), *save = NULL, *tok = strtok_r(copy, ",", &save);
-        size_t k = 0;
-        for (; tok && k < dims; tok = strtok_r(NULL, ",", &save), k++)
-            if (parse_double(tok, &base[k])) {
-                free(copy);
-                return cli_usage("plot", "--at: \"%s\" is not a number", tok);
-            }
-        free(copy);
-        if (k != dims || tok)
-            return cli_usage("plot", "--at needs %zu values (one per dimension)", dims);
-    }
+    if (at && (ex = parse_at(&ms, at, base)))
+        return ex;
     if ((ex = cli_connect(cli)))
         return ex;
     size_t n = (size_t)(grid * grid);
@@ -277,8 +299,8 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
     }
     fprintf(f,
             " after seq %llu</text>\n<g class=\"cells\" shape-rendering=\"crispEdges\" "
-            "data-x-dim=\"%lld\" "
-            "data-y-dim=\"%lld\" data-x-lo=\"%.17g\" data-x-hi=\"%.17g\" data-y-lo=\"%.17g\" "
+            "data-x-dim=\"%ld\" "
+            "data-y-dim=\"%ld\" data-x-lo=\"%.17g\" data-x-hi=\"%.17g\" data-y-lo=\"%.17g\" "
             "data-y-hi=\"%.17g\">\n",
             (unsigned long long)seq, dx, dy, lo[dx], hi[dx], lo[dy], hi[dy]);
     double cw = (double)PW / (double)grid, ch = (double)PH / (double)grid;
@@ -295,9 +317,13 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
                     vals[k]);
         }
     fputs("</g>\n", f);
-    char xt[32], yt[32];
-    snprintf(xt, sizeof xt, "x[%lld]", dx);
-    snprintf(yt, sizeof yt, hour ? "hour of day" : "x[%lld]", dy);
+    char xt[128], yt[128], vt[64];
+    mspec_label(&ms, (size_t)dx, xt, sizeof xt);
+    if (hour)
+        snprintf(yt, sizeof yt, "hour of day (from %s, %s)", ms.name[hs], ms.name[hc]);
+    else
+        mspec_label(&ms, (size_t)dy, yt, sizeof yt);
+    mspec_vlabel(&ms, "V", vt, sizeof vt);
     axes(f, lo[dx], hi[dx], hour ? 0 : lo[dy], hour ? 24 : hi[dy], xt, yt);
     /* The colour bar, with ticks in value units. */
     int bx = PL + PW + 40, bw = 22;
@@ -323,15 +349,17 @@ static int value_map(struct cli *cli, const char *model, const char *xs, const c
                 bx + bw, py, bx + bw + 5, py, bx + bw + 8, py + 4, b);
     }
     fprintf(f,
-            "<text x=\"%d\" y=\"%d\" font-size=\"14\" text-anchor=\"middle\">V</text>\n</g>\n"
-            "</svg>\n",
+            "<text class=\"colourbar-title\" x=\"%d\" y=\"%d\" font-size=\"14\" "
+            "text-anchor=\"middle\">",
             bx + bw / 2, PT - 8);
+    xml(f, vt);
+    fputs("</text>\n</g>\n</svg>\n", f);
     free(states);
     free(vals);
     ex = close_rename(f, tmp, out);
     if (ex == EXIT_OK)
-        printf("wrote %s: V over x[%lld] x x[%lld], %lld x %lld cells, values %.4g .. %.4g\n", out,
-               dx, dy, grid, grid, vmin, vmax);
+        printf("wrote %s: %s over %s x %s, %lld x %lld cells, values %.4g .. %.4g\n", out, vt, xt,
+               yt, grid, grid, vmin, vmax);
     return ex;
 }
 
@@ -340,9 +368,12 @@ static const char *const PALETTE[] = {"#1b6ca8", "#d1495b", "#2e933c", "#edae49"
 
 static int history(struct cli *cli, const char *model, const char *out)
 {
-    int ex = cli_connect(cli);
+    struct mspec ms;
+    int ex = cli_spec(cli, model, &ms, NULL);
     if (ex)
         return ex;
+    char yt[160];
+    mspec_vlabel(&ms, "RMS error: TD (solid), realised return (dashed)", yt, sizeof yt);
     char req[200];
     snprintf(req, sizeof req, "{\"op\":\"history\",\"model\":\"%s\"}", model);
     const char *json;
@@ -391,8 +422,7 @@ static int history(struct cli *cli, const char *model, const char *out)
             W, H, W, H, W, H, W / 2);
     xml(f, model);
     fputs(" per estimator</text>\n", f);
-    axes(f, s0, s1, 0, y1 * 1.05, "transition (seq)",
-         "RMS error: TD (solid), realised return (dashed)");
+    axes(f, s0, s1, 0, y1 * 1.05, "transition (seq)", yt);
     for (int k = 0; k < ne; k++) {
         const char *name = cJSON_GetArrayItem(names, k)->valuestring;
         const char *col = PALETTE[k % 8];

@@ -18,10 +18,32 @@
 
 #include "cli.h"
 
-/* Values of the states of a CSV file (header x0.. or positional columns). */
-static int value_file(struct cli *cli, const char *model, const char *path, size_t dims,
+/*
+ * The dimension a states file's header cell names: the dimension's name,
+ * optionally followed by its unit in brackets ("level [m]", "level (m)"), or
+ * x<d> / x_<d>.  -1 for none.
+ */
+static long header_dim(const struct mspec *ms, const char *cell)
+{
+    for (size_t d = 0; d < ms->dims; d++) {
+        char a[32], b[32];
+        snprintf(a, sizeof a, "x%zu", d);
+        snprintf(b, sizeof b, "x_%zu", d);
+        if (strcmp(cell, a) == 0 || strcmp(cell, b) == 0)
+            return (long)d;
+        size_t n = strlen(ms->name[d]);
+        if (ms->named && strncmp(cell, ms->name[d], n) == 0 &&
+            (!cell[n] || (cell[n] == ' ' && (cell[n + 1] == '[' || cell[n + 1] == '('))))
+            return (long)d;
+    }
+    return -1;
+}
+
+/* Values of the states of a CSV file (a header naming the dimensions, or positional columns). */
+static int value_file(struct cli *cli, const char *model, const char *path, const struct mspec *ms,
                       const char *estimator)
 {
+    size_t dims = ms->dims;
     FILE *f = strcmp(path, "-") == 0 ? stdin : fopen(path, "r");
     if (!f)
         return cli_error(EXIT_USAGE, "%s: cannot open: %s", path, strerror(errno));
@@ -45,25 +67,30 @@ static int value_file(struct cli *cli, const char *model, const char *path, size
             have_cols = 1;
             double tmp;
             if (parse_double(cells[0], &tmp) != 0) {
-                /* A header: x0.. or x_0.. columns, else the first D columns by position. */
-                for (size_t d = 0; d < dims; d++) {
-                    char a[32], b[32];
-                    snprintf(a, sizeof a, "x%zu", d);
-                    snprintf(b, sizeof b, "x_%zu", d);
+                /* A header: the dimensions' names (or x0..), else the first D columns. */
+                size_t found = 0;
+                for (size_t d = 0; d < dims; d++)
                     col[d] = (size_t)-1;
-                    for (long k = 0; k < nc; k++)
-                        if (strcmp(cells[k], a) == 0 || strcmp(cells[k], b) == 0)
-                            col[d] = (size_t)k;
-                    if (col[d] == (size_t)-1) {
-                        if (d == 0) {
-                            for (size_t j = 0; j < dims; j++)
-                                col[j] = j;
-                            break;
-                        }
-                        ex = cli_error(EXIT_USAGE, "%s:%zu: no column %s (have x0..x%zu?)", path,
-                                       lineno, a, dims - 1);
-                        goto out;
+                for (long k = 0; k < nc; k++) {
+                    long d = header_dim(ms, cells[k]);
+                    if (d >= 0 && col[d] == (size_t)-1) {
+                        col[d] = (size_t)k;
+                        found++;
                     }
+                }
+                if (found == 0) {
+                    for (size_t j = 0; j < dims; j++)
+                        col[j] = j;
+                } else if (found < dims) {
+                    for (size_t d = 0; d < dims; d++)
+                        if (col[d] == (size_t)-1) {
+                            char names[512];
+                            mspec_names(ms, names, sizeof names);
+                            ex =
+                                cli_error(EXIT_USAGE, "%s:%zu: no column %s (the model's dims: %s)",
+                                          path, lineno, ms->name[d], names);
+                            goto out;
+                        }
                 }
                 continue;
             }
@@ -112,12 +139,16 @@ static int value_file(struct cli *cli, const char *model, const char *path, size
     }
     if (t) {
         const char *hdr[65];
-        char names[64][24];
+        static char names[65][100];
         for (size_t d = 0; d < dims; d++) {
-            snprintf(names[d], sizeof names[d], "x%zu", d);
+            if (ms->named)
+                mspec_label(ms, d, names[d], sizeof names[d]);
+            else
+                snprintf(names[d], sizeof names[d], "x%zu", d);
             hdr[d] = names[d];
         }
-        hdr[dims] = estimator ? estimator : "VALUE";
+        mspec_vlabel(ms, estimator ? estimator : "VALUE", names[dims], sizeof names[dims]);
+        hdr[dims] = names[dims];
         table_row(t, hdr);
     }
     double *vals = malloc((n < CHUNK ? n : CHUNK) * sizeof *vals);
@@ -193,18 +224,58 @@ int cmd_value(struct cli *cli, int argc, char **argv)
     if (file && np > 1)
         return cli_usage("value", "give the state either as values or with --file, not both");
     if (!file && np < 2)
-        return cli_usage("value", "missing the state (X1 X2 ... or --file STATES.csv)");
-    double x[64];
-    for (int i = 1; i < np; i++)
-        if (parse_double(pos[i], &x[i - 1]) != 0)
-            return cli_usage("value", "X%d \"%s\" is not a finite number", i, pos[i]);
-    size_t dims;
-    if ((ex = cli_model(cli, model, &dims, NULL)))
+        return cli_usage("value", "missing the state (X1 X2 ..., NAME=X ... or --file STATES.csv)");
+    /* The state: D numbers in order, or NAME=X for every dimension (checked before connecting). */
+    double v[64];
+    int named = 0;
+    for (int i = 1; i < np; i++) {
+        const char *eq = strchr(pos[i], '=');
+        if (i == 1)
+            named = eq != NULL;
+        else if (named != (eq != NULL))
+            return cli_usage("value", "give the state as X1 X2 ... or as NAME=X ..., not both");
+        const char *num = eq ? eq + 1 : pos[i];
+        if (eq && eq == pos[i])
+            return cli_usage("value", "\"%s\": a dimension's name must come before '='", pos[i]);
+        if (parse_double(num, &v[i - 1]) != 0)
+            return eq ? cli_usage("value", "%.*s: \"%s\" is not a finite number",
+                                  (int)(eq - pos[i]), pos[i], num)
+                      : cli_usage("value", "X%d \"%s\" is not a finite number", i, pos[i]);
+    }
+    struct mspec ms;
+    if ((ex = cli_spec(cli, model, &ms, NULL)))
         return ex;
+    size_t dims = ms.dims;
     if (file)
-        return value_file(cli, model, file, dims, estimator);
-    if ((size_t)(np - 1) != dims)
-        return cli_usage("value", "model %s has %zu dims, got %d values", model, dims, np - 1);
+        return value_file(cli, model, file, &ms, estimator);
+    double x[64];
+    if (named) {
+        int seen[64] = {0};
+        for (int i = 1; i < np; i++) {
+            char name[64];
+            snprintf(name, sizeof name, "%.*s", (int)(strchr(pos[i], '=') - pos[i]), pos[i]);
+            long d = -1;
+            for (size_t k = 0; k < dims; k++)
+                if (strcmp(ms.name[k], name) == 0)
+                    d = (long)k;
+            char names[512];
+            mspec_names(&ms, names, sizeof names);
+            if (d < 0)
+                return cli_usage("value", "model %s has no dimension \"%s\" (its dims: %s)", model,
+                                 name, names);
+            if (seen[d]++)
+                return cli_usage("value", "%s is given twice", name);
+            x[d] = v[i - 1];
+        }
+        for (size_t k = 0; k < dims; k++)
+            if (!seen[k])
+                return cli_usage("value", "missing %s=X (model %s has %zu dims: all are needed)",
+                                 ms.name[k], model, dims);
+    } else {
+        if ((size_t)(np - 1) != dims)
+            return cli_usage("value", "model %s has %zu dims, got %d values", model, dims, np - 1);
+        memcpy(x, v, dims * sizeof *x);
+    }
     if (cli->json) {
         cJSON *r = cli_request("value", model);
         cJSON *a = cJSON_CreateDoubleArray(x, (int)dims);
@@ -217,29 +288,53 @@ int cmd_value(struct cli *cli, int argc, char **argv)
             cJSON_AddStringToObject(r, "estimator", estimator);
         return cli_raw(cli, r);
     }
-    worth_value_t v;
-    memset(&v, 0, sizeof v);
-    int rc = worth_value(cli->c, model, x, dims, estimator, &v);
+    worth_value_t val;
+    memset(&val, 0, sizeof val);
+    int rc = worth_value(cli->c, model, x, dims, estimator, &val);
     if (rc)
         return cli_fail(cli, rc);
+    if (ms.named) {
+        /* The state as read: "level = 4.2 m, demand = 180 m3/h". */
+        fputs("state:", stdout);
+        for (size_t k = 0; k < dims; k++) {
+            char num[32];
+            fmt_num(num, sizeof num, x[k]);
+            printf("%s %s = %s%s%s", k ? "," : "", ms.name[k], num, ms.unit[k][0] ? " " : "",
+                   ms.unit[k]);
+        }
+        fputc('\n', stdout);
+    }
     struct table *t = table_new(3);
     if (!t)
         return cli_error(EXIT_USAGE, "out of memory");
-    char a[32], b[32];
-    table_rowv(t, "ESTIMATOR", "VALUE", "SD");
-    fmt_num(a, sizeof a, v.value);
-    fmt_num(b, sizeof b, v.sd);
+    char a[32], b[32], hv[64], hs[64];
+    mspec_vlabel(&ms, "VALUE", hv, sizeof hv);
+    mspec_vlabel(&ms, "SD", hs, sizeof hs);
+    table_rowv(t, "ESTIMATOR", hv, hs);
+    fmt_num(a, sizeof a, val.value);
+    fmt_num(b, sizeof b, val.sd);
     table_rowv(t, estimator ? estimator : "(primary)", a, b);
-    for (size_t i = 0; i < v.n && i < WORTH_MAX_ESTIMATORS; i++) {
-        fmt_num(a, sizeof a, v.values[i]);
+    for (size_t i = 0; i < val.n && i < WORTH_MAX_ESTIMATORS; i++) {
+        fmt_num(a, sizeof a, val.values[i]);
         char name[64];
-        snprintf(name, sizeof name, "%.63s", v.names[i]);
+        snprintf(name, sizeof name, "%.63s", val.names[i]);
         table_rowv(t, name, a, "");
     }
     table_print(t, stdout);
     table_free(t);
-    printf("(seq %llu)\n", (unsigned long long)v.seq);
+    printf("(seq %llu)\n", (unsigned long long)val.seq);
     return EXIT_OK;
+}
+
+/* Whether a figure of stats is in the reward's unit (TD errors, values, their spread). */
+static int in_reward_unit(const char *key)
+{
+    static const char *const keys[] = {"td_rms", "td_last",     "spread",     "bias",
+                                       "rms",    "bias_window", "rms_window", NULL};
+    for (const char *const *k = keys; *k; k++)
+        if (strcmp(*k, key) == 0)
+            return 1;
+    return 0;
 }
 
 int cmd_stats(struct cli *cli, int argc, char **argv)
@@ -248,6 +343,20 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
     int ex = cli_query(cli, "stats", argc, argv, worth_stats, &r);
     if (!r)
         return ex;
+    /* The reward's unit, for the figures in it (a model.get; none when it has no unit). */
+    struct mspec ms;
+    const char *model = json_get(r, "model") && cJSON_IsString(json_get(r, "model"))
+                            ? json_get(r, "model")->valuestring
+                            : NULL;
+    const char *json;
+    memset(&ms, 0, sizeof ms);
+    if (model && worth_model_info(cli->c, model, &json) == 0) {
+        cJSON *g = cJSON_Parse(json);
+        if (g && mspec_read(g, &ms) != 0)
+            memset(&ms, 0, sizeof ms);
+        cJSON_Delete(g);
+    }
+    const char *unit = ms.reward_unit;
     struct table *t = table_new(2);
     if (t)
         table_left(t);
@@ -269,6 +378,10 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
             continue;
         }
         fmt_json(v, sizeof v, e);
+        if (unit[0] && cJSON_IsNumber(e) && in_reward_unit(e->string)) {
+            size_t n = strlen(v);
+            snprintf(v + n, sizeof v - n, " %s", unit);
+        }
         table_rowv(t, e->string, v);
     }
     if (t)
@@ -299,10 +412,12 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         row[0] = "ESTIMATOR";
         for (size_t k = 0; k < nk; k++) {
             size_t j = 0;
-            for (; keys[k][j] && j < 63; j++)
+            for (; keys[k][j] && j < 40; j++)
                 cellbuf[k][j] =
                     (char)(keys[k][j] >= 'a' && keys[k][j] <= 'z' ? keys[k][j] - 32 : keys[k][j]);
             cellbuf[k][j] = 0;
+            if (unit[0] && in_reward_unit(keys[k]))
+                snprintf(cellbuf[k] + j, sizeof cellbuf[k] - j, " [%.20s]", unit);
             row[k + 1] = cellbuf[k];
         }
         table_row(t, row);
@@ -331,7 +446,11 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
     /* Realised returns: how each estimator's predictions compared with what happened. */
     t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
     if (t) {
-        table_rowv(t, "REALISED", "N", "BIAS", "RMS", "BIAS_WINDOW", "RMS_WINDOW");
+        char h[4][64];
+        static const char *const hk[4] = {"BIAS", "RMS", "BIAS_WINDOW", "RMS_WINDOW"};
+        for (int k = 0; k < 4; k++)
+            mspec_vlabel(&ms, hk[k], h[k], sizeof h[k]);
+        table_rowv(t, "REALISED", "N", h[0], h[1], h[2], h[3]);
         cJSON_ArrayForEach(e, ests)
         {
             const cJSON *re = json_get(e, "realised");
@@ -360,8 +479,12 @@ int cmd_events(struct cli *cli, int argc, char **argv)
         return ex;
     double sv = 0;
     long long lv = 1000;
-    if (since && parse_double(since, &sv))
-        return cli_usage("events", "--since must be a time in seconds since 1970");
+    char why[300];
+    if (since && parse_time(since, &sv, why, sizeof why))
+        return cli_usage("events",
+                         "--since must be a time: seconds since 1970 or ISO-8601 with a zone "
+                         "(%s)",
+                         why);
     if (limit && parse_int(limit, 1, 100000, &lv))
         return cli_usage("events", "--limit must be an integer 1..100000");
     cJSON *req = cJSON_CreateObject();

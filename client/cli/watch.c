@@ -33,7 +33,8 @@ static double getnum(const cJSON *o, const char *k)
 }
 
 /* Draws one refresh; returns EXIT_OK or the error exit. */
-static int draw(struct cli *cli, const char *model, int tty, double *last_t, double *last_n)
+static int draw(struct cli *cli, const char *model, const struct mspec *ms, int tty, double *last_t,
+                double *last_n)
 {
     const char *json;
     int rc = worth_stats(cli->c, model, &json);
@@ -49,7 +50,19 @@ static int draw(struct cli *cli, const char *model, int tty, double *last_t, dou
     if (tty)
         fputs("\033[H\033[2J", stdout); /* home, clear */
     char a[64], b[64], c[64], d[64], e[64], f[64];
-    printf("worth watch %s   (q quits)\n\n", model);
+    printf("worth watch %s   (q quits)\n", model);
+    if (ms->named) {
+        fputs("dims:", stdout);
+        for (size_t d = 0; d < ms->dims; d++) {
+            char l[128];
+            mspec_label(ms, d, l, sizeof l);
+            printf("%s %s", d ? "," : "", l);
+        }
+        fputc('\n', stdout);
+    }
+    if (ms->reward_unit[0])
+        printf("values, rewards and errors in %s\n", ms->reward_unit);
+    fputc('\n', stdout);
     fmt_num(a, sizeof a, getnum(r, "received"));
     fmt_num(b, sizeof b, getnum(r, "applied"));
     fmt_num(c, sizeof c, getnum(r, "queue"));
@@ -64,8 +77,11 @@ static int draw(struct cli *cli, const char *model, int tty, double *last_t, dou
            getnum(dr, "alarms") > 0 ? "   << DRIFT: consider a rollback" : "");
     struct table *tb = table_new(7);
     if (tb) {
-        table_rowv(tb, "estimator", "kind", "updates", "td_rms", "td_last", "guarded",
-                   "realised_rms");
+        char h[3][64];
+        mspec_vlabel(ms, "td_rms", h[0], sizeof h[0]);
+        mspec_vlabel(ms, "td_last", h[1], sizeof h[1]);
+        mspec_vlabel(ms, "realised_rms", h[2], sizeof h[2]);
+        table_rowv(tb, "estimator", "kind", "updates", h[0], h[1], "guarded", h[2]);
         const cJSON *est;
         cJSON_ArrayForEach(est, cJSON_GetObjectItemCaseSensitive(r, "estimators"))
         {
@@ -104,7 +120,8 @@ int cmd_watch(struct cli *cli, int argc, char **argv)
         return cli_usage("watch", "--every must be 0.05..3600 seconds");
     if (count_s && parse_int(count_s, 1, 1000000000, &count))
         return cli_usage("watch", "--count must be a positive integer");
-    if ((ex = cli_connect(cli)))
+    struct mspec ms;
+    if ((ex = cli_spec(cli, pos[0], &ms, NULL)))
         return ex;
     int tty = isatty(STDIN_FILENO) && isatty(STDOUT_FILENO);
     struct termios saved;
@@ -118,7 +135,7 @@ int cmd_watch(struct cli *cli, int argc, char **argv)
     }
     double last_t = 0, last_n = 0;
     for (long long k = 0; count < 0 || k < count; k++) {
-        if ((ex = draw(cli, pos[0], tty, &last_t, &last_n)))
+        if ((ex = draw(cli, pos[0], &ms, tty, &last_t, &last_n)))
             break;
         if (count >= 0 && k + 1 >= count)
             break;
