@@ -207,6 +207,8 @@ int cmd_help(struct cli *cli, int argc, char **argv);
  * quote, -2 when out of memory.
  */
 long csv_split(char *line, char ***cells, size_t *cap);
+/* The same with another separator than ',' (e.g. ';' or '\t'; not '"', not NUL). */
+long csv_split_sep(char *line, char sep, char ***cells, size_t *cap);
 
 /* table.c: an aligned text table; numbers right-aligned, text left-aligned. */
 struct table;

@@ -1,7 +1,8 @@
 /*
  * csv.c - splits one CSV line into cells, in place.
  *
- * Used by `feed` and `value --file`.  RFC 4180 quoting within one line: a
+ * Used by `feed` and `value --file`; the separator is ',' or one the user
+ * names (`feed --delimiter ';'`).  RFC 4180 quoting within one line: a
  * quoted cell may hold commas and doubled quotes, but not a newline (XXX: a
  * quoted cell spanning lines is reported as an unterminated quote; numeric
  * data never needs one).  Owns nothing but the pointer array it grows.
@@ -11,12 +12,18 @@
 
 #include "cli.h"
 
-static int is_blank(char ch)
+/* A blank around a cell: a space, or a tab unless tabs separate the cells. */
+static int is_blank(char ch, char sep)
 {
-    return ch == ' ' || ch == '\t';
+    return ch == ' ' || (ch == '\t' && sep != '\t');
 }
 
 long csv_split(char *line, char ***cells, size_t *cap)
+{
+    return csv_split_sep(line, ',', cells, cap);
+}
+
+long csv_split_sep(char *line, char sep_ch, char ***cells, size_t *cap)
 {
     size_t len = strlen(line);
     while (len > 0 && (line[len - 1] == '\n' || line[len - 1] == '\r'))
@@ -32,7 +39,7 @@ long csv_split(char *line, char ***cells, size_t *cap)
             *cells = g;
             *cap = nc;
         }
-        while (is_blank(*p))
+        while (is_blank(*p, sep_ch))
             p++;
         char *cell = p, *end;
         if (*p == '"') {
@@ -54,22 +61,22 @@ long csv_split(char *line, char ***cells, size_t *cap)
                 *w++ = *p++;
             }
             end = w;
-            while (is_blank(*p))
+            while (is_blank(*p, sep_ch))
                 p++;
-            /* Text after the closing quote and before the comma is kept out of the cell. */
-            while (*p && *p != ',')
+            /* Text after the closing quote and before the separator is kept out of the cell. */
+            while (*p && *p != sep_ch)
                 p++;
         } else {
-            while (*p && *p != ',')
+            while (*p && *p != sep_ch)
                 p++;
             end = p;
-            while (end > cell && is_blank(end[-1]))
+            while (end > cell && is_blank(end[-1], sep_ch))
                 end--;
         }
         char sep = *p;
         *end = 0;
         (*cells)[n++] = cell;
-        if (sep != ',')
+        if (sep != sep_ch || !sep)
             break;
         p++;
     }
