@@ -19,8 +19,8 @@ enum event_kind {
                     steps; text: why it was cut short, or NULL; owned) */
     EV_EXITED,   /* the learner thread has ended; join it */
     EV_REPLY,    /* a reply for conn_id: rc, and text (owned by the event) */
-    EV_DURABLE,  /* the model's records up to seq are committed */
-    EV_FAILED,   /* the model's records up to seq failed to commit (text: why, owned) */
+    EV_DURABLE,  /* the model's records before queue position seq are committed */
+    EV_FAILED,   /* its records before position seq failed to commit (text: why, owned) */
     EV_RELEASED  /* the writer has forgotten the model */
 };
 

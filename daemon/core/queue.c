@@ -136,6 +136,11 @@ uint64_t queue_last_seq(const struct queue *q)
     return q->seq;
 }
 
+uint64_t queue_position(const struct queue *q)
+{
+    return q->head; /* written only by the loop thread, which asks */
+}
+
 void queue_pending(struct queue *q, uint64_t *from, uint64_t *to)
 {
     pthread_mutex_lock(&q->mu);

@@ -35,7 +35,9 @@ enum {
     QREC_TRAIN = 2,      /* a train request (estimator name in src) */
     QREC_CHECKPOINT = 3, /* a checkpoint request (label in src when est = 1) */
     QREC_ROLLBACK = 4,   /* a rollback request (plan in job) */
-    QREC_DEAD = 5        /* a record whose commit failed: skipped */
+    QREC_DEAD = 5,       /* a record whose commit failed: skipped */
+    QREC_SAMPLE = 6      /* a sample, now its source's last (t_s, v, r, terminal, src): logged
+                            in the sources table, not learnt */
 };
 
 /* Plain data: a rollback, filled by the loop, then the writer, then used by the learner. */
@@ -65,6 +67,7 @@ typedef struct queue_rec_t {
     uint32_t passes;   /* TRAIN */
     uint32_t last;     /* 1 on the last record of a request (a commit never splits one) */
     uint64_t conn_id;  /* TRAIN, CHECKPOINT, ROLLBACK: who gets the reply */
+    uint64_t pseq;     /* OBS: the producer's sequence (0: none), kept per source */
     queue_plan_t *job; /* ROLLBACK */
     char src[MODEL_NAME_MAX + 1]; /* OBS: source; TRAIN: estimator; CHECKPOINT: label */
     double v[];
@@ -102,6 +105,11 @@ uint64_t queue_commit(struct queue *q, size_t k);
 void queue_want_space(struct queue *q);
 /* Returns the seq of the last accepted transition. */
 uint64_t queue_last_seq(const struct queue *q);
+/*
+ * Returns the queue position after the last committed record: a request's
+ * records are durable once the writer's EV_DURABLE position reaches it.
+ */
+uint64_t queue_position(const struct queue *q);
 
 /* Writer side [writer] */
 

@@ -35,35 +35,14 @@
 #include <string.h>
 
 #include "common/fail.h"
+#include "core/spec_impl.h"
 #include "common/mem.h"
 #include "worth/errors.h"
 
-/* Longest field path in a message, e.g. "estimators[15].steps_per_obs". */
-#define PATH_MAX_LEN 96
-/* Longest path of an array element, e.g. "estimators[15]" (any size_t index fits). */
-#define ELEM_MAX_LEN 40
 /* Largest seed accepted: above 2^53 a JSON number no longer holds every integer. */
 #define SEED_MAX 9007199254740992.0
-/* Bytes of a client's key or value echoed in a message. */
-#define SHOW_MAX 32
 
-enum ftype {
-    F_OTHER,  /* parsed by hand */
-    F_DOUBLE, /* a finite double */
-    F_UINT,   /* an integer that fits an unsigned */
-    F_U64,    /* an integer 0..SEED_MAX into a uint64_t */
-    F_GUARD   /* "regularise", "trace" or "none" */
-};
 
-/* One field of an object: its JSON name and, for parameters, where it goes. */
-struct field {
-    const char *name;
-    enum ftype type;
-    size_t off;     /* offset in feat_basis_t or est_params_t */
-    unsigned kinds; /* bit k: the field applies to basis or estimator kind k */
-    int required;   /* bases only: 1 when the basis has no default for it */
-    double lo, hi;  /* F_UINT: allowed integers; hi < 0 means "up to dims" */
-};
 
 static const struct field top_fields[] = {
     {"op", F_OTHER, 0, 0, 0, 0, 0},          {"id", F_OTHER, 0, 0, 0, 0, 0},
@@ -72,7 +51,8 @@ static const struct field top_fields[] = {
     {"ranges", F_OTHER, 0, 0, 0, 0, 0},      {"features", F_OTHER, 0, 0, 0, 0, 0},
     {"estimators", F_OTHER, 0, 0, 0, 0, 0},  {"primary", F_OTHER, 0, 0, 0, 0, 0},
     {"max_sources", F_OTHER, 0, 0, 0, 0, 0}, {"max_features", F_OTHER, 0, 0, 0, 0, 0},
-    {"diagnostics", F_OTHER, 0, 0, 0, 0, 0},
+    {"diagnostics", F_OTHER, 0, 0, 0, 0, 0}, {"reward_unit", F_OTHER, 0, 0, 0, 0, 0},
+    {"period_s", F_OTHER, 0, 0, 0, 0, 0},    {"samples", F_OTHER, 0, 0, 0, 0, 0},
 };
 #define NTOP (sizeof top_fields / sizeof top_fields[0])
 
@@ -134,7 +114,7 @@ static const char *const guard_names[] = {"regularise", "trace", "none"};
  * become '?'), so an echoed key can neither break the reply's UTF-8 nor run
  * on for a megabyte.
  */
-static const char *show(const char *s, char *buf)
+const char *spec_show(const char *s, char *buf)
 {
     size_t i = 0;
     for (; s[i] && i < SHOW_MAX; i++) {
@@ -162,7 +142,7 @@ static int find_field(const struct field *t, size_t n, const char *name)
  * twice: cJSON keeps both copies and a lookup would silently see the first.
  * Linear in the number of keys, since an unknown key stops the scan.
  */
-static int check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path,
+int spec_check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path,
                       char *err, size_t errlen)
 {
     uint32_t seen = 0;
@@ -173,7 +153,7 @@ static int check_keys(const cJSON *obj, const struct field *t, size_t n, const c
         int i = it->string ? find_field(t, n, it->string) : -1;
         if (i < 0)
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: unknown field \"%s\"", path,
-                            show(it->string ? it->string : "", sb));
+                            spec_show(it->string ? it->string : "", sb));
         if (seen & (1u << i))
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s: field \"%s\" appears twice",
                             path, t[i].name);
@@ -183,7 +163,7 @@ static int check_keys(const cJSON *obj, const struct field *t, size_t n, const c
 }
 
 /* A number: missing or of another type is bad_request; null, a string or non-finite bad_number. */
-static int get_double(const cJSON *it, const char *path, double *out, char *err, size_t errlen)
+int spec_get_double(const cJSON *it, const char *path, double *out, char *err, size_t errlen)
 {
     if (!it)
         return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
@@ -202,7 +182,7 @@ static int get_int(const cJSON *it, const char *path, double lo, double hi, uint
                    char *err, size_t errlen)
 {
     double v = 0;
-    int rc = get_double(it, path, &v, err, errlen);
+    int rc = spec_get_double(it, path, &v, err, errlen);
     if (rc)
         return rc;
     if (v != floor(v) || v < lo || v > hi)
@@ -213,7 +193,7 @@ static int get_int(const cJSON *it, const char *path, double lo, double hi, uint
 }
 
 /* A string field; missing or not a string is bad_request. */
-static int get_string(const cJSON *it, const char *path, const char **out, char *err, size_t errlen)
+int spec_get_string(const cJSON *it, const char *path, const char **out, char *err, size_t errlen)
 {
     if (!it)
         return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s is required", path);
@@ -234,7 +214,7 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
     int rc;
     switch (f->type) {
     case F_DOUBLE:
-        if ((rc = get_double(it, path, &d, err, errlen)))
+        if ((rc = spec_get_double(it, path, &d, err, errlen)))
             return rc;
         memcpy(p, &d, sizeof d);
         return 0;
@@ -250,7 +230,7 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
         memcpy(p, &u, sizeof u);
         return 0;
     case F_GUARD:
-        if ((rc = get_string(it, path, &s, err, errlen)))
+        if ((rc = spec_get_string(it, path, &s, err, errlen)))
             return rc;
         for (size_t g = 0; g < sizeof guard_names / sizeof guard_names[0]; g++) {
             if (strcmp(s, guard_names[g]) == 0) {
@@ -320,10 +300,10 @@ static int parse_ranges(const cJSON *req, spec_t *s, size_t dims, char *err, siz
                             i);
         int rc;
         snprintf(path, sizeof path, "ranges[%zu][0]", i);
-        if ((rc = get_double(pair->child, path, &s->lo[i], err, errlen)))
+        if ((rc = spec_get_double(pair->child, path, &s->lo[i], err, errlen)))
             return rc;
         snprintf(path, sizeof path, "ranges[%zu][1]", i);
-        if ((rc = get_double(pair->child->next, path, &s->hi[i], err, errlen)))
+        if ((rc = spec_get_double(pair->child->next, path, &s->hi[i], err, errlen)))
             return rc;
         if (!(s->lo[i] < s->hi[i]))
             return err_fail(err, errlen, WORTH_E_BAD_PARAM, "ranges[%zu]: lo must be below hi", i);
@@ -357,18 +337,18 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
         snprintf(path, sizeof path, "features[%zu]", i);
         if (!cJSON_IsObject(b))
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
-        if ((rc = check_keys(b, basis_fields, NBASISF, path, err, errlen)))
+        if ((rc = spec_check_keys(b, basis_fields, NBASISF, path, err, errlen)))
             return rc;
         const char *name = NULL;
         snprintf(fp, sizeof fp, "%s.basis", path);
-        if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(b, "basis"), fp, &name, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(b, "basis"), fp, &name, err, errlen)))
             return rc;
         size_t k = 0;
         while (k < NBASIS && strcmp(name, basis_names[k]) != 0)
             k++;
         if (k == NBASIS)
             return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown basis \"%s\"", fp,
-                            show(name, sb));
+                            spec_show(name, sb));
         feat_basis_t *fb = &s->bases[i];
         fb->kind = (enum feat_kind)k;
         char what[32];
@@ -407,11 +387,11 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
         snprintf(path, sizeof path, "estimators[%zu]", i);
         if (!cJSON_IsObject(e))
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "%s must be an object", path);
-        if ((rc = check_keys(e, est_fields, NESTF, path, err, errlen)))
+        if ((rc = spec_check_keys(e, est_fields, NESTF, path, err, errlen)))
             return rc;
         const char *name = NULL, *kname = NULL; /* set before use; -O3 cannot see it */
         snprintf(fp, sizeof fp, "%s.name", path);
-        if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(e, "name"), fp, &name, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "name"), fp, &name, err, errlen)))
             return rc;
         size_t len = strlen(name);
         if (len < 1 || len > MODEL_NAME_MAX)
@@ -421,16 +401,16 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
             if (strcmp(name, s->est_names[j]) == 0)
                 return err_fail(err, errlen, WORTH_E_BAD_PARAM,
                                 "%s: \"%s\" is already the name of estimators[%zu]", fp,
-                                show(name, sb), j);
+                                spec_show(name, sb), j);
         memcpy(s->est_names[i], name, len + 1);
         s->est_name_ptrs[i] = s->est_names[i];
         snprintf(fp, sizeof fp, "%s.kind", path);
-        if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(e, "kind"), fp, &kname, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "kind"), fp, &kname, err, errlen)))
             return rc;
         int k = est_kind_parse(kname);
         if (k < 0)
             return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s: unknown kind \"%s\"", fp,
-                            show(kname, sb));
+                            spec_show(kname, sb));
         est_params_default((enum est_kind)k, &s->est[i]);
         char what[32];
         snprintf(what, sizeof what, "kind %s", est_kind_name((enum est_kind)k));
@@ -468,14 +448,14 @@ static int add_raw(cJSON *obj, const char *key, const char *text)
     return 0;
 }
 
-static int add_double(cJSON *obj, const char *key, double v)
+int spec_add_double(cJSON *obj, const char *key, double v)
 {
     char buf[40];
     fmt_double(v, buf, sizeof buf);
     return add_raw(obj, key, buf);
 }
 
-static int add_u64(cJSON *obj, const char *key, uint64_t v)
+int spec_add_u64(cJSON *obj, const char *key, uint64_t v)
 {
     char buf[24];
     snprintf(buf, sizeof buf, "%" PRIu64, v);
@@ -498,15 +478,15 @@ static int add_params(cJSON *obj, const struct field *t, size_t n, size_t first,
         switch (t[i].type) {
         case F_DOUBLE:
             memcpy(&d, p, sizeof d);
-            bad |= add_double(obj, t[i].name, d);
+            bad |= spec_add_double(obj, t[i].name, d);
             break;
         case F_UINT:
             memcpy(&u, p, sizeof u);
-            bad |= add_u64(obj, t[i].name, u);
+            bad |= spec_add_u64(obj, t[i].name, u);
             break;
         case F_U64:
             memcpy(&q, p, sizeof q);
-            bad |= add_u64(obj, t[i].name, q);
+            bad |= spec_add_u64(obj, t[i].name, q);
             break;
         case F_GUARD:
             memcpy(&g, p, sizeof g);
@@ -533,12 +513,14 @@ static char *canonical(const spec_t *s)
     if (!root)
         return NULL;
     bad |= cJSON_AddStringToObject(root, "model", s->name) ? 0 : -1;
-    bad |= add_u64(root, "dims", m->feat.dims);
-    bad |= add_double(root, "gamma", m->gamma);
+    const spec_meta_t *mt = &s->meta;
+    bad |= spec_print_dims(root, s);
+    bad |= spec_add_double(root, "gamma", m->gamma);
     if (m->gamma_per_s != 0)
-        bad |= add_double(root, "gamma_per_s", m->gamma_per_s);
-    cJSON *ranges = cJSON_AddArrayToObject(root, "ranges");
-    bad |= ranges ? 0 : -1;
+        bad |= spec_add_double(root, "gamma_per_s", m->gamma_per_s);
+    bad |= spec_print_plant(root, s);
+    cJSON *ranges = mt->named ? NULL : cJSON_AddArrayToObject(root, "ranges");
+    bad |= ranges || mt->named ? 0 : -1;
     for (size_t i = 0; ranges && i < m->feat.dims; i++) {
         cJSON *pair = cJSON_CreateArray();
         if (!pair || !cJSON_AddItemToArray(ranges, pair)) {
@@ -546,8 +528,8 @@ static char *canonical(const spec_t *s)
             bad = -1;
             break;
         }
-        bad |= add_double(pair, NULL, s->lo[i]);
-        bad |= add_double(pair, NULL, s->hi[i]);
+        bad |= spec_add_double(pair, NULL, s->lo[i]);
+        bad |= spec_add_double(pair, NULL, s->hi[i]);
     }
     cJSON *feats = cJSON_AddArrayToObject(root, "features");
     bad |= feats ? 0 : -1;
@@ -576,16 +558,16 @@ static char *canonical(const spec_t *s)
         bad |= add_params(e, est_fields, NESTF, 2, s->est[i].kind, &s->est[i]);
     }
     bad |= cJSON_AddStringToObject(root, "primary", s->est_names[m->primary]) ? 0 : -1;
-    bad |= add_u64(root, "max_sources", m->max_sources);
-    bad |= add_u64(root, "max_features", m->feat.max_features);
+    bad |= spec_add_u64(root, "max_sources", m->max_sources);
+    bad |= spec_add_u64(root, "max_features", m->feat.max_features);
     cJSON *dg = cJSON_AddObjectToObject(root, "diagnostics");
     bad |= dg ? 0 : -1;
     if (dg) {
-        bad |= add_u64(dg, "horizon", s->diag.horizon);
-        bad |= add_u64(dg, "window", s->diag.window);
-        bad |= add_double(dg, "drift_delta", s->diag.delta);
-        bad |= add_double(dg, "drift_lambda", s->diag.lambda);
-        bad |= add_u64(dg, "drift_burn_in", s->diag.burn_in);
+        bad |= spec_add_u64(dg, "horizon", s->diag.horizon);
+        bad |= spec_add_u64(dg, "window", s->diag.window);
+        bad |= spec_add_double(dg, "drift_delta", s->diag.delta);
+        bad |= spec_add_double(dg, "drift_lambda", s->diag.lambda);
+        bad |= spec_add_u64(dg, "drift_burn_in", s->diag.burn_in);
         bad |= cJSON_AddStringToObject(dg, "on_drift", s->diag.on_drift ? "checkpoint" : "none")
                    ? 0
                    : -1;
@@ -649,7 +631,7 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
                 s->diag.burn_in = (unsigned)u;
         } else if (strcmp(f->string, "drift_delta") == 0 ||
                    strcmp(f->string, "drift_lambda") == 0) {
-            if ((rc = get_double(f, path, &v, err, errlen)))
+            if ((rc = spec_get_double(f, path, &v, err, errlen)))
                 return rc;
             if (strcmp(f->string, "drift_delta") == 0)
                 s->diag.delta = v;
@@ -679,10 +661,10 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
 
     if (!cJSON_IsObject(req))
         return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "request must be a JSON object");
-    if ((rc = check_keys(req, top_fields, NTOP, "request", err, errlen)))
+    if ((rc = spec_check_keys(req, top_fields, NTOP, "request", err, errlen)))
         return rc;
 
-    if ((rc = get_string(cJSON_GetObjectItemCaseSensitive(req, "model"), "model", &name, err,
+    if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(req, "model"), "model", &name, err,
                          errlen)))
         return rc;
     if (!spec_name_ok(name))
@@ -690,29 +672,42 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
                         "model must be 1..%d bytes of [A-Za-z0-9._-]", MODEL_NAME_MAX);
     memcpy(s->name, name, strlen(name) + 1);
 
-    /* dims: bad_param below 1 or fractional, too_large above the hard limit. */
-    if ((rc = get_double(cJSON_GetObjectItemCaseSensitive(req, "dims"), "dims", &d, err, errlen)))
-        return rc;
-    if (d != floor(d) || d < 1)
-        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be an integer >= 1");
-    if (d > FEAT_MAX_DIMS)
-        return err_fail(err, errlen, WORTH_E_TOO_LARGE, "dims must be at most %d", FEAT_MAX_DIMS);
-    size_t dims = (size_t)d;
+    /* dims: a count, or named dimensions carrying their ranges. */
+    const cJSON *dj = cJSON_GetObjectItemCaseSensitive(req, "dims");
+    size_t dims;
+    if (cJSON_IsArray(dj)) {
+        if ((rc = spec_parse_named_dims(req, dj, s, err, errlen)))
+            return rc;
+        dims = s->meta.dims;
+    } else {
+        /* bad_param below 1 or fractional, too_large above the hard limit. */
+        if ((rc = spec_get_double(dj, "dims", &d, err, errlen)))
+            return rc;
+        if (d != floor(d) || d < 1)
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "dims must be an integer >= 1");
+        if (d > FEAT_MAX_DIMS)
+            return err_fail(err, errlen, WORTH_E_TOO_LARGE, "dims must be at most %d",
+                            FEAT_MAX_DIMS);
+        dims = (size_t)d;
+        s->meta.dims = dims;
+    }
     s->m.feat.dims = dims;
 
-    if ((rc = get_double(cJSON_GetObjectItemCaseSensitive(req, "gamma"), "gamma", &s->m.gamma, err,
+    if ((rc = spec_get_double(cJSON_GetObjectItemCaseSensitive(req, "gamma"), "gamma", &s->m.gamma, err,
                          errlen)))
         return rc;
     if (!(s->m.gamma >= 0 && s->m.gamma <= 1))
         return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "gamma_per_s"))) {
-        if ((rc = get_double(it, "gamma_per_s", &s->m.gamma_per_s, err, errlen)))
+        if ((rc = spec_get_double(it, "gamma_per_s", &s->m.gamma_per_s, err, errlen)))
             return rc;
         if (!(s->m.gamma_per_s > 0 && s->m.gamma_per_s <= 1))
             return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma_per_s must be in (0, 1]");
     }
 
-    if ((rc = parse_ranges(req, s, dims, err, errlen)))
+    if (!s->meta.named && (rc = parse_ranges(req, s, dims, err, errlen)))
+        return rc;
+    if ((rc = spec_parse_plant(req, s, err, errlen)))
         return rc;
 
     /* Read before features: it bounds the number of bases. */
@@ -735,14 +730,14 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
     s->m.primary = 0;
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "primary"))) {
         char sb[SHOW_MAX + 4];
-        if ((rc = get_string(it, "primary", &name, err, errlen)))
+        if ((rc = spec_get_string(it, "primary", &name, err, errlen)))
             return rc;
         size_t i = 0;
         while (i < s->m.n_est && strcmp(name, s->est_names[i]) != 0)
             i++;
         if (i == s->m.n_est)
             return err_fail(err, errlen, WORTH_E_BAD_PARAM, "primary: no estimator is named \"%s\"",
-                            show(name, sb));
+                            spec_show(name, sb));
         s->m.primary = i;
     }
 

@@ -15,6 +15,25 @@
 
 #include "learn/model.h"
 
+/* Longest dimension unit or reward unit, in bytes, without the NUL. */
+#define SPEC_UNIT_MAX 31
+
+/*
+ * Plain data: what a person reads about a model, and how its samples pair
+ * into transitions (schema/protocol.md, "Samples").  Copied into the model's
+ * learner; read on the loop thread.
+ */
+typedef struct spec_meta_t {
+    size_t dims;
+    int named;                                     /* the dimensions have names */
+    char names[FEAT_MAX_DIMS][MODEL_NAME_MAX + 1]; /* "" when not named */
+    char units[FEAT_MAX_DIMS][SPEC_UNIT_MAX + 1];  /* "" when none */
+    char reward_unit[SPEC_UNIT_MAX + 1];           /* "" when none */
+    double period_s;                               /* the control period; 0 when not given */
+    int reward_same; /* samples: r is what the step starting at it earns (else: ending at it) */
+    double max_gap_s; /* samples further apart break the chain; INFINITY: none */
+} spec_meta_t;
+
 /* Plain data, owned by the caller of spec_parse; free with spec_free. */
 typedef struct spec_t {
     char name[MODEL_NAME_MAX + 1]; /* the model's name */
@@ -26,6 +45,7 @@ typedef struct spec_t {
     const char **est_name_ptrs; /* m.est_names points here */
     char *canonical;            /* owned JSON text of the spec, defaults filled in */
     diag_params_t diag;         /* m.diag points here */
+    spec_meta_t meta;           /* names, units, control period, sample pairing */
 } spec_t;
 
 /*
@@ -49,5 +69,7 @@ void spec_free(spec_t *s);
 
 /* Returns 1 when name is a valid model name: 1..63 bytes of [A-Za-z0-9._-]. */
 int spec_name_ok(const char *name);
+/* Returns the index of the dimension named name in meta, or -1. */
+int spec_dim_find(const spec_meta_t *meta, const char *name);
 
 #endif /* WORTH_SPEC_H */

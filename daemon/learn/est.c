@@ -260,12 +260,21 @@ void est_ring_flush(struct est *e, struct ring *q)
     ring_clear(q);
 }
 
+/*
+ * 1 when all n doubles are finite.  x * 0 is 0 for every finite x and NaN for
+ * an infinity or a NaN, so the sum of them all is NaN exactly when one is not
+ * finite: a branch-free reduction the compiler vectorises (its order may
+ * change the sum, never whether it is NaN).  This runs three times per
+ * update (phi, phi', and the weights for the divergence rule), so it must
+ * cost little beside the update itself.
+ */
 static int finite_vec(const double *v, size_t n)
 {
+    double acc = 0.0;
+#pragma omp simd reduction(+ : acc)
     for (size_t i = 0; i < n; i++)
-        if (!isfinite(v[i]))
-            return 0;
-    return 1;
+        acc += v[i] * 0.0;
+    return acc == 0.0;
 }
 
 int est_train_cancelled(const est_train_opts_t *o)

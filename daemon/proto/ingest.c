@@ -154,7 +154,7 @@ static void ack_observe(struct proto *p, struct conn *c, const char *id, struct 
         return;
     }
     jw_lit(o, ",\"durable\":true}\n");
-    reply_durable(p, c, reg_slot_of(p, learner_queue(l)), seq, id);
+    reply_durable(p, c, reg_slot_of(p, learner_queue(l)), queue_position(learner_queue(l)), id);
 }
 
 int do_observe(struct req *rq)

@@ -24,7 +24,7 @@ struct slot;
  * are not durable yet). */
 struct proto_ack {
     struct slot *slot; /* NULL: ready now */
-    uint64_t seq;      /* ready once slot's durable seq reaches it */
+    uint64_t seq;      /* ready once slot's durable queue position reaches it (0: failed) */
     size_t off, len;   /* the reply's text in the connection's ack buffer */
     size_t id_off, id_len;
 };
@@ -54,8 +54,8 @@ typedef struct proto_conn {
  */
 struct slot {
     struct learner *l;
-    uint64_t durable; /* last seq committed */
-    uint64_t failed;  /* last seq whose commit failed */
+    uint64_t durable; /* queue position up to which its records are committed */
+    uint64_t failed;  /* queue position up to which a commit failed */
     int fail_code;    /* and its error code */
     char why[200];    /* the reason of the last failure */
     int gone;         /* dropped */
@@ -139,7 +139,8 @@ void reply_error(struct proto *p, struct conn *c, const char *id, int code, long
 void reply_send(struct conn *c, const char *b, size_t n);
 void reply_flush_one(struct conn *c, void *ctx);
 void reply_fail_one(struct conn *c, void *ctx);
-void reply_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id);
+/* Queues p->out to be sent once sl's records before queue position pos are durable. */
+void reply_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t pos, const char *id);
 /* A connection's reply state: new, with nothing waiting (quiet), and freed (its waiting
  * replies' slot references dropped: reg_sweep then frees what they held). */
 proto_conn_t *reply_conn_new(int needs_auth);

@@ -186,7 +186,7 @@ void proto_learner_opts(const struct proto *p, learner_opts_t *o)
 void proto_add_recovered(struct proto *p, struct learner *l)
 {
     CHECK(p->n < p->o->max_models);
-    p->models[p->n++] = reg_new_slot(l, queue_last_seq(learner_queue(l)));
+    p->models[p->n++] = reg_new_slot(l, 0);
 }
 
 void proto_add_damaged(struct proto *p, int64_t id, const char *name, uint64_t seq,

@@ -202,7 +202,6 @@ static int log_write_record(struct writer *w, struct queue *q, queue_rec_t *r)
 static void log_fail_records(struct writer *w, struct queue *q, uint64_t from, uint64_t to,
                              int code, const char *why)
 {
-    uint64_t last_seq = 0;
     for (uint64_t k = from; k < to; k++) {
         queue_rec_t *r = queue_rec(q, k);
         if (r->type == QREC_TRAIN) {
@@ -217,13 +216,11 @@ static void log_fail_records(struct writer *w, struct queue *q, uint64_t from, u
                 r->job = NULL;
             }
         }
-        if (r->type == QREC_OBS)
-            last_seq = r->seq;
         r->type = QREC_DEAD;
     }
     queue_set_durable(q, to);
-    if (last_seq) {
-        event_t ev = {.kind = EV_FAILED, .q = q, .seq = last_seq, .rc = code};
+    {
+        event_t ev = {.kind = EV_FAILED, .q = q, .seq = to, .rc = code}; /* a queue position */
         ev.text = mem_strdup(why);
         w->post(w->ctx, &ev);
     }
@@ -330,9 +327,8 @@ int log_write_group(struct writer *w)
         if (w->upto[i] == from[i])
             continue;
         struct queue *q = w->models[i];
-        uint64_t last_seq = queue_rec(q, w->upto[i] - 1)->seq;
         queue_set_durable(q, w->upto[i]);
-        event_t ev = {.kind = EV_DURABLE, .q = q, .seq = last_seq};
+        event_t ev = {.kind = EV_DURABLE, .q = q, .seq = w->upto[i]}; /* a queue position */
         w->post(w->ctx, &ev);
     }
     return taken > 0;
