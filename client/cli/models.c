@@ -219,8 +219,10 @@ int cmd_show(struct cli *cli, int argc, char **argv)
     const cJSON *objs[2] = {r, spec};
     for (int k = 0; k < 2; k++)
         for (e = objs[k] ? objs[k]->child : NULL; e; e = e->next) {
+            /* A spec field the reply already gave (model, dims, primary) is shown once. */
+            const cJSON *dup = k == 1 ? json_get(r, e->string) : NULL;
             if (strcmp(e->string, "ok") == 0 || strcmp(e->string, "id") == 0 || cJSON_IsObject(e) ||
-                cJSON_IsArray(e) || (k == 1 && strcmp(e->string, "model") == 0))
+                cJSON_IsArray(e) || (dup && !cJSON_IsObject(dup) && !cJSON_IsArray(dup)))
                 continue;
             fmt_json(v, sizeof v, e);
             table_rowv(t, e->string, v);
@@ -228,7 +230,7 @@ int cmd_show(struct cli *cli, int argc, char **argv)
     /* The dimensions (named: their count here, a table below), ranges as [lo, hi] pairs. */
     struct mspec ms;
     int have_ms = mspec_read(r, &ms) == 0;
-    if (have_ms && ms.named) {
+    if (have_ms && ms.named && !cJSON_IsNumber(json_get(r, "dims"))) {
         char nd[32];
         snprintf(nd, sizeof nd, "%zu", ms.dims);
         table_rowv(t, "dims", nd);

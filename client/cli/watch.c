@@ -73,7 +73,8 @@ static int draw(struct cli *cli, const char *model, const struct mspec *ms, int 
     fmt_num(b, sizeof b, getnum(dr, "statistic"));
     fmt_num(c, sizeof c, getnum(dr, "last_alarm_step"));
     fmt_num(d, sizeof d, getnum(r, "spread"));
-    printf("drift alarms %s (last at step %s)   statistic %s   spread %s%s\n\n", a, c, b, d,
+    printf("drift alarms %s (last at step %s)   statistic %s   spread %s%s%s%s\n\n", a, c, b, d,
+           ms->reward_unit[0] ? " " : "", ms->reward_unit,
            getnum(dr, "alarms") > 0 ? "   << DRIFT: consider a rollback" : "");
     struct table *tb = table_new(7);
     if (tb) {
