@@ -11,24 +11,34 @@
  * Reward per minute: minus the energy cost of pumping, minus a penalty while the level is under the
  * safety reserve.  Demand is stochastic around a daily pattern.
  *
- * The program drives worthd through the C client library: it creates the
- * model, streams the simulated weeks as bulk frames, prints the values at
- * three named situations, checkpoints, streams a day with the demand sensor
- * stuck, reports the drift alarm, rolls back with the fault window excluded
- * and checks that the values are restored.  Exit status 0 when all of that
- * happened as expected, 1 otherwise.
+ * The program is the plant's gateway: every minute it logs a sample (time,
+ * the measured state, the reward of the minute that ended) and sends it to
+ * worthd through the C client library, which pairs consecutive samples into
+ * transitions (schema/protocol.md, "Samples").  The model names its
+ * dimensions with their units (level [m], demand [m3/h], ...) and its
+ * reward's unit (EUR), so every table and picture says what it shows.  The
+ * program creates the model, streams the simulated weeks as bulk frames of
+ * samples, prints the values at three named situations, checkpoints,
+ * streams a day with the demand sensor stuck, reports the drift alarm, rolls
+ * back with the fault window excluded and checks that the values are
+ * restored.  Given a file, it then writes the next day as a historian's
+ * export (a wide CSV: ISO-8601 times in CET, one column per tag, a quality
+ * flag) for `worth feed`.  Exit status 0 when all of that happened as
+ * expected, 1 otherwise.
  */
 #include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <time.h>
 #include <unistd.h>
 
 #include <worth/client.h>
 
 #define DIMS 5
-#define REC  (2 * DIMS + 2)
+#define REC  (DIMS + 3) /* a sample: t, x[0..DIMS-1], r, terminal */
 #define PI   3.14159265358979323846
+#define T0   1794787200.0 /* 2026-11-16T00:00:00Z, the first sample's time */
 
 /* Invented plant figures. */
 #define AREA_M2     1500.0 /* reservoir surface */
@@ -39,7 +49,7 @@
 #define LEVEL_MAX   8.0
 
 struct plant {
-    double level, demand_noise, minute;
+    double level, demand_noise, minute, last_r;
     int pump;
     unsigned long long rng;
 };
@@ -84,8 +94,10 @@ static void state(const struct plant *p, double measured_demand, double *x)
 }
 
 /*
- * One minute: the policy decides from the measured state, the plant moves, the
- * reward is paid.  stuck >= 0 replaces the demand the sensor reports.
+ * One minute: the gateway logs the sample of now (the measured state and the
+ * reward of the minute that ended here), then the policy decides from the
+ * measured state, the plant moves and the minute's reward is paid.  stuck >=
+ * 0 replaces the demand the sensor reports.
  */
 static void step(struct plant *p, double stuck, double *rec)
 {
@@ -93,7 +105,10 @@ static void step(struct plant *p, double stuck, double *rec)
     p->demand_noise = 0.9 * p->demand_noise + 0.1 * 40 * gauss(p);
     double demand = fmax(0, demand_mean(h) + p->demand_noise);
     double measured = stuck >= 0 ? stuck : demand;
-    state(p, measured, rec);
+    rec[0] = T0 + 60 * p->minute;
+    state(p, measured, rec + 1);
+    rec[1 + DIMS] = p->last_r; /* "reward": "next": what the minute ending here earned */
+    rec[2 + DIMS] = 0;         /* the plant never stops: not terminal */
     /* The policy: night bands raised; high measured demand raises the low band. */
     int night = h >= 23 || h < 6;
     double low = night ? 5.0 : 3.0, high = night ? 7.0 : 4.5;
@@ -110,19 +125,21 @@ static void step(struct plant *p, double stuck, double *rec)
     double inflow = p->pump ? PUMP_M3H : 0;
     p->level += (inflow - demand) / 60.0 / AREA_M2;
     p->level = fmin(LEVEL_MAX, fmax(0, p->level));
-    double r =
+    p->last_r =
         -(p->pump ? PUMP_KW / 60.0 * tariff(h) : 0) - (p->level < RESERVE_M ? PENALTY_EUR : 0);
-    rec[DIMS] = r;
     p->minute += 1;
-    state(p, measured, rec + DIMS + 1); /* x_next, measured with the same sensor */
-    rec[2 * DIMS + 1] = 0;              /* the plant never stops: not terminal */
 }
 
 static const char *const NAMES[5] = {"td", "td_lambda", "rls", "lstd", "replay"};
 
 static const char SPEC[] =
-    "{\"model\":\"reservoir\",\"dims\":5,\"gamma\":0.999,"
-    "\"ranges\":[[0,8],[0,600],[-1,1],[-1,1],[0.05,0.3]],"
+    "{\"model\":\"reservoir\",\"gamma\":0.999,"
+    "\"dims\":[{\"name\":\"level\",\"unit\":\"m\",\"range\":[0,8]},"
+    "{\"name\":\"demand\",\"unit\":\"m3/h\",\"range\":[0,600]},"
+    "{\"name\":\"hour_sin\",\"range\":[-1,1]},{\"name\":\"hour_cos\",\"range\":[-1,1]},"
+    "{\"name\":\"tariff\",\"unit\":\"EUR/kWh\",\"range\":[0.05,0.3]}],"
+    "\"reward_unit\":\"EUR\",\"period_s\":60,"
+    "\"samples\":{\"reward\":\"next\",\"max_gap_periods\":3},"
     "\"features\":[{\"basis\":\"bias\"},{\"basis\":\"fourier\",\"order\":3,\"couple\":2}],"
     "\"estimators\":[{\"name\":\"td\",\"kind\":\"td\",\"alpha\":0.002},"
     "{\"name\":\"td_lambda\",\"kind\":\"td_lambda\",\"alpha\":0.001,\"lambda\":0.9},"
@@ -175,7 +192,7 @@ static int table(worth_client *c, double vals[3][5], const char *title)
     return 0;
 }
 
-/* Streams days of simulation in one-day bulk frames, with a progress bar on a terminal. */
+/* Streams days of samples in one-day bulk frames, with a progress bar on a terminal. */
 static int stream(worth_client *c, struct plant *p, int days, double stuck, uint64_t *last)
 {
     static double buf[1440 * REC];
@@ -183,8 +200,10 @@ static int stream(worth_client *c, struct plant *p, int days, double stuck, uint
     for (int d = 0; d < days; d++) {
         for (int m = 0; m < 1440; m++)
             step(p, stuck, buf + m * REC);
-        if (worth_observe_bulk(c, "reservoir", DIMS, buf, 1440, 0, last))
-            return fail(c, "observe.bulk");
+        worth_ingest_t in;
+        if (worth_observe_samples_bulk(c, "reservoir", DIMS, "station", buf, 1440, 0, &in))
+            return fail(c, "observe.bulk (samples)");
+        *last = in.seq;
         if (tty) {
             int w = 40, done = (d + 1) * w / days;
             fprintf(stderr, "\r  [%.*s%*s] day %d/%d, %llu transitions", done,
@@ -214,6 +233,43 @@ static int settle(worth_client *c, uint64_t seq)
     return 1;
 }
 
+/*
+ * The next day as the plant's historian exports it: a wide CSV, one row a
+ * minute, local time (CET, +01:00) in ISO-8601, a column per tag and a
+ * quality flag (a few readings flagged bad, as a flaky transmitter leaves
+ * them).  Every number is printed with 17 significant digits.
+ */
+static int write_historian(struct plant *p, const char *path)
+{
+    FILE *f = fopen(path, "w");
+    if (!f) {
+        perror(path);
+        return 1;
+    }
+    fprintf(f, "time,source,level [m],demand [m3/h],hour_sin,hour_cos,tariff [EUR/kWh],"
+               "cost_eur,r,quality\n");
+    double rec[REC];
+    for (int m = 0; m < 1440; m++) {
+        step(p, -1, rec);
+        time_t local = (time_t)rec[0] + 3600;
+        struct tm tm;
+        char when[40];
+        gmtime_r(&local, &tm);
+        strftime(when, sizeof when, "%Y-%m-%dT%H:%M:%S+01:00", &tm);
+        fprintf(f, "%s,station", when);
+        for (int d = 0; d < DIMS; d++)
+            fprintf(f, ",%.17g", rec[1 + d]);
+        fprintf(f, ",%.17g,%.17g,%s\n", -rec[1 + DIMS], rec[1 + DIMS],
+                m % 240 == 137 ? "bad" : "good");
+    }
+    if (fclose(f) != 0) {
+        perror(path);
+        return 1;
+    }
+    printf("\n   the next day, as the historian exports it: %s\n", path);
+    return 0;
+}
+
 static double field(const char *json, const char *key)
 {
     const char *p = strstr(json, key);
@@ -224,8 +280,9 @@ int main(int argc, char **argv)
 {
     const char *sock = argc > 1 ? argv[1] : "./worthd.sock";
     int days = argc > 2 ? atoi(argv[2]) : 14;
+    const char *historian = argc > 3 ? argv[3] : NULL;
     if (days < 3 || days > 365) {
-        fprintf(stderr, "usage: plant SOCKET [DAYS 3..365]\n");
+        fprintf(stderr, "usage: plant SOCKET [DAYS 3..365 [HISTORIAN.csv]]\n");
         return 2;
     }
     worth_opts o = {.socket_path = sock, .timeout_ms = 120000};
@@ -238,14 +295,16 @@ int main(int argc, char **argv)
     size_t features = 0;
     if (worth_model_create(c, SPEC, &features))
         return fail(c, "model.create");
-    printf("1. model \"reservoir\": 5 state dimensions, %zu Fourier features, estimators "
-           "td, td_lambda, rls_td (primary), lstd, replay\n",
+    printf("1. model \"reservoir\": state level [m], demand [m3/h], hour of day (sin, cos), tariff "
+           "[EUR/kWh]; reward in EUR; %zu Fourier features; estimators td, td_lambda, rls_td "
+           "(primary), lstd, replay\n",
            features);
 
     struct plant p = {.level = 5.0, .rng = 20261201};
     uint64_t seq = 0;
-    printf("2. streaming %d simulated days at one-minute steps (%d transitions)\n", days,
-           days * 1440);
+    printf("2. streaming %d simulated days of one-minute samples (%d samples; worthd pairs them "
+           "into transitions)\n",
+           days, days * 1440);
     if (stream(c, &p, days, -1, &seq) || settle(c, seq))
         return 1;
     double before[3][5], fault[3][5], after[3][5];
@@ -298,5 +357,7 @@ int main(int argc, char **argv)
     int same = memcmp(before, after, sizeof before) == 0;
     printf("   values after the rollback equal those before the fault: %s\n", same ? "yes" : "NO");
     worth_close(c);
+    if (historian && write_historian(&p, historian) != 0)
+        return 1;
     return same && alarms > alarms_before ? 0 : 1;
 }
