@@ -180,6 +180,77 @@ static void models_and_ingest(void **state)
     worth_close(c);
 }
 
+/* Samples (one request, and a bulk of "form":"samples"), pseq, the counts and the error index. */
+static void samples_and_producer_sequences(void **state)
+{
+    (void)state;
+    worth_client *c = open_client();
+    OK(worth_model_create(c,
+                          "{\"model\":\"s\",\"gamma\":0.5,"
+                          "\"dims\":[{\"name\":\"level\",\"unit\":\"m\",\"range\":[0,1]}],"
+                          "\"reward_unit\":\"EUR\",\"period_s\":60,"
+                          "\"samples\":{\"reward\":\"next\",\"max_gap_periods\":3},"
+                          "\"features\":[{\"basis\":\"bias\"},{\"basis\":\"raw\"}],"
+                          "\"estimators\":[{\"name\":\"td\",\"kind\":\"td\"}]}",
+                          NULL));
+    double x[6] = {0.1, 0.2, 0.3, 0.4, 0.5, 0.6};
+    worth_sample s[3] = {
+        {"u1", 1000, &x[0], -1, 0}, {"u1", 1060, &x[1], -2, 0}, {"u2", 1000, &x[2], -3, 0}};
+    worth_ingest_t in;
+    memset(&in, 0xff, sizeof in);
+    OK(worth_observe_samples(c, "s", 1, s, 3, &in));
+    assert_int_equal(in.seq, 1);
+    assert_int_equal(in.paired, 1);
+    assert_int_equal(in.skipped, 0);
+    assert_int_equal(in.gaps, 0);
+    /* One sample alone goes as "sample"; a resend is skipped and counted. */
+    OK(worth_observe_samples(c, "s", 1, &s[1], 1, &in));
+    assert_int_equal(in.paired, 0);
+    assert_int_equal(in.skipped, 1);
+    worth_ingest_t last;
+    worth_last_ingest(c, &last);
+    assert_int_equal(last.skipped, 1);
+    /* A bulk of u1: t, x, r, terminal; 1120 pairs, 1500 comes after a gap (> 180 s). */
+    double rec[3][4] = {{1120, 0.4, -4, 0}, {1500, 0.5, -5, 0}, {1560, 0.6, -6, 1}};
+    OK(worth_observe_samples_bulk(c, "s", 1, "u1", &rec[0][0], 3, 0, &in));
+    assert_int_equal(in.paired, 2);
+    assert_int_equal(in.gaps, 1);
+    assert_int_equal(in.seq, 3);
+    /* Out of order within a request: refused whole, the index names the sample. */
+    worth_sample back[2] = {{"u2", 2000, &x[0], 0, 0}, {"u2", 1990, &x[1], 0, 0}};
+    assert_int_equal(worth_observe_samples(c, "s", 1, back, 2, &in), WORTH_E_OUT_OF_ORDER);
+    assert_int_equal(worth_error_index(c), 1);
+    assert_string_equal(worth_error_name(c), "out_of_order");
+    /* Transitions with pseq: a resend at or below the last pseq of the source is skipped. */
+    double tr[2][4] = {{0.1, 1, 0.2, 0}, {0.2, 1, 0.3, 0}};
+    OK(worth_observe_bulk_pseq(c, "s", 1, &tr[0][0], 2, "g", 10, 0, &in));
+    assert_int_equal(in.skipped, 0);
+    OK(worth_observe_bulk_pseq(c, "s", 1, &tr[0][0], 2, "g", 11, 0, &in));
+    assert_int_equal(in.skipped, 1); /* pseq 11 was logged, 12 is new */
+    worth_transition t = {
+        .x = &x[0], .r = 1, .x_next = &x[1], .source = "g", .t = NAN, .dt = NAN, .pseq = 12};
+    uint64_t seq = 0;
+    OK(worth_observe(c, "s", 1, &t, &seq));
+    worth_last_ingest(c, &last);
+    assert_int_equal(last.skipped, 1);
+    t.pseq = 13;
+    OK(worth_observe_queue(c, "s", 1, &t, NULL));
+    t.pseq = 13;
+    OK(worth_observe_queue(c, "s", 1, &t, NULL));
+    OK(worth_flush(c, &seq));
+    worth_last_ingest(c, &last);
+    assert_int_equal(last.skipped, 1);
+    assert_int_equal(last.seq, seq);
+    /* A bad record names its index; the error index is -1 when none is named. */
+    double bad[2][4] = {{0.1, 1, 0.2, 0}, {0.1, 1, 0.2, 7}};
+    assert_int_equal(worth_observe_bulk_pseq(c, "s", 1, &bad[0][0], 2, NULL, 0, 0, &in),
+                     WORTH_E_BAD_PARAM);
+    assert_int_equal(worth_error_index(c), 1);
+    assert_int_equal(worth_model_drop(c, "nosuch"), WORTH_E_NO_SUCH_MODEL);
+    assert_int_equal(worth_error_index(c), -1);
+    worth_close(c);
+}
+
 struct progress {
     unsigned calls, last;
 };
@@ -473,6 +544,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(models_and_ingest),
         cmocka_unit_test(checkpoints_rollback_backup_train),
+        cmocka_unit_test(samples_and_producer_sequences),
         cmocka_unit_test(server_errors_keep_their_codes),
         cmocka_unit_test(server_down),
         cmocka_unit_test(hello_against_worthd),
