@@ -207,6 +207,9 @@ def test_feed_json_summary_mapping_and_batches(daemon, tmp_path):
                "--r", "reward", "--terminal", "done"))
     rep = one_json(p)
     assert rep["ok"] is True and rep["fed"] == 3 and rep["skipped"] == 0 and rep["seq"] == 3
+    assert rep["form"] == "transitions" and rep["ignored_columns"] == ["note"], rep
+    assert rep["no_t"] == 1 and rep["logged"] == 0, rep
+    assert "columns not read: note" in p.stderr and "1 rows carry no t" in p.stderr, p.stderr
     st = d.client().wait_applied("m", 3)
     assert st["sources"] >= 2, st
     fails(run(d, "feed", "m", f, "--x", "level"), 2, "--x names 1 columns")
@@ -248,18 +251,26 @@ def test_feed_json_lines_and_stdin(daemon, tmp_path):
     f.write_text("\n".join(json.dumps(r) for r in rows) + "\n\nnot json\n")
     p = fails(run(d, "feed", "m", f), 2, f"{f}:4: field x: has 3 values, the model has 2",
               "3 rows fed before the error")
+    # Fed again: the 3 rows fed before are already logged (their pseq: the line numbers).
     p = ok(run(d, "feed", "m", f, "--on-error", "skip"))
     assert "fed 4 rows" in p.stdout and "3 skipped" in p.stdout, p.stdout
+    assert "3 rows already logged" in p.stdout, p.stdout
     assert f"{f}:5: field r:" in p.stderr and f"{f}:8: not valid JSON" in p.stderr
-    st = d.client().wait_applied("m", 7)
-    assert st["applied"] == 7
-    # From standard input, detected by its first character.
+    st = d.client().wait_applied("m", 4)
+    assert st["applied"] == 4
+    # --no-resume learns them again.
+    p = ok(run(d, "feed", "m", f, "--on-error", "skip", "--no-resume"))
+    assert "fed 4 rows" in p.stdout and "already logged" not in p.stdout, p.stdout
+    assert d.client().wait_applied("m", 8)["applied"] == 8
+    # From standard input, detected by its first character (not resumed unless asked).
     good = "\n".join(json.dumps(r) for r in rows[:3]) + "\n"
     p = ok(run(d, "feed", "m", "-", stdin=good))
     assert "fed 3 rows" in p.stdout
     csv_in = "x0,x1,r,xn0,xn1\n0.1,0.2,1,0.3,0.4\n"
     assert "fed 1 rows" in ok(run(d, "feed", "m", "-", stdin=csv_in)).stdout
-    assert d.client().wait_applied("m", 11)["applied"] == 11
+    assert d.client().wait_applied("m", 12)["applied"] == 12
+    p = ok(run(d, "feed", "m", "-", "--resume", stdin=csv_in))
+    assert "1 rows already logged" in p.stdout, p.stdout
 
 
 def test_feed_row_refused_by_worthd_is_mapped_to_its_line(daemon, tmp_path):
@@ -271,9 +282,12 @@ def test_feed_row_refused_by_worthd_is_mapped_to_its_line(daemon, tmp_path):
     p = ok(run(d, "feed", "m", f, "--on-error", "skip"))
     assert "fed 2 rows" in p.stdout and "1 skipped" in p.stdout
     assert f"{f}:3: worthd refused the row: too_many_sources" in p.stderr, p.stderr
-    p = fails(run(d, "feed", "m", f), 1, f"{f}:3: worthd refused the row: too_many_sources",
-              "1 rows fed before the error")
+    p = fails(run(d, "feed", "m", f, "--no-resume"), 1,
+              f"{f}:3: worthd refused the row: too_many_sources", "1 rows fed before the error")
     assert d.client().wait_applied("m", 3)["applied"] == 3
+    rep = one_json(fails(run(d, "--json", "feed", "m", f, "--no-resume"), 1))
+    assert rep["error"] == {"code": "too_many_sources", "line": 3,
+                            "message": rep["error"]["message"]}, rep
 
 
 # value --------------------------------------------------------------------------------------
@@ -334,7 +348,7 @@ def test_checkpoint_rollback_backup(daemon, tmp_path):
     cid = int(p.stdout.split()[1])
     rep = one_json(ok(run(d, "--json", "checkpoint", "m")))
     assert rep["ok"] is True and rep["seq"] == 100
-    ok(run(d, "feed", "m", f))
+    ok(run(d, "feed", "m", f, "--no-resume"))
     table = ok(run(d, "checkpoints", "m")).stdout.splitlines()
     assert table[0].split() == ["CHECKPOINT", "SEQ", "CREATED", "SIZE", "LABEL"]
     assert table[-1].split()[0] == str(cid) and table[-1].split()[-1] == "first", table
@@ -425,3 +439,89 @@ def test_tcp_with_token(daemon, tmp_path, free_port):
     fails(run(None, "--connect", addr, "--token-file", tmp_path / "nofile", "models"), 2,
           "--token-file")
     assert d.proc.poll() is None
+
+
+# names and units ----------------------------------------------------------------------------
+
+NAMED = {"model": "st", "gamma": 0.9,
+         "dims": [{"name": "level", "unit": "m", "range": [0, 12]},
+                  {"name": "demand", "unit": "m3/h", "range": [0, 400]}],
+         "reward_unit": "EUR", "period_s": 60,
+         "features": [{"basis": "bias"}, {"basis": "raw"}],
+         "estimators": [{"name": "td", "kind": "td", "alpha": 0.1},
+                        {"name": "rls", "kind": "rls_td"}]}
+
+
+def test_named_dimensions_in_value_show_stats_and_watch(daemon, tmp_path):
+    d = daemon()
+    f = tmp_path / "st.json"
+    f.write_text(json.dumps(NAMED))
+    ok(run(d, "create", f))
+    data = tmp_path / "t.csv"
+    data.write_text("x0,x1,r,xn0,xn1,t\n1,100,-1,2,120,1796126400\n2,120,-1,3,150,1796126460\n"
+                    "3,150,-2,4,90,1796126520\n4,90,-1,5,60,1796126400\n")
+    p = ok(run(d, "feed", "st", data))
+    assert "t goes backwards 1 times (first at line 5)" in p.stderr, p.stderr
+    c = d.client()
+    c.wait_applied("st", 4)
+    want = c.ok({"op": "value", "model": "st", "x": [4.2, 180]})
+    p = ok(run(d, "value", "st", "demand=180", "level=4.2"))
+    lines = p.stdout.splitlines()
+    assert lines[0] == "state: level = 4.2 m, demand = 180 m3/h", p.stdout
+    assert lines[1].split() == ["ESTIMATOR", "VALUE", "[EUR]", "SD", "[EUR]"], p.stdout
+    assert float(lines[2].split()[1]) == pytest.approx(want["value"], rel=1e-5)
+    assert p.stdout == ok(run(d, "value", "st", "4.2", "180")).stdout
+    assert one_json(ok(run(d, "--json", "value", "st", "level=4.2", "demand=180"))) == want
+    fails(run(d, "value", "st", "level=4.2"), 2, "missing demand=X")
+    fails(run(d, "value", "st", "level=4.2", "demand=1", "flow=3"), 2,
+          'no dimension "flow"', "level, demand")
+    fails(run(d, "value", "st", "level=4.2", "180"), 2, "not both")
+    fails(run(d, "value", "st", "level=x", "demand=1"), 2, "not a finite number")
+    fails(run(d, "value", "st", "level=1", "level=2"), 2, "given twice")
+    states = tmp_path / "states.csv"
+    states.write_text("demand [m3/h],level\n180,4.2\n")
+    rows = ok(run(d, "value", "st", "--file", states)).stdout.splitlines()
+    assert rows[0].split() == ["level", "[m]", "demand", "[m3/h]", "VALUE", "[EUR]"], rows
+    assert float(rows[1].split()[2]) == pytest.approx(want["value"], rel=1e-5)
+    show = ok(run(d, "show", "st")).stdout
+    for needle in ("reward_unit   EUR", "period_s      60", "DIM  NAME    UNIT  RANGE",
+                   "0  level   m     [0, 12]", "1  demand  m3/h  [0, 400]", "ranges"):
+        assert needle in show, (needle, show)
+    assert len([ln for ln in show.splitlines() if ln.startswith("dims ")]) == 1, show
+    st = ok(run(d, "stats", "st")).stdout
+    assert "TD_RMS [EUR]" in st and "BIAS [EUR]" in st and " EUR" in st, st
+    w = ok(run(d, "watch", "st", "--count", "1")).stdout
+    assert "dims: level [m], demand [m3/h]" in w and "td_rms [EUR]" in w, w
+    assert ok(run(d, "models")).stdout.splitlines()[1].split()[:2] == ["st", "2"]
+
+
+def test_iso_times_for_rollback_and_events(daemon, tmp_path):
+    d = daemon()
+    create(d, tmp_path)
+    rows = ["x0,x1,r,xn0,xn1,t"]
+    for i in range(20):  # one a minute from 2026-12-01T12:00:00Z
+        rows.append(f"0.1,0.2,1,0.2,0.3,{1796126400 + 60 * i}")
+    f = tmp_path / "t.csv"
+    f.write_text("\n".join(rows) + "\n")
+    ok(run(d, "feed", "m", f))
+    d.client().wait_applied("m", 20)
+    cid = int(ok(run(d, "checkpoint", "m")).stdout.split()[1])
+    ok(run(d, "feed", "m", f, "--no-resume"))
+    d.client().wait_applied("m", 40)
+    # 12:05..12:09 in CET (+01:00): t 1796126700 .. 1796126940, five transitions
+    p = ok(run(d, "rollback", "m", cid, "--exclude-time",
+               "2026-12-01T13:05:00+01:00/2026-12-01T12:09:00Z"))
+    assert "5 undone, 15 replayed" in p.stdout, p.stdout
+    p = ok(run(d, "rollback", "m", cid, "--exclude-time", "1796126700:1796126940"))
+    assert "15 replayed" in p.stdout, p.stdout
+    fails(run(d, "rollback", "m", cid, "--exclude-time", "2026-12-01T13:05:00/2026-12-01T14:00Z"),
+          2, "no time zone")
+    fails(run(d, "rollback", "m", cid, "--exclude-time", "2026-12-01T13:05Z:2026-12-01T14:00Z"),
+          2, "T0/T1")
+    fails(run(d, "rollback", "m", cid, "--exclude-time", "2026-12-02T00:00Z/2026-12-01T00:00Z"),
+          2, "after the end")
+    ev = one_json(ok(run(d, "--json", "events", "m", "--since", "1970-01-01T00:00:00Z")))
+    assert [e["kind"] for e in ev["events"]][:2] == ["create", "checkpoint"], ev
+    ev2 = one_json(ok(run(d, "--json", "events", "m", "--since", "2100-01-01T00:00:00+01:00")))
+    assert ev2["events"] == []
+    fails(run(d, "events", "m", "--since", "2026-02-30T00:00Z"), 2, "February has no day 30")

@@ -132,3 +132,40 @@ def test_watch_count_refreshes_and_ends(daemon, tmp_path):
     assert "td" in p.stdout and "rls_td" in p.stdout and "received 20" in p.stdout
     fails(run(d, "watch", "pl", "--every", 0), 2, "--every")
     fails(run(d, "watch", "nope", "--count", 1), 1, "no_such_model")
+
+
+def test_value_map_of_named_dimensions_shows_names_and_units(daemon, tmp_path):
+    d = daemon()
+    spec = {"model": "nm", "gamma": 0.9,
+            "dims": [{"name": "level", "unit": "m", "range": [0, 12]},
+                     {"name": "demand", "unit": "m3/h", "range": [0, 400]},
+                     {"name": "valve", "range": [-1, 1]}],
+            "reward_unit": "EUR",
+            "features": [{"basis": "bias"}, {"basis": "rbf", "centers": 3, "width": 0.3}],
+            "estimators": [{"name": "td", "kind": "td", "alpha": 0.1}]}
+    f = tmp_path / "nm.json"
+    f.write_text(json.dumps(spec))
+    ok(run(d, "create", f))
+    out = tmp_path / "named.svg"
+    p = ok(run(d, "plot", "nm", "--x", "demand", "--y", "level", "--at", "valve=0.5",
+               "--grid", 10, "--out", out))
+    assert "V [EUR] over demand [m3/h] x level [m]" in p.stdout, p.stdout
+    root = ET.parse(out).getroot()
+    texts = [t.text for t in root.iter(SVG + "text")]
+    assert "demand [m3/h]" in texts and "level [m]" in texts and "V [EUR]" in texts, texts
+    g = [e for e in root.iter(SVG + "g") if e.get("class") == "cells"][0]
+    assert g.get("data-x-dim") == "1" and g.get("data-y-dim") == "0"
+    cells = [e for e in root.iter(SVG + "rect") if e.get("class") == "cell"]
+    assert len(cells) == 100
+    # by index too, and --at by position
+    ok(run(d, "plot", "nm", "--x", 1, "--y", 0, "--at", "0,0,0.5", "--grid", 10,
+           "--out", tmp_path / "idx.svg"))
+    assert ET.parse(tmp_path / "idx.svg").getroot() is not None
+    fails(run(d, "plot", "nm", "--x", "flow", "--y", "level", "--out", out), 2,
+          "level, demand, valve")
+    fails(run(d, "plot", "nm", "--x", "demand", "--y", "level", "--at", "flow=1", "--out", out),
+          2, 'no dimension "flow"')
+    hist = tmp_path / "h.svg"
+    ok(run(d, "plot", "nm", "--history", "--out", hist))
+    texts = [t.text for t in ET.parse(hist).getroot().iter(SVG + "text")]
+    assert any(t and t.endswith("[EUR]") for t in texts), texts
