@@ -84,7 +84,8 @@ struct source {
 struct key {
     double t, r, x[MAXDIMS];
     int terminal, bad, final;
-    uint64_t have; /* bit d: dimension d; bit dims: the reward; bit dims + 1: terminal */
+    uint64_t have;         /* bit d: dimension d given */
+    int have_r, have_term; /* the reward, terminal given */
     int src;
     size_t line; /* its first row */
 };
@@ -755,7 +756,7 @@ static int tag_target(struct smp *S, const char *tag, size_t line)
 static int key_check(struct smp *S, const struct key *k)
 {
     for (size_t d = 0; d <= S->dims; d++) {
-        if (k->have & ((uint64_t)1 << d))
+        if (d < S->dims ? (int)((k->have >> d) & 1) : k->have_r)
             continue;
         char when[64];
         isotime_format(k->t, when, sizeof when);
@@ -872,15 +873,18 @@ static int long_row(struct smp *S, char **cells, long nc, size_t line)
         so->has_cur = 1;
     }
     struct key *k = key_at(S, so->cur);
-    int bit = target >= 0 ? target : target == T_REWARD ? (int)S->dims : (int)S->dims + 1;
-    if (k->have & ((uint64_t)1 << bit)) {
+    int *flag = target == T_REWARD ? &k->have_r : target == T_TERMINAL ? &k->have_term : NULL;
+    if (flag ? *flag : (int)((k->have >> target) & 1)) {
         char when[64];
         isotime_format(t, when, sizeof when);
         feed_row_error(fd, line, "duplicate_time", "source %s: tag %s at %s is given twice",
                        source_shown(S, src), cells[S->c_tag], when);
         return -1;
     }
-    k->have |= (uint64_t)1 << bit;
+    if (flag)
+        *flag = 1;
+    else
+        k->have |= (uint64_t)1 << target;
     if (S->c_quality >= 0) {
         int q = row_quality(S, cells[S->c_quality], line);
         if (q < 0)
