@@ -50,9 +50,9 @@
 #define HASH       8192 /* slots of the source table (a power of two, twice MAXSRC) */
 #define JSON_MAX   1024 /* samples in one observe request (a frame of several sources) */
 #define NONE       (-1L)
-#define T_REWARD   (-2) /* tag targets besides a dimension index */
-#define T_TERMINAL (-3)
-#define T_IGNORE   (-4)
+#define T_REWARD   (-10) /* tag targets besides a dimension index (-2: a unit mismatch) */
+#define T_TERMINAL (-11)
+#define T_IGNORE   (-12)
 /*
  * What the row functions return: 0 (the row is sent or queued), SKIP (left
  * out and counted, not an error), BAD (a row error, said), or FATAL(ex) for
@@ -571,9 +571,8 @@ static int row_time(struct smp *S, const char *cell, size_t line, double *t)
         return -1;
     }
     if (numeric) {
-        S->seen_s |= k == ISOTIME_S;
-        S->seen_ms |= k == ISOTIME_MS;
-        if (S->seen_s && S->seen_ms) {
+        /* Seconds and milliseconds in one file: the unit of one of them is wrong. */
+        if ((S->seen_s && k == ISOTIME_MS) || (S->seen_ms && k == ISOTIME_S)) {
             feed_row_error(fd, line, "mixed_time_units",
                            "\"%s\" looks like %s since 1970, earlier times like %s: one file "
                            "must use one unit",
@@ -595,6 +594,8 @@ static int row_time(struct smp *S, const char *cell, size_t line, double *t)
     }
     if (!S->tkind)
         S->tkind = k;
+    S->seen_s |= k == ISOTIME_S;
+    S->seen_ms |= k == ISOTIME_MS;
     return 0;
 }
 
@@ -738,14 +739,18 @@ static int tag_target(struct smp *S, const char *tag, size_t line)
     if (S->ntags == S->tcap) {
         size_t nc = S->tcap ? 2 * S->tcap : 16;
         struct tag *g = realloc(S->tags, nc * sizeof *g);
-        if (!g)
+        if (!g) {
+            feed_row_error(S->fd, line, "bad_row", "out of memory");
             return NONE;
+        }
         S->tags = g;
         S->tcap = nc;
     }
     S->tags[S->ntags].name = strdup(tag);
-    if (!S->tags[S->ntags].name)
+    if (!S->tags[S->ntags].name) {
+        feed_row_error(S->fd, line, "bad_row", "out of memory");
         return NONE;
+    }
     S->tags[S->ntags++].target = (int)d;
     if (d == T_IGNORE)
         feed_ignore(S->fd, tag);
