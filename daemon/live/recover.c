@@ -67,6 +67,8 @@ struct suspect {
 /* Remedies quarantine() names, by where the damage is. */
 #define FIX_SPEC     "correct its spec in the models table"
 #define FIX_TRAINING "correct or delete the damaged row of its trainings"
+#define FIX_SOURCES                                                                                \
+    "delete the damaged row of its sources (its next sample then starts a new chain)"
 #define FIX_PAGES                                                                                  \
     "restore the database from a backup (or salvage it with the sqlite3 shell's .recover)"
 
@@ -200,9 +202,21 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
     lo.seq = last_seq;
     lo.training = last_training;
     lo.model_training = training;
+    lo.plant_t = start.plant_t;
     char *canonical = s->canonical;
     s->canonical = NULL;
     struct learner *l = learner_new(name, canonical, m, &lo, post, wake, ctx);
+    rc = learner_set_meta(l, &s->meta, db, id, why, sizeof why);
+    if (rc) {
+        learner_free(l); /* and its model */
+        spec_free(s);
+        if (rc == WORTH_E_DAMAGED) {
+            quarantine(db, id, name, 0, why, FIX_SOURCES, sink, w);
+            return R_READ_DAMAGED;
+        }
+        snprintf(err, errlen, "model %s: recovery failed: %s", name, why);
+        return rc == WORTH_E_BAD_DATABASE ? R_CORRUPT : R_STOP;
+    }
     writer_add_model(w, learner_queue(l), id);
     sink->model(sink->ctx, l);
     double dt = mono_s() - t0;

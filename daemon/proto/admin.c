@@ -125,6 +125,7 @@ int do_create(struct req *rq)
     learner_opts_t lo;
     proto_learner_opts(p, &lo);
     struct learner *l = learner_new(s->name, canonical, m, &lo, p->post, p->wake, p->ctx);
+    CHECK(learner_set_meta(l, &s->meta, NULL, 0, p->err, sizeof p->err) == 0); /* no database */
     p->models[p->n++] = reg_new_slot(l, 0);
     say_info("model %s created: %zu dims, %zu features, %zu estimators", s->name, model_dims(m),
              model_features(m), model_n_est(m));

@@ -11,12 +11,22 @@
 #include <stdint.h>
 
 #include "common/jw.h"
+#include "core/spec.h"
 #include "live/learner.h"
 #include "net/conn.h"
 #include "proto/proto.h"
 #include "store/writer.h"
 
 struct slot;
+
+/* One source that a request names (samples.c), and what the request does to it. */
+struct req_src {
+    char name[MODEL_NAME_MAX + 1];
+    double req_t;  /* the t of its last sample so far in the request; -INFINITY before one */
+    double last_t; /* the t of its last sample logged or taken so far */
+    uint64_t pseq; /* its last pseq logged or taken so far */
+    int changed;   /* the request changes its state: a record of it is logged */
+};
 
 /* One reply waiting its turn on a connection (the transitions it acknowledges, or earlier
  * ones, are not durable yet). */
@@ -43,6 +53,8 @@ typedef struct proto_conn {
     size_t count;                    /* pending bulk: records */
     char source[MODEL_NAME_MAX + 1]; /* pending bulk: source ("" = default) */
     double dt_s;                     /* pending bulk: NAN when absent */
+    int bulk_samples;                /* pending bulk: of form samples */
+    uint64_t pseq;                   /* pending bulk: the first record's pseq, 0: none */
     char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
     int has_id;
 } proto_conn_t;
@@ -93,6 +105,8 @@ struct proto {
     double *vals, *sds;
     learner_sample_t *hist; /* history request scratch */
     const char **srcs;      /* max_batch source names of a batch */
+    struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
+    size_t n_rsrc;
     char err[512];
 };
 
@@ -172,6 +186,13 @@ int fld_number(const cJSON *obj, const char *name, double *v, int *code, char *e
                const char *where);
 int fld_vector(const cJSON *arr, size_t n, double *out, const char *name, int *code, char *err,
                size_t errlen, const char *where);
+/*
+ * A state: an array of meta->dims finite numbers, or (a model with named
+ * dimensions) an object naming each dimension once.  Returns 1 with out
+ * filled, or 0 with code and message set.
+ */
+int fld_state(const cJSON *v, const spec_meta_t *meta, double *out, const char *name, int *code,
+              char *err, size_t errlen, const char *where);
 void fld_ensure_scratch(struct proto *p, size_t n_est);
 void fld_keep_id(struct req *rq);
 int fld_park(struct learner *l);
@@ -179,6 +200,36 @@ int fld_park(struct learner *l);
 /* ingest.c */
 int do_observe(struct req *rq);
 int do_bulk_header(struct req *rq);
+/* Replies to an accepted observe (more: the members after seq, e.g. ",\"count\":3"): now with
+ * applied, else once everything committed so far is durable. */
+void ingest_ack(struct proto *p, struct conn *c, const char *id, struct learner *l, uint64_t seq,
+                const char *more, int applied);
+
+/* Largest |r| accepted.  Squares of TD errors must stay finite in a double for the estimators
+ * and their running statistics; 1e12 leaves them room (1e24 each) and is far beyond any reward
+ * a plant reports in its own units. */
+#define PROTO_MAX_ABS_R 1e12
+
+/* samples.c: samples paired into transitions, producer sequences, the sources op */
+/* observe with "sample" or "samples" (rq's model is l). */
+int smp_observe(struct req *rq, struct learner *l, int applied);
+/* The records of an observe.bulk of form samples: count records of dims + 3 doubles. */
+int smp_bulk(struct proto *p, struct conn *c, const char *id, struct learner *l,
+             const unsigned char *data, size_t count, int applied);
+/* Reads an optional "pseq" of o (an integer 1..2^53) into *pseq (0 when absent); 1, or 0 with
+ * code and message. */
+int smp_pseq(const cJSON *o, uint64_t *pseq, int *code, char *err, size_t errlen,
+             const char *where);
+/*
+ * The k transitions parsed into the queue's first slots, some with a pseq: drops those
+ * already logged (at or below their source's last pseq), moves the rest together and adds
+ * the records of the sources' new pseqs.  Returns the slots to commit (*skipped gets how many
+ * were dropped), -1 when it answered the request (an error), or -2 to park it.  Changes
+ * nothing when it does not return slots.
+ */
+long smp_dedup(struct proto *p, struct conn *c, const char *id, struct learner *l, size_t k,
+               size_t *skipped);
+int do_sources(struct req *rq);
 
 /* query.c */
 int do_list(struct req *rq);

@@ -68,6 +68,7 @@ static const struct {
     {"rollback", do_rollback, k_rollback},
     {"backup", do_backup, NULL},
     {"history", do_history, k_model},
+    {"sources", do_sources, k_model},
     {"events", do_events, NULL},
 };
 
@@ -274,6 +275,9 @@ void proto_event(struct proto *p, const event_t *ev)
             reg_sweep(p);
             if (ev->seq > sl->failed)
                 sl->failed = ev->seq;
+            /* After a failed commit of samples, reload their pairing as soon as it can be. */
+            if (!sl->gone)
+                (void)learner_pairing_check(sl->l, p->err, sizeof p->err);
         }
         mem_free(ev->text);
         return;
@@ -354,6 +358,7 @@ struct proto *proto_new(const config_t *opts, struct writer *w, struct conns *co
     p->conns = conns;
     p->models = mem_calloc(opts->max_models, sizeof *p->models);
     p->srcs = mem_calloc(opts->max_batch, sizeof *p->srcs);
+    p->rsrc = mem_calloc(EST_MAX_SOURCES + 1, sizeof *p->rsrc);
     p->post = post;
     p->wake = wake;
     p->ctx = ctx;
@@ -470,6 +475,7 @@ void proto_free(struct proto *p)
     mem_free(p->models);
     mem_free(p->dropped);
     mem_free(p->srcs);
+    mem_free(p->rsrc);
     mem_free(p->vals);
     mem_free(p->sds);
     mem_free(p->hist);

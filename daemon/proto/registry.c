@@ -181,6 +181,7 @@ void proto_learner_opts(const struct proto *p, learner_opts_t *o)
     o->checkpoint_every = p->o->checkpoint_every;
     o->db_path = p->o->db_path;
     o->writer = p->w;
+    o->plant_t = NAN;
 }
 
 void proto_add_recovered(struct proto *p, struct learner *l)

@@ -40,6 +40,7 @@ struct job {
     uint64_t seq, training;
     uint64_t a, b, c; /* J_DRIFT: onset seq, step, onset step */
     double since;     /* J_EVENTS */
+    double plant_t;   /* J_CHECKPOINT, J_DRIFT: the plant's t then, NAN when unknown */
     int64_t id;
     unsigned diverged;     /* J_CHECKPOINT */
     struct job_done *done; /* set: the poster waits for the job (J_CUT) */
@@ -64,7 +65,7 @@ struct writer {
     struct queue **models;
     size_t n, cap;
     uint64_t *from, *upto; /* per model: records [from, upto) taken into the open transaction */
-    sqlite3_stmt *ins_tx, *ins_tr;
+    sqlite3_stmt *ins_tx, *ins_tr, *ins_src;
     /* Commit-latency histogram (under mu). */
     uint64_t hist[WRITER_HIST_N], hist_count;
     double hist_sum;
@@ -84,8 +85,10 @@ void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const
     __attribute__((format(printf, 5, 6)));
 int wr_exec(struct writer *w, const char *sql);
 struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id);
-/* Prepares the log's insert statements on w->db; 0 or -1. */
+/* Prepares the log's insert statements on w->db; 0 or -1 (none left prepared). */
 int wr_prepare(struct writer *w);
+/* Finalizes them (each NULL after). */
+void wr_finalize(struct writer *w);
 
 /* log.c: the transition log */
 int log_write_group(struct writer *w);
