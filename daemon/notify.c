@@ -36,6 +36,20 @@ void notify_status(const char *fmt, ...)
     tell(msg);
 }
 
+/* How far one progress report extends systemd's start timeout. */
+#define EXTEND_USEC 30000000
+
+void notify_recovering(const char *fmt, ...)
+{
+    char msg[512];
+    int n = snprintf(msg, sizeof msg, "WATCHDOG=1\nEXTEND_TIMEOUT_USEC=%d\nSTATUS=", EXTEND_USEC);
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(msg + n, sizeof msg - (size_t)n, fmt, ap);
+    va_end(ap);
+    tell(msg);
+}
+
 void notify_ready(const char *fmt, ...)
 {
     char msg[512] = "READY=1\nSTATUS=";

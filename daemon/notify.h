@@ -14,6 +14,9 @@
 
 /* STATUS=text (printf-style). */
 void notify_status(const char *fmt, ...) __attribute__((format(printf, 1, 2)));
+/* STATUS=text (printf-style) during recovery, with WATCHDOG=1 and EXTEND_TIMEOUT_USEC so that
+ * neither the watchdog nor the start timeout ends a long replay that makes progress. */
+void notify_recovering(const char *fmt, ...) __attribute__((format(printf, 1, 2)));
 /* READY=1 with STATUS=text. */
 void notify_ready(const char *fmt, ...) __attribute__((format(printf, 1, 2)));
 /* RELOADING=1 (a reload begins; notify_ready ends it). */

@@ -266,8 +266,10 @@ static void recovery_progress(void *ctx, const char *name, size_t index, size_t 
                               uint64_t total)
 {
     (void)ctx;
-    notify_status("recovering %s (model %zu of %zu), %d%%", name, index + 1, n,
-                  total ? (int)(100.0 * (double)done / (double)total) : 100);
+    /* Recovery runs before the loop: its progress keeps systemd's watchdog and start timeout
+     * (EXTEND_TIMEOUT_USEC) from ending a long replay. */
+    notify_recovering("recovering %s (model %zu of %zu), %d%%", name, index + 1, n,
+                      total ? (int)(100.0 * (double)done / (double)total) : 100);
 }
 
 /* Every --retain-every seconds: every model's retention policy, on the writer thread. */

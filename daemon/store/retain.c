@@ -383,6 +383,7 @@ static int retain_model(struct writer *w, struct queue *q, struct policy *p, cha
         return -1;
     }
     p->ran = 1;
+    p->last_run = db_now();
     ckpt_refresh_info(w, q);
     int64_t lowest = 0;
     if (p->floor > 0 &&
