@@ -230,6 +230,7 @@ int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
         goto out;
     }
     proto_conn_t *pc = pconn(c);
+    pc->op = -1; /* until the op is known (errors before it count as op "none") */
     if (pc->needs_auth && !pc->authed && strcmp(opf->valuestring, "auth") != 0) {
         FAIL(&rq, WORTH_E_UNAUTHORIZED, "authenticate first: {\"op\":\"auth\",\"token\":...}");
         goto out;
