@@ -827,7 +827,7 @@ static int read_all(struct options *o, config_t *c, struct roles **roles, struct
     rd->status = OPTIONS_RUN;
     *roles = NULL;
     /* Pass 1: what the command line asks of the file (and --help, --version). */
-    optind = 1;
+    optind = 0; /* glibc: 0 rescans from the start, its permutation state reset too */
     opterr = 0;
     int ch;
     while ((ch = getopt_long(o->argc, o->argv, "", lo, NULL)) != -1) {
@@ -855,7 +855,7 @@ static int read_all(struct options *o, config_t *c, struct roles **roles, struct
         }
     }
     /* Pass 2: the command line over the file. */
-    optind = 1;
+    optind = 0; /* glibc: 0 rescans from the start, its permutation state reset too */
     opterr = 0;
     while ((ch = getopt_long(o->argc, o->argv, "", lo, NULL)) != -1) {
         if (ch < 1000) {
@@ -951,7 +951,6 @@ int options_reload(struct options *o)
     config_t fresh;
     struct roles *roles = NULL;
     struct reading *rd = mem_calloc(1, sizeof *rd);
-    size_t pool_mark = o->n_pool;
     int rc = read_all(o, &fresh, &roles, rd);
     if (rc != 0) {
         say_error("SIGHUP: the configuration was not reloaded, nothing changed: %s", rd->err);
@@ -1012,7 +1011,8 @@ int options_reload(struct options *o)
     say_info("SIGHUP: configuration reloaded%s%s (%d change%s applied); %zu token%s",
              o->file ? " from " : "", o->file ? o->file : "", applied, applied == 1 ? "" : "s",
              roles_n_tokens(roles), roles_n_tokens(roles) == 1 ? "" : "s");
-    (void)pool_mark; /* XXX: a reload's strings stay in the pool until the options are freed */
+    /* XXX: a reload's strings stay in the pool until the options are freed (a few bytes a
+     * SIGHUP): the live configuration may point to any of them. */
     return applied;
 }
 

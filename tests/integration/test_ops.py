@@ -370,6 +370,20 @@ def test_roles_over_tcp(daemon, tmp_path, free_port):
         assert t not in d.stderr  # tokens are never logged
     # status says who a connection is
     assert read.ok({"op": "status"})["you"]["role"] == "read"
+    # SIGHUP reads the token file again: a token taken out no longer authenticates, a new
+    # one does, and connections already in keep the role they had
+    tok.write_text("admin admin-token-002 ops\n")
+    d.proc.send_signal(signal.SIGHUP)
+    for _ in range(250):
+        if "1 token" in d.stderr and "configuration reloaded" in d.stderr:
+            break
+        time.sleep(0.02)
+    assert "configuration reloaded" in d.stderr, d.tail()
+    late = d.client(("127.0.0.1", free_port))
+    late.err({"op": "auth", "token": "read-token-0001"}, "unauthorized")
+    assert tcp_client(d, free_port, "admin-token-002").ok({"op": "status"})["you"]["role"] == \
+        "admin"
+    read.ok({"op": "stats", "model": "m"})
 
 
 def as_user_client(sock, reqs, uid=65534):
