@@ -70,13 +70,13 @@ typedef struct opt_def {
     const char *name; /* --NAME and the config key NAME */
     const char *arg;  /* its argument's name, NULL for a flag */
     enum kind kind;
-    size_t off;         /* offsetof(config_t, ...) */
-    uint64_t lo, hi;    /* bounds of a number (K_DAYS: whole days) */
-    uint64_t scale;     /* stored = given x scale (0: 1) */
-    int live;           /* a reload applies it */
-    int cmd;            /* K_CMD: which (C_...) */
-    const char *def;    /* the default in words, when it is not simply the value */
-    const char *help;   /* sentences, without the default and the bounds */
+    size_t off;       /* offsetof(config_t, ...) */
+    uint64_t lo, hi;  /* bounds of a number (K_DAYS: whole days) */
+    uint64_t scale;   /* stored = given x scale (0: 1) */
+    int live;         /* a reload applies it */
+    int cmd;          /* K_CMD: which (C_...) */
+    const char *def;  /* the default in words, when it is not simply the value */
+    const char *help; /* sentences, without the default and the bounds */
 } opt_def_t;
 
 #define F(field) offsetof(config_t, field)
@@ -197,12 +197,12 @@ static const opt_def_t table[] = {
 
 struct options {
     int argc;
-    char **argv;          /* borrowed: main's */
-    const char *file;     /* the config file read, or NULL */
-    int file_given;       /* --config named it (then it must exist) */
-    config_t *live;       /* the configuration running (options_load's cfg) */
-    struct roles *roles;  /* live->roles */
-    char **pool;          /* every string live points to */
+    char **argv;         /* borrowed: main's */
+    const char *file;    /* the config file read, or NULL */
+    int file_given;      /* --config named it (then it must exist) */
+    config_t *live;      /* the configuration running (options_load's cfg) */
+    struct roles *roles; /* live->roles */
+    char **pool;         /* every string live points to */
     size_t n_pool, cap_pool;
 };
 
@@ -661,8 +661,8 @@ static int read_file(struct options *o, config_t *c, const char *path, struct re
         if (n && line[n - 1] == '\n')
             line[--n] = 0;
         else if (!feof(f)) {
-            snprintf(rd->err, sizeof rd->err, "%s:%u: a line is longer than %d bytes", path,
-                     lineno, LINE_MAX_BYTES);
+            snprintf(rd->err, sizeof rd->err, "%s:%u: a line is longer than %d bytes", path, lineno,
+                     LINE_MAX_BYTES);
             rc = -1;
             break;
         }

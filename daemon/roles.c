@@ -225,8 +225,10 @@ int roles_add_peer_rules(struct roles *r, const char *spec, char *err, size_t er
             item++;
         char *eq = strchr(item, '='), *colon = strrchr(item, ':');
         if (!eq || !colon || colon < eq) {
-            snprintf(err, errlen, "\"%.64s\": expected uid=N:ROLE, user=NAME:ROLE, gid=N:ROLE or "
-                     "group=NAME:ROLE", item);
+            snprintf(err, errlen,
+                     "\"%.64s\": expected uid=N:ROLE, user=NAME:ROLE, gid=N:ROLE or "
+                     "group=NAME:ROLE",
+                     item);
             rc = -1;
             break;
         }

@@ -97,12 +97,12 @@ int cmd_status(struct cli *cli, int argc, char **argv)
         cJSON_Delete(r);
         return ex;
     }
-    table_rowv(t, "MODEL", "STATE", "RECEIVED", "QUEUE", "HEALTHY", "LAST (WALL)",
-               "LAST (PLANT)", "CHECKPOINTS");
+    table_rowv(t, "MODEL", "STATE", "RECEIVED", "QUEUE", "HEALTHY", "LAST (WALL)", "LAST (PLANT)",
+               "CHECKPOINTS");
     cJSON_ArrayForEach(m, models)
     {
         char name[128], state[32], rec[32], queue[32], healthy[32] = "-", wall[32], plant[32],
-            cps[32];
+                                                       cps[32];
         fmt_json(name, sizeof name, json_get(m, "model"));
         fmt_json(state, sizeof state, json_get(m, "state"));
         fmt_json(rec, sizeof rec, json_get(m, "received"));
@@ -199,7 +199,8 @@ int cmd_retention(struct cli *cli, int argc, char **argv)
             fmt_json(b, sizeof b, json_get(x, "checkpoints"));
             snprintf(del, sizeof del, "%s transitions, %s checkpoints", a, b);
         }
-        int mine = cJSON_IsTrue(json_get(own, "days")) || cJSON_IsTrue(json_get(own, "transitions"));
+        int mine =
+            cJSON_IsTrue(json_get(own, "days")) || cJSON_IsTrue(json_get(own, "transitions"));
         table_rowv(t, name, dd, tt, fl, del, mine ? "(own policy)" : "(worthd's)");
     }
     table_print(t, stdout);

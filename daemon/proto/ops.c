@@ -32,11 +32,11 @@
 #endif
 
 /* The ops a read role may send; write adds those that feed a model (observe*). */
-static const char *const read_ops[] = {"hello",   "model.list", "model.get", "value",  "stats",
+static const char *const read_ops[] = {"hello",   "model.list", "model.get",   "value",  "stats",
                                        "history", "events",     "checkpoints", "status", NULL};
 /* The admin requests that destroy or undo something: recorded as audit events. */
-static const char *const destructive_ops[] = {"rollback", "model.drop", "model.purge",
-                                              "retention", NULL};
+static const char *const destructive_ops[] = {"rollback", "model.drop", "model.purge", "retention",
+                                              NULL};
 
 static int listed(const char *const *list, const char *op)
 {
@@ -204,8 +204,9 @@ static char *model_json(struct learner *l)
     jw_init(&o);
     jw_lit(&o, ",\"model\":");
     jw_str(&o, learner_name(l));
-    jw_fmt(&o, ",\"state\":\"ok\",\"received\":%llu,\"applied\":%llu,\"queue\":%llu,"
-               "\"clipped\":%llu,\"health\":{",
+    jw_fmt(&o,
+           ",\"state\":\"ok\",\"received\":%llu,\"applied\":%llu,\"queue\":%llu,"
+           "\"clipped\":%llu,\"health\":{",
            (unsigned long long)st.received, (unsigned long long)st.applied,
            (unsigned long long)(st.received - st.applied), (unsigned long long)st.counts.clipped);
     size_t healthy = 0;
@@ -298,8 +299,8 @@ static int read_bound(struct req *rq, const char *name, double hi, int whole, in
         return FAIL(rq, WORTH_E_BAD_REQUEST, "\"%s\" must be a number or null", name), -1;
     *v = f->valuedouble;
     if (!isfinite(*v) || *v < 0 || *v > hi || (whole && *v != floor(*v)))
-        return FAIL(rq, WORTH_E_BAD_PARAM, "\"%s\" must be %s 0..%.0f (0: keep everything)",
-                    name, whole ? "an integer" : "a number", hi),
+        return FAIL(rq, WORTH_E_BAD_PARAM, "\"%s\" must be %s 0..%.0f (0: keep everything)", name,
+                    whole ? "an integer" : "a number", hi),
                -1;
     *change = RETAIN_SET;
     return 0;

@@ -59,10 +59,10 @@ enum { OP_RETAIN, OP_PURGE, OP_STATUS };
 
 struct ops_job {
     int op;
-    retain_req_t r;          /* OP_RETAIN */
-    char *name, *who;        /* OP_PURGE */
-    char *head;              /* OP_STATUS */
-    status_model_t *models;  /* OP_STATUS */
+    retain_req_t r;         /* OP_RETAIN */
+    char *name, *who;       /* OP_PURGE */
+    char *head;             /* OP_STATUS */
+    status_model_t *models; /* OP_STATUS */
     size_t n;
     uint64_t db_max_mb;
 };
@@ -336,8 +336,8 @@ static int plan_and_trim(struct writer *w, int64_t model, struct policy *p)
     if (floor < p->floor)
         floor = p->floor;
     if (have == 1 &&
-        one_i64(db, "SELECT MIN(training) FROM checkpoints WHERE model = ?1 AND invalid = 0",
-                model, 0, &min_training) == 1 &&
+        one_i64(db, "SELECT MIN(training) FROM checkpoints WHERE model = ?1 AND invalid = 0", model,
+                0, &min_training) == 1 &&
         min_training > 0) {
         ok = sqlite3_prepare_v2(db,
                                 "DELETE FROM trainings WHERE model = ?1 AND ordinal <= ?2"
@@ -372,8 +372,7 @@ static int plan_and_trim(struct writer *w, int64_t model, struct policy *p)
 }
 
 /* Applies model q's policy p; 0 or -1 (with the database's message in why). */
-static int retain_model(struct writer *w, struct queue *q, struct policy *p, char *why,
-                        size_t len)
+static int retain_model(struct writer *w, struct queue *q, struct policy *p, char *why, size_t len)
 {
     int64_t model = queue_db_id(q);
     if (wr_exec(w, "BEGIN IMMEDIATE") != 0 || plan_and_trim(w, model, p) != 0 ||
@@ -447,8 +446,7 @@ static void run_retain(struct writer *w, struct ops_job *oj, uint64_t conn_id)
 {
     const retain_req_t *r = &oj->r;
     char why[256];
-    int code = !w->db ? WORTH_E_STORAGE_ERROR
-                      : rescue_may_write(w, FILEGUARD_ALL, why, sizeof why);
+    int code = !w->db ? WORTH_E_STORAGE_ERROR : rescue_may_write(w, FILEGUARD_ALL, why, sizeof why);
     if (!w->db)
         snprintf(why, sizeof why, "%s", w->lost_why);
     if (code) {
@@ -495,8 +493,7 @@ static void run_retain(struct writer *w, struct ops_job *oj, uint64_t conn_id)
 static void run_purge(struct writer *w, struct ops_job *oj, uint64_t conn_id)
 {
     char why[256];
-    int code = !w->db ? WORTH_E_STORAGE_ERROR
-                      : rescue_may_write(w, FILEGUARD_ALL, why, sizeof why);
+    int code = !w->db ? WORTH_E_STORAGE_ERROR : rescue_may_write(w, FILEGUARD_ALL, why, sizeof why);
     if (!w->db)
         snprintf(why, sizeof why, "%s", w->lost_why);
     if (code) {
@@ -564,8 +561,10 @@ static void run_purge(struct writer *w, struct ops_job *oj, uint64_t conn_id)
     }
     if (!ok) {
         say_error("purge of %s failed: %s", oj->name, sqlite3_errmsg(w->db));
-        wr_reply(w, NULL, conn_id, db_error_code(w->db), "purge failed part way: %s (run it "
-                 "again to finish)", sqlite3_errmsg(w->db));
+        wr_reply(w, NULL, conn_id, db_error_code(w->db),
+                 "purge failed part way: %s (run it "
+                 "again to finish)",
+                 sqlite3_errmsg(w->db));
         return;
     }
     jw_t jb, dj;
@@ -616,8 +615,7 @@ static void run_status(struct writer *w, struct ops_job *oj, uint64_t conn_id)
         snprintf(wal, sizeof wal, "%s-wal", file);
         uint64_t wal_bytes = stat(wal, &st) == 0 ? (uint64_t)st.st_size : 0;
         jw_fmt(&jb, ",\"bytes\":%llu,\"free_pages_bytes\":%llu,\"wal_bytes\":%llu",
-               (unsigned long long)bytes, (unsigned long long)freel,
-               (unsigned long long)wal_bytes);
+               (unsigned long long)bytes, (unsigned long long)freel, (unsigned long long)wal_bytes);
         char dir[PATH_MAX];
         snprintf(dir, sizeof dir, "%s", file);
         char *slash = strrchr(dir, '/');

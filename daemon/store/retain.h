@@ -23,13 +23,13 @@ enum retain_change { RETAIN_KEEP = 0, RETAIN_SET = 1, RETAIN_INHERIT = 2 };
 
 /* Plain data: a retention job. */
 typedef struct retain_req_t {
-    struct queue *q;         /* the model (borrowed); NULL: every model */
-    int change_days;         /* enum retain_change */
-    double days;             /* RETAIN_SET: keep this many days (0: forever) */
-    int change_transitions;  /* enum retain_change */
-    uint64_t transitions;    /* RETAIN_SET: keep at least the newest N (0: all) */
-    int run;                 /* apply the policy now */
-    double default_days;     /* the daemon's --retain-days, for models without their own */
+    struct queue *q;              /* the model (borrowed); NULL: every model */
+    int change_days;              /* enum retain_change */
+    double days;                  /* RETAIN_SET: keep this many days (0: forever) */
+    int change_transitions;       /* enum retain_change */
+    uint64_t transitions;         /* RETAIN_SET: keep at least the newest N (0: all) */
+    int run;                      /* apply the policy now */
+    double default_days;          /* the daemon's --retain-days, for models without their own */
     uint64_t default_transitions; /* the daemon's --retain-transitions */
 } retain_req_t;
 
