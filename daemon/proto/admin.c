@@ -76,9 +76,8 @@ int do_auth(struct req *rq)
     const char *want = rq->p->o->token;
     if (!want) {
         pc->authed = 1; /* nothing to check: accept, as a client may always send auth */
-    } else if (cJSON_IsString(t) && t->valuestring &&
-               ct_equal(t->valuestring, strlen(t->valuestring), want, strlen(want))) {
-        pc->authed = 1;
+    } else if (cJSON_IsString(t) && t->valuestring && ops_auth(rq, t->valuestring)) {
+        pc->authed = 1; /* with the token's role (ops.c) */
     } else {
         say_warn("connection %llu: authentication failed", (unsigned long long)conn_id(rq->c));
         FAIL(rq, WORTH_E_UNAUTHORIZED, "wrong or missing token");

@@ -13,6 +13,7 @@
 #include "common/jw.h"
 #include "core/spec.h"
 #include "live/learner.h"
+#include "roles.h"
 #include "net/conn.h"
 #include "proto/proto.h"
 #include "store/writer.h"
@@ -57,6 +58,9 @@ typedef struct proto_conn {
     uint64_t pseq;                   /* pending bulk: the first record's pseq, 0: none */
     char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
     int has_id;
+    int role;                        /* what it may do (roles.h; ops.c checks it) */
+    int op;                          /* index of its last request's op (-1: none yet) */
+    char who[ROLES_WHO_MAX];         /* who it is, for the log and audit events */
 } proto_conn_t;
 
 /*
@@ -108,7 +112,14 @@ struct proto {
     struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
     size_t n_rsrc;
     char err[512];
+    /* ops.c: requests and errors answered, by op (the last row: before any op was known). */
+    uint64_t *n_requests;
+    uint64_t *n_errors; /* [op][-code], PROTO_CODES per op */
+    double started_at;  /* wall clock at proto_new, seconds */
 };
+
+/* Error codes counted per op (their negated values index n_errors). */
+#define PROTO_CODES 64
 
 /* A request being handled: its tree, id text and connection. */
 struct req {
@@ -237,6 +248,26 @@ int do_get(struct req *rq);
 int do_value(struct req *rq);
 int do_stats(struct req *rq);
 int do_history(struct req *rq);
+
+/* proto.c: the ops table, read */
+size_t proto_n_ops(void);
+const char *proto_op_name(size_t i);
+
+/* ops.c: roles, counts, audit; status, retention, model.purge */
+/* A request of op i (named op) arrived on rq's connection: counts it and checks the
+ * connection's role.  Returns 0 to go on, or 1 when it was answered (forbidden). */
+int ops_admit(struct req *rq, size_t i, const char *op);
+/* An error reply of code on c: counted under c's last op. */
+void ops_count_error(struct proto *p, struct conn *c, int code);
+/* A new connection's role and name (needs_auth: TCP with tokens, no role until auth). */
+void ops_conn_init(struct proto *p, struct conn *c, proto_conn_t *pc, int needs_auth);
+/* The Unix peer of c has these credentials (net/conn.h): its role by the peer rules. */
+void ops_peer(struct proto *p, struct conn *c, const conn_peer_t *peer);
+/* auth with token: returns 1 and sets the connection's role when it is one of worthd's. */
+int ops_auth(struct req *rq, const char *token);
+int do_status(struct req *rq);
+int do_retention(struct req *rq);
+int do_purge(struct req *rq);
 
 /* admin.c */
 int do_hello(struct req *rq);

@@ -76,6 +76,7 @@ void reg_reply_damaged(struct proto *p, struct conn *c, const char *id,
     snprintf(seq, sizeof seq, ",\"seq\":%llu", (unsigned long long)dm->seq);
     reply_format_error_with(p, id, WORTH_E_DAMAGED, -1, msg, seq);
     reply_send(c, p->out.b, p->out.len);
+    ops_count_error(p, c, WORTH_E_DAMAGED);
 }
 
 /* The slot of learner l, live or dropped. */

@@ -83,6 +83,7 @@ void reply_error(struct proto *p, struct conn *c, const char *id, int code, long
     va_end(ap);
     reply_format_error(p, id, code, index, msg);
     reply_send(c, p->out.b, p->out.len);
+    ops_count_error(p, c, code);
 }
 
 /* Appends bytes to the connection's ack buffer; returns their offset. */

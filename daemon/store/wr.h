@@ -27,7 +27,8 @@ enum job_kind {
     J_EVENT,
     J_DRIFT,
     J_EVENTS,
-    J_CUT
+    J_CUT,
+    J_OPS /* fn runs it (retain.c, status.c): also without a database, to answer */
 };
 
 struct job {
@@ -44,6 +45,8 @@ struct job {
     int64_t id;
     unsigned diverged;     /* J_CHECKPOINT */
     struct job_done *done; /* set: the poster waits for the job (J_CUT) */
+    void (*fn)(struct writer *w, struct job *j); /* J_OPS: runs it, frees arg */
+    void *arg;                                   /* J_OPS: the job's own data */
     struct job *next;
 };
 
@@ -85,6 +88,8 @@ void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const
     __attribute__((format(printf, 5, 6)));
 int wr_exec(struct writer *w, const char *sql);
 struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id);
+/* Queues j (transferred) behind every job posted before it; any thread. */
+void wr_push(struct writer *w, struct job *j);
 /* Prepares the log's insert statements on w->db; 0 or -1 (none left prepared). */
 int wr_prepare(struct writer *w);
 /* Finalizes them (each NULL after). */

@@ -182,6 +182,10 @@ static void job_backup(struct writer *w, struct job *j)
 static void run_job(struct writer *w, struct job *j)
 {
     char why[256];
+    if (j->kind == J_OPS) {
+        j->fn(w, j);
+        return;
+    }
     if (!w->db) { /* lost after a failed write-back: answer from memory what needs no file */
         snprintf(why, sizeof why, "%s", w->lost_why);
         if (j->kind == J_ADD) {
@@ -233,6 +237,8 @@ static void run_job(struct writer *w, struct job *j)
             events_insert_id(w, j->q ? queue_db_id(j->q) : j->id, j->s1, j->s2);
         else
             say_warn("event %s not recorded: %s", j->s1, why);
+        break;
+    case J_OPS: /* run above */
         break;
     }
 }
@@ -352,6 +358,11 @@ static void push(struct writer *w, struct job *j)
     w->tail = j;
     pthread_cond_signal(&w->cond);
     pthread_mutex_unlock(&w->mu);
+}
+
+void wr_push(struct writer *w, struct job *j)
+{
+    push(w, j);
 }
 
 void writer_add_model(struct writer *w, struct queue *q, int64_t model_id)

@@ -1347,7 +1347,8 @@ def test_schema(daemon):
             ref.executescript(f.read())
     want, want_idx = table_shape(ref)
     ref.close()
-    assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events", "sources"}
+    assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events",
+                         "sources", "retention"}
     db = ro(d.db)
     try:
         assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
