@@ -11,10 +11,16 @@
 
 enum say_level { SAY_ERROR, SAY_WARN, SAY_INFO, SAY_DEBUG };
 
-/* Sets the most verbose level printed (SAY_INFO by default). */
+/* Sets the most verbose level printed (SAY_INFO by default); any thread. */
 void say_set_level(enum say_level level);
 /* Returns the level named name ("error", "warn", "info", "debug"), or -1. */
 int say_parse_level(const char *name);
+/*
+ * Returns 1, and from then on starts each line with its syslog priority ("<3>")
+ * instead of the time, when $JOURNAL_STREAM names stderr (it is the journal);
+ * else 0.  Once, at start-up, before threads exist.
+ */
+int say_detect_journal(void);
 /* Returns 1 when level would be printed. */
 int say_enabled(enum say_level level);
 

@@ -1,9 +1,11 @@
 /*
- * config.h - worthd's configuration: what the options (and, later, a config
- * file) say, in one plain struct.
+ * config.h - worthd's configuration: what the options and the config file
+ * say, in one plain struct.
  *
- * Filled by main.c from the command line before anything starts, then only
- * read, by every part, for the daemon's life.  Units are in the names.
+ * Filled by options.c (the one option table) before anything starts, then
+ * read by every part for the daemon's life.  A reload (SIGHUP) changes the
+ * fields options.c marks live, on the loop thread, so only the loop thread
+ * may read those.  Units are in the names.
  */
 #ifndef WORTH_CONFIG_H
 #define WORTH_CONFIG_H
@@ -39,6 +41,14 @@ typedef struct config_t {
     size_t max_query_work;     /* one value request's work: states x (features + sd terms) */
     const char *backup_dir;    /* where backups go; NULL: the default (store/backup.h) */
     unsigned file_mode;        /* of the database, its companions and backups: 0600 or 0640 */
+    const char *token_file;    /* the token file read, or NULL */
+    const struct roles *roles; /* its tokens with their roles, the peer rules (roles.h) */
+    const char *peer_roles;    /* --peer-role: the rules' text, or NULL */
+    int unix_role;             /* role of a Unix peer no rule names (enum role) */
+    int log_level;             /* enum say_level */
+    double retain_days;        /* keep the log this long (plant checkpoints' age); 0 = forever */
+    uint64_t retain_transitions; /* keep at least this many of the newest transitions; 0 = all */
+    unsigned retain_every_s;   /* period of the retention run; 0 = only when asked */
 } config_t;
 
 #endif /* WORTH_CONFIG_H */

@@ -13,8 +13,10 @@
  *   5. the outbox through which learner and writer threads reach the loop,
  *      and the signals;
  *   6. recovery of every model (a stop signal meanwhile ends it early);
- *   7. the writer thread, then the listeners and the metrics endpoint.
- * The stop (stop()) undoes 7 to 4 in reverse: listeners closed, reading
+ *   7. the writer thread, then the listeners and the metrics endpoint;
+ *   8. READY=1 to systemd (notify.h: STATUS= lines came during 6), the
+ *      watchdog's timer when systemd asked for one, the retention timer.
+ * The stop (stop()) says STOPPING=1, then undoes 8 to 4 in reverse: listeners closed, reading
  * stopped, every learner applies what it accepted and checkpoints, the
  * writer commits the last of it and closes the database, the last replies go
  * out, connections close; the loop then ends and 3 to 1 are freed.
@@ -33,6 +35,8 @@
 
 #include "common/mem.h"
 #include "core/event.h"
+#include "notify.h"
+#include "roles.h"
 #include "live/learner.h"
 #include "metrics/http.h"
 #include "metrics/text.h"
@@ -44,6 +48,7 @@
 #include "common/say.h"
 #include "store/backup.h"
 #include "store/db.h"
+#include "store/retain.h"
 #include "store/writer.h"
 
 /* Bytes of the per-request parse arena. */
@@ -66,7 +71,13 @@ struct worthd {
     struct metrics *metrics;
     uv_signal_t sigs[N_SIGNALS];
     uv_async_t wake;
+    uv_timer_t watchdog; /* WATCHDOG=1 every half of $WATCHDOG_USEC */
+    int have_watchdog;
+    uv_timer_t retain; /* the retention run every --retain-every seconds */
+    int have_retain;
     int stopping;
+    worthd_reload_fn reload;
+    void *reload_ctx;
 
     /* Outbox: events posted by learner and writer threads under mu. */
     pthread_mutex_t mu;
@@ -134,7 +145,16 @@ static void stop(struct worthd *d, const char *why)
     if (d->stopping)
         return;
     d->stopping = 1;
+    notify_stopping(why);
     say_info("%s: stopping; applying everything accepted", why);
+    if (d->have_watchdog) {
+        uv_close((uv_handle_t *)&d->watchdog, NULL);
+        d->have_watchdog = 0;
+    }
+    if (d->have_retain) {
+        uv_close((uv_handle_t *)&d->retain, NULL);
+        d->have_retain = 0;
+    }
     server_stop_listening(d->server);
     metrics_close(d->metrics);
     d->metrics = NULL;
@@ -152,19 +172,33 @@ static void stop(struct worthd *d, const char *why)
     uv_close((uv_handle_t *)&d->wake, NULL);
 }
 
+/* What systemd's status line says while worthd serves. */
+static void tell_ready(struct worthd *d)
+{
+    size_t n = proto_n_models(d->proto);
+    notify_ready("serving %zu model%s on %s%s%s", n, n == 1 ? "" : "s", d->cfg->socket_path,
+                 d->cfg->listen ? " and " : "", d->cfg->listen ? d->cfg->listen : "");
+}
+
 /*
  * SIGINT, SIGTERM and SIGQUIT stop cleanly.  SIGHUP, SIGUSR1 and SIGUSR2 must
- * not kill a daemon that operators and scripts signal by habit: HUP says that
- * nothing can be reloaded in this version, USR1 logs a one-line status, USR2
- * is ignored (logged).  SIGALRM and SIGPIPE are ignored in main.c.
+ * not kill a daemon that operators and scripts signal by habit: HUP reloads
+ * the configuration (what can change live changes, what needs a restart is
+ * logged: options.c), USR1 logs a one-line status, USR2 is ignored (logged).
+ * SIGALRM and SIGPIPE are ignored in main.c.
  */
 static void on_signal(uv_signal_t *h, int signum)
 {
     struct worthd *d = h->data;
     switch (signum) {
     case SIGHUP:
-        say_info("SIGHUP: this worthd has nothing to reload; the options stay as started "
-                 "(restart to change them)");
+        if (!d->reload) {
+            say_info("SIGHUP: nothing to reload");
+            return;
+        }
+        notify_reloading();
+        d->reload(d->reload_ctx);
+        tell_ready(d);
         return;
     case SIGUSR1: {
         size_t models = proto_n_models(d->proto), n, tcp, unauthed;
@@ -224,7 +258,44 @@ static void add_damaged(void *ctx, int64_t id, const char *name, uint64_t seq, c
 static char *render_metrics(void *ctx, size_t *len)
 {
     struct worthd *d = ctx;
-    return metrics_text(d->proto, d->writer, len);
+    return metrics_text(d->proto, d->writer, d->conns, d->cfg->db_path, len);
+}
+
+/* recover_sink_t's progress: systemd's status line while recovery runs. */
+static void recovery_progress(void *ctx, const char *name, size_t index, size_t n, uint64_t done,
+                              uint64_t total)
+{
+    (void)ctx;
+    /* Recovery runs before the loop: its progress keeps systemd's watchdog and start timeout
+     * (EXTEND_TIMEOUT_USEC) from ending a long replay. */
+    notify_recovering("recovering %s (model %zu of %zu), %d%%", name, index + 1, n,
+                      total ? (int)(100.0 * (double)done / (double)total) : 100);
+}
+
+/* Every --retain-every seconds: every model's retention policy, on the writer thread. */
+static void on_retain(uv_timer_t *t)
+{
+    struct worthd *d = t->data;
+    retain_req_t r = {.run = 1,
+                      .default_days = d->cfg->retain_days,
+                      .default_transitions = d->cfg->retain_transitions};
+    writer_retain(d->writer, &r, 0);
+}
+
+/* The watchdog's tick: the loop is alive. */
+static void on_watchdog(uv_timer_t *t)
+{
+    (void)t;
+    notify_watchdog();
+}
+
+/* metrics_auth_fn: a scrape's bearer token must be one of the token file's (any role). */
+static int metrics_auth(void *ctx, const char *bearer, size_t len)
+{
+    struct worthd *d = ctx;
+    if (!d->cfg->token)
+        return 1;
+    return bearer && roles_of_token(d->cfg->roles, bearer, len, NULL) != ROLE_NONE;
 }
 
 /* Runs recovery with stop signals noted rather than taken; returns recover_models' result. */
@@ -232,7 +303,8 @@ static int recover(struct worthd *d, sqlite3 *db, char *err, size_t errlen)
 {
     learner_opts_t lo;
     proto_learner_opts(d->proto, &lo);
-    recover_sink_t sink = {d, &lo, add_recovered, add_damaged};
+    recover_sink_t sink = {d, &lo, add_recovered, add_damaged, recovery_progress};
+    notify_status("recovering the models of %s", d->cfg->db_path);
     const int stops[] = {SIGINT, SIGTERM, SIGQUIT};
     struct sigaction note = {.sa_handler = note_stop}, was[3];
     sigemptyset(&note.sa_mask);
@@ -245,10 +317,12 @@ static int recover(struct worthd *d, sqlite3 *db, char *err, size_t errlen)
     return rc;
 }
 
-int worthd_run(const config_t *cfg)
+int worthd_run(const config_t *cfg, worthd_reload_fn reload, void *reload_ctx)
 {
     struct worthd *d = mem_calloc(1, sizeof *d);
     d->cfg = cfg;
+    d->reload = reload;
+    d->reload_ctx = reload_ctx;
     int status = 1;
     char err[1024];
     sqlite3 *db = NULL;
@@ -275,6 +349,7 @@ int worthd_run(const config_t *cfg)
     }
     say_info("database %s (WAL, synchronous=%s)", cfg->db_path, cfg->sync_full ? "FULL" : "NORMAL");
     db_tighten(db, cfg->file_mode ? cfg->file_mode : 0600);
+    retain_setup(db); /* a new file gives freed space back (auto_vacuum) */
 
     /* 3. The writer: the database connection is its from here on. */
     writer_opts_t wo = {.keep = cfg->keep, .group_max = 4096, .backups = d->backups};
@@ -311,9 +386,27 @@ int worthd_run(const config_t *cfg)
         raise(stop_signal); /* the one noted during recovery, now to the loop's handler */
     writer_event(d->writer, NULL, "start", "{}");
     if (ready && server_listen(d->server) == 0 &&
-        (!cfg->metrics ||
-         metrics_start(&d->loop, cfg->metrics, cfg->token, render_metrics, d, &d->metrics) == 0)) {
+        (!cfg->metrics || metrics_start(&d->loop, cfg->metrics, cfg->token != NULL, metrics_auth,
+                                        render_metrics, d, &d->metrics) == 0)) {
         status = 0;
+        /* 8. Serving: systemd hears it now, not before (Type=notify). */
+        uint64_t wd = notify_watchdog_usec();
+        if (wd) {
+            uint64_t ms = wd / 2000 ? wd / 2000 : 1;
+            uv_timer_init(&d->loop, &d->watchdog);
+            uv_timer_start(&d->watchdog, on_watchdog, ms, ms);
+            d->have_watchdog = 1;
+            notify_watchdog();
+            say_info("systemd watchdog: WATCHDOG=1 every %llu ms", (unsigned long long)ms);
+        }
+        if (cfg->retain_every_s) {
+            uint64_t ms = (uint64_t)cfg->retain_every_s * 1000;
+            uv_timer_init(&d->loop, &d->retain);
+            d->retain.data = d;
+            uv_timer_start(&d->retain, on_retain, ms, ms);
+            d->have_retain = 1;
+        }
+        tell_ready(d);
     } else if (abandoned) {
         stop(d, "stop signal during recovery");
         status = 0;

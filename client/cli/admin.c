@@ -96,11 +96,12 @@ static int parse_window(const char *s, double *lo, double *hi)
 int cmd_rollback(struct cli *cli, int argc, char **argv)
 {
     char *pos[2];
-    int np, replay = 0;
+    int np, replay = 0, yes = 0;
     const char *xseq = NULL, *xtime = NULL;
     const struct opt opts[] = {{"--replay", NULL, &replay},
                                {"--exclude-seq", &xseq, NULL},
                                {"--exclude-time", &xtime, NULL},
+                               {"--yes", NULL, &yes},
                                {0}};
     int ex = parse_args("rollback", argc, argv, opts, pos, 2, 2, &np);
     if (ex)
@@ -130,6 +131,9 @@ int cmd_rollback(struct cli *cli, int argc, char **argv)
     }
     if (exclude)
         replay = 1;
+    if (!cli_confirm("rollback", yes, "roll %s back to checkpoint %lld%s?", pos[0], id,
+                     replay ? " and re-learn the log after it" : " (what it learnt since is undone)"))
+        return EXIT_DECLINED;
     if (cli->json) {
         cJSON *r = cli_request("rollback", pos[0]);
         int ok = r && cJSON_AddNumberToObject(r, "checkpoint", (double)id);

@@ -461,6 +461,25 @@ int cli_tty(void)
     return isatty(STDERR_FILENO);
 }
 
+int cli_confirm(const char *cmd, int yes, const char *fmt, ...)
+{
+    if (yes || !isatty(STDIN_FILENO) || !isatty(STDERR_FILENO))
+        return 1; /* --yes, or a script: nobody to ask */
+    va_list ap;
+    va_start(ap, fmt);
+    vfprintf(stderr, fmt, ap);
+    va_end(ap);
+    fputs(" [y/N] ", stderr);
+    fflush(stderr);
+    char line[32];
+    int ok = fgets(line, sizeof line, stdin) && (strcmp(line, "y\n") == 0 ||
+                                                 strcmp(line, "yes\n") == 0 ||
+                                                 strcmp(line, "Y\n") == 0);
+    if (!ok)
+        fprintf(stderr, "worth: %s: not confirmed; nothing done\n", cmd);
+    return ok;
+}
+
 void fmt_num(char *buf, size_t len, double v)
 {
     if (isnan(v))

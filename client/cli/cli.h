@@ -169,6 +169,15 @@ int cli_query(struct cli *cli, const char *cmd, int argc, char **argv,
 const char *show_cell(const char *s, char *buf, size_t len);
 /* Whether stderr is a terminal (progress bars go there). */
 int cli_tty(void);
+/*
+ * Asks the question (printf-style) on the terminal and returns 1 when the
+ * answer is y or yes; 1 without asking with yes (--yes) or when stdin or
+ * stderr is not a terminal (a script).  A refusal is said ("not confirmed").
+ */
+int cli_confirm(const char *cmd, int yes, const char *fmt, ...)
+    __attribute__((format(printf, 3, 4)));
+/* Exit code of a refused confirmation. */
+#define EXIT_DECLINED EXIT_USAGE
 /* Formats a double for a table cell (%.6g; "-" for NAN). */
 void fmt_num(char *buf, size_t len, double v);
 /* Formats a JSON scalar (or a short array) for a table cell; "-" for NULL or null. */
@@ -197,6 +206,12 @@ int cmd_watch(struct cli *cli, int argc, char **argv);
 int cmd_plot(struct cli *cli, int argc, char **argv);
 /* commands.c: `worth help [CMD]` */
 int cmd_help(struct cli *cli, int argc, char **argv);
+/* ops.c */
+int cmd_status(struct cli *cli, int argc, char **argv);
+int cmd_retention(struct cli *cli, int argc, char **argv);
+/* commands.c: the manual page (roff) and the bash completion, from the table */
+void help_man(FILE *f);
+void help_completion(FILE *f);
 
 /* csv.c */
 /*

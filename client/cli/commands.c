@@ -41,13 +41,21 @@ static const struct cmd cmds[] = {
      "  {\"model\":\"station-1\",\"dims\":2,\"gamma\":0.99,\"ranges\":[[0,12],[0,400]],\n"
      "   \"features\":[{\"basis\":\"bias\"},{\"basis\":\"rbf\",\"centers\":5,\"width\":0.15}],\n"
      "   \"estimators\":[{\"name\":\"td\",\"kind\":\"td\",\"alpha\":0.05}]}\n"},
-    {"drop", cmd_drop, "MODEL", "forget a model",
-     "worth drop MODEL",
+    {"drop", cmd_drop, "MODEL", "forget a model (--purge: and delete its rows)",
+     "worth drop MODEL [--purge] [--yes]",
      "Stops the model's learner and forgets the model (queued transitions are\n"
-     "discarded).\n"
+     "discarded).  Its rows stay in the database for audit, unless --purge: then\n"
+     "every row of every dropped model of that name (log, checkpoints, trainings)\n"
+     "is deleted and the space given back; its events stay.  On a terminal it asks\n"
+     "first.  Needs the admin role.\n"
      "\n"
-     "example:\n"
-     "  worth drop station-1\n"},
+     "options:\n"
+     "  --purge   delete the model's rows too (model.purge)\n"
+     "  --yes     do not ask\n"
+     "\n"
+     "examples:\n"
+     "  worth drop station-1\n"
+     "  worth drop station-1 --purge --yes\n"},
     {"show", cmd_show, "MODEL", "a model's spec and counters",
      "worth show MODEL",
      "The model's spec as created (defaults filled in), its counters, ranges, bases\n"
@@ -204,11 +212,12 @@ static const struct cmd cmds[] = {
      "example:\n"
      "  worth checkpoints station-1\n"},
     {"rollback", cmd_rollback, "MODEL ID", "restore a checkpoint (optionally replaying the log)",
-     "worth rollback MODEL ID [--replay] [--exclude-seq A:B | --exclude-time T0/T1]",
+     "worth rollback MODEL ID [--replay] [--exclude-seq A:B | --exclude-time T0/T1] [--yes]",
      "Restores every estimator of MODEL to checkpoint ID.  Without --replay every\n"
      "transition after it is marked rolled back.  With --replay the log after the\n"
      "checkpoint is learnt again, skipping the window given by sequence numbers or by\n"
-     "the transitions' t (both inclusive); an exclude implies --replay.\n"
+     "the transitions' t (both inclusive); an exclude implies --replay.  On a\n"
+     "terminal it asks first.  Needs the admin role.\n"
      "\n"
      "options:\n"
      "  --replay             re-learn the log after the checkpoint\n"
@@ -216,6 +225,7 @@ static const struct cmd cmds[] = {
      "  --exclude-time T0/T1 skip the transitions with t in T0..T1: ISO-8601 times with\n"
      "                       a zone, or seconds since 1970 (also as T0:T1); transitions\n"
      "                       without t are never in the window\n"
+     "  --yes                do not ask\n"
      "\n"
      "examples:\n"
      "  worth rollback station-1 7\n"
@@ -304,6 +314,36 @@ static const struct cmd cmds[] = {
      "  worth plot station-1 --x 0 --y 2 --at 0,180,0,1 --out value-map.svg\n"
      "  worth plot station-2 --x level --y demand --out value-map.svg\n"
      "  worth plot station-1 --history --out history.svg\n"},
+    {"status", cmd_status, "", "worthd's version, uptime, database, models",
+     "worth status",
+     "worthd's version and uptime, its connections, the database's size against\n"
+     "its limit (--db-max-mb) and the free space on its disk, the daemon's\n"
+     "retention default, and per model: state, transitions received, queue,\n"
+     "healthy estimators, how long ago the last transition was learnt (wall\n"
+     "clock) and how old the last logged one is in plant time (its t), checkpoints.\n"
+     "With --json: the status reply.\n"
+     "\n"
+     "example:\n"
+     "  worth status\n"},
+    {"retention", cmd_retention, "[MODEL]", "the log's retention policy; --run applies it",
+     "worth retention [MODEL] [--days D] [--transitions N | --inherit] [--run]",
+     "Shows each model's retention policy (or MODEL's), sets MODEL's own, and\n"
+     "with --run applies it now: transitions older than D days, beyond the\n"
+     "newest N, are deleted with the checkpoints before them, always keeping\n"
+     "the log back to the oldest checkpoint kept (so a rollback to any kept\n"
+     "checkpoint, and recovery, give the same weights as before), and the space is\n"
+     "given back.  worthd applies the policies every --retain-every seconds too.\n"
+     "Needs the admin role.\n"
+     "\n"
+     "options:\n"
+     "  --days D          keep D days (0: forever)\n"
+     "  --transitions N   keep at least the newest N (0: all)\n"
+     "  --inherit         use worthd's --retain-days and --retain-transitions again\n"
+     "  --run             apply the policies now\n"
+     "\n"
+     "examples:\n"
+     "  worth retention station-1 --days 90 --run\n"
+     "  worth retention --run\n"},
     {"help", cmd_help, "[COMMAND]", "this text, or a command's",
      "worth help [COMMAND]",
      "The global usage, or a command's options and an example.\n"
@@ -327,6 +367,7 @@ static const char global_head[] =
     "  --json               print worthd's reply line unchanged instead of a table\n"
     "  --timeout SECONDS    bound on each call (default 30; 0 = default)\n"
     "  --help, --version\n"
+    "  --print-man, --print-completion  the manual page (roff) or the bash completion\n"
     "\n"
     "commands:\n";
 
@@ -335,7 +376,8 @@ static const char global_tail[] =
     "exit codes:\n"
     "  0  success\n"
     "  1  worthd answered with an error (printed as \"worth: CODE: message\")\n"
-    "  2  usage: bad arguments, an unreadable file, malformed input\n"
+    "  2  usage: bad arguments, an unreadable file, malformed input, a question\n"
+    "     answered no\n"
     "  3  cannot connect to worthd, or the connection was lost\n"
     "\n"
     "example:\n"
@@ -382,4 +424,127 @@ int cmd_help(struct cli *cli, int argc, char **argv)
         return cli_usage("help", "no command \"%s\"", argv[1]);
     help_command(stdout, cmd);
     return EXIT_OK;
+}
+
+/* ---- generated documents ----------------------------------------------------------------- */
+
+/* Writes s for roff inside .nf: backslashes as \e, '-' as \-, a leading '.' or '\'' guarded. */
+static void roff_text(FILE *f, const char *s)
+{
+    int bol = 1;
+    for (; *s; s++) {
+        if (bol && (*s == '.' || *s == '\''))
+            fputs("\\&", f);
+        bol = *s == '\n';
+        if (*s == '\\')
+            fputs("\\e", f);
+        else if (*s == '-')
+            fputs("\\-", f);
+        else
+            fputc(*s, f);
+    }
+}
+
+void help_man(FILE *f)
+{
+    fprintf(f, ".TH WORTH 1 \"\" \"worth %s\" \"User Commands\"\n", WORTH_VERSION);
+    fputs(".SH NAME\nworth \\- the command\\-line client of worthd, the value\\-estimation "
+          "daemon\n.SH SYNOPSIS\n.nf\n",
+          f);
+    roff_text(f, global_head);
+    fputs(".fi\n.SH COMMANDS\n", f);
+    for (size_t i = 0; i < sizeof cmds / sizeof cmds[0]; i++) {
+        fputs(".SS ", f);
+        roff_text(f, cmds[i].name);
+        fputs("\n.nf\nusage: ", f);
+        roff_text(f, cmds[i].usage);
+        fputs("\n\n", f);
+        roff_text(f, cmds[i].help);
+        fputs(".fi\n", f);
+    }
+    fputs(".SH EXIT STATUS\n.nf\n", f);
+    roff_text(f, global_tail);
+    fputs(".fi\n.SH ENVIRONMENT\n.TP\n.B WORTH_SOCKET\nworthd's Unix socket when --socket is "
+          "not given.\n.SH SEE ALSO\n.BR worthd (8)\n",
+          f);
+}
+
+/* The distinct "--option" words of s, space-separated, into buf. */
+static void options_of(const char *s, char *buf, size_t len)
+{
+    size_t n = 0;
+    buf[0] = 0;
+    for (const char *p = s; (p = strstr(p, "--")) != NULL;) {
+        size_t w = 2;
+        while ((p[w] >= 'a' && p[w] <= 'z') || p[w] == '-')
+            w++;
+        if (w > 2) {
+            char word[64];
+            snprintf(word, sizeof word, "%.*s", (int)w, p);
+            int seen = 0;
+            for (const char *q = buf; (q = strstr(q, word)) != NULL; q += strlen(word))
+                seen |= (q == buf || q[-1] == ' ') && (q[strlen(word)] == ' ' || !q[strlen(word)]);
+            if (!seen && n + w + 2 < len)
+                n += (size_t)snprintf(buf + n, len - n, "%s%s", n ? " " : "", word);
+        }
+        p += w;
+    }
+}
+
+void help_completion(FILE *f)
+{
+    fprintf(f, "# bash completion for worth %s, generated from its command table\n"
+               "# (worth --print-completion).\n"
+               "_worth()\n{\n"
+               "    local cur=${COMP_WORDS[COMP_CWORD]} prev=${COMP_WORDS[COMP_CWORD-1]}\n"
+               "    local i cmd=\n"
+               "    for ((i = 1; i < COMP_CWORD; i++)); do\n"
+               "        case ${COMP_WORDS[i]} in\n"
+               "        --socket | --connect | --token-file | --timeout) ((i++)) ;;\n"
+               "        -*) ;;\n"
+               "        *) cmd=${COMP_WORDS[i]}; break ;;\n"
+               "        esac\n"
+               "    done\n"
+               "    case $prev in\n"
+               "    --socket | --token-file | --file | --out)\n"
+               "        COMPREPLY=($(compgen -f -- \"$cur\"))\n"
+               "        return ;;\n"
+               "    esac\n"
+               "    if [[ -z $cmd ]]; then\n"
+               "        if [[ $cur == -* ]]; then\n"
+               "            COMPREPLY=($(compgen -W \"--socket --connect --token-file --json "
+               "--timeout --help --version\" -- \"$cur\"))\n"
+               "        else\n"
+               "            COMPREPLY=($(compgen -W \"",
+            WORTH_VERSION);
+    for (size_t i = 0; i < sizeof cmds / sizeof cmds[0]; i++)
+        fprintf(f, "%s%s", i ? " " : "", cmds[i].name);
+    fputs("\" -- \"$cur\"))\n"
+          "        fi\n"
+          "        return\n"
+          "    fi\n"
+          "    local opts=\n"
+          "    case $cmd in\n",
+          f);
+    for (size_t i = 0; i < sizeof cmds / sizeof cmds[0]; i++) {
+        char opts[1024];
+        options_of(cmds[i].usage, opts, sizeof opts);
+        if (strcmp(cmds[i].name, "help") == 0) {
+            fputs("    help)\n        COMPREPLY=($(compgen -W \"", f);
+            for (size_t k = 0; k < sizeof cmds / sizeof cmds[0]; k++)
+                fprintf(f, "%s%s", k ? " " : "", cmds[k].name);
+            fputs("\" -- \"$cur\"))\n        return ;;\n", f);
+            continue;
+        }
+        fprintf(f, "    %s) opts=\"%s\" ;;\n", cmds[i].name, opts);
+    }
+    fputs("    esac\n"
+          "    if [[ $cur == -* ]]; then\n"
+          "        COMPREPLY=($(compgen -W \"$opts --json --help\" -- \"$cur\"))\n"
+          "    else\n"
+          "        COMPREPLY=($(compgen -f -- \"$cur\"))\n"
+          "    fi\n"
+          "}\n"
+          "complete -F _worth worth\n",
+          f);
 }

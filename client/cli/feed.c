@@ -312,8 +312,11 @@ static int flush_frame(struct feed *fd, struct tpath *tp, int bulk)
             return ex;
         }
         size_t line = bulk ? tp->bulk_line[idx] : tp->batch[idx].line;
+        int first_error = !fd->skip && !fd->err_line;
         feed_row_error(fd, line, NULL, "worthd refused the row: %s: %s", code ? code : "?",
                        msg ? msg : "");
+        if (first_error && code) /* the summary names worthd's own code, not bad_row */
+            snprintf(fd->err_code, sizeof fd->err_code, "%s", code);
         if (fd->skip) {
             drop_row(fd, tp, bulk, (size_t)idx);
             fd->skipped++;
@@ -970,8 +973,8 @@ static enum feed_form tell_form(struct feed *fd, char **hdr, long nh, const stru
         has_xn |= strcmp(hdr[i], "xn0") == 0 || strcmp(hdr[i], "x_next0") == 0 ||
                   strcmp(hdr[i], "x_next_0") == 0 || strcmp(hdr[i], "xn_0") == 0;
     }
-    if (has_x && has_xn)
-        return FORM_TRANSITIONS;
+    if ((has_x && has_xn) || fo->x || fo->xn)
+        return FORM_TRANSITIONS; /* --x or --x-next alone: say what is missing */
     if (samples_has_column(hdr, nh, fo->time, SAMPLE_TIME_NAMES) >= 0)
         return FORM_WIDE;
     if (has_x)

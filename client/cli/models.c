@@ -183,12 +183,36 @@ int cmd_create(struct cli *cli, int argc, char **argv)
 
 int cmd_drop(struct cli *cli, int argc, char **argv)
 {
-    const char *model;
-    int ex = cli_model_arg(cli, "drop", "model.drop", argc, argv, &model);
-    if (!model)
+    char *pos[1];
+    int np, purge = 0, yes = 0;
+    const struct opt opts[] = {{"--purge", NULL, &purge}, {"--yes", NULL, &yes}, {0}};
+    int ex = parse_args("drop", argc, argv, opts, pos, 1, 1, &np);
+    if (ex)
         return ex;
+    const char *model = pos[0];
+    if (!cli_confirm("drop", yes, "%s model %s%s?", purge ? "drop and purge" : "drop", model,
+                     purge ? " (its log and checkpoints are deleted for good)" : ""))
+        return EXIT_DECLINED;
+    if (cli->json)
+        return cli_raw(cli, cli_request(purge ? "model.purge" : "model.drop", model));
     if ((ex = cli_connect(cli)))
         return ex;
+    if (purge) {
+        const char *json = NULL;
+        int rc = worth_model_purge(cli->c, model, &json);
+        if (rc)
+            return cli_fail(cli, rc);
+        cJSON *r = cli_reply(json);
+        const cJSON *rows = json_get(json_get(r, "purged"), "rows"), *e;
+        double total = 0;
+        cJSON_ArrayForEach(e, rows) total += cJSON_IsNumber(e) ? e->valuedouble : 0;
+        char freed[32];
+        fmt_json(freed, sizeof freed, json_get(r, "bytes_freed"));
+        printf("dropped and purged model %s: %.0f rows deleted, %s bytes freed\n", model, total,
+               freed);
+        cJSON_Delete(r);
+        return EXIT_OK;
+    }
     int rc = worth_model_drop(cli->c, model);
     if (rc)
         return cli_fail(cli, rc);

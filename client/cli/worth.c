@@ -50,6 +50,12 @@ int main(int argc, char **argv)
                     return cli_usage(NULL, "--timeout wants seconds 0..86400, not \"%s\"", v);
                 cli.timeout_ms = (int)(s * 1000);
             }
+        } else if (strcmp(a, "--print-man") == 0) {
+            help_man(stdout);
+            return EXIT_OK;
+        } else if (strcmp(a, "--print-completion") == 0) {
+            help_completion(stdout);
+            return EXIT_OK;
         } else if (strcmp(a, "--version") == 0) {
             printf("worth %s\n", WORTH_VERSION);
             return EXIT_OK;

@@ -415,6 +415,16 @@ int worth_stats(worth_client *c, const char *model, const char **json)
     return line_request(c, "stats", model, json);
 }
 
+int worth_status(worth_client *c, const char **json)
+{
+    return line_request(c, "status", NULL, json);
+}
+
+int worth_model_purge(worth_client *c, const char *model, const char **json)
+{
+    return line_request(c, "model.purge", model, json);
+}
+
 /* ---- checkpoints and history ------------------------------------------------------------- */
 
 int worth_checkpoint(worth_client *c, const char *model, const char *label, int64_t *id,

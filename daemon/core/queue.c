@@ -38,6 +38,7 @@ struct queue {
     size_t cap, stride;
     uint64_t head, durable, tail; /* invariant 1 */
     int stop, discard, want_space;
+    int unpaired;          /* under mu: a commit of sources failed; see queue_mark_unpaired */
     atomic_int cut;        /* invariant 4 */
     uint64_t seq;          /* loop thread: last seq given out */
     int64_t db_id;         /* set by the writer before the first durable advance */
@@ -105,6 +106,11 @@ queue_rec_t *queue_slot(struct queue *q, size_t i)
     return queue_rec(q, q->head + i);
 }
 
+void queue_slot_copy(struct queue *q, size_t to, size_t from)
+{
+    memcpy(queue_slot(q, to), queue_slot(q, from), q->stride);
+}
+
 uint64_t queue_commit(struct queue *q, size_t k)
 {
     for (size_t i = 0; i < k; i++) {
@@ -155,6 +161,29 @@ void queue_set_durable(struct queue *q, uint64_t to)
     if (to > q->durable)
         q->durable = to;
     pthread_cond_signal(&q->cond);
+    pthread_mutex_unlock(&q->mu);
+}
+
+void queue_mark_unpaired(struct queue *q)
+{
+    pthread_mutex_lock(&q->mu);
+    q->unpaired = 1;
+    pthread_mutex_unlock(&q->mu);
+}
+
+int queue_unpaired(struct queue *q, uint64_t *unwritten)
+{
+    pthread_mutex_lock(&q->mu);
+    int u = q->unpaired;
+    *unwritten = q->head - q->durable;
+    pthread_mutex_unlock(&q->mu);
+    return u;
+}
+
+void queue_unmark_unpaired(struct queue *q)
+{
+    pthread_mutex_lock(&q->mu);
+    q->unpaired = 0;
     pthread_mutex_unlock(&q->mu);
 }
 

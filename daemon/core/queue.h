@@ -36,8 +36,9 @@ enum {
     QREC_CHECKPOINT = 3, /* a checkpoint request (label in src when est = 1) */
     QREC_ROLLBACK = 4,   /* a rollback request (plan in job) */
     QREC_DEAD = 5,       /* a record whose commit failed: skipped */
-    QREC_SAMPLE = 6      /* a sample, now its source's last (t_s, v, r, terminal, src): logged
-                            in the sources table, not learnt */
+    QREC_SOURCE = 6      /* a source's pairing state after a request (live/pairing.h): its last
+                            sample (t_s, x in v, r, terminal; est = 1 when it has one) and
+                            pseq, for the sources table; not learnt */
 };
 
 /* Plain data: a rollback, filled by the loop, then the writer, then used by the learner. */
@@ -50,7 +51,9 @@ typedef struct queue_plan_t {
     int rc; /* 0, or the error to reply */
     char err[200];
     uint64_t cp_seq, cp_training, undone;
-    uint8_t *blob; /* the checkpoint's state (mem_alloc, owned by the plan) */
+    double cp_plant_t; /* the checkpoint's plant t, NAN when none */
+    uint64_t untimed;  /* by_t: transitions in range without a t, so in no window */
+    uint8_t *blob;     /* the checkpoint's state (mem_alloc, owned by the plan) */
     size_t blob_len;
 } queue_plan_t;
 
@@ -67,7 +70,7 @@ typedef struct queue_rec_t {
     uint32_t passes;   /* TRAIN */
     uint32_t last;     /* 1 on the last record of a request (a commit never splits one) */
     uint64_t conn_id;  /* TRAIN, CHECKPOINT, ROLLBACK: who gets the reply */
-    uint64_t pseq;     /* OBS: the producer's sequence (0: none), kept per source */
+    uint64_t pseq;     /* SOURCE: the last producer sequence of the source's transitions */
     queue_plan_t *job; /* ROLLBACK */
     char src[MODEL_NAME_MAX + 1]; /* OBS: source; TRAIN: estimator; CHECKPOINT: label */
     double v[];
@@ -95,6 +98,8 @@ double queue_footprint(size_t dims, size_t cap);
 size_t queue_space(struct queue *q);
 /* Returns the i-th free slot (i < queue_space) to fill before committing. */
 queue_rec_t *queue_slot(struct queue *q, size_t i);
+/* Copies free slot `from` over free slot `to` (record and both vectors). */
+void queue_slot_copy(struct queue *q, size_t to, size_t from);
 /*
  * Commits the first k filled slots, numbering their transitions (rollbacks
  * raise the cut flag).  Returns the seq of the last transition accepted so
@@ -111,7 +116,21 @@ uint64_t queue_last_seq(const struct queue *q);
  */
 uint64_t queue_position(const struct queue *q);
 
+/*
+ * The pairing of samples (live/pairing.h) runs ahead of the log: when a commit
+ * holding a source's state fails, what the loop paired since no longer
+ * matches the log.  The writer then marks the queue (queue_mark_unpaired) and
+ * fails every record of it still to be written, until the loop has reloaded
+ * the pairing from the log and cleared the mark (queue_unmark_unpaired).
+ */
+/* Returns 1 while the queue is marked; *unwritten gets the records committed, not yet
+ * written (the loop reloads once it is 0). */
+int queue_unpaired(struct queue *q, uint64_t *unwritten);
+void queue_unmark_unpaired(struct queue *q);
+
 /* Writer side [writer] */
+
+void queue_mark_unpaired(struct queue *q);
 
 /* Sets *from and *to to the records committed but not yet durable. */
 void queue_pending(struct queue *q, uint64_t *from, uint64_t *to);

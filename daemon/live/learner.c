@@ -31,7 +31,9 @@
 #include <time.h>
 
 #include "core/queue.h"
+#include "live/pairing.h"
 #include "store/db.h"
+#include "common/fail.h"
 #include "common/mem.h"
 #include "common/say.h"
 #include "worth/errors.h"
@@ -61,6 +63,7 @@ struct snap {
     diag_drift_t drift;
     double spread;
     double last_update;
+    double plant_t;
 };
 
 struct learner {
@@ -69,15 +72,17 @@ struct learner {
     struct model *m;
     size_t dims, n_est;
     learner_opts_t o;
-    struct queue *q;   /* the records, shared with the loop and the writer */
-    uint64_t training; /* loop thread: last training ordinal given out */
+    struct queue *q;      /* the records, shared with the loop and the writer */
+    uint64_t training;    /* loop thread: last training ordinal given out */
+    spec_meta_t meta;     /* loop thread: names, units, sample rules */
+    struct pairing *pair; /* loop thread: the source table's mirror (a superset: rollbacks free
+                             no slot), with each source's last sample and pseq */
 
-    /* Loop-side mirror of the model's source table (a superset: rollbacks free no slot). */
-    char (*src)[MODEL_NAME_MAX + 1];
-    size_t n_src, max_src;
+    size_t max_src;
 
     /* Learner thread only. */
     uint64_t applied_seq, model_training, since_checkpoint;
+    double plant_t;       /* the t of the last transition learnt that had one; NAN: none */
     uint64_t alarms_seen; /* drift alarms already reported */
     int tainted;          /* a replay after a rollback failed: the model is not the log's replay */
     size_t diverged_seen; /* estimators whose divergence has been reported */
@@ -138,6 +143,7 @@ static void publish(struct learner *l, double last_update)
     diag_drift(dg, &b->drift);
     b->spread = diag_spread(dg);
     b->last_update = last_update;
+    b->plant_t = l->plant_t;
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
     /*
@@ -157,6 +163,7 @@ static void publish(struct learner *l, double last_update)
         learner_sample_t *h = &l->hist[l->n_hist++];
         h->t = last_update;
         h->seq = l->applied_seq;
+        h->plant_t = l->plant_t;
         for (size_t i = 0; i < l->n_est; i++) {
             h->td_rms[i] = b->est[i].td_rms;
             h->realised_rms[i] = b->realised[i].n ? b->realised[i].rms_window : NAN;
@@ -203,7 +210,7 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
     model_save(l->m, NULL, 0, &len);
     uint8_t *blob = mem_alloc(len);
     CHECK(model_save(l->m, blob, len, &len) == 0);
-    writer_store_checkpoint(l->o.writer, l->q, l->applied_seq, l->model_training,
+    writer_store_checkpoint(l->o.writer, l->q, l->applied_seq, l->model_training, l->plant_t,
                             (unsigned)model_diverged(l->m), label, blob, len, conn_id);
     l->since_checkpoint = 0;
 }
@@ -220,7 +227,7 @@ static void drift_event(struct learner *l, const diag_drift_t *dr)
     say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
              (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
     writer_drift(l->o.writer, l->q, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
-                 dr->alarms, model_diag_params(l->m)->on_drift);
+                 dr->alarms, model_diag_params(l->m)->on_drift, l->plant_t);
 }
 
 struct train_ctx {
@@ -257,14 +264,16 @@ static void rollback(struct learner *l, queue_rec_t *r)
         return;
     }
     uint64_t replayed = 0, last_training = p->cp_training;
+    double plant_t = p->cp_plant_t;
     if (p->replay) {
         sqlite3 *ro = NULL;
-        db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training};
+        db_start_t from = {p->checkpoint, p->cp_seq, p->cp_training, p->cp_plant_t};
         int rc = db_open_ro(l->o.db_path, &ro, err, sizeof err) ? WORTH_E_STORAGE_ERROR : 0;
         if (rc == 0)
             rc = db_replay(ro, queue_db_id(l->q), l->m, &from, r->seq, &replayed, &last_training,
                            NULL, stopping, l, err, sizeof err);
         sqlite3_close(ro);
+        plant_t = from.plant_t;
         if (rc) {
             /*
              * The model now holds part of a replay: it must never be checkpointed,
@@ -285,13 +294,18 @@ static void rollback(struct learner *l, queue_rec_t *r)
     }
     l->model_training = last_training;
     l->applied_seq = r->seq;
+    l->plant_t = plant_t;
     publish(l, wall_s()); /* queries after the reply see the restored weights */
     say_info("model %s: rolled back to checkpoint %lld (seq %llu): %llu undone, %llu replayed",
              l->name, (long long)p->checkpoint, (unsigned long long)p->cp_seq,
              (unsigned long long)p->undone, (unsigned long long)replayed);
-    reply(l, r->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replayed\":%llu",
+    /* A window of t excludes nothing that has no t: said, so the caller can tell. */
+    char untimed[48] = "";
+    if (p->by_t)
+        snprintf(untimed, sizeof untimed, ",\"untimed\":%llu", (unsigned long long)p->untimed);
+    reply(l, r->conn_id, 0, ",\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replayed\":%llu%s",
           (long long)p->checkpoint, (unsigned long long)p->cp_seq, (unsigned long long)p->undone,
-          (unsigned long long)replayed);
+          (unsigned long long)replayed, untimed);
 }
 
 /*
@@ -319,11 +333,14 @@ static void report_divergence(struct learner *l)
                   "answers no values and is not checkpointed until the model is rolled back",
                   l->name, model_est_name(l->m, i), st.why ? st.why : "?",
                   (unsigned long long)st.diverged_at, (unsigned long long)seq);
-        char detail[256];
-        snprintf(detail, sizeof detail,
-                 "{\"estimator\":\"%s\",\"update\":%llu,\"seq\":%llu,\"reason\":\"%s\"}",
-                 model_est_name(l->m, i), (unsigned long long)st.diverged_at,
-                 (unsigned long long)seq, st.why ? st.why : "");
+        char detail[300];
+        int n = snprintf(detail, sizeof detail,
+                         "{\"estimator\":\"%s\",\"update\":%llu,\"seq\":%llu,\"reason\":\"%s\"",
+                         model_est_name(l->m, i), (unsigned long long)st.diverged_at,
+                         (unsigned long long)seq, st.why ? st.why : "");
+        if (!isnan(l->plant_t))
+            n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", l->plant_t);
+        snprintf(detail + n, sizeof detail - (size_t)n, "}");
         writer_event(l->o.writer, l->q, "diverged", detail);
     }
 }
@@ -346,7 +363,10 @@ static void divergence_seen(struct learner *l)
 static void observed(void *ctx)
 {
     struct learner *l = ctx;
-    queue_rec_t *r = rec_at(l, l->cb_k++);
+    queue_rec_t *r;
+    do /* sources' records between observations are not learnt */
+        r = rec_at(l, l->cb_k++);
+    while (r->type != QREC_OBS);
     l->applied_seq = r->seq;
     diag_drift_t dr;
     diag_drift(model_diag(l->m), &dr);
@@ -381,6 +401,8 @@ static void learn(struct learner *l, queue_rec_t *r)
         CHECK(rc == 0);
     }
     l->since_checkpoint++;
+    if (!isnan(r->t_s))
+        l->plant_t = r->t_s;
     if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every) {
         model_replay_flush(l->rp);
         checkpoint(l, NULL, 0);
@@ -499,6 +521,8 @@ static void *run(void *arg)
                 learn(l, r);
                 continue;
             }
+            if (r->type == QREC_SOURCE)
+                continue; /* for the log only */
             model_replay_flush(l->rp);
             l->cb_k = k + 1;
             apply(l, r);
@@ -547,14 +571,17 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     l->n_est = model_n_est(m);
     l->q = queue_new(name, l->dims, o->queue_cap, o->seq);
     l->applied_seq = o->seq;
+    l->plant_t = o->plant_t;
     l->training = o->training;
     l->model_training = o->model_training;
     l->max_src = model_max_sources(m);
-    l->src = mem_calloc(l->max_src, sizeof *l->src);
+    l->meta.dims = l->dims;
+    l->meta.max_gap_s = INFINITY;
+    l->pair = pairing_new(&l->meta, l->max_src);
     model_counts_t c;
     model_counts(m, &c);
     for (size_t i = 0; i < c.sources; i++)
-        snprintf(l->src[l->n_src++], sizeof l->src[0], "%s", model_source_name(m, i));
+        pairing_note(l->pair, model_source_name(m, i));
     l->post = post;
     l->wake = wake;
     l->ctx = ctx;
@@ -601,7 +628,7 @@ void learner_free(struct learner *l)
     mem_free(l->qwork);
     mem_free(l->hist);
     queue_free(l->q);
-    mem_free(l->src);
+    pairing_free(l->pair);
     mem_free(l->spec_json);
     model_free(l->m);
     mem_free(l);
@@ -612,45 +639,12 @@ struct queue *learner_queue(const struct learner *l)
     return l->q;
 }
 
-static long mirror_find(const struct learner *l, const char *name)
-{
-    for (size_t i = 0; i < l->n_src; i++)
-        if (strcmp(l->src[i], name) == 0)
-            return (long)i;
-    return -1;
-}
-
-int learner_sources_fit(struct learner *l, const char *const *names, size_t k, size_t *bad,
-                        char *err, size_t errlen)
-{
-    /* New names in this request, counted once each; requests rarely carry more than one. */
-    size_t fresh = 0;
-    for (size_t i = 0; i < k; i++) {
-        const char *s = names[i] ? names[i] : "";
-        if (mirror_find(l, s) >= 0)
-            continue;
-        int seen = 0;
-        for (size_t j = 0; j < i && !seen; j++)
-            seen = strcmp(names[j] ? names[j] : "", s) == 0;
-        if (!seen && l->n_src + ++fresh > l->max_src) {
-            snprintf(err, errlen, "source \"%s\" would exceed the model's %zu source slots", s,
-                     l->max_src);
-            if (bad)
-                *bad = i;
-            return WORTH_E_TOO_MANY_SOURCES;
-        }
-    }
-    return 0;
-}
-
 uint64_t learner_commit(struct learner *l, size_t k)
 {
     for (size_t i = 0; i < k; i++) {
         queue_rec_t *r = queue_slot(l->q, i);
-        if (r->type == QREC_OBS && mirror_find(l, r->src) < 0) {
-            CHECK(l->n_src < l->max_src);
-            memcpy(l->src[l->n_src++], r->src, sizeof l->src[0]);
-        }
+        if (r->type == QREC_OBS || r->type == QREC_SOURCE)
+            pairing_note(l->pair, r->src);
     }
     uint64_t seq = queue_commit(l->q, k);
     writer_kick(l->o.writer);
@@ -662,6 +656,42 @@ uint64_t learner_next_training(struct learner *l)
     return ++l->training;
 }
 
+int learner_set_meta(struct learner *l, const spec_meta_t *meta, sqlite3 *db, int64_t model_id,
+                     char *err, size_t errlen)
+{
+    CHECK(meta->dims == l->dims);
+    l->meta = *meta;
+    pairing_set_meta(l->pair, meta);
+    return db ? pairing_load(l->pair, db, model_id, err, errlen) : 0;
+}
+
+struct pairing *learner_pairing(const struct learner *l)
+{
+    return l->pair;
+}
+
+int learner_pairing_check(struct learner *l, char *err, size_t errlen)
+{
+    uint64_t unwritten;
+    if (!queue_unpaired(l->q, &unwritten))
+        return 0;
+    if (unwritten)
+        return err_fail(err, errlen, WORTH_E_STORAGE_ERROR,
+                        "a commit of model %s's samples failed; its pairing is reloaded from the "
+                        "log once the requests before are answered: resend",
+                        l->name);
+    sqlite3 *ro = NULL;
+    int rc = db_open_ro(l->o.db_path, &ro, err, errlen) ? WORTH_E_STORAGE_ERROR : 0;
+    if (rc == 0)
+        rc = pairing_load(l->pair, ro, queue_db_id(l->q), err, errlen);
+    sqlite3_close(ro);
+    if (rc)
+        return rc;
+    queue_unmark_unpaired(l->q);
+    say_info("model %s: the pairing of its samples was reloaded from the log", l->name);
+    return 0;
+}
+
 const char *learner_name(const struct learner *l)
 {
     return l->name;
@@ -670,6 +700,11 @@ const char *learner_name(const struct learner *l)
 const char *learner_spec(const struct learner *l)
 {
     return l->spec_json;
+}
+
+const spec_meta_t *learner_meta(const struct learner *l)
+{
+    return &l->meta;
 }
 
 const struct model *learner_model(const struct learner *l)
@@ -715,6 +750,7 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->spread = s->spread;
     out->horizon = diag_horizon(model_diag(l->m));
     out->last_update = s->last_update;
+    out->plant_t = s->plant_t;
     pthread_mutex_unlock(&l->snap_mu);
     out->received = queue_last_seq(l->q);
     out->queued = queue_depth(l->q);

@@ -4,11 +4,10 @@
  *
  * The learner owns the model and its record queue (core/queue.h): the loop
  * thread fills the queue (through learner_commit, which also keeps the
- * source table's mirror), the writer thread logs it, and the learner thread
- * applies what is durable, in order, and publishes a snapshot of every
- * estimator's weights (and what sd needs) at most every millisecond and
- * whenever its queue runs dry.  Queries take the snapshot under a short lock
- * and never wait for a batch.
+ * source table's mirror in the pairing, live/pairing.h), the writer thread logs it, and the learner
+ * thread applies what is durable, in order, and publishes a snapshot of every estimator's weights
+ * (and what sd needs) at most every millisecond and whenever its queue runs dry.  Queries take the
+ * snapshot under a short lock and never wait for a batch.
  *
  * Thread rules: [loop] functions are for the loop thread only; the callbacks
  * passed to learner_new are called from the learner thread.
@@ -19,10 +18,14 @@
 #include <stddef.h>
 #include <stdint.h>
 
+#include <sqlite3.h>
+
 #include "core/event.h"
+#include "core/spec.h"
 #include "learn/model.h"
 
 struct learner;
+struct pairing;
 struct queue;
 struct writer;
 
@@ -40,12 +43,14 @@ typedef struct learner_stats_t {
     uint64_t checkpoints;               /* valid checkpoints stored (as the writer last saw) */
     double newest_checkpoint_at;        /* created_at of the newest, 0 for none */
     double last_update;                 /* wall clock, seconds; 0 before the first update */
+    double plant_t; /* the t of the last transition learnt that had one; NAN: none */
 } learner_stats_t;
 
 /* Plain data: one sample of the learning history. */
 typedef struct learner_sample_t {
     double t;                           /* wall clock, seconds */
     uint64_t seq;                       /* last transition learnt */
+    double plant_t;                     /* the plant's t then (learner_stats_t); NAN: none */
     double td_rms[MODEL_MAX_EST];       /* each estimator's RMS TD error then */
     double realised_rms[MODEL_MAX_EST]; /* and its realised-return RMS (window); NAN before any */
 } learner_sample_t;
@@ -62,6 +67,8 @@ typedef struct learner_opts_t {
     uint64_t seq;              /* last seq in the log (recovered), 0 for a new model */
     uint64_t training;         /* last training ordinal in the log */
     uint64_t model_training;   /* last training ordinal the recovered model includes */
+    double plant_t;            /* the t of the last transition the recovered model learnt, or NAN
+                                  (a new model: set it NAN too) */
 } learner_opts_t;
 
 /* Lifecycle */
@@ -86,19 +93,20 @@ void learner_stop(struct learner *l, int discard);
 void learner_join(struct learner *l);
 /* Joins if needed and frees everything.  [loop] */
 void learner_free(struct learner *l);
+/*
+ * The model's names, units and sample rules (copied; the default is unnamed
+ * dimensions, the reward of the next sample, no gap limit), and its sources'
+ * pairing state loaded from db for model_id (recovery: db is worthd's
+ * connection; NULL for a new model).  Before anything is committed.  Returns
+ * 0 or a worth code with err (pairing_load).  [loop]
+ */
+int learner_set_meta(struct learner *l, const spec_meta_t *meta, sqlite3 *db, int64_t model_id,
+                     char *err, size_t errlen);
 
 /* Producer side [loop] */
 
 /* Returns the model's queue (owned by the learner): queue_space and queue_slot to fill it. */
 struct queue *learner_queue(const struct learner *l);
-/*
- * Checks that the k source names (borrowed; NULL means the default source)
- * would fit in the model's source slots.  Returns 0 or WORTH_E_TOO_MANY_SOURCES
- * with a message in err and the index of the first name that does not fit in
- * *bad (may be NULL).
- */
-int learner_sources_fit(struct learner *l, const char *const *names, size_t k, size_t *bad,
-                        char *err, size_t errlen);
 /*
  * Commits the first k filled slots of the queue (queue_commit), remembering
  * new sources, and wakes the writer.  Returns the seq of the last transition
@@ -107,11 +115,21 @@ int learner_sources_fit(struct learner *l, const char *const *names, size_t k, s
 uint64_t learner_commit(struct learner *l, size_t k);
 /* Returns the ordinal the next train request gets. */
 uint64_t learner_next_training(struct learner *l);
+/* The pairing of the model's samples (owned by the learner). */
+struct pairing *learner_pairing(const struct learner *l);
+/*
+ * Returns 0 when the pairing matches the log; after a failed commit of a
+ * source's state (queue_mark_unpaired) it is reloaded from the log once every
+ * record committed before is answered, and until then this returns
+ * storage_error with err.
+ */
+int learner_pairing_check(struct learner *l, char *err, size_t errlen);
 
 /* Queries [loop] */
 
 const char *learner_name(const struct learner *l);
 const char *learner_spec(const struct learner *l);
+const spec_meta_t *learner_meta(const struct learner *l);
 /* The model, for its immutable parts only (names, sizes, feature map). */
 const struct model *learner_model(const struct learner *l);
 /* Values of x under the latest snapshot; *seq gets the last applied seq.  As model_value. */

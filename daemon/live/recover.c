@@ -50,6 +50,52 @@ static int max_of(sqlite3 *db, const char *sql, int64_t model, uint64_t *out)
     return rc == SQLITE_ROW ? 0 : -1;
 }
 
+/*
+ * The progress of one model's replay, reported through sink->progress: the
+ * stop_asked callback of the replay is wrapped, as db_replay calls it every
+ * DB_ABANDON_EVERY transitions.
+ */
+struct watch {
+    const recover_sink_t *sink;
+    db_abandon_fn inner; /* the caller's stop_asked, may be NULL */
+    void *inner_ctx;
+    const char *name;
+    size_t index, n;
+    uint64_t done, total;
+    double last_s;
+};
+
+static int watch_replay(void *ctx)
+{
+    struct watch *wt = ctx;
+    wt->done += DB_ABANDON_EVERY;
+    double now = mono_s();
+    if (now - wt->last_s >= RECOVER_PROGRESS_S) {
+        wt->last_s = now;
+        wt->sink->progress(wt->sink->ctx, wt->name, wt->index, wt->n,
+                           wt->done < wt->total ? wt->done : wt->total, wt->total);
+    }
+    return wt->inner && wt->inner(wt->inner_ctx);
+}
+
+/* Transitions of model id after seq that a replay learns (for its progress). */
+static uint64_t replay_total(sqlite3 *db, int64_t id, uint64_t after)
+{
+    sqlite3_stmt *st = NULL;
+    uint64_t n = 0;
+    if (sqlite3_prepare_v2(db,
+                           "SELECT count(*) FROM transitions WHERE model = ?1 AND seq > ?2"
+                           " AND rolled_back = 0",
+                           -1, &st, NULL) == SQLITE_OK) {
+        sqlite3_bind_int64(st, 1, id);
+        sqlite3_bind_int64(st, 2, (sqlite3_int64)after);
+        if (sqlite3_step(st) == SQLITE_ROW)
+            n = (uint64_t)sqlite3_column_int64(st, 0);
+    }
+    sqlite3_finalize(st);
+    return n;
+}
+
 /* What became of one model (recover_one). */
 enum { R_ABANDONED = -2, R_STOP = -1, R_SERVED, R_QUARANTINED, R_READ_DAMAGED, R_CORRUPT };
 
@@ -67,6 +113,9 @@ struct suspect {
 /* Remedies quarantine() names, by where the damage is. */
 #define FIX_SPEC     "correct its spec in the models table"
 #define FIX_TRAINING "correct or delete the damaged row of its trainings"
+#define FIX_SOURCES                                                                                \
+    "delete the damaged row of its sources (its next sample then starts a new chain)"
+#define FIX_RETAINED "restore the database from a backup taken before the checkpoint was damaged"
 #define FIX_PAGES                                                                                  \
     "restore the database from a backup (or salvage it with the sqlite3 shell's .recover)"
 
@@ -116,7 +165,7 @@ static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, 
 static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *spec_text,
                        const recover_sink_t *sink, struct writer *w, event_post_fn post,
                        event_wake_fn wake, void *ctx, db_abandon_fn stop_asked, void *actx,
-                       char *err, size_t errlen)
+                       struct watch *wt, char *err, size_t errlen)
 {
     double t0 = mono_s();
     char why[512];
@@ -163,9 +212,35 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
      * is the database's.
      */
     rc = db_restore_newest(db, id, name, m, &start, why, sizeof why) ? db_error_code(db) : 0;
+    uint64_t floor = 0;
+    if (rc == 0 &&
+        max_of(db, "SELECT COALESCE(MAX(log_floor), 0) FROM retention WHERE model = ?", id,
+               &floor) == 0 &&
+        start.seq < floor) {
+        /* Retention deleted the rows a replay from here needs (store/retain.c, invariant 2). */
+        snprintf(why, sizeof why,
+                 "its newest loadable checkpoint covers seq %llu, but retention deleted the log "
+                 "up to seq %llu: a replay from there would miss transitions",
+                 (unsigned long long)start.seq, (unsigned long long)floor);
+        model_free(m);
+        spec_free(s);
+        quarantine(db, id, name, 0, why, FIX_RETAINED, sink, w);
+        return R_QUARANTINED;
+    }
+    if (rc == 0 && wt) {
+        wt->name = name;
+        wt->done = 0;
+        wt->total = replay_total(db, id, start.seq);
+        wt->last_s = mono_s();
+        wt->sink->progress(wt->sink->ctx, name, wt->index, wt->n, 0, wt->total);
+        stop_asked = watch_replay;
+        actx = wt;
+    }
     if (rc == 0)
         rc = db_replay(db, id, m, &start, UINT64_MAX, &replayed, &training, &bad, stop_asked, actx,
                        why, sizeof why);
+    if (rc == 0 && wt)
+        wt->sink->progress(wt->sink->ctx, name, wt->index, wt->n, wt->total, wt->total);
     if (rc == 0 && (max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
                            &last_seq) != 0 ||
                     max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id,
@@ -200,9 +275,21 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
     lo.seq = last_seq;
     lo.training = last_training;
     lo.model_training = training;
+    lo.plant_t = start.plant_t;
     char *canonical = s->canonical;
     s->canonical = NULL;
     struct learner *l = learner_new(name, canonical, m, &lo, post, wake, ctx);
+    rc = learner_set_meta(l, &s->meta, db, id, why, sizeof why);
+    if (rc) {
+        learner_free(l); /* and its model */
+        spec_free(s);
+        if (rc == WORTH_E_DAMAGED) {
+            quarantine(db, id, name, 0, why, FIX_SOURCES, sink, w);
+            return R_READ_DAMAGED;
+        }
+        snprintf(err, errlen, "model %s: recovery failed: %s", name, why);
+        return rc == WORTH_E_BAD_DATABASE ? R_CORRUPT : R_STOP;
+    }
     writer_add_model(w, learner_queue(l), id);
     sink->model(sink->ctx, l);
     double dt = mono_s() - t0;
@@ -241,6 +328,15 @@ int recover_models(sqlite3 *db, const recover_sink_t *sink, struct writer *w, ev
     }
     struct suspect *sus = NULL;
     size_t n_sus = 0, read = 0; /* read: models whose rows were read without SQLITE_CORRUPT */
+    struct watch wt = {sink, stop_asked, actx, NULL, 0, 0, 0, 0, 0};
+    if (sink->progress) {
+        sqlite3_stmt *cn = NULL;
+        if (sqlite3_prepare_v2(db, "SELECT count(*) FROM models WHERE dropped_at IS NULL", -1, &cn,
+                               NULL) == SQLITE_OK &&
+            sqlite3_step(cn) == SQLITE_ROW)
+            wt.n = (size_t)sqlite3_column_int64(cn, 0);
+        sqlite3_finalize(cn);
+    }
     int rc, out = R_SERVED;
     while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
         /* A name or spec that is not text is damage of that model's row, never a NULL here. */
@@ -255,7 +351,9 @@ int recover_models(sqlite3 *db, const recover_sink_t *sink, struct writer *w, ev
             break;
         }
         out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL,
-                          sink, w, post, wake, ctx, stop_asked, actx, err, errlen);
+                          sink, w, post, wake, ctx, stop_asked, actx,
+                          sink->progress ? &wt : NULL, err, errlen);
+        wt.index++;
         if (out == R_STOP || out == R_ABANDONED)
             break;
         read += out == R_SERVED || out == R_READ_DAMAGED;

@@ -25,7 +25,17 @@ typedef struct recover_sink_t {
     void (*model)(void *ctx, struct learner *l);
     /* A model quarantined: its database id, name, the offending seq (0: none), why. */
     void (*damaged)(void *ctx, int64_t id, const char *name, uint64_t seq, const char *reason);
+    /*
+     * May be NULL.  How far recovery is: model `name` (borrowed), the index-th (from 0) of
+     * n, has replayed `done` of its `total` transitions.  Called as each model begins and
+     * ends, and during its replay at most every RECOVER_PROGRESS_S seconds.
+     */
+    void (*progress)(void *ctx, const char *name, size_t index, size_t n, uint64_t done,
+                     uint64_t total);
 } recover_sink_t;
+
+/* Least time between two progress calls within one model's replay, in seconds. */
+#define RECOVER_PROGRESS_S 0.25
 
 /*
  * Recovers every live model of db (borrowed; the writer must not run yet)

@@ -16,7 +16,6 @@
 #include <strings.h>
 #include <sys/socket.h>
 
-#include "common/ct.h"
 #include "common/list.h"
 #include "common/mem.h"
 #include "common/say.h"
@@ -41,7 +40,8 @@ struct mconn {
 
 struct metrics {
     uv_tcp_t listener;
-    const char *token;
+    int have_token;         /* scrapes must carry a bearer token */
+    metrics_auth_fn auth;   /* is this one of worthd's tokens? */
     metrics_render_fn render;
     void *ctx;
     struct mconn *conns;
@@ -176,8 +176,8 @@ static int handle(struct mconn *c, size_t end)
         *q = 0;
     if (strcmp(target, "/metrics") != 0)
         return error(c, 404, "Not Found");
-    if (c->m->token && (!auth || auth_len < 7 || strncmp(auth, "Bearer ", 7) != 0 ||
-                        !ct_equal(auth + 7, auth_len - 7, c->m->token, strlen(c->m->token))))
+    if (c->m->have_token && (!auth || auth_len < 7 || strncmp(auth, "Bearer ", 7) != 0 ||
+                             !c->m->auth(c->m->ctx, auth + 7, auth_len - 7)))
         return error(c, 401, "Unauthorized");
     size_t blen = 0;
     char *body = c->m->render(c->m->ctx, &blen);
@@ -261,7 +261,7 @@ static void on_listener_closed(uv_handle_t *h)
     maybe_free(m);
 }
 
-int metrics_start(uv_loop_t *loop, const char *host_port, const char *token,
+int metrics_start(uv_loop_t *loop, const char *host_port, int token, metrics_auth_fn auth,
                   metrics_render_fn render, void *ctx, struct metrics **out)
 {
     struct sockaddr_storage addr;
@@ -278,7 +278,8 @@ int metrics_start(uv_loop_t *loop, const char *host_port, const char *token,
         return -1;
     }
     struct metrics *m = mem_calloc(1, sizeof *m);
-    m->token = token;
+    m->have_token = token;
+    m->auth = auth;
     m->render = render;
     m->ctx = ctx;
     uv_tcp_init(loop, &m->listener);

@@ -18,14 +18,16 @@ struct writer;
 
 /* Builds the exposition text (owned by the caller, free); *len gets its length. */
 typedef char *(*metrics_render_fn)(void *ctx, size_t *len);
+/* 1 when the bearer token (len bytes, borrowed) may scrape; compared in constant time. */
+typedef int (*metrics_auth_fn)(void *ctx, const char *bearer, size_t len);
 
 /*
- * Listens on host_port (borrowed for the listener's life).  token (borrowed,
- * may be NULL) makes every request carry "Authorization: Bearer TOKEN".  A
- * non-loopback address without a token is refused.  Returns 0 with *out
- * (owned; metrics_close), or -1 (logged).
+ * Listens on host_port (borrowed for the listener's life).  With token set,
+ * every request must carry "Authorization: Bearer TOKEN" that auth (with ctx)
+ * accepts.  A non-loopback address without a token is refused.  Returns 0
+ * with *out (owned; metrics_close), or -1 (logged).
  */
-int metrics_start(uv_loop_t *loop, const char *host_port, const char *token,
+int metrics_start(uv_loop_t *loop, const char *host_port, int token, metrics_auth_fn auth,
                   metrics_render_fn render, void *ctx, struct metrics **out);
 /* Closes the listener and every open metrics connection; frees m when they are closed. */
 void metrics_close(struct metrics *m);

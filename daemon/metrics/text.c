@@ -14,11 +14,20 @@
 #include <string.h>
 #include <time.h>
 
+#include <sys/stat.h>
+
 #include "common/jw.h"
 #include "common/mem.h"
 #include "live/learner.h"
+#include "net/conn.h"
 #include "proto/proto.h"
 #include "store/writer.h"
+#include "worth/errors.h"
+#include "worth/protocol.h"
+
+#ifndef WORTH_VERSION
+#define WORTH_VERSION "0.0.0"
+#endif
 
 /* A label value, escaped as the exposition format asks (backslash, quote, newline). */
 static void out_label(jw_t *o, const char *s)
@@ -53,7 +62,67 @@ static void metric_head(jw_t *o, const char *name, const char *type, const char 
     jw_fmt(o, "# HELP %s %s\n# TYPE %s %s\n", name, help, name, type);
 }
 
-char *metrics_text(const struct proto *p, struct writer *w, size_t *len)
+/*
+ * The daemon's own figures: build, start time, requests and errors by op and code,
+ * connections, the database file's bytes.  The file's size is read with stat() (metadata,
+ * no data read) at each scrape.
+ */
+static void daemon_text(jw_t *o, const struct proto *p, const struct conns *conns,
+                        const char *db_path)
+{
+    metric_head(o, "worth_build_info", "gauge", "Always 1; the labels say which worthd runs.");
+    jw_fmt(o, "worth_build_info{version=\"%s\",protocol=\"%d\"} 1\n", WORTH_VERSION,
+           WORTH_PROTOCOL_VERSION);
+    metric_head(o, "process_start_time_seconds", "gauge",
+                "Start time of the process since unix epoch in seconds.");
+    jw_lit(o, "process_start_time_seconds ");
+    out_val(o, proto_started_at(p));
+    jw_lit(o, "\n");
+    size_t n_ops = proto_op_count();
+    metric_head(o, "worth_requests_total", "counter", "Requests received, by op.");
+    for (size_t i = 0; i <= n_ops; i++) {
+        uint64_t v = proto_requests(p, i);
+        if (i == n_ops && !v)
+            continue;
+        jw_lit(o, "worth_requests_total{op=");
+        out_label(o, proto_op(i));
+        jw_fmt(o, "} %llu\n", (unsigned long long)v);
+    }
+    metric_head(o, "worth_errors_total", "counter",
+                "Error replies, by op (none: before the op was known) and code.");
+    for (size_t i = 0; i <= n_ops; i++)
+        for (int code = -1; code > -64; code--) {
+            uint64_t v = proto_errors(p, i, code);
+            if (!v)
+                continue;
+            jw_lit(o, "worth_errors_total{op=");
+            out_label(o, proto_op(i));
+            jw_lit(o, ",code=");
+            out_label(o, worth_err_name(code));
+            jw_fmt(o, "} %llu\n", (unsigned long long)v);
+        }
+    size_t n = 0, tcp = 0, unauthed = 0;
+    if (conns)
+        conns_count(conns, &n, &tcp, &unauthed);
+    metric_head(o, "worth_connections", "gauge", "Client connections open, by transport.");
+    jw_fmt(o, "worth_connections{transport=\"unix\"} %zu\nworth_connections{transport=\"tcp\"} "
+              "%zu\n",
+           n - tcp, tcp);
+    metric_head(o, "worth_connections_unauthenticated", "gauge",
+                "TCP connections that have not authenticated yet.");
+    jw_fmt(o, "worth_connections_unauthenticated %zu\n", unauthed);
+    struct stat sb;
+    char wal[4200];
+    snprintf(wal, sizeof wal, "%s-wal", db_path ? db_path : "");
+    metric_head(o, "worth_database_bytes", "gauge", "Size of the database file and its WAL.");
+    jw_fmt(o, "worth_database_bytes{file=\"db\"} %llu\n",
+           db_path && stat(db_path, &sb) == 0 ? (unsigned long long)sb.st_size : 0ull);
+    jw_fmt(o, "worth_database_bytes{file=\"wal\"} %llu\n",
+           db_path && stat(wal, &sb) == 0 ? (unsigned long long)sb.st_size : 0ull);
+}
+
+char *metrics_text(const struct proto *p, struct writer *w, const struct conns *conns,
+                   const char *db_path, size_t *len)
 {
     jw_t o;
     jw_init(&o);
@@ -70,6 +139,10 @@ char *metrics_text(const struct proto *p, struct writer *w, size_t *len)
         {"worth_drift_alarms_total", "counter", "Drift alarms raised."},
         {"worth_checkpoints", "gauge", "Valid checkpoints stored."},
         {"worth_checkpoint_age_seconds", "gauge", "Age of the newest checkpoint."},
+        {"worth_last_transition_timestamp_seconds", "gauge",
+         "Wall clock of the last transition learnt, since unix epoch in seconds."},
+        {"worth_inputs_clipped_total", "counter",
+         "State components outside their declared range, clipped."},
     };
     struct timespec ts;
     clock_gettime(CLOCK_REALTIME, &ts);
@@ -98,6 +171,14 @@ char *metrics_text(const struct proto *p, struct writer *w, size_t *len)
                 if (!st[i].checkpoints)
                     continue; /* no checkpoint: no age */
                 v = now - st[i].newest_checkpoint_at;
+                break;
+            case 6:
+                if (st[i].last_update <= 0)
+                    continue; /* nothing learnt yet */
+                v = st[i].last_update;
+                break;
+            case 7:
+                v = (double)st[i].counts.clipped;
                 break;
             }
             jw_lit(&o, per_model[k].name);
@@ -154,6 +235,7 @@ char *metrics_text(const struct proto *p, struct writer *w, size_t *len)
     jw_lit(&o, "worth_commit_seconds_sum ");
     out_val(&o, sum);
     jw_fmt(&o, "\nworth_commit_seconds_count %llu\n", (unsigned long long)count);
+    daemon_text(&o, p, conns, db_path);
     mem_free(st);
     /* The caller frees with free(): hand over a malloc'd copy. */
     char *text = malloc(o.len + 1);

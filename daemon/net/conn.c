@@ -31,10 +31,14 @@
  * It must never do disk I/O or O(n^2) work per transition, and never call
  * the protocol but through the handler.
  */
+/* struct ucred and SO_PEERCRED (Linux). */
+#define _GNU_SOURCE
 #include "net/conn.h"
 
+#include <errno.h>
 #include <stdio.h>
 #include <string.h>
+#include <sys/socket.h>
 
 #include "common/list.h"
 #include "common/mem.h"
@@ -203,10 +207,37 @@ int conn_starved(const struct conn *c)
     return c->starved;
 }
 
+/* Reads a Unix peer's credentials and hands them to the protocol (its role depends on them). */
+static void tell_peer(struct conn *c)
+{
+    struct conns *s = c->set;
+    uv_os_fd_t fd;
+    if (!s->h.peer || uv_fileno(&c->u.h, &fd) != 0)
+        return;
+    struct ucred cr;
+    socklen_t len = sizeof cr;
+    if (getsockopt(fd, SOL_SOCKET, SO_PEERCRED, &cr, &len) != 0) {
+        say_warn("connection %llu: no peer credentials: %s", (unsigned long long)c->id,
+                 strerror(errno));
+        return;
+    }
+    conn_peer_t p = {.pid = (int)cr.pid, .uid = (uint32_t)cr.uid, .gid = (uint32_t)cr.gid};
+    p.groups[0] = p.gid;
+    p.n_groups = 1;
+    gid_t more[64];
+    len = sizeof more;
+    if (getsockopt(fd, SOL_SOCKET, SO_PEERGROUPS, more, &len) == 0)
+        for (size_t i = 0; i < len / sizeof more[0] && p.n_groups < 65; i++)
+            p.groups[p.n_groups++] = (uint32_t)more[i];
+    s->h.peer(s->h.ctx, c, &p);
+}
+
 void conn_start(struct conn *c)
 {
     if (c->tcp)
         uv_tcp_nodelay(&c->u.tcp, 1);
+    else
+        tell_peer(c);
     c->quiet_ms = c->open_ms = uv_now(c->set->loop);
     update_reading(c);
 }

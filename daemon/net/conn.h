@@ -31,6 +31,14 @@ struct conns;
 /* What a line or bulk handler returns. */
 enum { CONN_DONE = 0, CONN_PARK = 1 };
 
+/* Plain data: a Unix socket peer's credentials (SO_PEERCRED, SO_PEERGROUPS). */
+typedef struct conn_peer_t {
+    int pid;
+    uint32_t uid, gid;
+    size_t n_groups;     /* groups below, the primary gid first */
+    uint32_t groups[65]; /* the rest past 65 are not seen (XXX: a rule naming one misses) */
+} conn_peer_t;
+
 /* Callbacks of the protocol, called on the loop thread; ctx is the handler's. */
 typedef struct conn_handler_t {
     void *ctx;
@@ -48,6 +56,9 @@ typedef struct conn_handler_t {
     void (*too_long)(void *ctx, struct conn *c);
     /* 1 when no reply is owed on the connection (so it may close, or count as idle). */
     int (*quiet)(void *ctx, struct conn *c);
+    /* May be NULL.  A Unix connection was accepted from a peer with these credentials
+     * (borrowed), before any of its lines is handled. */
+    void (*peer)(void *ctx, struct conn *c, const conn_peer_t *peer);
 } conn_handler_t;
 
 /* Lifecycle */

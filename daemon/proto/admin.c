@@ -76,9 +76,8 @@ int do_auth(struct req *rq)
     const char *want = rq->p->o->token;
     if (!want) {
         pc->authed = 1; /* nothing to check: accept, as a client may always send auth */
-    } else if (cJSON_IsString(t) && t->valuestring &&
-               ct_equal(t->valuestring, strlen(t->valuestring), want, strlen(want))) {
-        pc->authed = 1;
+    } else if (cJSON_IsString(t) && t->valuestring && ops_auth(rq, t->valuestring)) {
+        pc->authed = 1; /* with the token's role (ops.c) */
     } else {
         say_warn("connection %llu: authentication failed", (unsigned long long)conn_id(rq->c));
         FAIL(rq, WORTH_E_UNAUTHORIZED, "wrong or missing token");
@@ -125,6 +124,7 @@ int do_create(struct req *rq)
     learner_opts_t lo;
     proto_learner_opts(p, &lo);
     struct learner *l = learner_new(s->name, canonical, m, &lo, p->post, p->wake, p->ctx);
+    CHECK(learner_set_meta(l, &s->meta, NULL, 0, p->err, sizeof p->err) == 0); /* no database */
     p->models[p->n++] = reg_new_slot(l, 0);
     say_info("model %s created: %zu dims, %zu features, %zu estimators", s->name, model_dims(m),
              model_features(m), model_n_est(m));

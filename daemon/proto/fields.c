@@ -135,6 +135,53 @@ int fld_vector(const cJSON *arr, size_t n, double *out, const char *name, int *c
     return 1;
 }
 
+int fld_state(const cJSON *v, const spec_meta_t *meta, double *out, const char *name, int *code,
+              char *err, size_t errlen, const char *where)
+{
+    if (!cJSON_IsObject(v))
+        return fld_vector(v, meta->dims, out, name, code, err, errlen, where);
+    if (!meta->named) {
+        *code = WORTH_E_BAD_REQUEST;
+        snprintf(err, errlen,
+                 "%s\"%s\" names dimensions, but the model's have no names: send an array of %zu "
+                 "numbers",
+                 where, name, meta->dims);
+        return 0;
+    }
+    unsigned char seen[FEAT_MAX_DIMS] = {0};
+    size_t got = 0;
+    for (const cJSON *e = v->child; e; e = e->next) {
+        int i = e->string ? spec_dim_find(meta, e->string) : -1;
+        if (i < 0) {
+            *code = WORTH_E_BAD_DIMENSION;
+            snprintf(err, errlen, "%s%s: the model has no dimension \"%.64s\"", where, name,
+                     e->string ? e->string : "");
+            return 0;
+        }
+        if (seen[i]) {
+            *code = WORTH_E_BAD_REQUEST;
+            snprintf(err, errlen, "%s%s.%s appears twice", where, name, e->string);
+            return 0;
+        }
+        if (!cJSON_IsNumber(e) || !isfinite(e->valuedouble)) {
+            *code = WORTH_E_BAD_NUMBER;
+            snprintf(err, errlen, "%s%s.%s is not a finite number", where, name, e->string);
+            return 0;
+        }
+        out[i] = e->valuedouble;
+        seen[i] = 1;
+        got++;
+    }
+    for (size_t i = 0; got < meta->dims && i < meta->dims; i++)
+        if (!seen[i]) {
+            *code = WORTH_E_BAD_DIMENSION;
+            snprintf(err, errlen, "%s%s lacks dimension \"%s\" (%zu of the model's %zu given)",
+                     where, name, meta->names[i], got, meta->dims);
+            return 0;
+        }
+    return 1;
+}
+
 void fld_ensure_scratch(struct proto *p, size_t n_est)
 {
     (void)n_est;

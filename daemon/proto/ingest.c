@@ -21,6 +21,7 @@
 #include "common/mem.h"
 #include "core/queue.h"
 #include "core/arena.h"
+#include "live/pairing.h"
 #include "proto/internal.h"
 #include "core/spec.h"
 #include "common/say.h"
@@ -36,19 +37,16 @@
  * messages ("" or "batch[3]: ").  Returns 0 or a worth code with err set;
  * *src gets the source name (borrowed from the tree; NULL = default).
  */
-/* Largest |r| accepted.  Squares of TD errors must stay finite in a double for the
- * estimators and their running statistics; 1e12 leaves them room (1e24 each) and is far
- * beyond any reward a plant reports in its own units. */
-#define PROTO_MAX_ABS_R 1e12
-
 static int parse_obs(struct learner *l, const cJSON *o, int top, queue_rec_t *r, const char **src,
                      char *err, size_t errlen, const char *where)
 {
-    static const char *const keys_batch[] = {"x",      "r", "x_next", "terminal",
-                                             "source", "t", "dt",     NULL};
-    static const char *const keys_top[] = {"op",       "id",     "model", "x",  "r",   "x_next",
-                                           "terminal", "source", "t",     "dt", "ack", NULL};
-    size_t d = model_dims(learner_model(l));
+    static const char *const keys_batch[] = {"x", "r",  "x_next", "terminal", "source",
+                                             "t", "dt", "pseq",   NULL};
+    static const char *const keys_top[] = {"op",     "id",       "model",  "x", "r",
+                                           "x_next", "terminal", "source", "t", "dt",
+                                           "ack",    "pseq",     NULL};
+    const spec_meta_t *meta = learner_meta(l);
+    size_t d = meta->dims;
     int code = 0;
     const char *bad;
     if (!cJSON_IsObject(o)) {
@@ -75,7 +73,7 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, queue_rec_t *r,
         snprintf(err, errlen, "%s\"x\" is required", where);
         return WORTH_E_BAD_REQUEST;
     }
-    if (!fld_vector(x, d, r->v, "x", &code, err, errlen, where))
+    if (!fld_state(x, meta, r->v, "x", &code, err, errlen, where))
         return code;
     if (!rw) {
         snprintf(err, errlen, "%s\"r\" is required", where);
@@ -88,7 +86,7 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, queue_rec_t *r,
         return WORTH_E_BAD_NUMBER;
     }
     if (xn) {
-        if (!fld_vector(xn, d, r->v + d, "x_next", &code, err, errlen, where))
+        if (!fld_state(xn, meta, r->v + d, "x_next", &code, err, errlen, where))
             return code;
     } else if (!r->terminal) {
         snprintf(err, errlen, "%s\"x_next\" is required unless terminal", where);
@@ -97,7 +95,8 @@ static int parse_obs(struct learner *l, const cJSON *o, int top, queue_rec_t *r,
     r->t_s = NAN;
     r->dt_s = NAN;
     if (!fld_number(o, "t", &r->t_s, &code, err, errlen, where) ||
-        !fld_number(o, "dt", &r->dt_s, &code, err, errlen, where))
+        !fld_number(o, "dt", &r->dt_s, &code, err, errlen, where) ||
+        !smp_pseq(o, &r->pseq, &code, err, errlen, where))
         return code;
     if (!isnan(r->dt_s) && r->dt_s < 0) {
         snprintf(err, errlen, "%s\"dt\" must be >= 0", where);
@@ -139,15 +138,13 @@ static int ack_mode(const cJSON *root)
     return -1;
 }
 
-/* Replies to an accepted observe: now when applied, else once its last seq is durable. */
-static void ack_observe(struct proto *p, struct conn *c, const char *id, struct learner *l,
-                        uint64_t seq, long count, int applied)
+void ingest_ack(struct proto *p, struct conn *c, const char *id, struct learner *l, uint64_t seq,
+                const char *more, int applied)
 {
     jw_t *o = &p->out;
     reply_begin(o, 1, id);
     jw_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
-    if (count >= 0)
-        jw_fmt(o, ",\"count\":%ld", count);
+    jw_lit(o, more);
     if (applied) {
         jw_lit(o, ",\"durable\":false");
         reply_end(o, c);
@@ -155,6 +152,37 @@ static void ack_observe(struct proto *p, struct conn *c, const char *id, struct 
     }
     jw_lit(o, ",\"durable\":true}\n");
     reply_durable(p, c, reg_slot_of(p, learner_queue(l)), queue_position(learner_queue(l)), id);
+}
+
+/*
+ * Commits the k transitions parsed into the queue's first slots (those with a pseq already
+ * logged dropped first) and answers; count: say how many (a batch or bulk).  Returns
+ * PROTO_DONE, or PROTO_PARK when the queue lacks room for the sources' records.
+ */
+static int commit_transitions(struct proto *p, struct conn *c, const char *id, struct learner *l,
+                              size_t k, int count, int applied)
+{
+    int pseqs = 0;
+    for (size_t i = 0; i < k && !pseqs; i++)
+        pseqs = queue_slot(learner_queue(l), i)->pseq != 0;
+    size_t skipped = 0, n = k;
+    if (pseqs) {
+        long j = smp_dedup(p, c, id, l, k, &skipped);
+        if (j == -1)
+            return PROTO_DONE;
+        if (j == -2)
+            return fld_park(l);
+        n = (size_t)j;
+    }
+    uint64_t seq = n ? learner_commit(l, n) : queue_last_seq(learner_queue(l));
+    char more[64] = "";
+    int m = 0;
+    if (count)
+        m = snprintf(more, sizeof more, ",\"count\":%zu", k - skipped);
+    if (pseqs)
+        snprintf(more + m, sizeof more - (size_t)m, ",\"skipped\":%zu", skipped);
+    ingest_ack(p, c, id, l, seq, more, applied);
+    return PROTO_DONE;
 }
 
 int do_observe(struct req *rq)
@@ -167,6 +195,8 @@ int do_observe(struct req *rq)
     int applied = ack_mode(rq->root);
     if (applied < 0)
         return fail_done(rq, WORTH_E_BAD_REQUEST, "\"ack\" must be \"durable\" or \"applied\"");
+    if (field(rq->root, "sample") || field(rq->root, "samples"))
+        return smp_observe(rq, l, applied);
     if (!batch) {
         if (queue_space(learner_queue(l)) < 1)
             return fld_park(l);
@@ -174,12 +204,10 @@ int do_observe(struct req *rq)
         const char *src = NULL;
         int rc = parse_obs(l, rq->root, 1, r, &src, p->err, sizeof p->err, "");
         if (!rc)
-            rc = learner_sources_fit(l, &src, 1, NULL, p->err, sizeof p->err);
+            rc = pairing_fit(learner_pairing(l), &src, 1, NULL, p->err, sizeof p->err);
         if (rc)
             return fail_done(rq, rc, "%s", p->err);
-        uint64_t seq = learner_commit(l, 1);
-        ack_observe(p, rq->c, rq->id, l, seq, -1, applied);
-        return PROTO_DONE;
+        return commit_transitions(p, rq->c, rq->id, l, 1, 0, applied);
     }
     static const char *const keys[] = {"op", "id", "model", "batch", "ack", NULL};
     const char *bad;
@@ -207,14 +235,12 @@ int do_observe(struct req *rq)
         }
     }
     size_t bad_at = 0;
-    int rc = learner_sources_fit(l, p->srcs, k, &bad_at, p->err, sizeof p->err);
+    int rc = pairing_fit(learner_pairing(l), p->srcs, k, &bad_at, p->err, sizeof p->err);
     if (rc) {
         reply_error(p, rq->c, rq->id, rc, (long)bad_at, "batch[%zu]: %s", bad_at, p->err);
         return PROTO_DONE;
     }
-    uint64_t seq = learner_commit(l, k);
-    ack_observe(p, rq->c, rq->id, l, seq, (long)k, applied);
-    return PROTO_DONE;
+    return commit_transitions(p, rq->c, rq->id, l, k, 1, applied);
 }
 
 int do_bulk_header(struct req *rq)
@@ -227,11 +253,20 @@ int do_bulk_header(struct req *rq)
         conn_close_after_reply(rq->c);
         return PROTO_DONE;
     }
-    static const char *const keys[] = {"op", "id", "model", "count", "source", "dt", "ack", NULL};
+    static const char *const keys[] = {"op", "id",  "model", "count", "source",
+                                       "dt", "ack", "form",  "pseq",  NULL};
     const char *bad;
     const cJSON *cnt = field(rq->root, "count"), *s = field(rq->root, "source");
+    const cJSON *form = field(rq->root, "form");
     double dt = NAN;
-    int code = 0, applied = ack_mode(rq->root);
+    uint64_t pseq = 0;
+    int code = 0, applied = ack_mode(rq->root), samples = 0;
+    if (cJSON_IsString(form))
+        samples = strcmp(form->valuestring, "samples") == 0
+                      ? 1
+                      : (strcmp(form->valuestring, "transitions") == 0 ? 0 : -1);
+    else if (form)
+        samples = -1;
     if (!fld_only_keys(rq->root, keys, &bad)) {
         FAIL(rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in observe.bulk", bad);
     } else if (applied < 0) {
@@ -251,17 +286,28 @@ int do_bulk_header(struct req *rq)
         FAIL(rq, code, "%s", p->err);
     } else if (!isnan(dt) && dt < 0) {
         FAIL(rq, WORTH_E_BAD_PARAM, "\"dt\" must be >= 0");
+    } else if (samples < 0) {
+        FAIL(rq, WORTH_E_BAD_PARAM, "\"form\" must be \"transitions\" or \"samples\"");
+    } else if (!smp_pseq(rq->root, &pseq, &code, p->err, sizeof p->err, "")) {
+        FAIL(rq, code, "%s", p->err);
+    } else if (samples && (pseq || !isnan(dt))) {
+        FAIL(rq, WORTH_E_BAD_REQUEST,
+             "samples carry their own t: \"pseq\" and \"dt\" are for transitions");
+    } else if (pseq && pseq + (uint64_t)cnt->valuedouble - 1 > (uint64_t)9007199254740992.0) {
+        FAIL(rq, WORTH_E_BAD_PARAM, "\"pseq\" + \"count\" - 1 exceeds 2^53");
     } else {
         snprintf(pc->model, sizeof pc->model, "%s", learner_name(l));
         pc->count = (size_t)cnt->valuedouble;
         snprintf(pc->source, sizeof pc->source, "%s", s ? s->valuestring : "");
         pc->dt_s = dt;
+        pc->bulk_samples = samples;
+        pc->pseq = pseq;
         pc->bulk_applied = applied;
         pc->has_id = rq->id != NULL;
         if (rq->id)
             snprintf(pc->id, sizeof pc->id, "%s", rq->id);
         size_t d = model_dims(learner_model(l));
-        size_t bytes = pc->count * (2 * d + 2) * sizeof(double);
+        size_t bytes = pc->count * (samples ? d + 3 : 2 * d + 2) * sizeof(double);
         if (conn_expect_bulk(rq->c, bytes) != 0) {
             /* The payload is dropped as it arrives; the connection goes on after it. */
             FAIL(rq, WORTH_E_OVER_BUDGET,
@@ -286,11 +332,15 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
         return PROTO_DONE;
     }
     size_t d = model_dims(learner_model(l)), k = pc->count, rec = 2 * d + 2;
+    if (pc->bulk_samples) {
+        CHECK(len == k * (d + 3) * sizeof(double));
+        return smp_bulk(p, c, id, l, data, k, pc->bulk_applied);
+    }
     CHECK(len == k * rec * sizeof(double));
     if (queue_space(learner_queue(l)) < k)
         return fld_park(l);
     const char *src = pc->source[0] ? pc->source : NULL;
-    int rc = learner_sources_fit(l, &src, 1, NULL, p->err, sizeof p->err);
+    int rc = pairing_fit(learner_pairing(l), &src, 1, NULL, p->err, sizeof p->err);
     if (rc) {
         reply_error(p, c, id, rc, -1, "%s", p->err);
         return PROTO_DONE;
@@ -331,10 +381,9 @@ int proto_bulk(struct proto *p, struct conn *c, const unsigned char *data, size_
         r->est = r->passes = 0;
         r->conn_id = 0;
         r->job = NULL;
+        r->pseq = pc->pseq ? pc->pseq + i : 0;
     }
-    uint64_t seq = learner_commit(l, k);
-    ack_observe(p, c, id, l, seq, (long)k, pc->bulk_applied);
-    return PROTO_DONE;
+    return commit_transitions(p, c, id, l, k, 1, pc->bulk_applied);
 }
 
 void proto_bulk_truncated(struct proto *p, struct conn *c, size_t got)

@@ -11,12 +11,23 @@
 #include <stdint.h>
 
 #include "common/jw.h"
+#include "core/spec.h"
 #include "live/learner.h"
+#include "roles.h"
 #include "net/conn.h"
 #include "proto/proto.h"
 #include "store/writer.h"
 
 struct slot;
+
+/* One source that a request names (samples.c), and what the request does to it. */
+struct req_src {
+    char name[MODEL_NAME_MAX + 1];
+    double req_t;  /* the t of its last sample so far in the request; -INFINITY before one */
+    double last_t; /* the t of its last sample logged or taken so far */
+    uint64_t pseq; /* its last pseq logged or taken so far */
+    int changed;   /* the request changes its state: a record of it is logged */
+};
 
 /* One reply waiting its turn on a connection (the transitions it acknowledges, or earlier
  * ones, are not durable yet). */
@@ -43,8 +54,13 @@ typedef struct proto_conn {
     size_t count;                    /* pending bulk: records */
     char source[MODEL_NAME_MAX + 1]; /* pending bulk: source ("" = default) */
     double dt_s;                     /* pending bulk: NAN when absent */
+    int bulk_samples;                /* pending bulk: of form samples */
+    uint64_t pseq;                   /* pending bulk: the first record's pseq, 0: none */
     char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
     int has_id;
+    int role;                        /* what it may do (roles.h; ops.c checks it) */
+    int op;                          /* index of its last request's op (-1: none yet) */
+    char who[ROLES_WHO_MAX];         /* who it is, for the log and audit events */
 } proto_conn_t;
 
 /*
@@ -93,8 +109,17 @@ struct proto {
     double *vals, *sds;
     learner_sample_t *hist; /* history request scratch */
     const char **srcs;      /* max_batch source names of a batch */
+    struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
+    size_t n_rsrc;
     char err[512];
+    /* ops.c: requests and errors answered, by op (the last row: before any op was known). */
+    uint64_t *n_requests;
+    uint64_t *n_errors; /* [op][-code], PROTO_CODES per op */
+    double started_at;  /* wall clock at proto_new, seconds */
 };
+
+/* Error codes counted per op (their negated values index n_errors). */
+#define PROTO_CODES 64
 
 /* A request being handled: its tree, id text and connection. */
 struct req {
@@ -172,6 +197,13 @@ int fld_number(const cJSON *obj, const char *name, double *v, int *code, char *e
                const char *where);
 int fld_vector(const cJSON *arr, size_t n, double *out, const char *name, int *code, char *err,
                size_t errlen, const char *where);
+/*
+ * A state: an array of meta->dims finite numbers, or (a model with named
+ * dimensions) an object naming each dimension once.  Returns 1 with out
+ * filled, or 0 with code and message set.
+ */
+int fld_state(const cJSON *v, const spec_meta_t *meta, double *out, const char *name, int *code,
+              char *err, size_t errlen, const char *where);
 void fld_ensure_scratch(struct proto *p, size_t n_est);
 void fld_keep_id(struct req *rq);
 int fld_park(struct learner *l);
@@ -179,6 +211,36 @@ int fld_park(struct learner *l);
 /* ingest.c */
 int do_observe(struct req *rq);
 int do_bulk_header(struct req *rq);
+/* Replies to an accepted observe (more: the members after seq, e.g. ",\"count\":3"): now with
+ * applied, else once everything committed so far is durable. */
+void ingest_ack(struct proto *p, struct conn *c, const char *id, struct learner *l, uint64_t seq,
+                const char *more, int applied);
+
+/* Largest |r| accepted.  Squares of TD errors must stay finite in a double for the estimators
+ * and their running statistics; 1e12 leaves them room (1e24 each) and is far beyond any reward
+ * a plant reports in its own units. */
+#define PROTO_MAX_ABS_R 1e12
+
+/* samples.c: samples paired into transitions, producer sequences, the sources op */
+/* observe with "sample" or "samples" (rq's model is l). */
+int smp_observe(struct req *rq, struct learner *l, int applied);
+/* The records of an observe.bulk of form samples: count records of dims + 3 doubles. */
+int smp_bulk(struct proto *p, struct conn *c, const char *id, struct learner *l,
+             const unsigned char *data, size_t count, int applied);
+/* Reads an optional "pseq" of o (an integer 1..2^53) into *pseq (0 when absent); 1, or 0 with
+ * code and message. */
+int smp_pseq(const cJSON *o, uint64_t *pseq, int *code, char *err, size_t errlen,
+             const char *where);
+/*
+ * The k transitions parsed into the queue's first slots, some with a pseq: drops those
+ * already logged (at or below their source's last pseq), moves the rest together and adds
+ * the records of the sources' new pseqs.  Returns the slots to commit (*skipped gets how many
+ * were dropped), -1 when it answered the request (an error), or -2 to park it.  Changes
+ * nothing when it does not return slots.
+ */
+long smp_dedup(struct proto *p, struct conn *c, const char *id, struct learner *l, size_t k,
+               size_t *skipped);
+int do_sources(struct req *rq);
 
 /* query.c */
 int do_list(struct req *rq);
@@ -186,6 +248,26 @@ int do_get(struct req *rq);
 int do_value(struct req *rq);
 int do_stats(struct req *rq);
 int do_history(struct req *rq);
+
+/* proto.c: the ops table, read */
+size_t proto_n_ops(void);
+const char *proto_op_name(size_t i);
+
+/* ops.c: roles, counts, audit; status, retention, model.purge */
+/* A request of op i (named op) arrived on rq's connection: counts it and checks the
+ * connection's role.  Returns 0 to go on, or 1 when it was answered (forbidden). */
+int ops_admit(struct req *rq, size_t i, const char *op);
+/* An error reply of code on c: counted under c's last op. */
+void ops_count_error(struct proto *p, struct conn *c, int code);
+/* A new connection's role and name (needs_auth: TCP with tokens, no role until auth). */
+void ops_conn_init(struct proto *p, struct conn *c, proto_conn_t *pc, int needs_auth);
+/* The Unix peer of c has these credentials (net/conn.h): its role by the peer rules. */
+void ops_peer(struct proto *p, struct conn *c, const conn_peer_t *peer);
+/* auth with token: returns 1 and sets the connection's role when it is one of worthd's. */
+int ops_auth(struct req *rq, const char *token);
+int do_status(struct req *rq);
+int do_retention(struct req *rq);
+int do_purge(struct req *rq);
 
 /* admin.c */
 int do_hello(struct req *rq);

@@ -68,8 +68,22 @@ static const struct {
     {"rollback", do_rollback, k_rollback},
     {"backup", do_backup, NULL},
     {"history", do_history, k_model},
+    {"sources", do_sources, k_model},
     {"events", do_events, NULL},
+    {"status", do_status, k_bare},
+    {"retention", do_retention, NULL},
+    {"model.purge", do_purge, k_model},
 };
+
+size_t proto_n_ops(void)
+{
+    return sizeof ops / sizeof ops[0];
+}
+
+const char *proto_op_name(size_t i)
+{
+    return ops[i].op;
+}
 
 /*
  * Checks the bytes of a line before cJSON sees them: cJSON passes invalid
@@ -217,6 +231,7 @@ int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
         goto out;
     }
     proto_conn_t *pc = pconn(c);
+    pc->op = -1; /* until the op is known (errors before it count as op "none") */
     if (pc->needs_auth && !pc->authed && strcmp(opf->valuestring, "auth") != 0) {
         FAIL(&rq, WORTH_E_UNAUTHORIZED, "authenticate first: {\"op\":\"auth\",\"token\":...}");
         goto out;
@@ -229,6 +244,8 @@ int proto_line(struct proto *p, struct conn *c, const char *line, size_t len)
         FAIL(&rq, WORTH_E_UNKNOWN_OP, "unknown op \"%.64s\"", opf->valuestring);
         goto out;
     }
+    if (ops_admit(&rq, i, ops[i].op))
+        goto out; /* forbidden for the connection's role */
     const char *bad;
     if (ops[i].keys && !fld_only_keys(rq.root, ops[i].keys, &bad)) {
         FAIL(&rq, WORTH_E_BAD_REQUEST, "unknown field \"%.64s\" in %s", bad, ops[i].op);
@@ -274,6 +291,9 @@ void proto_event(struct proto *p, const event_t *ev)
             reg_sweep(p);
             if (ev->seq > sl->failed)
                 sl->failed = ev->seq;
+            /* After a failed commit of samples, reload their pairing as soon as it can be. */
+            if (!sl->gone)
+                (void)learner_pairing_check(sl->l, p->err, sizeof p->err);
         }
         mem_free(ev->text);
         return;
@@ -354,19 +374,25 @@ struct proto *proto_new(const config_t *opts, struct writer *w, struct conns *co
     p->conns = conns;
     p->models = mem_calloc(opts->max_models, sizeof *p->models);
     p->srcs = mem_calloc(opts->max_batch, sizeof *p->srcs);
+    p->rsrc = mem_calloc(EST_MAX_SOURCES + 1, sizeof *p->rsrc);
     p->post = post;
     p->wake = wake;
     p->ctx = ctx;
     fld_ensure_scratch(p, MODEL_MAX_EST);
     jw_reserve(&p->out, 65536);
+    p->n_requests = mem_calloc(proto_n_ops() + 1, sizeof *p->n_requests);
+    p->n_errors = mem_calloc((proto_n_ops() + 1) * PROTO_CODES, sizeof *p->n_errors);
+    struct timespec ts;
+    clock_gettime(CLOCK_REALTIME, &ts);
+    p->started_at = (double)ts.tv_sec + ts.tv_nsec * 1e-9;
     return p;
 }
 
 void *proto_conn_open(struct proto *p, struct conn *c, int needs_auth)
 {
-    (void)p;
-    (void)c;
-    return reply_conn_new(needs_auth);
+    proto_conn_t *pc = reply_conn_new(needs_auth);
+    ops_conn_init(p, c, pc, needs_auth);
+    return pc;
 }
 
 int proto_conn_quiet(struct proto *p, struct conn *c)
@@ -422,6 +448,11 @@ static int h_quiet(void *ctx, struct conn *c)
     return proto_conn_quiet(ctx, c);
 }
 
+static void h_peer(void *ctx, struct conn *c, const conn_peer_t *peer)
+{
+    ops_peer(ctx, c, peer);
+}
+
 void proto_handler(struct proto *p, conn_handler_t *h)
 {
     *h = (conn_handler_t){.ctx = p,
@@ -431,7 +462,8 @@ void proto_handler(struct proto *p, conn_handler_t *h)
                           .bulk = h_bulk,
                           .truncated = h_truncated,
                           .too_long = h_too_long,
-                          .quiet = h_quiet};
+                          .quiet = h_quiet,
+                          .peer = h_peer};
 }
 
 void proto_shutdown(struct proto *p)
@@ -470,9 +502,12 @@ void proto_free(struct proto *p)
     mem_free(p->models);
     mem_free(p->dropped);
     mem_free(p->srcs);
+    mem_free(p->rsrc);
     mem_free(p->vals);
     mem_free(p->sds);
     mem_free(p->hist);
     mem_free(p->out.b);
+    mem_free(p->n_requests);
+    mem_free(p->n_errors);
     mem_free(p);
 }

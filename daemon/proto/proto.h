@@ -71,6 +71,17 @@ struct learner *proto_model(const struct proto *p, size_t i);
 size_t proto_n_damaged(const struct proto *p);
 const char *proto_damaged_name(const struct proto *p, size_t i);
 
+/* Counters for the metrics (loop thread; ops.c) */
+
+/* The ops of the protocol; op i's name ("none" for i == proto_op_count(): before any op). */
+size_t proto_op_count(void);
+const char *proto_op(size_t i);
+/* Requests of op i received, and errors of code answered to them. */
+uint64_t proto_requests(const struct proto *p, size_t op);
+uint64_t proto_errors(const struct proto *p, size_t op, int code);
+/* The wall clock when p was made (seconds since 1970). */
+double proto_started_at(const struct proto *p);
+
 /* Operate (loop thread): what the handler calls */
 
 /* A connection opened: returns its protocol state (owned until proto_conn_close). */

@@ -206,6 +206,7 @@ int do_value(struct req *rq)
         return PROTO_DONE;
     const struct model *m = learner_model(l);
     size_t d = model_dims(m), ne = model_n_est(m);
+    const spec_meta_t *meta = learner_meta(l);
     long pick = -1;
     const cJSON *es = field(rq->root, "estimator");
     if (es) {
@@ -224,7 +225,7 @@ int do_value(struct req *rq)
         return fail_done(rq, WORTH_E_BAD_REQUEST, "give exactly one of \"x\" and \"xs\"");
     jw_t *o = &p->out;
     if (x) {
-        if (!fld_vector(x, d, xv, "x", &code, p->err, sizeof p->err, ""))
+        if (!fld_state(x, meta, xv, "x", &code, p->err, sizeof p->err, ""))
             return fail_done(rq, code, "%s", p->err);
         learner_value(l, xv, d, p->vals, p->sds, &seq);
         long head = headline(rq, m, pick, p->vals);
@@ -284,7 +285,7 @@ int do_value(struct req *rq)
     for (const cJSON *e = xs->child; e; e = e->next, i++) {
         char where[32];
         snprintf(where, sizeof where, "xs[%zu]: ", i);
-        if (!fld_vector(e, d, xv, "x", &code, p->err, sizeof p->err, where)) {
+        if (!fld_state(e, meta, xv, "x", &code, p->err, sizeof p->err, where)) {
             reply_error(p, rq->c, rq->id, code, (long)i, "%s", p->err);
             return PROTO_DONE;
         }
@@ -292,7 +293,7 @@ int do_value(struct req *rq)
     /* Every state from one snapshot, as protocol.md promises: one seq for the whole answer.
      * The first state tells which estimators have diverged in it. */
     seq = learner_read_begin(l);
-    fld_vector(xs->child, d, xv, "x", &code, p->err, sizeof p->err, "");
+    fld_state(xs->child, meta, xv, "x", &code, p->err, sizeof p->err, "");
     learner_read_value(l, xv, d, p->vals, p->sds);
     long head = headline(rq, m, pick, p->vals);
     if (head < 0) {
@@ -303,7 +304,7 @@ int do_value(struct req *rq)
     jw_lit(o, ",\"values\":[");
     i = 0;
     for (const cJSON *e = xs->child; e; e = e->next, i++) {
-        fld_vector(e, d, xv, "x", &code, p->err, sizeof p->err, "");
+        fld_state(e, meta, xv, "x", &code, p->err, sizeof p->err, "");
         learner_read_value(l, xv, d, p->vals, p->sds);
         if (i)
             jw_lit(o, ",");
@@ -332,6 +333,10 @@ int do_stats(struct req *rq)
            (unsigned long long)st.received, (unsigned long long)st.applied,
            (size_t)(st.received - st.applied), (unsigned long long)st.counts.clipped,
            st.counts.sources);
+    if (!isnan(st.plant_t)) {
+        jw_lit(o, ",\"plant_t\":");
+        jw_num(o, st.plant_t);
+    }
     jw_lit(o, ",\"estimators\":{");
     for (size_t i = 0; i < model_n_est(m); i++) {
         const est_stats_t *e = &st.est[i];
@@ -409,7 +414,12 @@ int do_history(struct req *rq)
     for (size_t i = 0; i < n; i++) {
         jw_lit(o, i ? ",{\"t\":" : "{\"t\":");
         jw_num(o, p->hist[i].t);
-        jw_fmt(o, ",\"seq\":%llu,\"td_rms\":[", (unsigned long long)p->hist[i].seq);
+        jw_fmt(o, ",\"seq\":%llu", (unsigned long long)p->hist[i].seq);
+        if (!isnan(p->hist[i].plant_t)) {
+            jw_lit(o, ",\"plant_t\":");
+            jw_num(o, p->hist[i].plant_t);
+        }
+        jw_lit(o, ",\"td_rms\":[");
         for (size_t k = 0; k < model_n_est(m); k++) {
             if (k)
                 jw_lit(o, ",");

@@ -76,6 +76,7 @@ void reg_reply_damaged(struct proto *p, struct conn *c, const char *id,
     snprintf(seq, sizeof seq, ",\"seq\":%llu", (unsigned long long)dm->seq);
     reply_format_error_with(p, id, WORTH_E_DAMAGED, -1, msg, seq);
     reply_send(c, p->out.b, p->out.len);
+    ops_count_error(p, c, WORTH_E_DAMAGED);
 }
 
 /* The slot of learner l, live or dropped. */
@@ -181,6 +182,7 @@ void proto_learner_opts(const struct proto *p, learner_opts_t *o)
     o->checkpoint_every = p->o->checkpoint_every;
     o->db_path = p->o->db_path;
     o->writer = p->w;
+    o->plant_t = NAN;
 }
 
 void proto_add_recovered(struct proto *p, struct learner *l)

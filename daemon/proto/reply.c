@@ -83,6 +83,7 @@ void reply_error(struct proto *p, struct conn *c, const char *id, int code, long
     va_end(ap);
     reply_format_error(p, id, code, index, msg);
     reply_send(c, p->out.b, p->out.len);
+    ops_count_error(p, c, code);
 }
 
 /* Appends bytes to the connection's ack buffer; returns their offset. */
@@ -182,7 +183,8 @@ void reply_fail_one(struct conn *c, void *ctx)
 void reply_durable(struct proto *p, struct conn *c, struct slot *sl, uint64_t seq, const char *id)
 {
     proto_conn_t *pc = pconn(c);
-    queue_reply(pc, sl, seq, p->out.b, p->out.len, id);
+    /* Position 0: nothing was committed since worthd started, so nothing to wait for. */
+    queue_reply(pc, seq ? sl : NULL, seq, p->out.b, p->out.len, id);
     reply_flush(p, c);
 }
 

@@ -89,7 +89,7 @@ void ckpt_job_store(struct writer *w, struct job *j)
     if (ok)
         ok = sqlite3_prepare_v2(w->db,
                                 "INSERT INTO checkpoints(model, seq, training, label, created_at,"
-                                " size, state, diverged) VALUES(?,?,?,?,?,?,?,?)",
+                                " size, state, diverged, plant_t) VALUES(?,?,?,?,?,?,?,?,?)",
                                 -1, &st, NULL) == SQLITE_OK;
     if (ok) {
         sqlite3_bind_int64(st, 1, model);
@@ -103,6 +103,10 @@ void ckpt_job_store(struct writer *w, struct job *j)
         sqlite3_bind_int64(st, 6, (sqlite3_int64)j->len);
         sqlite3_bind_blob(st, 7, j->blob, (int)j->len, SQLITE_STATIC);
         sqlite3_bind_int(st, 8, (int)j->diverged);
+        if (isnan(j->plant_t))
+            sqlite3_bind_null(st, 9);
+        else
+            sqlite3_bind_double(st, 9, j->plant_t);
         ok = sqlite3_step(st) == SQLITE_DONE;
         id = sqlite3_last_insert_rowid(w->db);
     }
@@ -114,6 +118,8 @@ void ckpt_job_store(struct writer *w, struct job *j)
                      (long long)id, (unsigned long long)j->seq, j->conn_id ? "false" : "true");
         if (j->diverged) /* estimators stored reset (est.h): said only when there are some */
             n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"diverged\":%u", j->diverged);
+        if (!isnan(j->plant_t))
+            n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", j->plant_t);
         snprintf(detail + n, sizeof detail - (size_t)n, "}");
         ok = events_insert(w, j->q, "checkpoint", detail) > 0 && ckpt_retain(w, model) == 0 &&
              wr_exec(w, "COMMIT") == 0;
@@ -142,7 +148,7 @@ void ckpt_job_list(struct writer *w, struct job *j)
     jw_fmt(&jb, ",\"checkpoints\":[");
     int rc = SQLITE_ERROR, first = 1;
     if (sqlite3_prepare_v2(w->db,
-                           "SELECT id, seq, label, created_at, size FROM checkpoints"
+                           "SELECT id, seq, label, created_at, size, plant_t FROM checkpoints"
                            " WHERE model = ? AND invalid = 0 ORDER BY seq DESC, id DESC",
                            -1, &st, NULL) == SQLITE_OK) {
         sqlite3_bind_int64(st, 1, queue_db_id(j->q));
@@ -153,8 +159,11 @@ void ckpt_job_list(struct writer *w, struct job *j)
                 jw_fmt(&jb, "null");
             else
                 jw_str(&jb, (const char *)sqlite3_column_text(st, 2));
-            jw_fmt(&jb, ",\"created_at\":%.17g,\"size\":%lld}", sqlite3_column_double(st, 3),
+            jw_fmt(&jb, ",\"created_at\":%.17g,\"size\":%lld", sqlite3_column_double(st, 3),
                    (long long)sqlite3_column_int64(st, 4));
+            if (sqlite3_column_type(st, 5) != SQLITE_NULL)
+                jw_fmt(&jb, ",\"plant_t\":%.17g", sqlite3_column_double(st, 5));
+            jw_fmt(&jb, "}");
             first = 0;
         }
     }
@@ -180,7 +189,8 @@ void ckpt_job_drift(struct writer *w, struct job *j)
         if (sqlite3_prepare_v2(
                 w->db,
                 "INSERT INTO checkpoints(model, seq, training, label, created_at, size, state,"
-                " diverged) SELECT model, seq, training, 'pre-drift', ?1, size, state, diverged"
+                " diverged, plant_t) SELECT model, seq, training, 'pre-drift', ?1, size, state,"
+                " diverged, plant_t"
                 " FROM checkpoints"
                 " WHERE model = ?2 AND invalid = 0 AND seq < ?3 ORDER BY seq DESC, id DESC LIMIT 1",
                 -1, &st, NULL) == SQLITE_OK) {
@@ -206,6 +216,8 @@ void ckpt_job_drift(struct writer *w, struct job *j)
     if (pre)
         n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"pre_drift_checkpoint\":%lld",
                       (long long)pre);
+    if (!isnan(j->plant_t))
+        n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", j->plant_t);
     snprintf(detail + n, sizeof detail - (size_t)n, "}");
     events_insert(w, j->q, "drift", detail);
 }

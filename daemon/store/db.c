@@ -271,9 +271,10 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
                       db_start_t *start, char *err, size_t errlen)
 {
     memset(start, 0, sizeof *start);
+    start->plant_t = NAN;
     sqlite3_stmt *st = NULL;
     if (sqlite3_prepare_v2(db,
-                           "SELECT id, seq, training, state FROM checkpoints"
+                           "SELECT id, seq, training, state, plant_t FROM checkpoints"
                            " WHERE model = ?1 AND invalid = 0 ORDER BY seq DESC, id DESC",
                            -1, &st, NULL) != SQLITE_OK)
         return err_fail(err, errlen, -1, "%s", sqlite3_errmsg(db));
@@ -292,6 +293,8 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
             start->checkpoint = id;
             start->seq = (uint64_t)sqlite3_column_int64(st, 1);
             start->training = (uint64_t)sqlite3_column_int64(st, 2);
+            if (sqlite3_column_type(st, 4) != SQLITE_NULL)
+                start->plant_t = sqlite3_column_double(st, 4);
             break;
         }
         say_warn("model %s: checkpoint %lld cannot be restored (%s); trying an older one", name,
@@ -441,7 +444,7 @@ static int step_failed(sqlite3 *db, uint64_t after, char *err, size_t errlen)
     return err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
 }
 
-int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
+int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, uint64_t upto,
               uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, db_abandon_fn abandon,
               void *actx, char *err, size_t errlen)
 {
@@ -466,7 +469,7 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
                            " AND rolled_back = 0 ORDER BY ordinal",
                            -1, &tr, NULL) != SQLITE_OK ||
         sqlite3_prepare_v2(db,
-                           "SELECT seq, source, x, r, x_next, terminal, dt FROM transitions"
+                           "SELECT seq, source, x, r, x_next, terminal, dt, t FROM transitions"
                            " WHERE model = ?1 AND seq > ?2 AND seq <= ?3 AND rolled_back = 0"
                            " ORDER BY seq",
                            -1, &tx, NULL) != SQLITE_OK) {
@@ -531,6 +534,9 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *
             goto out;
         }
         (*replayed)++;
+        if (sqlite3_column_type(tx, 7) == SQLITE_FLOAT ||
+            sqlite3_column_type(tx, 7) == SQLITE_INTEGER)
+            from->plant_t = sqlite3_column_double(tx, 7);
     }
     if (xrc != SQLITE_DONE) {
         code = step_failed(db, seq, err, errlen);

@@ -73,6 +73,8 @@ typedef struct db_start_t {
     int64_t checkpoint; /* id of the checkpoint restored, 0 for none */
     uint64_t seq;       /* the last transition that state has learnt */
     uint64_t training;  /* the last training (ordinal) it includes */
+    double plant_t;     /* the plant's t of the last transition it learnt, NAN when unknown;
+                           db_replay advances it */
 } db_start_t;
 
 /*
@@ -88,8 +90,9 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
  * Replays into m the log of model_id after *from (transitions with seq in
  * (from->seq, upto], trainings with ordinal > from->training and after_seq <=
  * upto), skipping rolled-back rows, in the order they were first learnt.
- * Fills *replayed (transitions learnt) and *last_training.  Returns 0, or
- * with err:
+ * Fills *replayed (transitions learnt) and *last_training, and sets
+ * from->plant_t to the t of the last transition replayed that has one (left
+ * as it was when none has).  Returns 0, or with err:
  * - WORTH_E_DAMAGED: a row of the model's own is damaged (a column of the
  *   wrong type, a vector of the wrong length, terminal not 0 or 1, a value
  *   model_check refuses, a training naming no estimator or with passes out of
@@ -104,7 +107,7 @@ int db_restore_newest(sqlite3 *db, int64_t model_id, const char *name, struct mo
  *   DB_ABANDON_EVERY transitions) returned nonzero: worthd is stopping.  m
  *   then holds part of the replay and must not be served or checkpointed.
  */
-int db_replay(sqlite3 *db, int64_t model_id, struct model *m, const db_start_t *from, uint64_t upto,
+int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, uint64_t upto,
               uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, db_abandon_fn abandon,
               void *actx, char *err, size_t errlen);
 

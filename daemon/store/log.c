@@ -52,7 +52,7 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
     sqlite3_stmt *st = NULL;
     int found = 0;
     if (sqlite3_prepare_v2(w->db,
-                           "SELECT seq, training, state FROM checkpoints"
+                           "SELECT seq, training, state, plant_t FROM checkpoints"
                            " WHERE id = ? AND model = ? AND invalid = 0",
                            -1, &st, NULL) != SQLITE_OK)
         return -1;
@@ -66,6 +66,8 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
         p->blob_len = (size_t)sqlite3_column_bytes(st, 2);
         p->blob = mem_alloc(p->blob_len);
         memcpy(p->blob, sqlite3_column_blob(st, 2), p->blob_len);
+        p->cp_plant_t =
+            sqlite3_column_type(st, 3) == SQLITE_NULL ? NAN : sqlite3_column_double(st, 3);
     }
     sqlite3_finalize(st);
     if (rc != SQLITE_ROW && rc != SQLITE_DONE)
@@ -84,6 +86,22 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
                  (long long)p->checkpoint, why);
         say_error("model %s: %s", queue_name(q), p->err);
         return 0;
+    }
+    if (p->replay && p->by_t) {
+        /* Transitions without t cannot be in a window of t: they are counted, not excluded. */
+        if (sqlite3_prepare_v2(w->db,
+                               "SELECT COUNT(*) FROM transitions WHERE model = ? AND seq > ?"
+                               " AND seq <= ? AND rolled_back = 0 AND t IS NULL",
+                               -1, &st, NULL) != SQLITE_OK)
+            return -1;
+        sqlite3_bind_int64(st, 1, model);
+        sqlite3_bind_int64(st, 2, (sqlite3_int64)p->cp_seq);
+        sqlite3_bind_int64(st, 3, (sqlite3_int64)r->seq);
+        rc = sqlite3_step(st);
+        p->untimed = rc == SQLITE_ROW ? (uint64_t)sqlite3_column_int64(st, 0) : 0;
+        sqlite3_finalize(st);
+        if (rc != SQLITE_ROW)
+            return -1;
     }
     int64_t ev = events_insert(w, q, "rollback", "{}");
     if (ev <= 0)
@@ -140,9 +158,10 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
         return -1;
     char detail[256];
     snprintf(detail, sizeof detail,
-             "{\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replay\":%s}",
+             "{\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replay\":%s,"
+             "\"untimed\":%llu}",
              (long long)p->checkpoint, (unsigned long long)p->cp_seq, (unsigned long long)p->undone,
-             p->replay ? "true" : "false");
+             p->replay ? "true" : "false", (unsigned long long)p->untimed);
     if (sqlite3_prepare_v2(w->db, "UPDATE events SET detail = ? WHERE id = ?", -1, &st, NULL) !=
         SQLITE_OK)
         return -1;
@@ -193,6 +212,22 @@ static int log_write_record(struct writer *w, struct queue *q, queue_rec_t *r)
         return sqlite3_step(st) == SQLITE_DONE ? 0 : -1;
     case QREC_ROLLBACK:
         return log_mark_rollback(w, q, r);
+    case QREC_SOURCE:
+        st = w->ins_src;
+        sqlite3_reset(st);
+        sqlite3_bind_int64(st, 1, queue_db_id(q));
+        sqlite3_bind_text(st, 2, r->src, -1, SQLITE_STATIC);
+        if (r->est) {
+            sqlite3_bind_double(st, 3, r->t_s);
+            sqlite3_bind_blob(st, 4, r->v, (int)(d * sizeof(double)), SQLITE_STATIC);
+            sqlite3_bind_double(st, 5, r->r);
+        } else {
+            for (int c = 3; c <= 5; c++)
+                sqlite3_bind_null(st, c);
+        }
+        sqlite3_bind_int(st, 6, (int)r->terminal);
+        sqlite3_bind_int64(st, 7, (sqlite3_int64)r->pseq);
+        return sqlite3_step(st) == SQLITE_DONE ? 0 : -1;
     default:
         return 0;
     }
@@ -204,6 +239,8 @@ static void log_fail_records(struct writer *w, struct queue *q, uint64_t from, u
 {
     for (uint64_t k = from; k < to; k++) {
         queue_rec_t *r = queue_rec(q, k);
+        if (r->type == QREC_SOURCE)
+            queue_mark_unpaired(q); /* the loop's pairing ran ahead of what the log holds */
         if (r->type == QREC_TRAIN) {
             event_t ev = {.kind = EV_TRAINED, .q = q, .conn_id = r->conn_id, .rc = code};
             w->post(w->ctx, &ev);
@@ -230,6 +267,7 @@ static void log_fail_records(struct writer *w, struct queue *q, uint64_t from, u
 int log_write_group(struct writer *w)
 {
     size_t budget = w->o.group_max, taken = 0;
+    int refused = 0; /* records of a model marked unpaired were failed */
     uint64_t *from = w->from;
     size_t nm = w->n;
     if (nm == 0)
@@ -241,6 +279,16 @@ int log_write_group(struct writer *w)
         uint64_t f, t;
         queue_pending(w->models[i], &f, &t);
         from[i] = f;
+        uint64_t unwritten;
+        if (t > f && queue_unpaired(w->models[i], &unwritten)) {
+            /* Paired on samples the log lost: refused until the loop reloads its pairing. */
+            log_fail_records(w, w->models[i], f, t, WORTH_E_STORAGE_ERROR,
+                             "an earlier commit of this model's samples failed; its pairing is "
+                             "reloaded from the log, resend");
+            w->upto[i] = f;
+            refused = 1;
+            continue;
+        }
         if (t - f > budget)
             t = f + budget;
         w->upto[i] = f;
@@ -283,7 +331,7 @@ int log_write_group(struct writer *w)
             break;
     }
     if (!began && ok)
-        return 0;
+        return refused;
     if (ok) {
         double t0 = db_now();
         if (wr_exec(w, "COMMIT") != 0)
@@ -331,7 +379,7 @@ int log_write_group(struct writer *w)
         event_t ev = {.kind = EV_DURABLE, .q = q, .seq = w->upto[i]}; /* a queue position */
         w->post(w->ctx, &ev);
     }
-    return taken > 0;
+    return taken > 0 || refused;
 }
 
 void writer_commit_hist(struct writer *w, uint64_t counts[WRITER_HIST_N], double *sum,

@@ -131,9 +131,7 @@ static int rescue_write_back(struct writer *w, char *why, size_t len)
             return -1;
         }
     }
-    sqlite3_finalize(w->ins_tx);
-    sqlite3_finalize(w->ins_tr);
-    w->ins_tx = w->ins_tr = NULL;
+    wr_finalize(w);
     if (sqlite3_close(w->db) != SQLITE_OK) {
         rescue_msgf(why, len, "cannot close the old connection: %s", sqlite3_errmsg(w->db));
         if (wr_prepare(w) != 0)
@@ -162,9 +160,7 @@ static int rescue_write_back(struct writer *w, char *why, size_t len)
     }
     if (wr_prepare(w) != 0 || fileguard_init(&w->guard, path) != 0) {
         rescue_msgf(why, len, "cannot use %s again: %s", path, sqlite3_errmsg(w->db));
-        sqlite3_finalize(w->ins_tx);
-        sqlite3_finalize(w->ins_tr);
-        w->ins_tx = w->ins_tr = NULL;
+        wr_finalize(w);
         sqlite3_close(w->db);
         w->db = NULL;
         return -1;

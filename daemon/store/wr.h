@@ -27,7 +27,8 @@ enum job_kind {
     J_EVENT,
     J_DRIFT,
     J_EVENTS,
-    J_CUT
+    J_CUT,
+    J_OPS /* fn runs it (retain.c, status.c): also without a database, to answer */
 };
 
 struct job {
@@ -40,9 +41,12 @@ struct job {
     uint64_t seq, training;
     uint64_t a, b, c; /* J_DRIFT: onset seq, step, onset step */
     double since;     /* J_EVENTS */
+    double plant_t;   /* J_CHECKPOINT, J_DRIFT: the plant's t then, NAN when unknown */
     int64_t id;
     unsigned diverged;     /* J_CHECKPOINT */
     struct job_done *done; /* set: the poster waits for the job (J_CUT) */
+    void (*fn)(struct writer *w, struct job *j); /* J_OPS: runs it, frees arg */
+    void *arg;                                   /* J_OPS: the job's own data */
     struct job *next;
 };
 
@@ -64,7 +68,7 @@ struct writer {
     struct queue **models;
     size_t n, cap;
     uint64_t *from, *upto; /* per model: records [from, upto) taken into the open transaction */
-    sqlite3_stmt *ins_tx, *ins_tr;
+    sqlite3_stmt *ins_tx, *ins_tr, *ins_src;
     /* Commit-latency histogram (under mu). */
     uint64_t hist[WRITER_HIST_N], hist_count;
     double hist_sum;
@@ -84,8 +88,12 @@ void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const
     __attribute__((format(printf, 5, 6)));
 int wr_exec(struct writer *w, const char *sql);
 struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id);
-/* Prepares the log's insert statements on w->db; 0 or -1. */
+/* Queues j (transferred) behind every job posted before it; any thread. */
+void wr_push(struct writer *w, struct job *j);
+/* Prepares the log's insert statements on w->db; 0 or -1 (none left prepared). */
 int wr_prepare(struct writer *w);
+/* Finalizes them (each NULL after). */
+void wr_finalize(struct writer *w);
 
 /* log.c: the transition log */
 int log_write_group(struct writer *w);

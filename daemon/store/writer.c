@@ -182,6 +182,10 @@ static void job_backup(struct writer *w, struct job *j)
 static void run_job(struct writer *w, struct job *j)
 {
     char why[256];
+    if (j->kind == J_OPS) {
+        j->fn(w, j);
+        return;
+    }
     if (!w->db) { /* lost after a failed write-back: answer from memory what needs no file */
         snprintf(why, sizeof why, "%s", w->lost_why);
         if (j->kind == J_ADD) {
@@ -233,6 +237,8 @@ static void run_job(struct writer *w, struct job *j)
             events_insert_id(w, j->q ? queue_db_id(j->q) : j->id, j->s1, j->s2);
         else
             say_warn("event %s not recorded: %s", j->s1, why);
+        break;
+    case J_OPS: /* run above */
         break;
     }
 }
@@ -323,8 +329,7 @@ void writer_free(struct writer *w)
         pthread_join(w->thread, NULL);
     else
         run(w); /* never started: run the queued jobs here, then stop */
-    sqlite3_finalize(w->ins_tx);
-    sqlite3_finalize(w->ins_tr);
+    wr_finalize(w);
     if (sqlite3_close(w->db) != SQLITE_OK)
         say_error("database did not close cleanly: %s", sqlite3_errmsg(w->db));
     pthread_mutex_destroy(&w->mu);
@@ -355,6 +360,11 @@ static void push(struct writer *w, struct job *j)
     pthread_mutex_unlock(&w->mu);
 }
 
+void wr_push(struct writer *w, struct job *j)
+{
+    push(w, j);
+}
+
 void writer_add_model(struct writer *w, struct queue *q, int64_t model_id)
 {
     struct job *j = wr_job(J_ADD, q, 0);
@@ -378,12 +388,13 @@ void writer_drop_model(struct writer *w, struct queue *q, uint64_t conn_id)
 }
 
 void writer_store_checkpoint(struct writer *w, struct queue *q, uint64_t seq, uint64_t training,
-                             unsigned diverged, const char *label, uint8_t *blob, size_t len,
-                             uint64_t conn_id)
+                             double plant_t, unsigned diverged, const char *label, uint8_t *blob,
+                             size_t len, uint64_t conn_id)
 {
     struct job *j = wr_job(J_CHECKPOINT, q, conn_id);
     j->seq = seq;
     j->training = training;
+    j->plant_t = plant_t;
     j->diverged = diverged;
     j->s1 = label ? mem_strdup(label) : NULL;
     j->blob = blob;
@@ -447,9 +458,11 @@ void writer_drop_damaged(struct writer *w, int64_t model_id, const char *name, u
 }
 
 void writer_drift(struct writer *w, struct queue *q, uint64_t seq, uint64_t onset_seq,
-                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift)
+                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift,
+                  double plant_t)
 {
     struct job *j = wr_job(J_DRIFT, q, 0);
+    j->plant_t = plant_t;
     j->seq = seq;
     j->a = onset_seq;
     j->b = step;

@@ -62,13 +62,15 @@ void writer_create_model(struct writer *w, struct queue *q, const char *name, co
 void writer_drop_model(struct writer *w, struct queue *q, uint64_t conn_id);
 /*
  * Stores a checkpoint of q (blob transferred, from mem_alloc) at seq and
- * training, in which `diverged` estimators had diverged; label may be NULL.
+ * training and plant time plant_t (the t of the last transition learnt, NAN
+ * when none had one), in which `diverged` estimators had diverged; label may
+ * be NULL.
  * Replies to conn_id when it is not 0.  Retention never deletes the newest
  * valid checkpoint in which none had.
  */
 void writer_store_checkpoint(struct writer *w, struct queue *q, uint64_t seq, uint64_t training,
-                             unsigned diverged, const char *label, uint8_t *blob, size_t len,
-                             uint64_t conn_id);
+                             double plant_t, unsigned diverged, const char *label, uint8_t *blob,
+                             size_t len, uint64_t conn_id);
 /*
  * Records in the log that training `ordinal` of q was cut short after
  * `steps` mini-batch steps, so that a replay runs exactly those; returns once
@@ -93,7 +95,8 @@ void writer_event(struct writer *w, struct queue *q, const char *kind, const cha
  * onset_seq, and names it in the event.
  */
 void writer_drift(struct writer *w, struct queue *q, uint64_t seq, uint64_t onset_seq,
-                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift);
+                  uint64_t step, uint64_t onset_step, uint64_t alarms, int pre_drift,
+                  double plant_t);
 /*
  * Replies to conn_id with the events of q (NULL: the daemon-wide ones) at or
  * after since, oldest first, at most limit.

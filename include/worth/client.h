@@ -249,6 +249,17 @@ WORTH_API int worth_train(worth_client *c, const char *model, const char *estima
                           unsigned passes, worth_progress_fn progress, void *ctx,
                           worth_train_t *out);
 
+/* Operations */
+
+/* The status reply (owned by c): version, uptime, the database against its limit, models. */
+WORTH_API int worth_status(worth_client *c, const char **json);
+/*
+ * Drops model (when it is served) and deletes every row of every dropped model
+ * of that name but its events; *json (may be NULL; owned by c) gets the reply
+ * with the rows deleted and the bytes freed.  Needs the admin role.
+ */
+WORTH_API int worth_model_purge(worth_client *c, const char *model, const char **json);
+
 #ifdef __cplusplus
 }
 #endif

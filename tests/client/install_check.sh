@@ -2,9 +2,14 @@
 # install_check.sh BUILD_DIR: installs worth into a temporary DESTDIR, then
 # 1. checks that the installed libworth-client.so exports the worth_* functions
 #    and nothing else (nm -D --defined-only; the library is built with hidden
-#    visibility and marks its API with WORTH_API), and
+#    visibility and marks its API with WORTH_API),
 # 2. builds a program against the installed library and headers with nothing but
-#    pkg-config's flags for worth-client, and runs it (tests only).
+#    pkg-config's flags for worth-client, and runs it (tests only), and
+# 3. checks the rest of the install: worthd in sbindir, the systemd unit with the
+#    configured paths (verified by systemd-analyze verify, its ExecStart pointed at
+#    the binary in the temporary root), the sysusers.d file, the man pages, the bash
+#    completion (bash -n, and it completes the commands), the protocol, and the
+#    sample config, which worthd --check-config accepts.
 set -eu
 build=$1
 dest=$(mktemp -d)
@@ -61,4 +66,37 @@ cc -std=c11 -Wall -Wextra -Werror $san -DWORTH_VERSION_WANTED="\"$version\"" -o 
     "$dest/prog.c" $flags
 LD_LIBRARY_PATH="$lib" "$dest/prog"
 echo "$(wc -l <"$dest/symbols") symbols exported, all worth_*"
+
+prefix=$(meson introspect --buildoptions "$build" | /usr/bin/python3 -c 'import json,sys; print({o["name"]: o["value"] for o in json.load(sys.stdin)}["prefix"])')
+root="$dest$prefix"
+fail() { echo "install: $*"; exit 1; }
+[ -x "$root/sbin/worthd" ] || fail "worthd is not in sbindir ($prefix/sbin)"
+[ -x "$root/bin/worth" ] || fail "worth is not in bindir"
+unit="$root/lib/systemd/system/worthd.service"
+[ -f "$unit" ] || fail "no systemd unit at $unit"
+grep -qx "ExecStart=$prefix/sbin/worthd" "$unit" || fail "the unit's ExecStart is not $prefix/sbin/worthd"
+grep -qx "Type=notify" "$unit" || fail "the unit is not Type=notify"
+sed "s|^ExecStart=$prefix/sbin/worthd|ExecStart=$root/sbin/worthd|" "$unit" >"$dest/worthd.service"
+out=$(systemd-analyze verify --man=no --generators=no "$dest/worthd.service" 2>&1) ||
+    fail "systemd-analyze verify: $out"
+[ -z "$out" ] || fail "systemd-analyze verify: $out"
+echo "systemd-analyze verify: the unit has no finding"
+grep -q '^u worthd ' "$root/lib/sysusers.d/worthd.conf" || fail "no worthd user in sysusers.d"
+for m in man8/worthd.8 man1/worth.1; do
+    f="$root/share/man/$m"
+    [ -s "$f" ] || fail "no man page $m"
+    head -n 1 "$f" | grep -q '^\.TH ' || fail "$m does not start with .TH"
+done
+grep -q 'max\\-query\\-work' "$root/share/man/man8/worthd.8" || fail "worthd.8 lacks the options"
+grep -q '^\.SS rollback' "$root/share/man/man1/worth.1" || fail "worth.1 lacks the commands"
+comp="$root/share/bash-completion/completions/worth"
+bash -n "$comp" || fail "the bash completion does not parse"
+got=$(bash -c '. "$1"; COMP_WORDS=(worth ro); COMP_CWORD=1; _worth; echo "${COMPREPLY[*]}"' _ "$comp")
+[ "$got" = "rollback" ] || fail "completing 'worth ro' gave '$got', not rollback"
+got=$(bash -c '. "$1"; COMP_WORDS=(worth drop --p); COMP_CWORD=2; _worth; echo "${COMPREPLY[*]}"' _ "$comp")
+[ "$got" = "--purge" ] || fail "completing 'worth drop --p' gave '$got', not --purge"
+[ -s "$root/share/doc/worth/protocol.md" ] || fail "the protocol is not installed"
+conf="$root/etc/worthd/worthd.conf"
+[ -s "$conf" ] || fail "no sample config"
+"$root/sbin/worthd" --config "$conf" --check-config >/dev/null || fail "worthd --check-config refuses the sample config"
 echo "1 passed, 0 failed"

@@ -342,6 +342,14 @@ struct conn *conns_find(struct conns *s, uint64_t id)
     return live && live->id == id && !live->closed ? live : NULL;
 }
 
+void conns_count(const struct conns *s, size_t *n, size_t *tcp, size_t *unauthed)
+{
+    (void)s;
+    *n = live && !live->closed;
+    *tcp = *n;
+    *unauthed = 0;
+}
+
 /* ---- the threads' events ---------------------------------------------------------------- */
 
 static pthread_mutex_t mu = PTHREAD_MUTEX_INITIALIZER;

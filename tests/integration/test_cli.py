@@ -215,7 +215,8 @@ def test_feed_json_summary_mapping_and_batches(daemon, tmp_path):
     fails(run(d, "feed", "m", f, "--x", "level"), 2, "--x names 1 columns")
     fails(run(d, "feed", "m", f, "--x", "level,nope", "--x-next", "level2,flow2", "--r",
               "reward"), 2, f"{f}:1:", "nope")
-    fails(run(d, "feed", "m", f), 2, f"{f}:1: the header has no column x0")
+    # No x0/xn0 but a time column: read as a wide sample file, which lacks dimension x0.
+    fails(run(d, "feed", "m", f), 2, f"{f}:1: no column for dimension x0")
     fails(run(d, "feed", "m", tmp_path / "absent.csv"), 2, "absent.csv: cannot open")
     fails(run(d, "feed", "nosuch", f), 1, "worth: no_such_model:")
     fails(run(d, "feed", "m", f, "--on-error", "maybe"), 2, "--on-error")

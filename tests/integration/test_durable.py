@@ -647,7 +647,7 @@ def test_rollback_without_replay(daemon, tmp_path):
     assert snapshot(d3.client(), "m") == now
 
 
-def rollback_replay_case(daemon, tmp_path, trs, exclude, kept, undone):
+def rollback_replay_case(daemon, tmp_path, trs, exclude, kept, undone, untimed=0):
     """Feeds trs (300) with a checkpoint after 100, rolls back to it with replay and exclude,
     then checks the reply, the values against a fresh daemon fed `kept`, the log marks, and
     that a crash and recovery give the same values."""
@@ -661,8 +661,11 @@ def rollback_replay_case(daemon, tmp_path, trs, exclude, kept, undone):
     before = snapshot(c, "m")
     rep = c.call({"op": "rollback", "model": "m", "checkpoint": cp["checkpoint"],
                   "replay": True, "exclude": exclude}, timeout=30)
-    assert rep == {"ok": True, "checkpoint": cp["checkpoint"], "seq": 100, "undone": undone,
-                   "replayed": 200 - undone}, rep
+    want = {"ok": True, "checkpoint": cp["checkpoint"], "seq": 100, "undone": undone,
+            "replayed": 200 - undone}
+    if "t" in exclude:
+        want["untimed"] = untimed  # transitions after the checkpoint without a t
+    assert rep == want, rep
     c.wait_applied("m", 300)
     got = snapshot(c, "m")
     assert got != before  # premise: the window mattered
@@ -699,7 +702,8 @@ def test_rollback_replay_exclude_t(daemon, tmp_path):
     window = [T0 + 60.0 * 131, T0 + 60.0 * 160]
     out = set(range(131, 161)) - {140, 150} | {200}
     kept = [tr for k, tr in enumerate(trs, 1) if k not in out]
-    rows = rollback_replay_case(daemon, tmp_path, trs, {"t": window}, kept, undone=len(out))
+    rows = rollback_replay_case(daemon, tmp_path, trs, {"t": window}, kept, undone=len(out),
+                                untimed=2)
     assert {r["seq"] for r in rows if r["rolled_back"]} == out
 
 
@@ -1343,7 +1347,8 @@ def test_schema(daemon):
             ref.executescript(f.read())
     want, want_idx = table_shape(ref)
     ref.close()
-    assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events", "sources"}
+    assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events",
+                         "sources", "retention"}
     db = ro(d.db)
     try:
         assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION

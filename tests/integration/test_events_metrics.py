@@ -132,9 +132,12 @@ def check_event(e):
     assert isinstance(e["at"], (int, float)) and not isinstance(e["at"], bool), e
     assert abs(e["at"] - time.time()) < 600, f"event time is not now-ish: {e}"
     assert e["kind"] in ("create", "checkpoint", "rollback", "drift", "recovered", "quarantined",
-                         "drop", "start", "stop", "commit_failed"), e
+                         "drop", "start", "stop", "commit_failed", "audit", "retention",
+                         "purge"), e
     assert isinstance(e["detail"], dict), e
-    if e["kind"] in ("start", "stop"):
+    if e["kind"] == "audit":
+        assert {"op", "by", "role"} <= set(e["detail"]), e
+    elif e["kind"] in ("start", "stop"):
         assert e.get("model") is None, f"daemon-wide event with a model: {e}"
     else:
         assert isinstance(e.get("model"), str) and e["model"], e
@@ -145,7 +148,8 @@ def model_events(evs):
 
 
 def daemon_wide(evs):
-    return [e for e in evs if e.get("model") is None]
+    """The daemon's own events, without the audit events of requests (test_ops.py has those)."""
+    return [e for e in evs if e.get("model") is None and e["kind"] != "audit"]
 
 
 def checkpoints(c, model):
