@@ -1,6 +1,6 @@
 /*
- * feed.h - what the two halves of `worth feed` share: feed.c (the command,
- * its options, the transition CSV and JSON lines, the summary) and samples.c
+ * feed.h - what the three parts of `worth feed` share: feed.c (the command,
+ * its options, the summary), feed_rows.c (the transition CSV and JSON lines) and samples.c
  * (historian exports: wide and long sample files).  Internal to the CLI.
  */
 #ifndef WORTH_CLI_FEED_H
@@ -89,6 +89,15 @@ int feed_number(const struct feed *fd, const char *cell, double *out);
 void feed_ignore(struct feed *fd, const char *name);
 /* Sleeps until the model has learnt up to fd->seq (bounded by the connection's timeout). */
 void feed_settle(struct feed *fd);
+
+/*
+ * feed_rows.c: reads the rest of f after its first line as a transition file
+ * (a CSV whose header cells are hdr[0..nh-1], or JSON lines whose first row
+ * is first[0..first_len-1]) and sends its rows.  Returns the exit code; the
+ * summary is printed by the caller.
+ */
+int transitions_run(struct feed *fd, FILE *f, char **hdr, long nh, const char *first,
+                    size_t first_len, const struct feed_opts *fo, size_t lineno);
 
 /*
  * samples.c: reads the rest of f (the header, hdr[0..nh-1], was line
