@@ -294,7 +294,7 @@ int cmd_show(struct cli *cli, int argc, char **argv)
     if (have_ms && ms.named && (t = table_new(4))) {
         table_rowv(t, "DIM", "NAME", "UNIT", "RANGE");
         for (size_t d = 0; d < ms.dims; d++) {
-            char idx[16], lo[32], hi[32], rg[80];
+            char idx[24], lo[32], hi[32], rg[80];
             snprintf(idx, sizeof idx, "%zu", d);
             fmt_num(lo, sizeof lo, ms.lo[d]);
             fmt_num(hi, sizeof hi, ms.hi[d]);

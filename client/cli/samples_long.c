@@ -131,7 +131,8 @@ static uint64_t key_new(struct smp *S, int src, double t, size_t line)
     if (S->ktail - S->kbase == S->kcap) {
         /* Compact (drop the keys before khead), then grow if still full. */
         size_t live = (size_t)(S->ktail - S->khead);
-        memmove(S->keys, key_at(S, S->khead), live * sizeof *S->keys);
+        if (live)
+            memmove(S->keys, key_at(S, S->khead), live * sizeof *S->keys);
         S->kbase = S->khead;
         if (live == S->kcap) {
             size_t nc = S->kcap ? 2 * S->kcap : 64;
