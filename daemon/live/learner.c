@@ -24,6 +24,7 @@
 #include <math.h>
 #include <pthread.h>
 #include <stdatomic.h>
+#include <stdint.h>
 #include <sys/resource.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -37,6 +38,7 @@
 #include "common/mem.h"
 #include "common/say.h"
 #include "worth/errors.h"
+#include "store/history.h"
 #include "store/writer.h"
 
 /*
@@ -48,9 +50,6 @@
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
-/* History: most samples kept (thinned by half when full), and their least spacing. */
-#define HIST_MAX   1024
-#define HIST_GAP_S 0.25
 /* Publish at most this often while the queue is busy (it always publishes when it empties). */
 #define PUBLISH_NS 1000000
 
@@ -93,12 +92,8 @@ struct learner {
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
     struct snap snaps[2];
-    /* History of the RMS TD error (under snap_mu): a sample at most every HIST_GAP_S. */
-    learner_sample_t *hist;
-    size_t n_hist;
-    unsigned hist_stride; /* keep every hist_stride-th candidate sample */
-    unsigned hist_skip;
-    double hist_last;
+    /* History rows not yet handed to the writer, and the bucket of the last row taken. */
+    struct history_buf *hist; /* history rows not yet stored (store/history.h) */
     int front;
     double *qwork; /* loop-thread query workspace */
 
@@ -128,6 +123,40 @@ static queue_rec_t *rec_at(struct learner *l, uint64_t k)
     return queue_rec(l->q, k);
 }
 
+/* Hands the history rows gathered to the writer, now that the estimators are whole. */
+static void hist_store(struct learner *l)
+{
+    est_stats_t st[MODEL_MAX_EST];
+    for (size_t i = 0; i < l->n_est; i++)
+        est_stats(model_est(l->m, i), &st[i]);
+    history_buf_fill(l->hist, st);
+    history_buf_flush(l->hist, l->o.writer, l->q, wall_s());
+}
+
+double learner_history_width(const struct learner *l)
+{
+    return l->meta.period_s > 0 ? HISTORY_PERIODS * l->meta.period_s : HISTORY_DEFAULT_S;
+}
+
+/*
+ * Takes a history row when the transitions observed (in order, with their
+ * diagnostics: model_replay's stage C) reach a new bucket; its realised-return
+ * figures are those of this transition, its RMS TD error comes at the next
+ * publish.
+ */
+static void hist_take(struct learner *l, const queue_rec_t *r)
+{
+    if (!history_buf_due(l->hist, r->seq, r->t_s, learner_history_width(l)))
+        return;
+    double realised[MODEL_MAX_EST];
+    for (size_t i = 0; i < l->n_est; i++) {
+        diag_est_t de;
+        diag_est(model_diag(l->m), i, &de);
+        realised[i] = de.n ? de.rms_window : NAN;
+    }
+    history_buf_add(l->hist, r->seq, wall_s(), realised);
+}
+
 /* Fills the back snapshot from the model and swaps it to the front.  Learner thread. */
 static void publish(struct learner *l, double last_update)
 {
@@ -146,30 +175,10 @@ static void publish(struct learner *l, double last_update)
     b->plant_t = l->plant_t;
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
-    /*
-     * One history sample per HIST_GAP_S of updates; when the buffer is full,
-     * every other sample goes and the spacing doubles, so it spans the whole run.
-     */
-    if (last_update > 0 && last_update - l->hist_last >= HIST_GAP_S &&
-        ++l->hist_skip >= l->hist_stride) {
-        l->hist_skip = 0;
-        l->hist_last = last_update;
-        if (l->n_hist == HIST_MAX) {
-            for (size_t i = 0; i < HIST_MAX / 2; i++)
-                l->hist[i] = l->hist[2 * i + 1];
-            l->n_hist = HIST_MAX / 2;
-            l->hist_stride *= 2;
-        }
-        learner_sample_t *h = &l->hist[l->n_hist++];
-        h->t = last_update;
-        h->seq = l->applied_seq;
-        h->plant_t = l->plant_t;
-        for (size_t i = 0; i < l->n_est; i++) {
-            h->td_rms[i] = b->est[i].td_rms;
-            h->realised_rms[i] = b->realised[i].n ? b->realised[i].rms_window : NAN;
-        }
-    }
     pthread_mutex_unlock(&l->snap_mu);
+    history_buf_fill(l->hist, b->est);
+    if (history_buf_ripe(l->hist, last_update))
+        history_buf_flush(l->hist, l->o.writer, l->q, last_update);
 }
 
 /* Posts a reply for conn_id: rc 0 with text the fields after "ok":true, else the message. */
@@ -206,6 +215,7 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
         l->since_checkpoint = 0;
         return;
     }
+    hist_store(l); /* the rows up to a checkpoint are stored before it (recovery starts there) */
     size_t len = 0;
     model_save(l->m, NULL, 0, &len);
     uint8_t *blob = mem_alloc(len);
@@ -368,6 +378,7 @@ static void observed(void *ctx)
         r = rec_at(l, l->cb_k++);
     while (r->type != QREC_OBS);
     l->applied_seq = r->seq;
+    hist_take(l, r);
     diag_drift_t dr;
     diag_drift(model_diag(l->m), &dr);
     if (dr.alarms != l->alarms_seen) {
@@ -548,6 +559,8 @@ static void *run(void *arg)
         checkpoint(l, NULL, 0); /* the clean-shutdown checkpoint */
     if (dirty)
         publish(l, last_update);
+    if (!queue_discarding(l->q))
+        hist_store(l);
     event_t ev = {.kind = EV_EXITED, .q = l->q};
     l->post(l->ctx, &ev);
     return NULL;
@@ -555,7 +568,7 @@ static void *run(void *arg)
 
 double learner_footprint(size_t dims, const learner_opts_t *o)
 {
-    return queue_footprint(dims, o->queue_cap) + (double)HIST_MAX * sizeof(learner_sample_t);
+    return queue_footprint(dims, o->queue_cap) + history_buf_footprint();
 }
 
 struct learner *learner_new(const char *name, char *spec_json, struct model *m,
@@ -589,8 +602,7 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     size_t ss = model_snap_size(m);
     for (int i = 0; i < 2; i++)
         l->snaps[i].data = mem_calloc(ss, sizeof(double));
-    l->hist_stride = 1;
-    l->hist = mem_calloc(HIST_MAX, sizeof *l->hist);
+    l->hist = history_buf_new(l->n_est, o->plant_t);
     diag_drift_t dr0;
     diag_drift(model_diag(m), &dr0);
     l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
@@ -626,7 +638,7 @@ void learner_free(struct learner *l)
     for (int i = 0; i < 2; i++)
         mem_free(l->snaps[i].data);
     mem_free(l->qwork);
-    mem_free(l->hist);
+    history_buf_free(l->hist);
     queue_free(l->q);
     pairing_free(l->pair);
     mem_free(l->spec_json);
@@ -755,13 +767,4 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->received = queue_last_seq(l->q);
     out->queued = queue_depth(l->q);
     queue_checkpoint_info(l->q, &out->checkpoints, &out->newest_checkpoint_at);
-}
-
-size_t learner_history(struct learner *l, learner_sample_t *out, size_t max)
-{
-    pthread_mutex_lock(&l->snap_mu);
-    size_t n = l->n_hist < max ? l->n_hist : max;
-    memcpy(out, l->hist, n * sizeof *out);
-    pthread_mutex_unlock(&l->snap_mu);
-    return n;
 }

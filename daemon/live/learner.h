@@ -46,18 +46,6 @@ typedef struct learner_stats_t {
     double plant_t; /* the t of the last transition learnt that had one; NAN: none */
 } learner_stats_t;
 
-/* Plain data: one sample of the learning history. */
-typedef struct learner_sample_t {
-    double t;                           /* wall clock, seconds */
-    uint64_t seq;                       /* last transition learnt */
-    double plant_t;                     /* the plant's t then (learner_stats_t); NAN: none */
-    double td_rms[MODEL_MAX_EST];       /* each estimator's RMS TD error then */
-    double realised_rms[MODEL_MAX_EST]; /* and its realised-return RMS (window); NAN before any */
-} learner_sample_t;
-
-/* Most samples learner_history returns. */
-#define LEARNER_HISTORY_MAX 1024
-
 /* Plain data: how a learner starts. */
 typedef struct learner_opts_t {
     size_t queue_cap;          /* records in the queue */
@@ -146,11 +134,7 @@ uint64_t learner_read_begin(struct learner *l);
 int learner_read_value(struct learner *l, const double *x, size_t len, double *values, double *sd);
 void learner_read_end(struct learner *l);
 void learner_stats(struct learner *l, learner_stats_t *out);
-/*
- * Copies up to max samples of the RMS TD error history (oldest first) into
- * out; returns how many.  The history lives in memory: it starts again at a
- * restart.  It spans the whole run, thinned as it grows.
- */
-size_t learner_history(struct learner *l, learner_sample_t *out, size_t max);
+/* The width of the model's history buckets in plant time, seconds (store/history.h). */
+double learner_history_width(const struct learner *l);
 
 #endif /* WORTH_LEARNER_H */

@@ -107,7 +107,6 @@ struct proto {
     jw_t out; /* the reply being written (reused: no allocation at its high-water mark) */
     /* Per-request scratch, sized for the largest model (grown on create). */
     double *vals, *sds;
-    learner_sample_t *hist; /* history request scratch */
     const char **srcs;      /* max_batch source names of a batch */
     struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
     size_t n_rsrc;

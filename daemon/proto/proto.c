@@ -43,6 +43,7 @@ static const char *const k_auth[] = {"op", "id", "token", NULL};
 static const char *const k_model[] = {"op", "id", "model", NULL};
 static const char *const k_value[] = {"op", "id", "model", "x", "xs", "estimator", NULL};
 static const char *const k_train[] = {"op", "id", "model", "estimator", "passes", NULL};
+static const char *const k_history[] = {"op", "id", "model", "since", "until", "max", NULL};
 static const char *const k_checkpoint[] = {"op", "id", "model", "label", NULL};
 static const char *const k_rollback[] = {"op",     "id",      "model", "checkpoint",
                                          "replay", "exclude", NULL};
@@ -67,7 +68,7 @@ static const struct {
     {"checkpoints", do_checkpoints, k_model},
     {"rollback", do_rollback, k_rollback},
     {"backup", do_backup, NULL},
-    {"history", do_history, k_model},
+    {"history", do_history, k_history},
     {"sources", do_sources, k_model},
     {"events", do_events, NULL},
     {"status", do_status, k_bare},
@@ -505,7 +506,6 @@ void proto_free(struct proto *p)
     mem_free(p->rsrc);
     mem_free(p->vals);
     mem_free(p->sds);
-    mem_free(p->hist);
     mem_free(p->out.b);
     mem_free(p->n_requests);
     mem_free(p->n_errors);

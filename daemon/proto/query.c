@@ -24,6 +24,7 @@
 #include "core/spec.h"
 #include "common/say.h"
 #include "store/backup.h"
+#include "store/history.h"
 #include "worth/errors.h"
 
 /* The headline estimator's sd, else the first estimator's that has one. */
@@ -402,38 +403,33 @@ int do_history(struct req *rq)
     if (!l)
         return PROTO_DONE;
     struct proto *p = rq->p;
-    if (!p->hist)
-        p->hist = mem_calloc(LEARNER_HISTORY_MAX, sizeof *p->hist);
-    size_t n = learner_history(l, p->hist, LEARNER_HISTORY_MAX);
-    const struct model *m = learner_model(l);
-    jw_t *o = &p->out;
-    reply_begin(o, 1, rq->id);
-    jw_lit(o, ",\"estimators\":");
-    out_est_names(o, m);
-    jw_lit(o, ",\"history\":[");
-    for (size_t i = 0; i < n; i++) {
-        jw_lit(o, i ? ",{\"t\":" : "{\"t\":");
-        jw_num(o, p->hist[i].t);
-        jw_fmt(o, ",\"seq\":%llu", (unsigned long long)p->hist[i].seq);
-        if (!isnan(p->hist[i].plant_t)) {
-            jw_lit(o, ",\"plant_t\":");
-            jw_num(o, p->hist[i].plant_t);
-        }
-        jw_lit(o, ",\"td_rms\":[");
-        for (size_t k = 0; k < model_n_est(m); k++) {
-            if (k)
-                jw_lit(o, ",");
-            jw_num(o, p->hist[i].td_rms[k]);
-        }
-        jw_lit(o, "],\"realised_rms\":[");
-        for (size_t k = 0; k < model_n_est(m); k++) {
-            if (k)
-                jw_lit(o, ",");
-            jw_num(o, p->hist[i].realised_rms[k]);
-        }
-        jw_lit(o, "]}");
+    double since = -INFINITY, until = INFINITY, max = 1024;
+    int code = 0;
+    if (!fld_number(rq->root, "since", &since, &code, p->err, sizeof p->err, "") ||
+        !fld_number(rq->root, "until", &until, &code, p->err, sizeof p->err, "") ||
+        !fld_number(rq->root, "max", &max, &code, p->err, sizeof p->err, ""))
+        return fail_done(rq, code, "%s", p->err);
+    if (max != floor(max) || max < 2 || max > 100000)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"max\" must be an integer 2..100000");
+    if (since > until)
+        return fail_done(rq, WORTH_E_BAD_PARAM, "\"since\" is after \"until\"");
+    /* A window of plant time lists the rows that have a t; without one, every row by seq. */
+    history_query_t hq = {.by_t = field(rq->root, "since") || field(rq->root, "until"),
+                          .from = since,
+                          .to = until,
+                          .max = (size_t)max};
+    if (!hq.by_t) {
+        hq.from = 0;
+        hq.to = 9.2e18;
     }
-    jw_lit(o, "]");
-    reply_end(o, rq->c);
+    const struct model *m = learner_model(l);
+    jw_t names;
+    jw_init(&names);
+    out_est_names(&names, m);
+    fld_keep_id(rq);
+    writer_history_list(p->w, learner_queue(l), names.b, model_n_est(m), learner_history_width(l),
+                        &hq, conn_id(rq->c));
+    jw_close(&names);
+    conn_wait(rq->c);
     return PROTO_DONE;
 }

@@ -1348,7 +1348,7 @@ def test_schema(daemon):
     want, want_idx = table_shape(ref)
     ref.close()
     assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events",
-                         "sources", "retention"}
+                         "sources", "retention", "history"}
     db = ro(d.db)
     try:
         assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
