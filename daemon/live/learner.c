@@ -549,6 +549,8 @@ static void *run(void *arg)
             publish(l, last_update);
             last_pub = now;
             dirty = 0;
+            if (empty) /* caught up: the history rows need not wait for more work */
+                history_buf_flush(l->hist, l->o.writer, l->q, last_update);
         }
         if (wake)
             l->wake(l->ctx);

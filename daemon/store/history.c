@@ -298,6 +298,8 @@ int history_buf_ripe(const struct history_buf *hb, double now)
 
 void history_buf_flush(struct history_buf *hb, struct writer *w, struct queue *q, double now)
 {
+    if (!hb->filled)
+        return;
     writer_history_store(w, q, hb->rows, hb->filled, hb->n_est);
     /* Rows not yet filled (none when the caller filled first) stay for the next look. */
     memmove(hb->rows, hb->rows + hb->filled, (hb->n - hb->filled) * sizeof *hb->rows);

@@ -52,7 +52,8 @@ typedef struct history_query_t {
  * The learner's side: rows gathered on its thread until the writer stores
  * them.  Holds at most HISTORY_PEND rows (more in one publish interval are
  * left out: buckets that close so fast are not worth a row each) and hands
- * them over at least every HISTORY_FLUSH_S.  Allocates in history_buf_new
+ * them over at least every HISTORY_FLUSH_S, and whenever the learner has
+ * caught up with its queue.  Allocates in history_buf_new
  * only.
  */
 #define HISTORY_PEND    256

@@ -156,12 +156,30 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
     sqlite3_finalize(st);
     if (rc != SQLITE_DONE)
         return -1;
-    char detail[256];
+    /* Plant time: "t", the newest logged transition's before the rollback (where it happened
+     * on the plant's clock); "to_t", the checkpoint's. */
+    double at_t = NAN;
+    if (sqlite3_prepare_v2(w->db,
+                           "SELECT t FROM transitions WHERE model = ?1 AND seq < ?2 AND t IS NOT"
+                           " NULL ORDER BY seq DESC LIMIT 1",
+                           -1, &st, NULL) != SQLITE_OK)
+        return -1;
+    sqlite3_bind_int64(st, 1, model);
+    sqlite3_bind_int64(st, 2, (sqlite3_int64)r->seq);
+    if (sqlite3_step(st) == SQLITE_ROW)
+        at_t = sqlite3_column_double(st, 0);
+    sqlite3_finalize(st);
+    char detail[320], times[96] = "";
+    int nt = 0;
+    if (!isnan(at_t))
+        nt = snprintf(times, sizeof times, ",\"t\":%.17g", at_t);
+    if (!isnan(p->cp_plant_t))
+        snprintf(times + nt, sizeof times - (size_t)nt, ",\"to_t\":%.17g", p->cp_plant_t);
     snprintf(detail, sizeof detail,
              "{\"checkpoint\":%lld,\"seq\":%llu,\"undone\":%llu,\"replay\":%s,"
-             "\"untimed\":%llu}",
+             "\"untimed\":%llu%s}",
              (long long)p->checkpoint, (unsigned long long)p->cp_seq, (unsigned long long)p->undone,
-             p->replay ? "true" : "false", (unsigned long long)p->untimed);
+             p->replay ? "true" : "false", (unsigned long long)p->untimed, times);
     if (sqlite3_prepare_v2(w->db, "UPDATE events SET detail = ? WHERE id = ?", -1, &st, NULL) !=
         SQLITE_OK)
         return -1;

@@ -149,9 +149,17 @@ def test_value_map_of_named_dimensions_shows_names_and_units(daemon, tmp_path):
     out = tmp_path / "named.svg"
     p = ok(run(d, "plot", "nm", "--x", "demand", "--y", "level", "--at", "valve=0.5",
                "--grid", 10, "--out", out))
-    assert "V [EUR] over demand [m3/h] x level [m]" in p.stdout, p.stdout
+    assert "V [EUR] by " in p.stdout and " over demand [m3/h] x level [m]" in p.stdout, p.stdout
     root = ET.parse(out).getroot()
     texts = [t.text for t in root.iter(SVG + "text")]
+    # the dimension held fixed is named with its value, and both ends of the colour bar
+    held = [t for t in root.iter(SVG + "text") if t.get("class") == "held"]
+    assert held and held[0].text == "held: valve = 0.5", [h.text for h in held]
+    ends = [t for t in root.iter(SVG + "text") if t.get("class") == "colourbar-end"]
+    assert [t.text.split()[0] for t in ends] == ["min", "max"], [t.text for t in ends]
+    bar = [e for e in root.iter(SVG + "g") if e.get("class") == "colourbar"][0]
+    assert [float(t.get("data-v")) for t in ends] == [float(bar.get("data-v-lo")),
+                                                       float(bar.get("data-v-hi"))]
     assert "demand [m3/h]" in texts and "level [m]" in texts and "V [EUR]" in texts, texts
     g = [e for e in root.iter(SVG + "g") if e.get("class") == "cells"][0]
     assert g.get("data-x-dim") == "1" and g.get("data-y-dim") == "0"
@@ -169,3 +177,62 @@ def test_value_map_of_named_dimensions_shows_names_and_units(daemon, tmp_path):
     ok(run(d, "plot", "nm", "--history", "--out", hist))
     texts = [t.text for t in ET.parse(hist).getroot().iter(SVG + "text")]
     assert any(t and t.endswith("[EUR]") for t in texts), texts
+
+
+def test_history_plot_in_plant_time_with_two_panels_and_marks(daemon, tmp_path):
+    """Samples over 12 plant-hours: the x axis reads dates, TD and realised errors have a
+    panel each, the checkpoint and the rollback are marked at their plant time, and a
+    window of ISO times narrows the picture."""
+    import re
+    from test_samples import T0, send_samples, station, stream
+    d = daemon()
+    c = d.client()
+    c.ok(station())
+    s = stream(720)
+    send_samples(c, s[:400], chunk=100)
+    c.wait_applied("st", 399)
+    cp = c.ok({"op": "checkpoint", "model": "st"})
+    send_samples(c, s[400:], chunk=100)
+    c.wait_applied("st", 719)
+    c.ok({"op": "rollback", "model": "st", "checkpoint": cp["checkpoint"], "replay": True})
+    c.wait_applied("st")
+    out = tmp_path / "h.svg"
+    p = ok(run(d, "plot", "st", "--history", "--out", out))
+    assert "(plant time)" in p.stdout, p.stdout
+    root = ET.parse(out).getroot()
+    kind = [e for e in root.iter(SVG + "text") if e.get("class") == "axis-kind"][0]
+    assert kind.get("data-timed") == "1"
+    xl = [e.text for e in root.iter(SVG + "text") if e.get("class") == "tick-x-label"]
+    assert len(xl) >= 6 and all(re.fullmatch(r"\d\d-\d\d \d\d:\d\d", t) for t in xl), xl
+    texts = [e.text or "" for e in root.iter(SVG + "text")]
+    assert not any("e+" in t or "e-0" in t for t in texts), texts
+    # one y axis per panel, each with its own ticks; the series of each panel
+    yl = [e for e in root.iter(SVG + "line") if e.get("class") == "tick-y"]
+    upper = [e for e in yl if float(e.get("y1")) < 325]  # the panels: y 70..290 and 360..580
+    assert len(upper) >= 3 and len(yl) - len(upper) >= 3, [e.get("y1") for e in yl]
+    td = [e for e in root.iter(SVG + "polyline") if e.get("class") == "series"]
+    rr = [e for e in root.iter(SVG + "polyline") if e.get("class") == "series-realised"]
+    assert [e.get("data-estimator") for e in td] == ["td", "rls"] == \
+        [e.get("data-estimator") for e in rr]
+    assert all(len(e.get("points").split()) >= 50 for e in td), "a row per 10 minutes"
+    marks = [(e.get("data-kind"), float(e.get("data-x")), int(e.get("data-id")))
+             for e in root.iter(SVG + "line") if (e.get("class") or "").startswith("mark")]
+    listed = c.ok({"op": "checkpoints", "model": "st"})["checkpoints"]
+    mine = [e for e in listed if e["checkpoint"] == cp["checkpoint"]][0]
+    assert ("checkpoint", s[398]["t"], cp["checkpoint"]) in marks and \
+        mine["plant_t"] == s[398]["t"], marks
+    assert [m for m in marks if m[0] == "rollback"], marks
+    r = subprocess.run(["/usr/bin/rsvg-convert", "-o", str(tmp_path / "h.png"), str(out)],
+                       capture_output=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    # a window of plant time, in ISO-8601 with an offset: T0 + 2 h .. T0 + 4 h
+    w = tmp_path / "w.svg"
+    ok(run(d, "plot", "st", "--history", "--since", "2025-12-02T03:00:00+01:00",
+           "--until", "2025-12-02T04:00:00Z", "--out", w))
+    wroot = ET.parse(w).getroot()
+    pts = [e for e in wroot.iter(SVG + "polyline") if e.get("class") == "series"][0]
+    n = len(pts.get("points").split())
+    assert 10 <= n <= 14, n  # two hours of ten-minute rows (the window is inclusive)
+    fails(run(d, "plot", "st", "--history", "--since", "yesterday", "--out", w), 2, "--since")
+    fails(run(d, "plot", "st", "--since", "2025-12-02T03:00:00Z", "--x", "level", "--y",
+              "demand", "--out", w), 2, "--history")
