@@ -124,6 +124,23 @@ void feed_row_error(struct feed *fd, size_t line, const char *code, const char *
     }
 }
 
+ssize_t feed_line(struct feed *fd, FILE *f, char **line, size_t *cap, size_t *lineno)
+{
+    ssize_t len;
+    while ((len = getline(line, cap, f)) >= 0) {
+        (*lineno)++;
+        fd->bytes += (size_t)len;
+        if (strspn(*line, " \t\r\n") == (size_t)len)
+            continue;
+        if (memchr(*line, 0, (size_t)len)) {
+            cli_error(EXIT_USAGE, "%s:%zu: a NUL byte: not a text file", fd->name, *lineno);
+            return -2;
+        }
+        return len;
+    }
+    return -1;
+}
+
 int feed_number(const struct feed *fd, const char *cell, double *out)
 {
     if (!fd->dec_comma)

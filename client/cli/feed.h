@@ -9,6 +9,7 @@
 #include <stddef.h>
 #include <stdint.h>
 #include <stdio.h>
+#include <sys/types.h>
 
 #include "cli.h"
 
@@ -83,6 +84,12 @@ void feed_bar_draw(struct feed *fd, int force);
  */
 void feed_row_error(struct feed *fd, size_t line, const char *code, const char *fmt, ...)
     __attribute__((format(printf, 4, 5)));
+/*
+ * Reads f's next line that is not blank into *line (counting lines and
+ * bytes): its length, -1 at the end (errno set on a read error), or -2 when
+ * it holds a NUL byte (said: FILE:LINE).
+ */
+ssize_t feed_line(struct feed *fd, FILE *f, char **line, size_t *cap, size_t *lineno);
 /* A number cell (',' as its decimal point with --decimal-comma); 0 or -1. */
 int feed_number(const struct feed *fd, const char *cell, double *out);
 /* Adds name to the ignored columns of the summary. */

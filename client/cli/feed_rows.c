@@ -616,17 +616,13 @@ int transitions_run(struct feed *fd, FILE *f, char **hdr, long nh, const char *f
             text = first; /* JSON lines: the first row was read to tell the form */
             len = (ssize_t)first_len;
         } else {
-            if ((len = getline(&line, &lcap, f)) < 0)
+            if ((len = feed_line(fd, f, &line, &lcap, &lineno)) == -1)
                 break;
-            lineno++;
-            fd->bytes += (size_t)len;
-            text = line;
-            if (strspn(line, " \t\r\n") == (size_t)len)
-                continue;
-            if (memchr(line, 0, (size_t)len)) {
-                ex = cli_error(EXIT_USAGE, "%s:%zu: a NUL byte: not a text file", fd->name, lineno);
+            if (len < 0) {
+                ex = EXIT_USAGE;
                 goto out_stop;
             }
+            text = line;
         }
         fd->rows++;
         int bad;

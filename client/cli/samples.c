@@ -403,13 +403,9 @@ int samples_run(struct feed *fd, FILE *f, char **hdr, long nh, const struct feed
 
     ssize_t len;
     errno = 0;
-    while ((len = getline(&line, &lcap, f)) >= 0) {
-        lineno++;
-        fd->bytes += (size_t)len;
-        if (strspn(line, " \t\r\n") == (size_t)len)
-            continue;
-        if (memchr(line, 0, (size_t)len)) {
-            ex = cli_error(EXIT_USAGE, "%s:%zu: a NUL byte: not a text file", fd->name, lineno);
+    while ((len = feed_line(fd, f, &line, &lcap, &lineno)) != -1) {
+        if (len < 0) {
+            ex = EXIT_USAGE;
             goto out_stop;
         }
         fd->rows++;

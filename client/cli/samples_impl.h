@@ -115,6 +115,7 @@ int smp_row_quality(struct smp *S, const char *cell, size_t line);
 int smp_row_number(struct smp *S, const char *cell, const char *what, size_t line, double *v);
 int smp_row_bool(struct smp *S, const char *cell, size_t line, int *out);
 int smp_row_source(struct smp *S, char **cells, size_t line);
+int smp_row_width(struct smp *S, long nc, size_t line);
 int smp_wide_row(struct smp *S, char **cells, long nc, size_t line);
 
 /* samples_long.c */

@@ -156,10 +156,8 @@ static uint64_t key_new(struct smp *S, int src, double t, size_t line)
 int smp_long_row(struct smp *S, char **cells, long nc, size_t line)
 {
     struct feed *fd = S->fd;
-    if ((size_t)nc != S->ncols) {
-        feed_row_error(fd, line, "bad_row", "the row has %ld cells, the header %zu", nc, S->ncols);
-        return -1;
-    }
+    if (smp_row_width(S, nc, line))
+        return BAD;
     int target = tag_target(S, cells[S->c_tag], line);
     if (target == NONE || target == -2)
         return BAD;

@@ -280,14 +280,21 @@ int smp_row_source(struct smp *S, char **cells, size_t line)
     return src;
 }
 
+/* Whether the row has as many cells as the header: 0, or -1 (said, bad_row). */
+int smp_row_width(struct smp *S, long nc, size_t line)
+{
+    if ((size_t)nc == S->ncols)
+        return 0;
+    feed_row_error(S->fd, line, "bad_row", "the row has %ld cells, the header %zu", nc, S->ncols);
+    return -1;
+}
+
 /* One row of a wide file: 0, SKIP (bad quality), BAD or FATAL(ex). */
 int smp_wide_row(struct smp *S, char **cells, long nc, size_t line)
 {
     struct feed *fd = S->fd;
-    if ((size_t)nc != S->ncols) {
-        feed_row_error(fd, line, "bad_row", "the row has %ld cells, the header %zu", nc, S->ncols);
-        return -1;
-    }
+    if (smp_row_width(S, nc, line))
+        return BAD;
     if (S->c_quality >= 0) {
         int q = smp_row_quality(S, cells[S->c_quality], line);
         if (q < 0)
