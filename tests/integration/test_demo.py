@@ -48,6 +48,17 @@ def test_demo_run_as_written(tmp_path):
     cells = [e for e in ET.parse(tmp_path / "demo" / "value-map.svg").getroot().iter()
              if e.get("class") == "cell"]
     assert len(cells) == 48 * 48
+    # the pictures speak the plant's names and units, and the history is in plant time
+    svg = "{http://www.w3.org/2000/svg}"
+    vm = [e.text for e in ET.parse(tmp_path / "demo" / "value-map.svg").getroot().iter(svg + "text")]
+    assert "level [m]" in vm and "V [EUR]" in vm, vm
+    assert any(t and t.startswith("held: demand = 250 m3/h") for t in vm), vm
+    hroot = ET.parse(tmp_path / "demo" / "history.svg").getroot()
+    ht = [e.text for e in hroot.iter(svg + "text")]
+    assert "RMS TD error [EUR]" in ht and "realised-return RMS error [EUR]" in ht, ht
+    assert [e.get("data-timed") for e in hroot.iter(svg + "text")
+            if e.get("class") == "axis-kind"] == ["1"]
+    assert any((e.get("class") or "") == "mark mark-rollback" for e in hroot.iter(svg + "line"))
     # the drift alarm is a recorded event in the demo's database
     import sqlite3
     db = sqlite3.connect(f"file:{tmp_path / 'demo' / 'worthd.db'}?mode=ro", uri=True)
