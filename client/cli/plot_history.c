@@ -117,8 +117,8 @@ static const char *mark_colour(const char *kind)
 }
 
 /* One panel: its axes and a series per estimator of field ("td_rms" or "realised_rms"). */
-static void panel(FILE *f, const struct hplot *hp, int which, const char *yt, const char *cls,
-                  int last)
+static void draw_panel(FILE *f, const struct hplot *hp, int which, const char *yt, const char *cls,
+                       int last)
 {
     struct panel p = {PL, TOPY + which * (PH + GAP), PW, PH};
     const char *field = which ? "realised_rms" : "td_rms";
@@ -159,8 +159,8 @@ static void draw(FILE *f, const char *model, const struct hplot *hp, const struc
             hp->timed, W / 2);
     fprintf(f, "%s", hp->timed ? "against the plant's time" : "against the transition number");
     fputs("; marks: checkpoints (grey), rollbacks (blue), alarms (red), other events</text>\n", f);
-    panel(f, hp, 0, yt[0], "series", 0);
-    panel(f, hp, 1, yt[1], "series-realised", 1);
+    draw_panel(f, hp, 0, yt[0], "series", 0);
+    draw_panel(f, hp, 1, yt[1], "series-realised", 1);
     for (size_t i = 0; i < hp->nm; i++) {
         const struct mark *m = &hp->marks[i];
         double px = PL + (m->x - hp->x0) / (hp->x1 - hp->x0) * PW;
