@@ -126,6 +126,12 @@ static void judge(const struct health *h, const est_stats_t *st, const struct di
     }
 }
 
+/* Returns 1 when the estimator's weights are an estimate (not still its initial ones). */
+static int has_estimate(const verdict_t *v)
+{
+    return !(v->why == R_LSTD || v->why == R_REPLAY || v->why == R_DIVERGED);
+}
+
 void health_update(struct health *h, const est_stats_t *st, const struct diag *d)
 {
     if (!h->automatic)
@@ -139,9 +145,17 @@ void health_update(struct health *h, const est_stats_t *st, const struct diag *d
         if (v[i].state == HEALTH_OK && (best == h->n_est || r[i].rms_window < r[best].rms_window))
             best = i;
     }
-    if (best == h->n_est) { /* none is ok: stay */
+    if (best == h->n_est) { /* none is ok: stay, unless it has no estimate and another has */
         h->challenger = h->n_est;
         h->lead = 0;
+        if (has_estimate(&v[h->head]))
+            return;
+        for (size_t i = 0; i < h->n_est; i++)
+            if (has_estimate(&v[i])) {
+                h->head = i;
+                h->switches++;
+                return;
+            }
         return;
     }
     if (v[h->head].state != HEALTH_OK) { /* the headline lost its standing: move at once */
@@ -191,7 +205,7 @@ void health_est(const struct health *h, size_t i, const est_stats_t *st, const s
     judge(h, st, d, v);
     const verdict_t *x = &v[i];
     out->state = x->state;
-    out->estimate = !(x->why == R_LSTD || x->why == R_REPLAY || x->why == R_DIVERGED);
+    out->estimate = has_estimate(x);
     char *w = out->why;
     size_t n = sizeof out->why;
     switch (x->why) {

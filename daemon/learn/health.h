@@ -26,7 +26,9 @@
  * HEALTH_HOLD consecutive transitions (the best such challenger; the count
  * starts again whenever the challenger changes or the margin is lost).  When
  * the headline stops being ok it moves at once to the best ok estimator; when
- * none is ok it stays where it is (the answer says so).  Ties go to the lower
+ * none is ok it stays where it is (the answer says so), unless it has no
+ * estimate yet (lstd before its solve, replay before its first step) and
+ * another has: then the first such one answers.  Ties go to the lower
  * index, so the choice is deterministic, and it is part of the model's saved
  * state, so a replay rebuilds it.
  *

@@ -58,9 +58,9 @@ typedef struct proto_conn {
     uint64_t pseq;                   /* pending bulk: the first record's pseq, 0: none */
     char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
     int has_id;
-    int role;                        /* what it may do (roles.h; ops.c checks it) */
-    int op;                          /* index of its last request's op (-1: none yet) */
-    char who[ROLES_WHO_MAX];         /* who it is, for the log and audit events */
+    int role;                /* what it may do (roles.h; ops.c checks it) */
+    int op;                  /* index of its last request's op (-1: none yet) */
+    char who[ROLES_WHO_MAX]; /* who it is, for the log and audit events */
 } proto_conn_t;
 
 /*
@@ -107,6 +107,8 @@ struct proto {
     jw_t out; /* the reply being written (reused: no allocation at its high-water mark) */
     /* Per-request scratch, sized for the largest model (grown on create). */
     double *vals, *sds;
+    learner_stats_t
+        qstats; /* a value request's figures (the loop thread's; too big for its stack) */
     learner_sample_t *hist; /* history request scratch */
     const char **srcs;      /* max_batch source names of a batch */
     struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
