@@ -1,0 +1,237 @@
+/*
+ * test_health.c - the verdicts and the headline's hysteresis, on diagnostics
+ * fed by hand (gamma 0, horizon 1: each return is its reward, known at once),
+ * with the estimators' counters made up.
+ */
+#include "testutil.h"
+
+#include <math.h>
+#include <string.h>
+
+#include "learn/diag.h"
+#include "learn/health.h"
+#include "worth/errors.h"
+
+static struct diag *make_diag(size_t n_est)
+{
+    diag_params_t p;
+    diag_params_default(0.0, &p);
+    p.horizon = 1;
+    struct diag *d = NULL;
+    char err[100];
+    assert_int_equal(diag_new(&p, n_est, 1, &d, err, sizeof err), 0);
+    return d;
+}
+
+static void td_params(est_params_t *p, size_t n)
+{
+    for (size_t i = 0; i < n; i++)
+        est_params_default(EST_TD, &p[i]);
+}
+
+/* Counters of a sound td estimator after t updates. */
+static void stats_at(est_stats_t *st, size_t n, uint64_t t)
+{
+    memset(st, 0, n * sizeof *st);
+    for (size_t i = 0; i < n; i++) {
+        st[i].updates = t;
+        st[i].health = EST_HEALTH_OK;
+    }
+}
+
+/* One transition: estimator k errs by e[k] (sign alternating with t), the return is 1. */
+static void step(struct diag *d, struct health *h, est_stats_t *st, uint64_t t, const double *e,
+                 size_t n)
+{
+    double pred[4];
+    double sign = (t % 2) ? 1.0 : -1.0;
+    for (size_t k = 0; k < n; k++)
+        pred[k] = 1.0 + sign * e[k];
+    diag_observe(d, 0, pred, 1.0, 0.0, 0, 0.0);
+    stats_at(st, n, t);
+    health_update(h, st, d);
+}
+
+/*
+ * Two estimators of about the same quality that take turns being a little
+ * better (5% of the error, blocks of 300 transitions): the lower windowed RMS
+ * changes hands many times, so a headline without hysteresis would flap; with
+ * it, the headline never moves.
+ */
+static void no_flap_on_small_fluctuations(void **state)
+{
+    (void)state;
+    est_params_t p[2];
+    td_params(p, 2);
+    struct diag *d = make_diag(2);
+    struct health *h = health_new(2, 4, 1, 0, p);
+    est_stats_t st[2];
+    unsigned leader_changes = 0;
+    size_t leader = 0;
+    for (uint64_t t = 1; t <= 20000; t++) {
+        double e[2] = {1.0, (t / 300) % 2 ? 0.95 : 1.05};
+        step(d, h, st, t, e, 2);
+        diag_est_t a, b;
+        diag_est(d, 0, &a);
+        diag_est(d, 1, &b);
+        size_t now = b.rms_window < a.rms_window ? 1 : 0;
+        if (t > HEALTH_MIN_RETURNS && now != leader) {
+            leader_changes++;
+            leader = now;
+        }
+    }
+    /* The naive rule ("lowest RMS now") would have switched this often. */
+    assert_true(leader_changes >= 20);
+    health_head_t hd;
+    const char *names[2] = {"a", "b"};
+    health_head(h, st, d, names, &hd);
+    assert_int_equal(hd.switches, 0);
+    assert_int_equal(hd.index, 0);
+    health_free(h);
+    diag_free(d);
+}
+
+/*
+ * A clearly better estimator takes over, but only after it has led by the
+ * margin for HEALTH_HOLD transitions running.
+ */
+static void a_sustained_lead_takes_over_after_the_hold(void **state)
+{
+    (void)state;
+    est_params_t p[2];
+    td_params(p, 2);
+    struct diag *d = make_diag(2);
+    struct health *h = health_new(2, 4, 1, 0, p);
+    est_stats_t st[2];
+    uint64_t t = 0, lead_from = 0, moved_at = 0;
+    for (t = 1; t <= 3000; t++) {
+        double e[2] = {1.0, 1.0};
+        step(d, h, st, t, e, 2);
+    }
+    assert_int_equal(health_headline(h), 0);
+    for (; t <= 10000 && !moved_at; t++) {
+        double e[2] = {1.0, 0.5};
+        step(d, h, st, t, e, 2);
+        diag_est_t a, b;
+        diag_est(d, 0, &a);
+        diag_est(d, 1, &b);
+        if (!lead_from && b.rms_window < (1.0 - HEALTH_MARGIN) * a.rms_window)
+            lead_from = t;
+        if (health_headline(h) == 1)
+            moved_at = t;
+    }
+    assert_true(lead_from > 0);
+    assert_int_equal(moved_at - lead_from + 1, HEALTH_HOLD);
+    health_free(h);
+    diag_free(d);
+}
+
+/* A headline that stops being ok is left at once; a diverged one is never chosen. */
+static void an_unsound_headline_is_left_at_once(void **state)
+{
+    (void)state;
+    est_params_t p[2];
+    td_params(p, 2);
+    struct diag *d = make_diag(2);
+    struct health *h = health_new(2, 4, 1, 0, p);
+    est_stats_t st[2];
+    for (uint64_t t = 1; t <= 200; t++) {
+        double e[2] = {1.0, 1.2};
+        step(d, h, st, t, e, 2);
+    }
+    assert_int_equal(health_headline(h), 0);
+    double pred[2] = {1.0, 1.0};
+    diag_observe(d, 0, pred, 1.0, 0.0, 0, 0.0);
+    stats_at(st, 2, 201);
+    st[0].health = EST_HEALTH_DIVERGED;
+    health_update(h, st, d);
+    assert_int_equal(health_headline(h), 1);
+    health_est_t v;
+    health_est(h, 0, st, d, &v);
+    assert_int_equal(v.state, HEALTH_DIVERGED);
+    assert_int_equal(v.estimate, 0);
+    health_free(h);
+    diag_free(d);
+}
+
+/* Warming by kind, and unhealthy next to a far better estimator, with reasons. */
+static void verdicts_and_reasons(void **state)
+{
+    (void)state;
+    est_params_t p[4];
+    est_params_default(EST_TD, &p[0]);
+    est_params_default(EST_LSTD, &p[1]);
+    est_params_default(EST_RLS_TD, &p[2]);
+    p[2].forget = 0.999; /* 3 / (1 - forget) = 3000 updates to wash the prior out */
+    est_params_default(EST_TD, &p[3]);
+    struct diag *d = make_diag(4);
+    struct health *h = health_new(4, 4, 1, 0, p);
+    est_stats_t st[4];
+    for (uint64_t t = 1; t <= 100; t++) {
+        double e[4] = {0.1, 0.1, 0.1, 5.0};
+        step(d, h, st, t, e, 4);
+    }
+    health_est_t v;
+    health_est(h, 1, st, d, &v);
+    assert_int_equal(v.state, HEALTH_WARMING);
+    assert_int_equal(v.estimate, 0);
+    assert_non_null(strstr(v.why, "no solve yet"));
+    health_est(h, 2, st, d, &v);
+    assert_int_equal(v.state, HEALTH_WARMING);
+    assert_int_equal(v.estimate, 1);
+    assert_non_null(strstr(v.why, "100 of 3000 updates"));
+    health_est(h, 3, st, d, &v);
+    assert_int_equal(v.state, HEALTH_UNHEALTHY);
+    assert_non_null(strstr(v.why, "50.0 x that of 1-th estimator"));
+    health_est(h, 0, st, d, &v);
+    assert_int_equal(v.state, HEALTH_OK);
+    assert_string_equal(v.why, "");
+    /* Few returns: warming, whatever the kind. */
+    struct diag *d2 = make_diag(4);
+    health_est(h, 0, st, d2, &v);
+    assert_int_equal(v.state, HEALTH_WARMING);
+    assert_non_null(strstr(v.why, "0 of 50 realised returns"));
+    health_free(h);
+    diag_free(d);
+    diag_free(d2);
+}
+
+/* The headline's state saves and loads; a bad index is refused. */
+static void save_load(void **state)
+{
+    (void)state;
+    est_params_t p[2];
+    td_params(p, 2);
+    struct diag *d = make_diag(2);
+    struct health *h = health_new(2, 4, 1, 0, p), *g = health_new(2, 4, 1, 0, p);
+    est_stats_t st[2];
+    for (uint64_t t = 1; t <= 3000; t++) {
+        double e[2] = {1.0, t > 1000 ? 0.3 : 1.0};
+        step(d, h, st, t, e, 2);
+    }
+    assert_int_equal(health_headline(h), 1);
+    uint8_t buf[64];
+    ser_w w = {buf, sizeof buf, 0};
+    health_save(h, &w);
+    ser_r r = {buf, w.len, 0, 0};
+    assert_int_equal(health_load(g, &r), 0);
+    assert_int_equal(health_headline(g), 1);
+    buf[0] = 7; /* headline index 7 of 2 */
+    ser_r r2 = {buf, w.len, 0, 0};
+    assert_int_equal(health_load(g, &r2), -1);
+    health_free(h);
+    health_free(g);
+    diag_free(d);
+}
+
+int main(void)
+{
+    const struct CMUnitTest tests[] = {
+        cmocka_unit_test(no_flap_on_small_fluctuations),
+        cmocka_unit_test(a_sustained_lead_takes_over_after_the_hold),
+        cmocka_unit_test(an_unsound_headline_is_left_at_once),
+        cmocka_unit_test(verdicts_and_reasons),
+        cmocka_unit_test(save_load),
+    };
+    return cmocka_run_group_tests(tests, NULL, NULL);
+}
