@@ -199,7 +199,7 @@ const char *health_state_name(int state)
 }
 
 void health_est(const struct health *h, size_t i, const est_stats_t *st, const struct diag *d,
-                health_est_t *out)
+                const char *const *names, health_est_t *out)
 {
     verdict_t v[HEALTH_MAX_EST];
     judge(h, st, d, v);
@@ -244,9 +244,9 @@ void health_est(const struct health *h, size_t i, const est_stats_t *st, const s
         break;
     case R_WORSE:
         snprintf(w, n,
-                 "realised-return RMS %.3g over the window is %.1f x that of %zu-th "
-                 "estimator (%.3g); the limit is %.0f x",
-                 x->a, x->b > 0 ? x->a / x->b : INFINITY, x->best + 1, x->b, HEALTH_WORSE);
+                 "realised-return RMS %.3g over the window is %.1f x that of %s (%.3g), the "
+                 "best; the limit is %.0f x",
+                 x->a, x->b > 0 ? x->a / x->b : INFINITY, names[x->best], x->b, HEALTH_WORSE);
         break;
     }
 }

@@ -105,9 +105,10 @@ void health_update(struct health *h, const est_stats_t *st, const struct diag *d
 /* Returns the estimator that answers the headline now. */
 size_t health_headline(const struct health *h);
 int health_automatic(const struct health *h);
-/* Fills out with estimator i's verdict; st and d as for health_update (borrowed). */
+/* Fills out with estimator i's verdict; st and d as for health_update, names the n_est
+ * estimator names (all borrowed). */
 void health_est(const struct health *h, size_t i, const est_stats_t *st, const struct diag *d,
-                health_est_t *out);
+                const char *const *names, health_est_t *out);
 /* Fills out with the headline and why; names: the n_est estimator names (borrowed). */
 void health_head(const struct health *h, const est_stats_t *st, const struct diag *d,
                  const char *const *names, health_head_t *out);

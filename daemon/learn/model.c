@@ -328,8 +328,11 @@ static void stats_now(const struct model *m, est_stats_t *st)
 void model_est_health(const struct model *m, size_t i, health_est_t *out)
 {
     est_stats_t st[MODEL_MAX_EST];
+    const char *names[MODEL_MAX_EST];
     stats_now(m, st);
-    health_est(m->health, i, st, m->diag, out);
+    for (size_t k = 0; k < m->n_est; k++)
+        names[k] = m->names[k];
+    health_est(m->health, i, st, m->diag, names, out);
 }
 
 void model_head(const struct model *m, health_head_t *out)

@@ -147,7 +147,8 @@ static void an_unsound_headline_is_left_at_once(void **state)
     health_update(h, st, d);
     assert_int_equal(health_headline(h), 1);
     health_est_t v;
-    health_est(h, 0, st, d, &v);
+    const char *names[2] = {"a", "b"};
+    health_est(h, 0, st, d, names, &v);
     assert_int_equal(v.state, HEALTH_DIVERGED);
     assert_int_equal(v.estimate, 0);
     health_free(h);
@@ -167,28 +168,29 @@ static void verdicts_and_reasons(void **state)
     struct diag *d = make_diag(4);
     struct health *h = health_new(4, 4, 1, 0, p);
     est_stats_t st[4];
+    const char *names[4] = {"td", "lstd", "rls", "bad"};
     for (uint64_t t = 1; t <= 100; t++) {
         double e[4] = {0.1, 0.1, 0.1, 5.0};
         step(d, h, st, t, e, 4);
     }
     health_est_t v;
-    health_est(h, 1, st, d, &v);
+    health_est(h, 1, st, d, names, &v);
     assert_int_equal(v.state, HEALTH_WARMING);
     assert_int_equal(v.estimate, 0);
     assert_non_null(strstr(v.why, "no solve yet"));
-    health_est(h, 2, st, d, &v);
+    health_est(h, 2, st, d, names, &v);
     assert_int_equal(v.state, HEALTH_WARMING);
     assert_int_equal(v.estimate, 1);
     assert_non_null(strstr(v.why, "100 of 3000 updates"));
-    health_est(h, 3, st, d, &v);
+    health_est(h, 3, st, d, names, &v);
     assert_int_equal(v.state, HEALTH_UNHEALTHY);
-    assert_non_null(strstr(v.why, "50.0 x that of 1-th estimator"));
-    health_est(h, 0, st, d, &v);
+    assert_non_null(strstr(v.why, "50.0 x that of td (0.1), the best"));
+    health_est(h, 0, st, d, names, &v);
     assert_int_equal(v.state, HEALTH_OK);
     assert_string_equal(v.why, "");
     /* Few returns: warming, whatever the kind. */
     struct diag *d2 = make_diag(4);
-    health_est(h, 0, st, d2, &v);
+    health_est(h, 0, st, d2, names, &v);
     assert_int_equal(v.state, HEALTH_WARMING);
     assert_non_null(strstr(v.why, "0 of 50 realised returns"));
     health_free(h);
