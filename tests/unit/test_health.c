@@ -226,6 +226,84 @@ static void save_load(void **state)
     diag_free(d);
 }
 
+/*
+ * A diagnostics state in model format 2 (before sds, coverage and the
+ * histogram), written field by field as that format laid it out, loads; its
+ * pending steps are then scored without an sd.
+ */
+static void format_2_diagnostics_load(void **state)
+{
+    (void)state;
+    diag_params_t p;
+    diag_params_default(0.5, &p);
+    p.horizon = 3;
+    struct diag *d = NULL;
+    char err[100];
+    assert_int_equal(diag_new(&p, 1, 2, &d, err, sizeof err), 0);
+    uint8_t buf[512];
+    ser_w w = {buf, sizeof buf, 0};
+    ser_put_u64(&w, 2); /* step */
+    ser_put_u64(&w, 2); /* source 0: two pending steps, front 0 */
+    ser_put_u64(&w, 0);
+    double e[2][3] = {{1.0, 1.0, 0.5}, {2.0, 1.0, 0.5}}; /* prediction, r, g */
+    ser_put_f64v(&w, e[0], 3);
+    ser_put_f64v(&w, e[1], 3);
+    ser_put_u64(&w, 0); /* source 1: none */
+    ser_put_u64(&w, 0);
+    ser_put_u64(&w, 0); /* estimator 0: n, sum, sumsq, ew, ewsq, ew_w */
+    for (int i = 0; i < 5; i++)
+        ser_put_f64(&w, 0.0);
+    ser_put_f64(&w, 0.0); /* spread */
+    ser_put_f64(&w, 0.0);
+    ser_put_u64(&w, 0); /* drift: k, 8 doubles, 5 counters */
+    double v[8] = {0, 0, 0, 1, 0, 0, 0, 0};
+    ser_put_f64v(&w, v, 8);
+    for (int i = 0; i < 5; i++)
+        ser_put_u64(&w, 0);
+    assert_true(ser_fits(&w));
+    ser_r r = {buf, w.len, 0, 0};
+    assert_int_equal(diag_load(d, &r, 2), 0);
+    assert_int_equal(r.pos, w.len);
+    /* The third step fills the window: the oldest return is 1 + .5 + .25 = 1.75. */
+    double pred = 0.0, sd = 0.5;
+    diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.5, 0, 0.0);
+    diag_est_t x;
+    diag_est(d, 0, &x);
+    assert_int_equal(x.n, 1);
+    assert_true(fabs(x.bias - (1.0 - 1.75)) < 1e-15);
+    assert_true(x.sd_n == 0.0); /* the loaded step had no sd */
+    diag_free(d);
+}
+
+/*
+ * Coverage and the 95% interval on errors of a known distribution: the error
+ * is uniform on [-1, 1] (rng), so |e| / RMS has its 95% quantile at
+ * 0.95 * sqrt(3) = 1.645 (RMS = 1/sqrt(3); worked by hand), V +- 2 RMS
+ * covers every return, and an sd of 0.5 covers half within 1 sd and all
+ * within 2.
+ */
+static void coverage_on_uniform_errors(void **state)
+{
+    (void)state;
+    struct diag *d = make_diag(1);
+    uint64_t s = 12345;
+    for (int t = 0; t < 20000; t++) {
+        s = s * 6364136223846793005ull + 1442695040888963407ull;
+        double u = (double)(s >> 11) / 9007199254740992.0 * 2.0 - 1.0;
+        double pred = 1.0 + u, sd = 0.5;
+        diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.0, 0, 0.0);
+    }
+    diag_est_t x;
+    diag_est(d, 0, &x);
+    assert_true(fabs(x.k95 - 0.95 * sqrt(3.0)) < 0.08);
+    assert_true(fabs(x.cover_95 - 0.95) < 0.03);
+    assert_true(x.cover_rms2 > 0.999);
+    assert_true(fabs(x.cover_sd1 - 0.5) < 0.06);
+    assert_true(x.cover_sd2 > 0.999);
+    assert_true(fabs(x.half95 - x.k95 * x.rms_window) < 1e-12);
+    diag_free(d);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -234,6 +312,8 @@ int main(void)
         cmocka_unit_test(an_unsound_headline_is_left_at_once),
         cmocka_unit_test(verdicts_and_reasons),
         cmocka_unit_test(save_load),
+        cmocka_unit_test(format_2_diagnostics_load),
+        cmocka_unit_test(coverage_on_uniform_errors),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
