@@ -50,8 +50,11 @@ struct stat {
     /* Coverage (all exponentially weighted like ew): hits of V +- 1 and 2 own sd over sd_w
      * returns that had one; hits of V +- 2 RMS and of the 95% interval over cw returns. */
     double sd1, sd2, sd_w, rms2, in95, cw;
-    double hist[DIAG_BINS]; /* |V - G| / (windowed RMS before it), binned */
-    double hw;
+    /* |V - G| / (windowed RMS before it), binned, exponentially weighted without touching
+     * every bin per return: each return adds hs, which grows by 1/keep per return, and the
+     * true weights are the stored ones / hs (rescaled to hs = 1 before it grows large). */
+    double hist[DIAG_BINS];
+    double hw, hs; /* stored total weight; the scale (hs 0 before the first return) */
 };
 
 struct diag {
@@ -212,7 +215,7 @@ static void build_front(const struct diag *d, struct ring *q, size_t front)
 /* Returns the 95% quantile of s's binned |z|, NAN before DIAG_MIN_WEIGHT returns. */
 static double q95(const struct stat *s)
 {
-    if (s->hw < DIAG_MIN_WEIGHT)
+    if (!(s->hs > 0) || s->hw / s->hs < DIAG_MIN_WEIGHT)
         return NAN;
     double want = 0.95 * s->hw, c = 0.0;
     for (size_t b = 0; b < DIAG_BINS; b++) {
@@ -247,10 +250,19 @@ static void cover(struct diag *d, struct stat *s, double err, double sd)
     }
     double z = a / rms / DIAG_BIN_WIDTH;
     size_t b = z < DIAG_BINS - 1 ? (size_t)z : DIAG_BINS - 1;
-    for (size_t i = 0; i < DIAG_BINS; i++)
-        s->hist[i] *= k;
-    s->hist[b] += 1.0;
-    s->hw = k * s->hw + 1.0;
+    if (!(k > 0)) { /* a window of 1: only this return counts */
+        memset(s->hist, 0, sizeof s->hist);
+        s->hw = s->hs = 0.0;
+    }
+    s->hs = s->hs > 0 ? s->hs / k : 1.0;
+    s->hist[b] += s->hs;
+    s->hw += s->hs;
+    if (s->hs > 1e100) { /* rare: once in some 230 windows */
+        for (size_t i = 0; i < DIAG_BINS; i++)
+            s->hist[i] /= s->hs;
+        s->hw /= s->hs;
+        s->hs = 1.0;
+    }
 }
 
 /* Scores the predictions of entry e against its realised return G, for the estimators
@@ -469,6 +481,7 @@ void diag_save(const struct diag *d, ser_w *w)
         ser_put_f64v(w, c, 6);
         ser_put_f64v(w, s->hist, DIAG_BINS);
         ser_put_f64(w, s->hw);
+        ser_put_f64(w, s->hs);
     }
     ser_put_f64(w, d->ret_ewsq);
     ser_put_f64(w, d->ret_w);
@@ -547,6 +560,7 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
         s->sd1 = c[0], s->sd2 = c[1], s->sd_w = c[2], s->rms2 = c[3], s->in95 = c[4], s->cw = c[5];
         ser_get_f64v(r, s->hist, DIAG_BINS);
         s->hw = ser_get_f64(r);
+        s->hs = ser_get_f64(r);
     }
     if (version >= 3) {
         d->ret_ewsq = ser_get_f64(r);
