@@ -25,6 +25,9 @@ struct health {
     size_t challenger; /* the estimator leading by the margin; n_est for none */
     uint64_t lead;     /* consecutive transitions it has led */
     uint64_t switches; /* times the headline moved */
+    /* lstd: its guarded count as last seen, and its update count when that last grew (a
+     * solve that fell back to least squares: near-singular), 0 for never. */
+    uint64_t guard_seen[HEALTH_MAX_EST], guard_at[HEALTH_MAX_EST];
 };
 
 /* Why an estimator is where it is; the numbers a and b fill the text. */
@@ -32,6 +35,7 @@ enum reason {
     R_OK,
     R_DIVERGED,
     R_GUARD,
+    R_SINGULAR,
     R_LSTD,
     R_REPLAY,
     R_RLS,
@@ -72,18 +76,23 @@ void health_reset(struct health *h)
     h->challenger = h->n_est;
     h->lead = 0;
     h->switches = 0;
+    memset(h->guard_seen, 0, sizeof h->guard_seen);
+    memset(h->guard_at, 0, sizeof h->guard_at);
 }
 
 /* The verdict from the estimator's own data, before comparing it with the others. */
-static verdict_t own(const struct health *h, const est_params_t *p, const est_stats_t *s,
-                     const diag_est_t *r)
+static verdict_t own(const struct health *h, size_t i, const est_stats_t *s, const diag_est_t *r)
 {
+    const est_params_t *p = &h->p[i];
     verdict_t v = {HEALTH_OK, R_OK, 0, 0, 0};
     est_stats_t st = *s;
     if (st.health == EST_HEALTH_DIVERGED)
         return (verdict_t){HEALTH_DIVERGED, R_DIVERGED, (double)st.diverged_at, 0, 0};
     if (st.health == EST_HEALTH_UNHEALTHY)
         return (verdict_t){HEALTH_UNHEALTHY, R_GUARD, (double)st.p_resets, 0, 0};
+    if (p->kind == EST_LSTD && h->guard_at[i] &&
+        st.updates - h->guard_at[i] < 2ull * p->refit_every)
+        return (verdict_t){HEALTH_UNHEALTHY, R_SINGULAR, (double)h->guard_at[i], 0, 0};
     if (p->kind == EST_LSTD && st.refits == 0)
         return (verdict_t){HEALTH_WARMING, R_LSTD, (double)st.updates, p->refit_every, 0};
     if (p->kind == EST_REPLAY && st.refits == 0)
@@ -107,7 +116,7 @@ static void judge(const struct health *h, const est_stats_t *st, const struct di
     size_t best = h->n_est;
     for (size_t i = 0; i < h->n_est; i++) {
         diag_est(d, i, &r[i]);
-        v[i] = own(h, &h->p[i], &st[i], &r[i]);
+        v[i] = own(h, i, &st[i], &r[i]);
         if (v[i].state == HEALTH_OK && (best == h->n_est || r[i].rms_window < r[best].rms_window))
             best = i;
     }
@@ -134,6 +143,11 @@ static int has_estimate(const verdict_t *v)
 
 void health_update(struct health *h, const est_stats_t *st, const struct diag *d)
 {
+    for (size_t i = 0; i < h->n_est; i++)
+        if (h->p[i].kind == EST_LSTD && st[i].guarded > h->guard_seen[i]) {
+            h->guard_seen[i] = st[i].guarded;
+            h->guard_at[i] = st[i].updates;
+        }
     if (!h->automatic)
         return;
     verdict_t v[HEALTH_MAX_EST];
@@ -182,6 +196,12 @@ void health_update(struct health *h, const est_stats_t *st, const struct diag *d
     }
 }
 
+void health_seen(struct health *h, const est_stats_t *st)
+{
+    for (size_t i = 0; i < h->n_est; i++)
+        h->guard_seen[i] = st[i].guarded;
+}
+
 size_t health_headline(const struct health *h)
 {
     return h->head;
@@ -219,6 +239,12 @@ void health_est(const struct health *h, size_t i, const est_stats_t *st, const s
         snprintf(w, n,
                  "its covariance was reset recently (%.0f resets): the data do not excite "
                  "every feature",
+                 x->a);
+        break;
+    case R_SINGULAR:
+        snprintf(w, n,
+                 "its solve at update %.0f was near-singular (reciprocal condition number "
+                 "below 1e-13): the data do not determine every weight",
                  x->a);
         break;
     case R_LSTD:
@@ -282,6 +308,10 @@ void health_save(const struct health *h, ser_w *w)
     ser_put_u64(w, h->challenger);
     ser_put_u64(w, h->lead);
     ser_put_u64(w, h->switches);
+    for (size_t i = 0; i < h->n_est; i++) {
+        ser_put_u64(w, h->guard_seen[i]);
+        ser_put_u64(w, h->guard_at[i]);
+    }
 }
 
 int health_load(struct health *h, ser_r *r)
@@ -296,5 +326,9 @@ int health_load(struct health *h, ser_r *r)
     h->challenger = (size_t)ch;
     h->lead = lead;
     h->switches = sw;
-    return 0;
+    for (size_t i = 0; i < h->n_est; i++) {
+        h->guard_seen[i] = ser_get_u64(r);
+        h->guard_at[i] = ser_get_u64(r);
+    }
+    return r->err ? -1 : 0;
 }

@@ -5,7 +5,8 @@
  * the diagnostics took a transition:
  *
  *   diverged   est.h's divergence rule fired: it answers NAN and learns nothing.
- *   unhealthy  a numerical guard acted recently (rls_td: covariance reset), or
+ *   unhealthy  a numerical guard acted recently (rls_td: covariance reset; lstd: a
+ *              near-singular solve, rcond < 1e-13, within 2 x refit_every updates), or
  *              its windowed realised-return RMS is more than HEALTH_WORSE times
  *              the best of the model's ready estimators and more than
  *              HEALTH_FLOOR times the returns' own RMS above it (both with at
@@ -99,6 +100,10 @@ void health_reset(struct health *h);
  * (estimators a chunk ahead) decides exactly as learning one at a time.
  */
 void health_update(struct health *h, const est_stats_t *st, const struct diag *d);
+
+/* Takes st's guarded counts as already seen (after loading a state from before format 3,
+ * so that old guards are not taken for new ones). */
+void health_seen(struct health *h, const est_stats_t *st);
 
 /* Query */
 

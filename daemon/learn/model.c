@@ -524,10 +524,14 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
         r.pos += (size_t)el;
     }
     diag_load(m->diag, &r, version);
-    if (version >= 3)
+    if (version >= 3) {
         health_load(m->health, &r);
-    else
+    } else {
         health_reset(m->health);
+        for (size_t i = 0; i < m->n_est; i++)
+            est_stats(m->est[i], &m->st[i]);
+        health_seen(m->health, m->st);
+    }
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
     return 0;

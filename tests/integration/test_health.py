@@ -195,3 +195,24 @@ def test_headline_survives_a_restart(daemon):
         assert after["primary"][k] == before["primary"][k], (before["primary"], after["primary"])
     for e in ("td", "stubborn"):
         assert after["estimators"][e]["coverage"] == before["estimators"][e]["coverage"]
+
+
+def test_a_near_singular_lstd_solve_is_unhealthy(daemon):
+    c = daemon().client()
+    # two dimensions that always read the same (a duplicated sensor) and no ridge: A is
+    # singular, so every solve falls back to least squares (LAPACK's rcond below 1e-13)
+    c.ok({"op": "model.create", "model": "dup", "dims": 2, "gamma": 0.5,
+          "ranges": [[0, 1]] * 2, "features": [{"basis": "raw"}],
+          "estimators": [{"name": "td", "kind": "td", "alpha": 0.05},
+                         {"name": "lstd", "kind": "lstd", "ridge": 0, "refit_every": 20}]})
+    rng = np.random.default_rng(7)
+    rows = []
+    for _ in range(400):
+        a, b = rng.random(2)
+        rows.append([a, a, a + rng.normal(0, 0.1), b, b, 0.0])
+    feed(c, "dup", np.array(rows))
+    st = c.wait_applied("dup", 400)
+    e = st["estimators"]["lstd"]
+    assert e["guarded"] > 0, e
+    assert e["health"] == "unhealthy" and "near-singular" in e["why"], e
+    assert st["primary"]["name"] == "td", st

@@ -198,6 +198,43 @@ static void verdicts_and_reasons(void **state)
     diag_free(d2);
 }
 
+/* An lstd solve that fell back to least squares (guarded) makes it unhealthy for two
+ * refit periods, then it is ok again. */
+static void near_singular_lstd_is_unhealthy_for_a_while(void **state)
+{
+    (void)state;
+    est_params_t p[2];
+    est_params_default(EST_TD, &p[0]);
+    est_params_default(EST_LSTD, &p[1]); /* refit_every 100 */
+    struct diag *d = make_diag(2);
+    struct health *h = health_new(2, 4, 1, 0, p);
+    est_stats_t st[2];
+    const char *names[2] = {"td", "lstd"};
+    health_est_t v;
+    uint64_t guarded = 0;
+    for (uint64_t t = 1; t <= 700; t++) {
+        double e[2] = {1.0, 1.0}, pred[2];
+        for (size_t k = 0; k < 2; k++)
+            pred[k] = 1.0 + ((t % 2) ? e[k] : -e[k]);
+        diag_observe(d, 0, pred, 1.0, 0.0, 0, 0.0);
+        stats_at(st, 2, t);
+        st[1].refits = t / 100;
+        if (t == 300)
+            guarded = 1; /* the solve at update 300 fell back */
+        st[1].guarded = guarded;
+        health_update(h, st, d);
+        health_est(h, 1, st, d, names, &v);
+        if (t >= 300 && t < 500) {
+            assert_int_equal(v.state, HEALTH_UNHEALTHY);
+            assert_non_null(strstr(v.why, "its solve at update 300 was near-singular"));
+        } else if (t > HEALTH_MIN_RETURNS && t >= 100) {
+            assert_int_equal(v.state, HEALTH_OK);
+        }
+    }
+    health_free(h);
+    diag_free(d);
+}
+
 /* The headline's state saves and loads; a bad index is refused. */
 static void save_load(void **state)
 {
@@ -212,7 +249,7 @@ static void save_load(void **state)
         step(d, h, st, t, e, 2);
     }
     assert_int_equal(health_headline(h), 1);
-    uint8_t buf[64];
+    uint8_t buf[128];
     ser_w w = {buf, sizeof buf, 0};
     health_save(h, &w);
     ser_r r = {buf, w.len, 0, 0};
@@ -311,6 +348,7 @@ int main(void)
         cmocka_unit_test(a_sustained_lead_takes_over_after_the_hold),
         cmocka_unit_test(an_unsound_headline_is_left_at_once),
         cmocka_unit_test(verdicts_and_reasons),
+        cmocka_unit_test(near_singular_lstd_is_unhealthy_for_a_while),
         cmocka_unit_test(save_load),
         cmocka_unit_test(format_2_diagnostics_load),
         cmocka_unit_test(coverage_on_uniform_errors),
