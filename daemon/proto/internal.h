@@ -107,13 +107,13 @@ struct proto {
     jw_t out; /* the reply being written (reused: no allocation at its high-water mark) */
     /* Per-request scratch, sized for the largest model (grown on create). */
     double *vals, *sds;
-    learner_stats_t
-        qstats; /* a value request's figures (the loop thread's; too big for its stack) */
     learner_sample_t *hist; /* history request scratch */
     const char **srcs;      /* max_batch source names of a batch */
     struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
     size_t n_rsrc;
     char err[512];
+    /* A value request's figures: health, headline, realised (too big for the loop's stack). */
+    learner_stats_t qstats;
     /* ops.c: requests and errors answered, by op (the last row: before any op was known). */
     uint64_t *n_requests;
     uint64_t *n_errors; /* [op][-code], PROTO_CODES per op */
