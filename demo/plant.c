@@ -146,7 +146,7 @@ static const char SPEC[] =
     "{\"name\":\"rls\",\"kind\":\"rls_td\",\"forget\":0.9995,\"delta\":10},"
     "{\"name\":\"lstd\",\"kind\":\"lstd\",\"ridge\":0.01,\"refit_every\":720},"
     "{\"name\":\"replay\",\"kind\":\"replay\",\"alpha\":0.002,\"capacity\":20000}],"
-    "\"primary\":\"rls\","
+    "\"primary\":\"auto\","
     "\"diagnostics\":{\"drift_burn_in\":1440,\"drift_lambda\":60,\"on_drift\":\"checkpoint\"}}";
 
 /* The three named situations: [level, demand, sin, cos, tariff] at an hour. */
@@ -174,7 +174,7 @@ static int table(worth_client *c, double vals[3][5], const char *title)
     printf("\n%s\n%-24s", title, "situation");
     for (int e = 0; e < 5; e++)
         printf(" %11s", NAMES[e]);
-    printf(" %9s\n", "sd(rls)");
+    printf(" %9s %11s %9s\n", "headline", "value", "its sd");
     for (int k = 0; k < 3; k++) {
         double x[DIMS];
         const char *name;
@@ -187,7 +187,16 @@ static int table(worth_client *c, double vals[3][5], const char *title)
             vals[k][e] = v.values[e];
             printf(" %11.2f", v.values[e]);
         }
-        printf(" %9.2f\n", v.sd);
+        /* The headline's value and its own sd (none for an estimator that has none). */
+        char head[64] = "?";
+        const char *json, *at;
+        if (worth_stats(c, "reservoir", &json) == 0 &&
+            (at = strstr(json, "\"primary\":{\"name\":\"")) != NULL)
+            sscanf(at + 19, "%63[^\"]", head);
+        char sd[32] = "-";
+        if (!isnan(v.sd))
+            snprintf(sd, sizeof sd, "%.2f", v.sd);
+        printf(" %9s %11.2f %9s\n", head, v.value, sd);
     }
     return 0;
 }
@@ -296,8 +305,9 @@ int main(int argc, char **argv)
     if (worth_model_create(c, SPEC, &features))
         return fail(c, "model.create");
     printf("1. model \"reservoir\": state level [m], demand [m3/h], hour of day (sin, cos), tariff "
-           "[EUR/kWh]; reward in EUR; %zu Fourier features; estimators td, td_lambda, rls_td "
-           "(primary), lstd, replay\n",
+           "[EUR/kWh]; reward in EUR; %zu Fourier features; estimators td, td_lambda, rls_td, "
+           "lstd, replay; the headline is chosen (auto: the healthy one with the lowest "
+           "realised-return error)\n",
            features);
 
     struct plant p = {.level = 5.0, .rng = 20261201};
@@ -314,14 +324,18 @@ int main(int argc, char **argv)
     if (worth_stats(c, "reservoir", &json))
         return fail(c, "stats");
     printf("\n   realised-return error (value predicted minus the return that followed), "
-           "sliding window:\n   %-10s %9s %9s\n",
-           "estimator", "bias", "rms");
+           "sliding window:\n   %-10s %9s %9s  %s\n",
+           "estimator", "bias", "rms", "health");
     for (int e = 0; e < 5; e++) {
         char key[64];
         snprintf(key, sizeof key, "\"%s\":{\"kind\"", NAMES[e]);
         const char *at = strstr(json, key);
-        printf("   %-10s %9.2f %9.2f\n", NAMES[e], at ? field(at, "\"bias_window\":") : NAN,
-               at ? field(at, "\"rms_window\":") : NAN);
+        char health[16] = "?";
+        const char *h = at ? strstr(at, "\"health\":\"") : NULL;
+        if (h)
+            sscanf(h + 10, "%15[^\"]", health);
+        printf("   %-10s %9.2f %9.2f  %s\n", NAMES[e], at ? field(at, "\"bias_window\":") : NAN,
+               at ? field(at, "\"rms_window\":") : NAN, health);
     }
     double alarms_before = field(json, "\"alarms\":");
 

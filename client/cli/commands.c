@@ -178,8 +178,11 @@ static const struct cmd cmds[] = {
      "worth value MODEL X1 X2 ... [--estimator E]\n"
      "       worth value MODEL NAME=X NAME=X ... [--estimator E]\n"
      "       worth value MODEL --file STATES.csv [--estimator E]",
-     "The value of a state: the primary estimator's value and sd, and every\n"
-     "estimator's value, as a table (in the reward's unit, when the model has one).\n"
+     "The value of a state: every estimator's value, its own sd (rls_td only), its\n"
+     "95% interval and its health (warming, ok, unhealthy, diverged), as a table in\n"
+     "the reward's unit when the model has one; the headline estimator is marked *\n"
+     "with the reason it answers, each estimator that is not ok with its reason,\n"
+     "and the spread (see docs/answers.md).\n"
      "Give exactly D numbers in order (put \"--\" before them if the first is\n"
      "negative and looks like an option), or every dimension by name.\n"
      "With --file, one state per row: a header naming the dimensions (by name, with\n"
@@ -256,8 +259,12 @@ static const struct cmd cmds[] = {
      "  worth train station-1 --estimator replay --passes 50\n"},
     {"stats", cmd_stats, "MODEL", "per-estimator figures and counters",
      "worth stats MODEL",
-     "The model's counters (received, applied, queue, clipped, sources) and a\n"
-     "table of each estimator's figures (updates, td_rms, td_last, guarded, ...).\n"
+     "The model's counters (received, applied, queue, clipped, sources), the\n"
+     "headline estimator and why (primary.*), a table of each estimator's figures\n"
+     "(updates, health, td_rms, td_last, guarded, ...), its realised-return errors,\n"
+     "the coverage of its intervals (share of realised returns within 1 and 2 own\n"
+     "sd, 2 RMS and the reported 95% interval), and the reason of each estimator\n"
+     "that is not ok.\n"
      "\n"
      "example:\n"
      "  worth stats station-1\n"},
@@ -279,7 +286,8 @@ static const struct cmd cmds[] = {
     {"watch", cmd_watch, "MODEL", "a refreshing view of the stats (q quits)",
      "worth watch MODEL [--every SECONDS] [--count N]",
      "A refreshing view of the model's stats: counters, the ingest rate since the\n"
-     "last refresh, and each estimator's figures. On a terminal it redraws in\n"
+     "last refresh, and each estimator's figures with its health and the coverage\n"
+     "of its 95% interval (the headline marked *). On a terminal it redraws in\n"
      "place; press q to quit. Elsewhere it prints one block per refresh.\n"
      "\n"
      "options:\n"

@@ -211,6 +211,88 @@ out:
     return ex;
 }
 
+/* Writes "lo .. hi" of a [lo, hi] pair, or "-". */
+static void fmt_interval(char *buf, size_t len, const cJSON *iv)
+{
+    char a[32], b[32];
+    if (!cJSON_IsArray(iv) || cJSON_GetArraySize(iv) != 2) {
+        snprintf(buf, len, "-");
+        return;
+    }
+    fmt_json(a, sizeof a, cJSON_GetArrayItem(iv, 0));
+    fmt_json(b, sizeof b, cJSON_GetArrayItem(iv, 1));
+    snprintf(buf, len, "%s .. %s", a, b);
+}
+
+/* One estimator's row: name (with * for the headline), value, sd, interval, health. */
+static void value_row(struct table *t, const char *name, int head, const cJSON *v, const cJSON *h)
+{
+    char n[72], a[32], b[32], c[72];
+    snprintf(n, sizeof n, "%.63s%s", name, head ? " *" : "");
+    fmt_json(a, sizeof a, v);
+    if (!cJSON_IsNumber(v))
+        snprintf(a, sizeof a, "-");
+    const cJSON *sd = json_get(h, "sd");
+    if (cJSON_IsNumber(sd))
+        fmt_json(b, sizeof b, sd);
+    else
+        snprintf(b, sizeof b, "-");
+    fmt_interval(c, sizeof c, json_get(h, "interval95"));
+    const cJSON *st = json_get(h, "state");
+    table_rowv(t, n, a, b, c, cJSON_IsString(st) ? st->valuestring : "?");
+}
+
+/*
+ * The value reply on a terminal: every estimator's value, its own sd, its 95%
+ * interval and its health, the headline marked *, then why the headline is
+ * the one, the reasons of the estimators that are not ok, and the spread.
+ */
+static void print_value(const cJSON *r, const struct mspec *ms, const char *estimator)
+{
+    struct table *t = table_new(5);
+    if (!t)
+        return;
+    char hv[64], hs[64], hi[64];
+    mspec_vlabel(ms, "VALUE", hv, sizeof hv);
+    mspec_vlabel(ms, "SD", hs, sizeof hs);
+    mspec_vlabel(ms, "95% INTERVAL", hi, sizeof hi);
+    table_rowv(t, "ESTIMATOR", hv, hs, hi, "HEALTH");
+    const cJSON *ests = json_get(r, "estimators"), *health = json_get(r, "health"), *e;
+    const cJSON *pr = json_get(r, "primary");
+    const cJSON *pn = json_get(pr, "name");
+    if (estimator) /* the reply carries that estimator's figures at its top */
+        value_row(t, estimator, 0, json_get(r, "value"), r);
+    cJSON_ArrayForEach(e, ests)
+    {
+        int head = cJSON_IsString(pn) && strcmp(pn->valuestring, e->string) == 0;
+        value_row(t, e->string, head, e, json_get(health, e->string));
+    }
+    table_print(t, stdout);
+    table_free(t);
+    const cJSON *why = json_get(pr, "reason");
+    if (cJSON_IsString(pn))
+        printf("* headline: %s; %s\n", pn->valuestring,
+               cJSON_IsString(why) ? why->valuestring : "");
+    const cJSON *w = json_get(r, "why");
+    if (estimator && cJSON_IsString(w))
+        printf("%s: %s\n", estimator, w->valuestring);
+    cJSON_ArrayForEach(e, health)
+    {
+        const cJSON *ew = json_get(e, "why");
+        if (cJSON_IsString(ew))
+            printf("%s: %s\n", e->string, ew->valuestring);
+    }
+    const cJSON *sp = json_get(r, "spread");
+    if (sp) {
+        char a[32];
+        fmt_json(a, sizeof a, sp);
+        printf("spread: %s%s%s (largest minus smallest value of the estimators that answer)\n", a,
+               ms->reward_unit[0] ? " " : "", ms->reward_unit);
+    }
+    const cJSON *seq = json_get(r, "seq");
+    printf("(seq %.0f)\n", cJSON_IsNumber(seq) ? seq->valuedouble : 0.0);
+}
+
 int cmd_value(struct cli *cli, int argc, char **argv)
 {
     char *pos[66];
@@ -288,11 +370,26 @@ int cmd_value(struct cli *cli, int argc, char **argv)
             cJSON_AddStringToObject(r, "estimator", estimator);
         return cli_raw(cli, r);
     }
-    worth_value_t val;
-    memset(&val, 0, sizeof val);
-    int rc = worth_value(cli->c, model, x, dims, estimator, &val);
+    cJSON *req = cli_request("value", model);
+    cJSON *xa = req ? cJSON_CreateDoubleArray(x, (int)dims) : NULL;
+    if (!xa || !cJSON_AddItemToObject(req, "x", xa) ||
+        (estimator && !cJSON_AddStringToObject(req, "estimator", estimator))) {
+        cJSON_Delete(xa);
+        cJSON_Delete(req);
+        return cli_error(EXIT_USAGE, "out of memory");
+    }
+    char *text = cJSON_PrintUnformatted(req);
+    cJSON_Delete(req);
+    const char *line = NULL;
+    if (!text)
+        return cli_error(EXIT_USAGE, "out of memory");
+    int rc = worth_request(cli->c, text, &line);
+    free(text);
     if (rc)
         return cli_fail(cli, rc);
+    cJSON *r = cJSON_Parse(line);
+    if (!r)
+        return cli_error(EXIT_USAGE, "worthd's value reply is not JSON");
     if (ms.named) {
         /* The state as read: "level = 4.2 m, demand = 180 m3/h". */
         fputs("state:", stdout);
@@ -304,25 +401,8 @@ int cmd_value(struct cli *cli, int argc, char **argv)
         }
         fputc('\n', stdout);
     }
-    struct table *t = table_new(3);
-    if (!t)
-        return cli_error(EXIT_USAGE, "out of memory");
-    char a[32], b[32], hv[64], hs[64];
-    mspec_vlabel(&ms, "VALUE", hv, sizeof hv);
-    mspec_vlabel(&ms, "SD", hs, sizeof hs);
-    table_rowv(t, "ESTIMATOR", hv, hs);
-    fmt_num(a, sizeof a, val.value);
-    fmt_num(b, sizeof b, val.sd);
-    table_rowv(t, estimator ? estimator : "(primary)", a, b);
-    for (size_t i = 0; i < val.n && i < WORTH_MAX_ESTIMATORS; i++) {
-        fmt_num(a, sizeof a, val.values[i]);
-        char name[64];
-        snprintf(name, sizeof name, "%.63s", val.names[i]);
-        table_rowv(t, name, a, "");
-    }
-    table_print(t, stdout);
-    table_free(t);
-    printf("(seq %llu)\n", (unsigned long long)val.seq);
+    print_value(r, &ms, estimator);
+    cJSON_Delete(r);
     return EXIT_OK;
 }
 
@@ -361,7 +441,7 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
     if (t)
         table_left(t);
     const cJSON *e;
-    char v[128];
+    char v[256];
     for (e = r->child; t && e; e = e->next) {
         if (strcmp(e->string, "ok") == 0 || strcmp(e->string, "id") == 0 || cJSON_IsArray(e) ||
             strcmp(e->string, "estimators") == 0)
@@ -396,8 +476,8 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         const cJSON *f;
         cJSON_ArrayForEach(f, e)
         {
-            if (cJSON_IsObject(f))
-                continue; /* realised: its own table below */
+            if (cJSON_IsObject(f) || strcmp(f->string, "why") == 0)
+                continue; /* realised, coverage and the reasons: below */
             size_t k = 0;
             while (k < nk && strcmp(keys[k], f->string) != 0)
                 k++;
@@ -463,6 +543,34 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         printf("\n");
         table_print(t, stdout);
         table_free(t);
+    }
+    /* Coverage: the share of realised returns inside V +- 1 and 2 own sd, +- 2 RMS and the
+     * reported 95% interval (V +- HALF95), over the window (schema/protocol.md). */
+    t = cJSON_GetArraySize(ests) ? table_new(7) : NULL;
+    if (t) {
+        char h[64];
+        mspec_vlabel(&ms, "HALF95", h, sizeof h);
+        table_rowv(t, "COVERAGE", "SD1", "SD2", "RMS2", "INTERVAL95", "K95", h);
+        cJSON_ArrayForEach(e, ests)
+        {
+            const cJSON *cv = json_get(e, "coverage");
+            char c[6][64];
+            static const char *const k6[6] = {"sd1", "sd2", "rms2", "interval95", "k95", "half95"};
+            for (int k = 0; k < 6; k++)
+                fmt_json(c[k], sizeof c[k], json_get(cv, k6[k]));
+            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4], c[5]);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
+    int said = 0;
+    cJSON_ArrayForEach(e, ests)
+    {
+        const cJSON *w = json_get(e, "why"), *h = json_get(e, "health");
+        if (cJSON_IsString(w))
+            printf("%s%s %s: %s\n", said++ ? "" : "\n", e->string,
+                   cJSON_IsString(h) ? h->valuestring : "", w->valuestring);
     }
     cJSON_Delete(r);
     return EXIT_OK;

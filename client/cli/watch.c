@@ -76,26 +76,34 @@ static int draw(struct cli *cli, const char *model, const struct mspec *ms, int 
     printf("drift alarms %s (last at step %s)   statistic %s   spread %s%s%s%s\n\n", a, c, b, d,
            ms->reward_unit[0] ? " " : "", ms->reward_unit,
            getnum(dr, "alarms") > 0 ? "   << DRIFT: consider a rollback" : "");
-    struct table *tb = table_new(7);
+    struct table *tb = table_new(9);
     if (tb) {
         char h[3][64];
         mspec_vlabel(ms, "td_rms", h[0], sizeof h[0]);
         mspec_vlabel(ms, "td_last", h[1], sizeof h[1]);
         mspec_vlabel(ms, "realised_rms", h[2], sizeof h[2]);
-        table_rowv(tb, "estimator", "kind", "updates", h[0], h[1], "guarded", h[2]);
-        const cJSON *est;
+        table_rowv(tb, "estimator", "kind", "health", "updates", h[0], h[1], "guarded", h[2],
+                   "in_95%");
+        const cJSON *est, *pn = cJSON_GetObjectItemCaseSensitive(
+                              cJSON_GetObjectItemCaseSensitive(r, "primary"), "name");
         cJSON_ArrayForEach(est, cJSON_GetObjectItemCaseSensitive(r, "estimators"))
         {
             const cJSON *kind = cJSON_GetObjectItemCaseSensitive(est, "kind");
+            const cJSON *hl = cJSON_GetObjectItemCaseSensitive(est, "health");
             fmt_num(a, sizeof a, getnum(est, "updates"));
             fmt_num(b, sizeof b, getnum(est, "td_rms"));
             fmt_num(c, sizeof c, getnum(est, "td_last"));
             fmt_num(e, sizeof e, getnum(est, "guarded"));
             snprintf(f, sizeof f, "%s", cJSON_IsString(kind) ? kind->valuestring : "?");
-            char g[64];
+            char g[64], cv[64], nm[72];
             fmt_num(g, sizeof g,
                     getnum(cJSON_GetObjectItemCaseSensitive(est, "realised"), "rms_window"));
-            table_rowv(tb, est->string, f, a, b, c, e, g);
+            fmt_num(cv, sizeof cv,
+                    getnum(cJSON_GetObjectItemCaseSensitive(est, "coverage"), "interval95"));
+            /* The headline is marked *: the estimator whose value the model answers. */
+            int head = cJSON_IsString(pn) && strcmp(pn->valuestring, est->string) == 0;
+            snprintf(nm, sizeof nm, "%.63s%s", est->string, head ? " *" : "");
+            table_rowv(tb, nm, f, cJSON_IsString(hl) ? hl->valuestring : "?", a, b, c, e, g, cv);
         }
         table_print(tb, stdout);
         table_free(tb);

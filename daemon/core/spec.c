@@ -42,8 +42,6 @@
 /* Largest seed accepted: above 2^53 a JSON number no longer holds every integer. */
 #define SEED_MAX 9007199254740992.0
 
-
-
 static const struct field top_fields[] = {
     {"op", F_OTHER, 0, 0, 0, 0, 0},          {"id", F_OTHER, 0, 0, 0, 0, 0},
     {"model", F_OTHER, 0, 0, 0, 0, 0},       {"dims", F_OTHER, 0, 0, 0, 0, 0},
@@ -142,8 +140,8 @@ static int find_field(const struct field *t, size_t n, const char *name)
  * twice: cJSON keeps both copies and a lookup would silently see the first.
  * Linear in the number of keys, since an unknown key stops the scan.
  */
-int spec_check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path,
-                      char *err, size_t errlen)
+int spec_check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path, char *err,
+                    size_t errlen)
 {
     uint32_t seen = 0;
     char sb[SHOW_MAX + 4];
@@ -341,7 +339,8 @@ static int parse_features(const cJSON *req, spec_t *s, size_t dims, size_t cap, 
             return rc;
         const char *name = NULL;
         snprintf(fp, sizeof fp, "%s.basis", path);
-        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(b, "basis"), fp, &name, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(b, "basis"), fp, &name, err,
+                                  errlen)))
             return rc;
         size_t k = 0;
         while (k < NBASIS && strcmp(name, basis_names[k]) != 0)
@@ -391,7 +390,8 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
             return rc;
         const char *name = NULL, *kname = NULL; /* set before use; -O3 cannot see it */
         snprintf(fp, sizeof fp, "%s.name", path);
-        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "name"), fp, &name, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "name"), fp, &name, err,
+                                  errlen)))
             return rc;
         size_t len = strlen(name);
         if (len < 1 || len > MODEL_NAME_MAX)
@@ -405,7 +405,8 @@ static int parse_estimators(const cJSON *req, spec_t *s, char *err, size_t errle
         memcpy(s->est_names[i], name, len + 1);
         s->est_name_ptrs[i] = s->est_names[i];
         snprintf(fp, sizeof fp, "%s.kind", path);
-        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "kind"), fp, &kname, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(e, "kind"), fp, &kname, err,
+                                  errlen)))
             return rc;
         int k = est_kind_parse(kname);
         if (k < 0)
@@ -557,7 +558,8 @@ static char *canonical(const spec_t *s)
         bad |= cJSON_AddStringToObject(e, "kind", est_kind_name(s->est[i].kind)) ? 0 : -1;
         bad |= add_params(e, est_fields, NESTF, 2, s->est[i].kind, &s->est[i]);
     }
-    bad |= cJSON_AddStringToObject(root, "primary", s->est_names[m->primary]) ? 0 : -1;
+    const char *head = m->primary_auto ? "auto" : s->est_names[m->primary];
+    bad |= cJSON_AddStringToObject(root, "primary", head) ? 0 : -1;
     bad |= spec_add_u64(root, "max_sources", m->max_sources);
     bad |= spec_add_u64(root, "max_features", m->feat.max_features);
     cJSON *dg = cJSON_AddObjectToObject(root, "diagnostics");
@@ -665,7 +667,7 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
         return rc;
 
     if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(req, "model"), "model", &name, err,
-                         errlen)))
+                              errlen)))
         return rc;
     if (!spec_name_ok(name))
         return err_fail(err, errlen, WORTH_E_BAD_PARAM,
@@ -693,8 +695,8 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
     }
     s->m.feat.dims = dims;
 
-    if ((rc = spec_get_double(cJSON_GetObjectItemCaseSensitive(req, "gamma"), "gamma", &s->m.gamma, err,
-                         errlen)))
+    if ((rc = spec_get_double(cJSON_GetObjectItemCaseSensitive(req, "gamma"), "gamma", &s->m.gamma,
+                              err, errlen)))
         return rc;
     if (!(s->m.gamma >= 0 && s->m.gamma <= 1))
         return err_fail(err, errlen, WORTH_E_BAD_PARAM, "gamma must be in [0, 1]");
@@ -727,7 +729,8 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
     if ((rc = parse_estimators(req, s, err, errlen)))
         return rc;
 
-    s->m.primary = 0;
+    /* Default "auto" (health.h); a stored spec names its primary, an estimator "auto" wins. */
+    s->m.primary = 0, s->m.primary_auto = 1;
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "primary"))) {
         char sb[SHOW_MAX + 4];
         if ((rc = spec_get_string(it, "primary", &name, err, errlen)))
@@ -735,10 +738,11 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
         size_t i = 0;
         while (i < s->m.n_est && strcmp(name, s->est_names[i]) != 0)
             i++;
-        if (i == s->m.n_est)
-            return err_fail(err, errlen, WORTH_E_BAD_PARAM, "primary: no estimator is named \"%s\"",
+        if (i == s->m.n_est && strcmp(name, "auto") != 0)
+            return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                            "primary: no estimator is named \"%s\" (give a name or \"auto\")",
                             spec_show(name, sb));
-        s->m.primary = i;
+        s->m.primary_auto = i == s->m.n_est, s->m.primary = i == s->m.n_est ? 0 : i;
     }
 
     s->m.max_sources = MODEL_DEFAULT_SOURCES;

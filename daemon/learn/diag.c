@@ -40,23 +40,33 @@ struct ring {
     size_t head, count, cap;
     size_t front;  /* the oldest entries, whose suffix compositions are valid */
     double bR, bG; /* composition of the entries after the front, oldest first */
-    double *e;     /* cap entries of stride: n_est predictions, r, g, suffix r, suffix g */
+    double *e; /* cap entries of stride: n_est predictions, n_est sds, r, g, suffix r, suffix g */
 };
 
 struct stat {
     uint64_t n;
     double sum, sumsq;     /* over the run */
     double ew, ewsq, ew_w; /* exponentially weighted, for the window */
+    /* Coverage (all exponentially weighted like ew): hits of V +- 1 and 2 own sd over sd_w
+     * returns that had one; hits of V +- 2 RMS and of the 95% interval over cw returns. */
+    double sd1, sd2, sd_w, rms2, in95, cw;
+    /* |V - G| / (windowed RMS before it), binned, exponentially weighted without touching
+     * every bin per return: each return adds hs, which grows by 1/keep per return, and the
+     * true weights are the stored ones / hs (rescaled to hs = 1 before it grows large). */
+    double hist[DIAG_BINS];
+    double hw, hs; /* stored total weight; the scale (hs 0 before the first return) */
 };
 
 struct diag {
     diag_params_t p;
-    size_t n_est, nsrc, stride; /* stride: n_est + 4; n_est + 2 of them saved */
+    size_t n_est, nsrc, stride; /* stride: 2 n_est + 4; 2 n_est + 2 of them saved */
+    size_t ri;                  /* offset of r in an entry: 2 n_est */
     unsigned horizon;
     double keep; /* 1 - 1/window */
     struct ring *q;
     struct stat *st;
     double spread_ew, spread_w;
+    double ret_ewsq, ret_w; /* the realised returns' own mean square, over the window */
     /* Page-Hinkley */
     uint64_t step, k;      /* transitions seen; since the last (re)start */
     double b_sum, b_sumsq; /* burn-in sums */
@@ -90,7 +100,7 @@ static unsigned auto_horizon(double gamma)
 double diag_footprint(const diag_params_t *p, size_t n_est, size_t sources)
 {
     double h = p->horizon ? (double)p->horizon : (double)auto_horizon(p->gamma);
-    return (double)sources * h * (double)(n_est + 2) * sizeof(double);
+    return (double)sources * h * (double)(2 * n_est + 2) * sizeof(double);
 }
 
 int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag **out, char *err,
@@ -110,7 +120,8 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
     d->p = *p;
     d->n_est = n_est;
     d->nsrc = sources;
-    d->stride = n_est + 4;
+    d->stride = 2 * n_est + 4;
+    d->ri = 2 * n_est;
     d->horizon = p->horizon ? p->horizon : auto_horizon(p->gamma);
     d->keep = 1.0 - 1.0 / p->window;
     d->q = mem_calloc(sources, sizeof *d->q);
@@ -139,6 +150,7 @@ void diag_reset(struct diag *d)
     }
     memset(d->st, 0, d->n_est * sizeof *d->st);
     d->spread_ew = d->spread_w = 0;
+    d->ret_ewsq = d->ret_w = 0;
     d->step = 0;
     d->alarms = d->last_alarm = d->last_onset = 0;
     restart_drift(d);
@@ -179,8 +191,8 @@ static void grow(struct diag *d, struct ring *q)
 static void fold_back(const struct diag *d, struct ring *q, size_t i)
 {
     const double *x = entry(d, q, i);
-    q->bR += q->bG * x[d->n_est];
-    q->bG *= x[d->n_est + 1];
+    q->bR += q->bG * x[d->ri];
+    q->bG *= x[d->ri + 1];
 }
 
 /* Makes the first `front` entries the front (their suffix compositions, newest
@@ -192,23 +204,79 @@ static void build_front(const struct diag *d, struct ring *q, size_t front)
     double R = 0.0, G = 1.0;
     for (size_t i = front; i-- > 0;) {
         double *x = entry(d, q, i);
-        R = x[d->n_est] + x[d->n_est + 1] * R;
-        G = x[d->n_est + 1] * G;
-        x[d->n_est + 2] = R;
-        x[d->n_est + 3] = G;
+        R = x[d->ri] + x[d->ri + 1] * R;
+        G = x[d->ri + 1] * G;
+        x[d->ri + 2] = R;
+        x[d->ri + 3] = G;
     }
     q->front = front;
+}
+
+/* Returns the 95% quantile of s's binned |z|, NAN before DIAG_MIN_WEIGHT returns. */
+static double q95(const struct stat *s)
+{
+    if (!(s->hs > 0) || s->hw / s->hs < DIAG_MIN_WEIGHT)
+        return NAN;
+    double want = 0.95 * s->hw, c = 0.0;
+    for (size_t b = 0; b < DIAG_BINS; b++) {
+        if (c + s->hist[b] >= want && s->hist[b] > 0)
+            return (b + (want - c) / s->hist[b]) * DIAG_BIN_WIDTH;
+        c += s->hist[b];
+    }
+    return DIAG_BINS * DIAG_BIN_WIDTH; /* XXX: rounding only; the last bin holds the tail */
+}
+
+/*
+ * Coverage of return G by prediction v: its own sd at the time (sd, NAN or < 0 for
+ * none) and the interval from the realised errors as they stood before this return
+ * (out of sample), then the error joins the histogram in units of the windowed RMS.
+ */
+static void cover(struct diag *d, struct stat *s, double err, double sd)
+{
+    double a = fabs(err), k = d->keep;
+    if (isfinite(sd) && sd > 0) {
+        s->sd1 = k * s->sd1 + (a <= sd);
+        s->sd2 = k * s->sd2 + (a <= 2 * sd);
+        s->sd_w = k * s->sd_w + 1.0;
+    }
+    double rms = s->ew_w > 0 ? sqrt(s->ewsq / s->ew_w) : 0.0;
+    if (!(rms > 0))
+        return;
+    double q = q95(s);
+    if (!isnan(q)) {
+        s->rms2 = k * s->rms2 + (a <= 2 * rms);
+        s->in95 = k * s->in95 + (a <= q * rms);
+        s->cw = k * s->cw + 1.0;
+    }
+    double z = a / rms / DIAG_BIN_WIDTH;
+    size_t b = z < DIAG_BINS - 1 ? (size_t)z : DIAG_BINS - 1;
+    if (!(k > 0)) { /* a window of 1: only this return counts */
+        memset(s->hist, 0, sizeof s->hist);
+        s->hw = s->hs = 0.0;
+    }
+    s->hs = s->hs > 0 ? s->hs / k : 1.0;
+    s->hist[b] += s->hs;
+    s->hw += s->hs;
+    if (s->hs > 1e100) { /* rare: once in some 230 windows */
+        for (size_t i = 0; i < DIAG_BINS; i++)
+            s->hist[i] /= s->hs;
+        s->hw /= s->hs;
+        s->hs = 1.0;
+    }
 }
 
 /* Scores the predictions of entry e against its realised return G, for the estimators
  * still in (a number in pred, the predictions of the current transition). */
 static void score(struct diag *d, const double *e, double G, const double *pred)
 {
+    d->ret_ewsq = d->keep * d->ret_ewsq + G * G;
+    d->ret_w = d->keep * d->ret_w + 1.0;
     for (size_t k = 0; k < d->n_est; k++) {
         if (isnan(pred[k]))
             continue;
         struct stat *s = &d->st[k];
         double err = e[k] - G;
+        cover(d, s, err, e[d->n_est + k]);
         s->n++;
         s->sum += err;
         s->sumsq += err * err;
@@ -262,6 +330,12 @@ static int drift(struct diag *d, double td)
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td)
 {
+    return diag_observe_sd(d, src, pred, NULL, r, g, terminal, td);
+}
+
+int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double *sd, double r,
+                    double g, int terminal, double td)
+{
     d->step++;
     double lo = INFINITY, hi = -INFINITY;
     size_t in = 0;
@@ -281,10 +355,13 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
     if (q->count == q->cap)
         grow(d, q);
     double *e = q->e + ((q->head + q->count) % q->cap) * d->stride;
-    for (size_t k = 0; k < d->n_est; k++)
+    for (size_t k = 0; k < d->n_est; k++) {
         e[k] = isnan(pred[k]) ? 0.0 : pred[k];
-    e[d->n_est] = r;
-    e[d->n_est + 1] = g;
+        /* -1 marks "no sd": nothing non-finite goes into the saved ring. */
+        e[d->n_est + k] = sd && isfinite(sd[k]) && sd[k] >= 0 ? sd[k] : -1.0;
+    }
+    e[d->ri] = r;
+    e[d->ri + 1] = g;
     q->count++;
     fold_back(d, q, q->count - 1);
 
@@ -293,12 +370,12 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         double G = 0;
         for (size_t i = q->count; i-- > 0;) {
             double *x = entry(d, q, i);
-            G = x[d->n_est] + x[d->n_est + 1] * G;
-            x[d->n_est] = G; /* the reward slot now holds the return */
+            G = x[d->ri] + x[d->ri + 1] * G;
+            x[d->ri] = G; /* the reward slot now holds the return */
         }
         for (size_t i = 0; i < q->count; i++) {
             double *x = entry(d, q, i);
-            score(d, x, x[d->n_est], pred);
+            score(d, x, x[d->ri], pred);
         }
         q->head = q->count = 0;
         build_front(d, q, 0);
@@ -307,7 +384,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
         if (q->front == 0)
             build_front(d, q, q->count);
         const double *x = entry(d, q, 0);
-        score(d, x, x[d->n_est + 2] + x[d->n_est + 3] * q->bR, pred);
+        score(d, x, x[d->ri + 2] + x[d->ri + 3] * q->bR, pred);
         q->head = (q->head + 1) % q->cap;
         q->count--;
         q->front--;
@@ -338,6 +415,19 @@ void diag_est(const struct diag *d, size_t i, diag_est_t *out)
         out->bias_window = s->ew / s->ew_w;
         out->rms_window = sqrt(s->ewsq / s->ew_w);
     }
+    out->sd_n = s->sd_w;
+    out->cover_sd1 = s->sd_w > 0 ? s->sd1 / s->sd_w : NAN;
+    out->cover_sd2 = s->sd_w > 0 ? s->sd2 / s->sd_w : NAN;
+    out->cover_n = s->cw;
+    out->cover_rms2 = s->cw > 0 ? s->rms2 / s->cw : NAN;
+    out->cover_95 = s->cw > 0 ? s->in95 / s->cw : NAN;
+    out->k95 = q95(s);
+    out->half95 = isnan(out->k95) ? NAN : out->k95 * out->rms_window;
+}
+
+double diag_returns_rms(const struct diag *d)
+{
+    return d->ret_w > 0 ? sqrt(d->ret_ewsq / d->ret_w) : 0.0;
 }
 
 void diag_drift(const struct diag *d, diag_drift_t *out)
@@ -363,7 +453,7 @@ void diag_save(const struct diag *d, ser_w *w)
         ser_put_u64(w, q->count);
         ser_put_u64(w, q->front);
         for (size_t i = 0; i < q->count; i++)
-            ser_put_f64v(w, entry(d, q, i), d->n_est + 2);
+            ser_put_f64v(w, entry(d, q, i), d->ri + 2);
     }
     for (size_t k = 0; k < d->n_est; k++) {
         const struct stat *s = &d->st[k];
@@ -384,6 +474,17 @@ void diag_save(const struct diag *d, ser_w *w)
     ser_put_u64(w, d->alarms);
     ser_put_u64(w, d->last_alarm);
     ser_put_u64(w, d->last_onset);
+    /* Format 3: coverage and the error histogram. */
+    for (size_t k = 0; k < d->n_est; k++) {
+        const struct stat *s = &d->st[k];
+        double c[6] = {s->sd1, s->sd2, s->sd_w, s->rms2, s->in95, s->cw};
+        ser_put_f64v(w, c, 6);
+        ser_put_f64v(w, s->hist, DIAG_BINS);
+        ser_put_f64(w, s->hw);
+        ser_put_f64(w, s->hs);
+    }
+    ser_put_f64(w, d->ret_ewsq);
+    ser_put_f64(w, d->ret_w);
 }
 
 int diag_load(struct diag *d, ser_r *r, unsigned version)
@@ -400,15 +501,26 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
         if (count == 0 && front == 0)
             continue;
         /* A count that cannot be right is refused before anything is allocated. */
+        /* Formats 1 and 2 kept no sd: an entry was n_est + 2 doubles. */
+        size_t saved = version >= 3 ? d->ri + 2 : d->n_est + 2;
         if (count >= d->horizon || front > count ||
-            count > (r->len - r->pos) / ((d->n_est + 2) * sizeof(double))) {
+            count > (r->len - r->pos) / (saved * sizeof(double))) {
             r->err = 1;
             break;
         }
         while (q->cap < count)
             grow(d, q);
-        for (size_t i = 0; i < count; i++)
-            ser_get_f64v(r, q->e + i * d->stride, d->n_est + 2);
+        for (size_t i = 0; i < count; i++) {
+            double *x = q->e + i * d->stride;
+            if (version >= 3) {
+                ser_get_f64v(r, x, saved);
+                continue;
+            }
+            ser_get_f64v(r, x, d->n_est);
+            for (size_t k = 0; k < d->n_est; k++)
+                x[d->n_est + k] = -1.0;
+            ser_get_f64v(r, x + d->ri, 2);
+        }
         q->count = count;
         build_front(d, q, (size_t)front);
         for (size_t i = (size_t)front; i < count; i++)
@@ -441,5 +553,18 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
     d->alarms = ser_get_u64(r);
     d->last_alarm = ser_get_u64(r);
     d->last_onset = ser_get_u64(r);
+    for (size_t k = 0; version >= 3 && k < d->n_est && !r->err; k++) {
+        struct stat *s = &d->st[k];
+        double c[6];
+        ser_get_f64v(r, c, 6);
+        s->sd1 = c[0], s->sd2 = c[1], s->sd_w = c[2], s->rms2 = c[3], s->in95 = c[4], s->cw = c[5];
+        ser_get_f64v(r, s->hist, DIAG_BINS);
+        s->hw = ser_get_f64(r);
+        s->hs = ser_get_f64(r);
+    }
+    if (version >= 3) {
+        d->ret_ewsq = ser_get_f64(r);
+        d->ret_w = ser_get_f64(r);
+    }
     return r->err ? -1 : 0;
 }

@@ -10,6 +10,16 @@
  * with G: per estimator the mean error (bias) and the RMS error, over the
  * whole run and over a sliding (exponentially weighted) window.
  *
+ * Coverage and the 95% interval, per estimator over the same window: the share
+ * of realised returns inside V(x) +- 1 and 2 of the estimator's own sd at the
+ * time (rls_td), and the 95% interval from the realised errors: each error's
+ * size |V(x) - G| in units of the windowed RMS just before it goes into a
+ * histogram (DIAG_BINS bins of DIAG_BIN_WIDTH); k95 is its 95% quantile
+ * (linear inside a bin), and the interval is V(x) +- k95 * rms_window.  The
+ * share of returns inside the interval as it stood before each return (out of
+ * sample) is cover_95; inside V +- 2 RMS (what a Gaussian error would give),
+ * cover_rms2.
+ *
  * Drift: a two-sided Page-Hinkley test (Page 1954; Hinkley 1971) on the
  * primary estimator's TD error, standardised by the mean and sd of its first
  * `burn_in` values after each (re)start: it raises an alarm when the
@@ -34,6 +44,12 @@
 
 struct diag;
 
+/* Bins of the histogram of |V - G| / RMS, and their width (the last bin holds the tail). */
+#define DIAG_BINS      80
+#define DIAG_BIN_WIDTH 0.1
+/* Weight of returns (exponentially weighted) before k95 is given. */
+#define DIAG_MIN_WEIGHT 30.0
+
 /* Plain data: parameters (documented defaults in diag_params_default). */
 typedef struct diag_params_t {
     double gamma;     /* the model's per-step discount (sets the default horizon) */
@@ -52,6 +68,14 @@ typedef struct diag_est_t {
     double rms;         /* RMS of V(x) - G over the run */
     double bias_window; /* the same over the sliding window */
     double rms_window;
+    double sd_n;       /* weight of the window's returns that had an own sd */
+    double cover_sd1;  /* share of those within V +- 1 sd; NAN without any */
+    double cover_sd2;  /* within V +- 2 sd */
+    double cover_n;    /* weight of the window's returns scored against the interval */
+    double cover_rms2; /* share within V +- 2 windowed RMS; NAN without any */
+    double cover_95;   /* share within the 95% interval, out of sample; NAN without any */
+    double k95;        /* 95% quantile of |V - G| / RMS; NAN before DIAG_MIN_WEIGHT returns */
+    double half95;     /* k95 * rms_window: the 95% interval is V +- half95 */
 } diag_est_t;
 
 /* Plain data: the drift detector. */
@@ -85,6 +109,9 @@ void diag_reset(struct diag *d);
  */
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td);
+/* diag_observe, with sd[k] estimator k's own sd at x (NAN: none; sd NULL: none at all). */
+int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double *sd, double r,
+                    double g, int terminal, double td);
 
 /* Query */
 const diag_params_t *diag_params(const struct diag *d);
@@ -94,11 +121,13 @@ void diag_drift(const struct diag *d, diag_drift_t *out);
 /* Running mean of the spread (max - min) of the predictions of the estimators not
  * diverged (steps where every one had diverged are left out). */
 double diag_spread(const struct diag *d);
+/* RMS of the realised returns themselves over the window (their scale); 0 before any. */
+double diag_returns_rms(const struct diag *d);
 
 /* Persistence (inside the model's saved state). */
 void diag_save(const struct diag *d, ser_w *w);
-/* Reads what diag_save wrote under model state format `version` (1 or 2).
- * Returns 0, or -1 when the bytes do not fit (r->err is set). */
+/* Reads what diag_save wrote under model state format `version` (1, 2 or 3; 3 adds each entry's sd,
+ * coverage and the histogram). Returns 0, or -1 when the bytes do not fit (r->err is set). */
 int diag_load(struct diag *d, ser_r *r, unsigned version);
 
 #endif /* WORTH_DIAG_H */

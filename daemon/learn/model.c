@@ -15,7 +15,8 @@
  * Saved state: u32 magic "WMOD", u32 version, u32 estimator count, u32
  * source count, u64 applied, u64 clipped, the source names (u32 length +
  * bytes), then each estimator's est_save bytes prefixed by a u64 length, the
- * diagnostics' state (diag_save), and a u32 CRC-32 of everything before it.
+ * diagnostics' state (diag_save), from format 3 the headline's (health_save),
+ * and a u32 CRC-32 of everything before it.
  */
 #include "learn/model.h"
 
@@ -105,6 +106,9 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
     if (rc)
         goto out_free_model;
     m->pred = mem_calloc(m->n_est, sizeof *m->pred);
+    m->sd = mem_calloc(m->n_est, sizeof *m->sd);
+    m->st = mem_calloc(m->n_est, sizeof *m->st);
+    m->health = health_new(m->n_est, m->n, spec->primary_auto, spec->primary, spec->est);
     m->sources = mem_calloc(nsrc, sizeof *m->sources);
     m->phi = mem_calloc(m->n, sizeof *m->phi);
     m->phin = mem_calloc(m->n, sizeof *m->phin);
@@ -141,7 +145,10 @@ void model_free(struct model *m)
         est_free(m->est[i]);
     feat_free(m->feat);
     diag_free(m->diag);
+    health_free(m->health);
     mem_free(m->pred);
+    mem_free(m->sd);
+    mem_free(m->st);
     mem_free(m->sources);
     mem_free(m->phi);
     mem_free(m->phin);
@@ -154,6 +161,7 @@ void model_reset(struct model *m)
     for (size_t i = 0; i < m->n_est; i++)
         est_reset(m->est[i]);
     diag_reset(m->diag);
+    health_reset(m->health);
     memset(m->sources, 0, m->max_sources * sizeof *m->sources);
     m->n_sources = 0;
     m->applied = m->clipped = 0;
@@ -218,6 +226,13 @@ long model_source_slot(struct model *m, const model_obs_t *t)
     return slot;
 }
 
+void model_pred_sd(const struct est *e, const double *phi, double *sd)
+{
+    /* Only rls_td has an sd; asking the others would cost nothing but is skipped. */
+    if (est_params(e)->kind != EST_RLS_TD || est_sd(e, phi, sd) != 0)
+        *sd = NAN;
+}
+
 double model_discount(const struct model *m, const model_obs_t *t)
 {
     if (!isnan(t->dt_s) && m->gamma_per_s > 0)
@@ -237,15 +252,18 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
     if (!t->terminal)
         m->clipped += feat_eval(m->feat, t->x_next, m->phin, m->work);
     for (size_t i = 0; i < m->n_est; i++) {
+        model_pred_sd(m->est[i], m->phi, &m->sd[i]);
         rc = est_observe(m->est[i], (size_t)slot, m->phi, t->r, t->terminal ? NULL : m->phin, g,
                          t->terminal);
         CHECK(rc == 0); /* everything was validated above */
         /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it
          * (NAN once the estimator has diverged: the diagnostics then leave it out). */
         m->pred[i] = est_last_value(m->est[i]);
+        est_stats(m->est[i], &m->st[i]);
     }
     double td = est_last_td(m->est[m->primary]);
-    diag_observe(m->diag, (size_t)slot, m->pred, t->r, g, t->terminal, td);
+    diag_observe_sd(m->diag, (size_t)slot, m->pred, m->sd, t->r, g, t->terminal, td);
+    health_update(m->health, m->st, m->diag);
     m->applied++;
     return 0;
 }
@@ -288,6 +306,43 @@ size_t model_n_est(const struct model *m)
 size_t model_primary(const struct model *m)
 {
     return m->primary;
+}
+
+size_t model_headline(const struct model *m)
+{
+    return health_headline(m->health);
+}
+
+const struct health *model_health(const struct model *m)
+{
+    return m->health;
+}
+
+/* Every estimator's counters now (they are what health_update last saw once flushed). */
+static void stats_now(const struct model *m, est_stats_t *st)
+{
+    for (size_t i = 0; i < m->n_est; i++)
+        est_stats(m->est[i], &st[i]);
+}
+
+void model_est_health(const struct model *m, size_t i, health_est_t *out)
+{
+    est_stats_t st[MODEL_MAX_EST];
+    const char *names[MODEL_MAX_EST];
+    stats_now(m, st);
+    for (size_t k = 0; k < m->n_est; k++)
+        names[k] = m->names[k];
+    health_est(m->health, i, st, m->diag, names, out);
+}
+
+void model_head(const struct model *m, health_head_t *out)
+{
+    const char *names[MODEL_MAX_EST];
+    for (size_t i = 0; i < m->n_est; i++)
+        names[i] = m->names[i];
+    est_stats_t st[MODEL_MAX_EST];
+    stats_now(m, st);
+    health_head(m->health, st, m->diag, names, out);
 }
 
 const char *model_source_name(const struct model *m, size_t i)
@@ -420,6 +475,7 @@ static int save_all(const struct model *m, ser_w *w)
         w->len += len;
     }
     diag_save(m->diag, w);
+    health_save(m->health, w);
     return 0;
 }
 
@@ -468,6 +524,14 @@ static int load_body(struct model *m, const uint8_t *buf, size_t len, char *err,
         r.pos += (size_t)el;
     }
     diag_load(m->diag, &r, version);
+    if (version >= 3) {
+        health_load(m->health, &r);
+    } else {
+        health_reset(m->health);
+        for (size_t i = 0; i < m->n_est; i++)
+            est_stats(m->est[i], &m->st[i]);
+        health_seen(m->health, m->st);
+    }
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "model state has trailing or missing bytes");
     return 0;

@@ -18,6 +18,7 @@
 #include "learn/diag.h"
 #include "learn/est.h"
 #include "learn/feat.h"
+#include "learn/health.h"
 
 struct model;
 
@@ -29,7 +30,10 @@ struct model;
 #define MODEL_DEFAULT_SOURCES 16
 /* Version of the byte format written by model_save (2: the diagnostics save each
  * source's front count). */
-#define MODEL_FORMAT_VERSION 2
+/* --- health: format 3 adds each pending step's sd, the coverage figures and the
+ * error histogram to the diagnostics, and the headline's choice (health_save)
+ * after them.  Formats 1 and 2 still load: no sd, no coverage, headline reset. --- */
+#define MODEL_FORMAT_VERSION 3
 /* Oldest format model_load still reads. */
 #define MODEL_FORMAT_OLDEST 1
 
@@ -41,7 +45,8 @@ typedef struct model_spec_t {
     size_t n_est;            /* 1..MODEL_MAX_EST */
     const est_params_t *est; /* n_est parameter sets */
     const char *const *est_names; /* n_est unique names, 1..MODEL_NAME_MAX bytes */
-    size_t primary;               /* index of the primary estimator */
+    size_t primary;               /* index of the primary estimator (also the drift test's) */
+    int primary_auto;             /* 1: the headline is chosen ("auto", health.h) */
     size_t max_sources;           /* source slots, 0 = MODEL_DEFAULT_SOURCES */
     const diag_params_t *diag;    /* diagnostics; NULL = diag_params_default(gamma) */
     double max_bytes;  /* refuse (too_large) a model whose footprint exceeds this; 0 = no limit */
@@ -156,6 +161,14 @@ size_t model_dims(const struct model *m);
 size_t model_features(const struct model *m);
 size_t model_n_est(const struct model *m);
 size_t model_primary(const struct model *m);
+/* Returns the estimator that answers the headline now (the primary unless "auto"). */
+size_t model_headline(const struct model *m);
+/* The verdicts and the headline (borrowed). */
+const struct health *model_health(const struct model *m);
+/* Fills out with estimator i's verdict (learner thread). */
+void model_est_health(const struct model *m, size_t i, health_est_t *out);
+/* Fills out with the headline and why (learner thread). */
+void model_head(const struct model *m, health_head_t *out);
 /* Returns the name of source slot i (< counts.sources; borrowed), "" for the default. */
 const char *model_source_name(const struct model *m, size_t i);
 /* Returns the number of source slots. */

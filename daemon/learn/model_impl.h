@@ -12,6 +12,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
+#include "learn/health.h"
 #include "learn/model.h"
 
 struct model {
@@ -25,7 +26,10 @@ struct model {
     char (*sources)[MODEL_NAME_MAX + 1];
     double *phi, *phin, *work; /* learner workspaces */
     double *pred;              /* each estimator's V(x) before an update */
+    double *sd;                /* and its own sd there (NAN: none) */
+    est_stats_t *st;           /* and its counters after the update (health_update) */
     struct diag *diag;
+    struct health *health; /* the verdicts and the headline */
     uint64_t applied, clipped;
 };
 
@@ -33,5 +37,7 @@ struct model {
 long model_source_slot(struct model *m, const model_obs_t *t);
 /* Returns the discount of t: gamma_per_s^dt when both are there, else gamma. */
 double model_discount(const struct model *m, const model_obs_t *t);
+/* Writes estimator e's own sd at phi (weights before the update) to *sd, NAN when it has none. */
+void model_pred_sd(const struct est *e, const double *phi, double *sd);
 
 #endif /* WORTH_MODEL_IMPL_H */

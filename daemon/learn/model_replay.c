@@ -63,6 +63,8 @@ struct chunk {
     int *term;          /* cap */
     size_t *slot;       /* cap */
     double *pred;       /* cap x n_est: each estimator's V(x) before its update */
+    double *sd;         /* cap x n_est: and its own sd there (NAN: none) */
+    est_stats_t *st;    /* cap x n_est: and its counters after the update */
     double *td;         /* cap: the primary estimator's TD error */
 };
 
@@ -123,10 +125,12 @@ static void learn_chunk(struct model *m, struct chunk *c, const size_t *est, siz
         size_t i = est[j];
         struct est *e = m->est[i];
         for (size_t t = 0; t < c->count; t++) {
+            model_pred_sd(e, c->phi + t * n, &c->sd[t * ne + i]);
             int rc = est_observe(e, c->slot[t], c->phi + t * n, c->r[t],
                                  c->term[t] ? NULL : c->phin + t * n, c->g[t], c->term[t]);
             CHECK(rc == 0); /* stage A validated it */
             c->pred[t * ne + i] = est_last_value(e);
+            est_stats(e, &c->st[t * ne + i]);
             if (i == m->primary)
                 c->td[t] = est_last_td(e);
         }
@@ -138,8 +142,9 @@ static void finish_chunk(struct model_replay *r, struct chunk *c)
 {
     struct model *m = r->m;
     for (size_t t = 0; t < c->count; t++) {
-        diag_observe(m->diag, c->slot[t], c->pred + t * m->n_est, c->r[t], c->g[t], c->term[t],
-                     c->td[t]);
+        diag_observe_sd(m->diag, c->slot[t], c->pred + t * m->n_est, c->sd + t * m->n_est, c->r[t],
+                        c->g[t], c->term[t], c->td[t]);
+        health_update(m->health, c->st + t * m->n_est, m->diag);
         m->applied++;
         if (r->after)
             r->after(r->after_ctx);
@@ -217,6 +222,8 @@ static void chunk_init(struct chunk *c, size_t cap, size_t n, size_t n_est)
     c->term = mem_alloc(cap * sizeof *c->term);
     c->slot = mem_alloc(cap * sizeof *c->slot);
     c->pred = mem_alloc(cap * n_est * sizeof *c->pred);
+    c->sd = mem_alloc(cap * n_est * sizeof *c->sd);
+    c->st = mem_alloc(cap * n_est * sizeof *c->st);
     c->td = mem_alloc(cap * sizeof *c->td);
 }
 
@@ -229,6 +236,8 @@ static void chunk_free(struct chunk *c)
     mem_free(c->term);
     mem_free(c->slot);
     mem_free(c->pred);
+    mem_free(c->sd);
+    mem_free(c->st);
     mem_free(c->td);
 }
 

@@ -59,8 +59,10 @@ struct snap {
     model_counts_t counts;
     est_stats_t est[MODEL_MAX_EST];
     diag_est_t realised[MODEL_MAX_EST];
+    health_est_t health[MODEL_MAX_EST];
+    health_head_t head;
     diag_drift_t drift;
-    double spread;
+    double spread, returns_rms;
     double last_update;
     double plant_t;
 };
@@ -168,7 +170,10 @@ static void publish(struct learner *l, double last_update)
     for (size_t i = 0; i < l->n_est; i++) {
         est_stats(model_est(l->m, i), &b->est[i]);
         diag_est(dg, i, &b->realised[i]);
+        model_est_health(l->m, i, &b->health[i]);
     }
+    model_head(l->m, &b->head);
+    b->returns_rms = diag_returns_rms(dg);
     diag_drift(dg, &b->drift);
     b->spread = diag_spread(dg);
     b->last_update = last_update;
@@ -760,6 +765,9 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->counts = s->counts;
     memcpy(out->est, s->est, sizeof out->est);
     memcpy(out->realised, s->realised, sizeof out->realised);
+    memcpy(out->health, s->health, sizeof out->health);
+    out->head = s->head;
+    out->returns_rms = s->returns_rms;
     out->drift = s->drift;
     out->spread = s->spread;
     out->horizon = diag_horizon(model_diag(l->m));

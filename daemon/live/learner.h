@@ -37,6 +37,9 @@ typedef struct learner_stats_t {
     model_counts_t counts;
     est_stats_t est[MODEL_MAX_EST];
     diag_est_t realised[MODEL_MAX_EST]; /* realised-return figures per estimator */
+    health_est_t health[MODEL_MAX_EST]; /* each estimator's verdict (learn/health.h) */
+    health_head_t head;                 /* the headline estimator and why */
+    double returns_rms;                 /* RMS of the realised returns over the window */
     diag_drift_t drift;                 /* the drift detector */
     double spread;                      /* running spread of the estimators' predictions */
     unsigned horizon;                   /* steps after which a continuing return is known */

@@ -105,8 +105,9 @@ static void daemon_text(jw_t *o, const struct proto *p, const struct conns *conn
     if (conns)
         conns_count(conns, &n, &tcp, &unauthed);
     metric_head(o, "worth_connections", "gauge", "Client connections open, by transport.");
-    jw_fmt(o, "worth_connections{transport=\"unix\"} %zu\nworth_connections{transport=\"tcp\"} "
-              "%zu\n",
+    jw_fmt(o,
+           "worth_connections{transport=\"unix\"} %zu\nworth_connections{transport=\"tcp\"} "
+           "%zu\n",
            n - tcp, tcp);
     metric_head(o, "worth_connections_unauthenticated", "gauge",
                 "TCP connections that have not authenticated yet.");
@@ -189,14 +190,18 @@ char *metrics_text(const struct proto *p, struct writer *w, const struct conns *
             jw_lit(&o, "\n");
         }
     }
-    for (int k = 0; k < 3; k++) {
-        const char *name = k == 2   ? "worth_estimator_diverged"
-                           : k == 1 ? "worth_realised_return_rms"
-                                    : "worth_td_error_rms";
-        metric_head(&o, name, "gauge",
-                    k == 2   ? "1 when the estimator has diverged and answers no values, else 0."
-                    : k == 1 ? "Realised-return RMS error over the sliding window."
-                             : "Running RMS TD error.");
+    static const char *const est_metric[5][2] = {
+        {"worth_td_error_rms", "Running RMS TD error."},
+        {"worth_realised_return_rms", "Realised-return RMS error over the sliding window."},
+        {"worth_estimator_diverged",
+         "1 when the estimator has diverged and answers no values, else 0."},
+        {"worth_estimator_ok", "1 when the estimator's health is ok, else 0 (warming, "
+                               "unhealthy or diverged: see stats)."},
+        {"worth_headline", "1 for the estimator that answers the model's value, else 0."},
+    };
+    for (int k = 0; k < 5; k++) {
+        const char *name = est_metric[k][0];
+        metric_head(&o, name, "gauge", est_metric[k][1]);
         for (size_t i = 0; i < n; i++) {
             const struct model *m = learner_model(proto_model(p, i));
             for (size_t e = 0; e < model_n_est(m); e++) {
@@ -206,9 +211,12 @@ char *metrics_text(const struct proto *p, struct writer *w, const struct conns *
                 jw_lit(&o, ",estimator=");
                 out_label(&o, model_est_name(m, e));
                 jw_lit(&o, "} ");
-                out_val(&o, k == 2   ? (st[i].est[e].health == EST_HEALTH_DIVERGED ? 1.0 : 0.0)
-                            : k == 1 ? st[i].realised[e].rms_window
-                                     : st[i].est[e].td_rms);
+                double v = k == 0   ? st[i].est[e].td_rms
+                           : k == 1 ? st[i].realised[e].rms_window
+                           : k == 2 ? (st[i].est[e].health == EST_HEALTH_DIVERGED ? 1.0 : 0.0)
+                           : k == 3 ? (st[i].health[e].state == HEALTH_OK ? 1.0 : 0.0)
+                                    : (st[i].head.index == e ? 1.0 : 0.0);
+                out_val(&o, v);
                 jw_lit(&o, "\n");
             }
         }

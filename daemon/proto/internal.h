@@ -58,9 +58,9 @@ typedef struct proto_conn {
     uint64_t pseq;                   /* pending bulk: the first record's pseq, 0: none */
     char id[PROTO_ID_MAX + 1];       /* id of the pending bulk or train request */
     int has_id;
-    int role;                        /* what it may do (roles.h; ops.c checks it) */
-    int op;                          /* index of its last request's op (-1: none yet) */
-    char who[ROLES_WHO_MAX];         /* who it is, for the log and audit events */
+    int role;                /* what it may do (roles.h; ops.c checks it) */
+    int op;                  /* index of its last request's op (-1: none yet) */
+    char who[ROLES_WHO_MAX]; /* who it is, for the log and audit events */
 } proto_conn_t;
 
 /*
@@ -111,6 +111,8 @@ struct proto {
     struct req_src *rsrc;   /* EST_MAX_SOURCES + 1: the sources one request names (samples.c) */
     size_t n_rsrc;
     char err[512];
+    /* A value request's figures: health, headline, realised (too big for the loop's stack). */
+    learner_stats_t qstats;
     /* ops.c: requests and errors answered, by op (the last row: before any op was known). */
     uint64_t *n_requests;
     uint64_t *n_errors; /* [op][-code], PROTO_CODES per op */

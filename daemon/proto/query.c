@@ -27,15 +27,64 @@
 #include "store/history.h"
 #include "worth/errors.h"
 
-/* The headline estimator's sd, else the first estimator's that has one. */
-static double pick_sd(const struct model *m, const double *sd, size_t head)
+/* The share of returns V +- 2 sd must cover for an estimator's own sd to give its interval. */
+#define SD_COVER_LO 0.90
+#define SD_COVER_HI 0.99
+
+/*
+ * The 95% interval of estimator i at value v with own sd (NAN: none) into lo and hi,
+ * and its method: "sd" (v +- 1.96 sd) when the sd's own coverage of V +- 2 sd over
+ * the window is within [SD_COVER_LO, SD_COVER_HI], else "realised" (v +- the 95%
+ * quantile of the realised errors, diag.h), or NULL when there is none yet.
+ */
+static const char *interval(const diag_est_t *r, double v, double sd, double *lo, double *hi)
 {
-    if (!isnan(sd[head]))
-        return sd[head];
-    for (size_t i = 0; i < model_n_est(m); i++)
-        if (!isnan(sd[i]))
-            return sd[i];
-    return NAN;
+    if (isnan(v))
+        return NULL;
+    if (isfinite(sd) && r->sd_n >= DIAG_MIN_WEIGHT && r->cover_sd2 >= SD_COVER_LO &&
+        r->cover_sd2 <= SD_COVER_HI) {
+        *lo = v - 1.96 * sd, *hi = v + 1.96 * sd;
+        return "sd";
+    }
+    if (!isfinite(r->half95))
+        return NULL;
+    *lo = v - r->half95, *hi = v + r->half95;
+    return "realised";
+}
+
+/* Writes ,"interval95":[lo,hi],"interval_method":M (or null and no method). */
+static void out_interval(jw_t *o, const diag_est_t *r, double v, double sd)
+{
+    double lo, hi;
+    const char *how = interval(r, v, sd, &lo, &hi);
+    jw_lit(o, ",\"interval95\":");
+    if (!how) {
+        jw_lit(o, "null");
+        return;
+    }
+    jw_lit(o, "[");
+    jw_num(o, lo);
+    jw_lit(o, ",");
+    jw_num(o, hi);
+    jw_lit(o, "],\"interval_method\":");
+    jw_str(o, how);
+}
+
+/* Writes "state":S[,"why":W] of verdict h. */
+static void out_state(jw_t *o, const health_est_t *h)
+{
+    jw_lit(o, "\"state\":");
+    jw_str(o, health_state_name(h->state));
+    if (h->why[0]) {
+        jw_lit(o, ",\"why\":");
+        jw_str(o, h->why);
+    }
+}
+
+/* Estimator i's value as answered: NAN (null) while it has no estimate yet. */
+static double answered(const learner_stats_t *st, const double *vals, size_t i)
+{
+    return st->health[i].estimate ? vals[i] : NAN;
 }
 
 /*
@@ -54,12 +103,13 @@ static double state_work(const struct model *m)
 }
 
 /*
- * Which estimator answers: the one asked for, else the primary, else (when
- * that has diverged) the first that has not.  A diverged estimator's values
- * are NAN in the snapshot, and only then.  Returns its index, or -1 with a
- * diverged error answered.
+ * Which estimator answers: the one asked for, else the headline (health.h),
+ * else (when that has diverged since) the first that has not.  A diverged
+ * estimator's values are NAN in the snapshot, and only then.  Returns its
+ * index, or -1 with a diverged error answered.
  */
-static long headline(struct req *rq, const struct model *m, long pick, const double *vals)
+static long headline(struct req *rq, const struct model *m, long pick, const double *vals,
+                     const learner_stats_t *st)
 {
     if (pick >= 0) {
         if (!isnan(vals[pick]))
@@ -70,7 +120,7 @@ static long headline(struct req *rq, const struct model *m, long pick, const dou
              model_est_name(m, (size_t)pick));
         return -1;
     }
-    size_t pr = model_primary(m);
+    size_t pr = st->head.index;
     if (!isnan(vals[pr]))
         return (long)pr;
     for (size_t i = 0; i < model_n_est(m); i++)
@@ -82,8 +132,7 @@ static long headline(struct req *rq, const struct model *m, long pick, const dou
     return -1;
 }
 
-/* When estimators have diverged: ,"diverged":[names], and the headline's name if not the primary.
- */
+/* When estimators have diverged: ,"diverged":[names],"answered_by":the estimator that answers. */
 static void out_diverged(jw_t *o, const struct model *m, const double *vals, long head)
 {
     int any = 0;
@@ -96,11 +145,8 @@ static void out_diverged(jw_t *o, const struct model *m, const double *vals, lon
     }
     if (!any)
         return;
-    jw_lit(o, "]");
-    if ((size_t)head != model_primary(m)) {
-        jw_lit(o, ",\"answered_by\":");
-        jw_str(o, model_est_name(m, (size_t)head));
-    }
+    jw_lit(o, "],\"answered_by\":");
+    jw_str(o, model_est_name(m, (size_t)head));
 }
 
 static void out_est_names(jw_t *o, const struct model *m)
@@ -191,7 +237,7 @@ int do_get(struct req *rq)
     jw_lit(o, ",");
     out_model_head(o, l, m);
     jw_lit(o, ",\"primary\":");
-    jw_str(o, model_est_name(m, model_primary(m)));
+    jw_str(o, st.head.automatic ? "auto" : model_est_name(m, model_primary(m)));
     jw_fmt(o, ",\"received\":%llu,\"applied\":%llu,\"state\":\"ok\",\"spec\":",
            (unsigned long long)st.received, (unsigned long long)st.applied);
     jw_lit(o, learner_spec(l));
@@ -228,35 +274,62 @@ int do_value(struct req *rq)
     if (x) {
         if (!fld_state(x, meta, xv, "x", &code, p->err, sizeof p->err, ""))
             return fail_done(rq, code, "%s", p->err);
+        learner_stats_t *st = &p->qstats;
+        learner_stats(l, st);
         learner_value(l, xv, d, p->vals, p->sds, &seq);
-        long head = headline(rq, m, pick, p->vals);
+        long head = headline(rq, m, pick, p->vals, st);
         if (head < 0)
             return PROTO_DONE;
         reply_begin(o, 1, rq->id);
+        size_t h = (size_t)head;
+        double hv = answered(st, p->vals, h);
         jw_lit(o, ",\"value\":");
+        jw_num(o, hv);
+        jw_lit(o, ",\"sd\":");
+        jw_num(o, isnan(hv) ? NAN : p->sds[h]);
+        out_interval(o, &st->realised[h], hv, p->sds[h]);
         if (pick >= 0) {
-            jw_num(o, p->vals[pick]);
-            jw_lit(o, ",\"sd\":");
-            jw_num(o, p->sds[pick]);
+            jw_lit(o, ",");
+            out_state(o, &st->health[h]);
         } else {
-            jw_num(o, p->vals[head]);
-            jw_lit(o, ",\"estimators\":{");
+            jw_lit(o, ",\"primary\":{\"name\":");
+            jw_str(o, model_est_name(m, h));
+            jw_lit(o, ",");
+            out_state(o, &st->health[h]);
+            jw_lit(o, ",\"auto\":");
+            jw_lit(o, st->head.automatic ? "true" : "false");
+            jw_lit(o, ",\"reason\":");
+            jw_str(o, h == st->head.index ? st->head.why
+                                          : "the headline has diverged; the first estimator "
+                                            "that has not answers");
+            jw_lit(o, "},\"estimators\":{");
             for (size_t i = 0; i < ne; i++) {
                 if (i)
                     jw_lit(o, ",");
                 jw_str(o, model_est_name(m, i));
                 jw_lit(o, ":");
-                jw_num(o, p->vals[i]);
+                jw_num(o, answered(st, p->vals, i));
             }
-            jw_lit(o, "},\"sd\":");
-            jw_num(o, pick_sd(m, p->sds, (size_t)head));
-            /* Agreement: how far apart the estimators are at this state. */
+            jw_lit(o, "},\"health\":{");
+            for (size_t i = 0; i < ne; i++) {
+                double v = answered(st, p->vals, i);
+                jw_lit(o, i ? "," : "");
+                jw_str(o, model_est_name(m, i));
+                jw_lit(o, ":{");
+                out_state(o, &st->health[i]);
+                jw_lit(o, ",\"sd\":");
+                jw_num(o, isnan(v) ? NAN : p->sds[i]);
+                out_interval(o, &st->realised[i], v, p->sds[i]);
+                jw_lit(o, "}");
+            }
+            /* Agreement: how far apart the estimators that answer are at this state. */
             double lo = INFINITY, hi = -INFINITY;
             for (size_t i = 0; i < ne; i++) {
-                lo = fmin(lo, p->vals[i]);
-                hi = fmax(hi, p->vals[i]);
+                double v = answered(st, p->vals, i);
+                if (!isnan(v))
+                    lo = fmin(lo, v), hi = fmax(hi, v);
             }
-            jw_lit(o, ",\"spread\":");
+            jw_lit(o, "},\"spread\":");
             jw_num(o, hi - lo);
             out_diverged(o, m, p->vals, head);
         }
@@ -293,10 +366,12 @@ int do_value(struct req *rq)
     }
     /* Every state from one snapshot, as protocol.md promises: one seq for the whole answer.
      * The first state tells which estimators have diverged in it. */
+    learner_stats_t *st = &p->qstats;
+    learner_stats(l, st); /* before the snapshot is held: it takes the same lock */
     seq = learner_read_begin(l);
     fld_state(xs->child, meta, xv, "x", &code, p->err, sizeof p->err, "");
     learner_read_value(l, xv, d, p->vals, p->sds);
-    long head = headline(rq, m, pick, p->vals);
+    long head = headline(rq, m, pick, p->vals, st);
     if (head < 0) {
         learner_read_end(l);
         return PROTO_DONE;
@@ -309,12 +384,18 @@ int do_value(struct req *rq)
         learner_read_value(l, xv, d, p->vals, p->sds);
         if (i)
             jw_lit(o, ",");
-        jw_num(o, p->vals[head]);
+        jw_num(o, answered(st, p->vals, (size_t)head));
     }
     learner_read_end(l);
     jw_lit(o, "]");
-    if (pick < 0)
+    if (pick < 0) {
+        jw_lit(o, ",\"primary\":{\"name\":");
+        jw_str(o, model_est_name(m, (size_t)head));
+        jw_lit(o, ",");
+        out_state(o, &st->health[head]);
+        jw_lit(o, "}");
         out_diverged(o, m, p->vals, head);
+    }
     jw_fmt(o, ",\"seq\":%llu", (unsigned long long)seq);
     reply_end(o, rq->c);
     return PROTO_DONE;
@@ -349,12 +430,12 @@ int do_stats(struct req *rq)
         jw_str(o, est_kind_name(kind));
         jw_fmt(o, ",\"updates\":%llu,\"guarded\":%llu", (unsigned long long)e->updates,
                (unsigned long long)e->guarded);
-        static const char *const health[] = {"ok", "unhealthy", "diverged"};
+        const health_est_t *hv = &st.health[i];
         jw_lit(o, ",\"health\":");
-        jw_str(o, e->health >= 0 && e->health <= 2 ? health[e->health] : "?");
-        if (e->why) {
+        jw_str(o, health_state_name(hv->state));
+        if (hv->why[0]) {
             jw_lit(o, ",\"why\":");
-            jw_str(o, e->why);
+            jw_str(o, hv->why);
         }
         if (e->health == EST_HEALTH_DIVERGED)
             jw_fmt(o, ",\"diverged_at\":%llu", (unsigned long long)e->diverged_at);
@@ -382,9 +463,33 @@ int do_stats(struct req *rq)
         jw_num(o, d->bias_window);
         jw_lit(o, ",\"rms_window\":");
         jw_num(o, d->rms_window);
+        jw_lit(o, "},\"coverage\":{\"sd_n\":");
+        jw_num(o, d->sd_n);
+        jw_lit(o, ",\"sd1\":");
+        jw_num(o, d->cover_sd1);
+        jw_lit(o, ",\"sd2\":");
+        jw_num(o, d->cover_sd2);
+        jw_lit(o, ",\"n\":");
+        jw_num(o, d->cover_n);
+        jw_lit(o, ",\"rms2\":");
+        jw_num(o, d->cover_rms2);
+        jw_lit(o, ",\"interval95\":");
+        jw_num(o, d->cover_95);
+        jw_lit(o, ",\"k95\":");
+        jw_num(o, d->k95);
+        jw_lit(o, ",\"half95\":");
+        jw_num(o, d->half95);
         jw_lit(o, "}}");
     }
-    jw_lit(o, "},\"spread\":");
+    jw_lit(o, "},\"primary\":{\"name\":");
+    jw_str(o, model_est_name(m, st.head.index));
+    jw_lit(o, ",\"auto\":");
+    jw_lit(o, st.head.automatic ? "true" : "false");
+    jw_fmt(o, ",\"switches\":%llu,\"reason\":", (unsigned long long)st.head.switches);
+    jw_str(o, st.head.why);
+    jw_lit(o, "},\"returns_rms\":");
+    jw_num(o, st.returns_rms);
+    jw_lit(o, ",\"spread\":");
     jw_num(o, st.spread);
     jw_fmt(o,
            ",\"horizon\":%u,\"drift\":{\"alarms\":%llu,\"last_alarm_step\":%llu,"

@@ -58,8 +58,9 @@ typedef struct worth_opts {
 
 /* Plain data: the answer of worth_value. */
 typedef struct worth_value_t {
-    double value; /* the primary estimator's, or the one asked for */
-    double sd;    /* NAN when no estimator has an uncertainty */
+    double value; /* the headline estimator's, or the one asked for; NAN while it has no
+                     estimate yet (the reply's "primary" and "health" say which and why) */
+    double sd;    /* that estimator's own sd; NAN when it has none */
     uint64_t seq; /* last transition applied to the weights that answered */
     size_t n;     /* estimators below (0 when one was asked for) */
     char names[WORTH_MAX_ESTIMATORS][64];

@@ -304,11 +304,24 @@ def test_value_table_file_and_json(daemon, tmp_path):
     c.wait_applied("m", 2000)
     p = ok(run(d, "value", "m", "0.5", "0.25"))
     lines = p.stdout.splitlines()
-    assert lines[0].split() == ["ESTIMATOR", "VALUE", "SD"], p.stdout
-    names = [ln.split()[0] for ln in lines[1:5]]
-    assert names == ["(primary)", "td", "rls", "rep"], p.stdout
+    assert lines[0].split() == ["ESTIMATOR", "VALUE", "SD", "95%", "INTERVAL", "HEALTH"], p.stdout
+    names = [ln.split()[0] for ln in lines[1:4]]
+    assert names == ["td", "rls", "rep"], p.stdout
     want = c.ok({"op": "value", "model": "m", "x": [0.5, 0.25]})
-    assert float(lines[2].split()[1]) == pytest.approx(want["estimators"]["td"], rel=1e-5)
+
+    def cells(name):  # value, sd, ... of an estimator's row, the headline's * left out
+        row = next(ln for ln in lines[1:4] if ln.split()[0] == name).split()[1:]
+        return row[1:] if row[0] == "*" else row
+
+    assert float(cells("td")[0]) == pytest.approx(want["estimators"]["td"], rel=1e-5)
+    # the headline is marked and explained; each row shows its own health and sd
+    head = want["primary"]["name"]
+    row = next(ln for ln in lines[1:4] if ln.split()[0] == head).split()
+    assert row[1] == "*" and row[-1] == want["primary"]["state"], p.stdout
+    assert f"* headline: {head}; {want['primary']['reason']}" in p.stdout, p.stdout
+    assert float(cells("rls")[1]) == pytest.approx(want["health"]["rls"]["sd"], rel=1e-5)
+    assert cells("td")[1] == "-", p.stdout  # td has no sd of its own: none is borrowed
+    assert "spread: " in p.stdout and "(seq 2000)" in p.stdout, p.stdout
     assert one_json(ok(run(d, "--json", "value", "m", "0.5", "0.25"))) == want
     rep = one_json(ok(run(d, "--json", "value", "m", "0.5", "0.25", "--estimator", "rls")))
     assert rep["value"] == want["estimators"]["rls"]
@@ -469,8 +482,10 @@ def test_named_dimensions_in_value_show_stats_and_watch(daemon, tmp_path):
     p = ok(run(d, "value", "st", "demand=180", "level=4.2"))
     lines = p.stdout.splitlines()
     assert lines[0] == "state: level = 4.2 m, demand = 180 m3/h", p.stdout
-    assert lines[1].split() == ["ESTIMATOR", "VALUE", "[EUR]", "SD", "[EUR]"], p.stdout
-    assert float(lines[2].split()[1]) == pytest.approx(want["value"], rel=1e-5)
+    assert lines[1].split() == ["ESTIMATOR", "VALUE", "[EUR]", "SD", "[EUR]", "95%", "INTERVAL",
+                                "[EUR]", "HEALTH"], p.stdout
+    assert lines[2].split()[1] == "*", p.stdout  # the only estimator is the headline
+    assert float(lines[2].split()[2]) == pytest.approx(want["value"], rel=1e-5)
     assert p.stdout == ok(run(d, "value", "st", "4.2", "180")).stdout
     assert one_json(ok(run(d, "--json", "value", "st", "level=4.2", "demand=180"))) == want
     fails(run(d, "value", "st", "level=4.2"), 2, "missing demand=X")
@@ -491,8 +506,12 @@ def test_named_dimensions_in_value_show_stats_and_watch(daemon, tmp_path):
     assert len([ln for ln in show.splitlines() if ln.startswith("dims ")]) == 1, show
     st = ok(run(d, "stats", "st")).stdout
     assert "TD_RMS [EUR]" in st and "BIAS [EUR]" in st and " EUR" in st, st
+    # health beside each estimator, the reasons below, coverage in its own table
+    assert "HEALTH" in st and "COVERAGE" in st and "HALF95 [EUR]" in st, st
+    assert "primary.name" in st and "td warming: 0 of 50 realised returns" in st, st
     w = ok(run(d, "watch", "st", "--count", "1")).stdout
     assert "dims: level [m], demand [m3/h]" in w and "td_rms [EUR]" in w, w
+    assert "health" in w and "in_95%" in w and "td *" in w and "warming" in w, w
     assert ok(run(d, "models")).stdout.splitlines()[1].split()[:2] == ["st", "2"]
 
 

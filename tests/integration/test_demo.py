@@ -41,6 +41,21 @@ def test_demo_run_as_written(tmp_path):
     assert m and int(m.group(1)) >= 1, out
     assert "values after the rollback equal those before the fault: yes" in out
     assert "worthd stopped cleanly" in out
+    # The headline is a healthy estimator, and the sd beside it is its own: only rls_td has
+    # one, so for any other headline none is shown (no other estimator's sd is borrowed).
+    head = re.search(r"\* headline: (\w+); auto: ok", out)
+    assert head, out
+    name = head.group(1)
+    health = dict(re.findall(r"^   (\w+) +-?[\d.]+ +[\d.]+  (\w+)$", out, re.M))
+    assert health.get(name) == "ok", (name, health, out)
+    rows = re.findall(r"^(?:night, full|morning peak, half|evening, near reserve) .* (\w+) +"
+                      r"(-?[\d.]+) +(-|[\d.]+)$", out, re.M)
+    assert len(rows) >= 3, out
+    for h, value, sd in rows[:3]:  # the table after the first two weeks
+        assert h == name, (rows, name)
+        assert (sd == "-") == (name != "rls"), (rows, name)
+    row = next(ln for ln in out.splitlines() if ln.split()[:2] == [name, "*"])
+    assert row.split()[-1] == "ok", row
     for name in ("value-map.svg", "history.svg"):
         path = tmp_path / "demo" / name
         root = ET.parse(path).getroot()

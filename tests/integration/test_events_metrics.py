@@ -617,6 +617,8 @@ DOCUMENTED = {  # name: (type, label names)
     "worth_queue_depth": ("gauge", {"model"}),
     "worth_td_error_rms": ("gauge", {"model", "estimator"}),
     "worth_realised_return_rms": ("gauge", {"model", "estimator"}),
+    "worth_estimator_ok": ("gauge", {"model", "estimator"}),
+    "worth_headline": ("gauge", {"model", "estimator"}),
     "worth_drift_alarms_total": ("counter", {"model"}),
     "worth_checkpoints": ("gauge", {"model"}),
     "worth_checkpoint_age_seconds": ("gauge", {"model"}),
@@ -680,6 +682,10 @@ def check_model_metrics(c, samples, model, estimators, cp_time):
             assert math.isnan(rr), (est, rr, e)
         else:
             assert close(rr, want), (est, rr, e)
+        ok = series(samples, "worth_estimator_ok", model=model, estimator=est)
+        assert ok == (1 if e["health"] == "ok" else 0), (est, ok, e)
+        head = series(samples, "worth_headline", model=model, estimator=est)
+        assert head == (1 if st["primary"]["name"] == est else 0), (est, head, st["primary"])
     got = {lb["estimator"] for n, lb, _ in samples
            if n == "worth_td_error_rms" and lb.get("model") == model}
     assert got == set(estimators), got

@@ -204,8 +204,8 @@ def test_model_get_spec_round_trips_with_defaults(c):
         want = dict(DEFAULTS[given["kind"]], **given)
         assert {k: got.get(k) for k in want} == want, got
         assert set(got) == set(want), f"unexpected fields in {got}, expected {sorted(want)}"
-    # model-level defaults filled in
-    assert spec["primary"] == "td"
+    # model-level defaults filled in: no primary given is "auto" (the headline is chosen)
+    assert spec["primary"] == "auto"
     assert spec["max_sources"] == 16
     assert spec["max_features"] == 4096
     # round trip: the returned spec creates an identical model
@@ -397,9 +397,14 @@ def feed_terminal(c, model, n, x, r=1.0, **kw):
 def test_value_before_any_transition(c):
     c.ok(create_req(estimators=[{"name": "td", "kind": "td", "init": 0.5}]))
     rep = c.ok({"op": "value", "model": "m", "x": [0.5, 1.0]})
-    # V = init * sum(phi) = 0.5 * (1 + 0.5 + 1.0)
+    # V = init * sum(phi) = 0.5 * (1 + 0.5 + 1.0); td answers it, but warming: no return yet
+    warming = {"state": "warming", "why": "0 of 50 realised returns needed to judge it"}
+    assert rep["primary"] == dict(warming, name="td", auto=True, reason=rep["primary"]["reason"])
+    assert rep["primary"]["reason"].startswith("auto: no estimator is ok yet"), rep
+    assert rep["health"] == {"td": dict(warming, sd=None, interval95=None)}
+    del rep["primary"], rep["health"]
     assert rep == {"ok": True, "value": 1.25, "estimators": {"td": 1.25}, "sd": None,
-                   "spread": 0, "seq": 0}
+                   "interval95": None, "spread": 0, "seq": 0}
 
 
 def test_value_exact_td(c):
@@ -409,8 +414,10 @@ def test_value_exact_td(c):
     feed_terminal(c, "m", 3, [0.3])
     c.wait_applied("m", 3)
     rep = c.call({"op": "value", "model": "m", "x": [0.7], "id": "v"})
+    assert rep["health"]["td"]["state"] == "warming" and rep["primary"]["name"] == "td", rep
+    del rep["primary"], rep["health"]
     assert rep == {"ok": True, "id": "v", "value": 0.875, "estimators": {"td": 0.875},
-                   "sd": None, "spread": 0, "seq": 3}
+                   "sd": None, "interval95": None, "spread": 0, "seq": 3}
 
 
 def test_value_estimators_sd_and_selection(c):
@@ -420,7 +427,8 @@ def test_value_estimators_sd_and_selection(c):
     feed_terminal(c, "m", 3, [0.3])
     c.wait_applied("m", 3)
     rep = c.ok({"op": "value", "model": "m", "x": [0.7]})
-    assert set(rep) == {"ok", "value", "estimators", "sd", "spread", "seq"}, rep
+    assert set(rep) == {"ok", "value", "estimators", "sd", "interval95", "primary", "health",
+                        "spread", "seq"}, rep
     assert rep["seq"] == 3
     # spread: the largest minus the smallest estimator value at this state
     assert rep["spread"] == max(rep["estimators"].values()) - min(rep["estimators"].values())
@@ -428,11 +436,15 @@ def test_value_estimators_sd_and_selection(c):
     # RLS-TD with mu = 1 is ridge LSTD with eps = 1/delta (Sherman-Morrison; see
     # tests/reference/test_numpy_ref.py): bias only, three r = 1 terminal steps: 3 / (3 + 0.01).
     assert rep["estimators"]["rls"] == pytest.approx(3 / 3.01, rel=1e-12, abs=0)
-    # td has no sd: the first estimator that has one answers (rls_td)
-    assert isinstance(rep["sd"], (int, float)) and rep["sd"] >= 0 and math.isfinite(rep["sd"])
+    # the headline (td, the first, while none is ok) has no sd of its own: none is borrowed
+    assert rep["primary"]["name"] == "td" and rep["sd"] is None, rep
+    rls_sd = rep["health"]["rls"]["sd"]
+    assert isinstance(rls_sd, (int, float)) and rls_sd >= 0 and math.isfinite(rls_sd), rep
     sel = c.ok({"op": "value", "model": "m", "x": [0.7], "estimator": "rls"})
     assert "estimators" not in sel, sel
-    assert sel["value"] == rep["estimators"]["rls"] and sel["sd"] == rep["sd"], (sel, rep)
+    assert sel["value"] == rep["estimators"]["rls"] and sel["sd"] == rls_sd, (sel, rep)
+    # rls_td over 1 feature is warming for 3 x 1 updates, then on realised returns
+    assert sel["state"] == "warming" and "realised returns" in sel["why"], sel
     assert sel.get("seq", 3) == 3
     sel = c.ok({"op": "value", "model": "m", "x": [0.7], "estimator": "td"})
     assert "estimators" not in sel, sel
@@ -460,7 +472,9 @@ def test_value_xs(c):
     xs = [[1, 0], [0, 1], [0.5, 0.5], [0, 0]]
     single = [c.ok({"op": "value", "model": "m", "x": x})["value"] for x in xs]
     rep = c.call({"op": "value", "model": "m", "xs": xs, "id": 9})
-    assert rep == {"ok": True, "id": 9, "values": single, "seq": 2}
+    assert rep == {"ok": True, "id": 9, "values": single, "seq": 2,
+                   "primary": {"name": "td", "state": "warming",
+                               "why": "2 of 50 realised returns needed to judge it"}}
     # by hand: phi = (1, x0, x1); after step 1 w = (1, 1, 0); step 2: delta = -1 - 1 = -2,
     # w += 0.5 * -2 * (1, 0, 1) = (0, 1, -1)
     assert single == [1.0, -1.0, 0.0, 0.0]

@@ -78,6 +78,7 @@ static void no_allocation_per_transition(void **state)
         .n_est = EST_KIND_COUNT,
         .est = est,
         .est_names = names,
+        .primary_auto = 1, /* the headline's choice runs on every transition too */
         .max_sources = SOURCES,
     };
     struct model *m = NULL;

@@ -735,11 +735,15 @@ static void replay_equals_observe(void **state)
     fx.est[1].forget = 0.999; /* the regularised guard too */
     fx.spec.n_est = ne;
     fx.spec.gamma_per_s = 0.8;
+    fx.spec.primary_auto = 1; /* the headline's choice is in the saved bytes too */
     struct model *want = build(&fx.spec);
     const int k = 2500;
     feed(want, 0, k);
     size_t len;
     uint8_t *buf = saved(want, &len);
+    health_head_t hd;
+    model_head(want, &hd);
+    assert_true(hd.switches > 0); /* it moved at least once: a real choice was replayed */
 
     unsigned threads[] = {0, 1, 2, 5};
     for (size_t c = 0; c < sizeof threads / sizeof threads[0]; c++) {

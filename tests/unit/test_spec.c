@@ -150,6 +150,7 @@ static void assert_same_spec(const spec_t *a, const spec_t *b)
         assert_same_params(&a->est[i], &b->est[i]);
     }
     assert_int_equal(a->m.primary, b->m.primary);
+    assert_int_equal(a->m.primary_auto, b->m.primary_auto);
     assert_int_equal(a->m.max_sources, b->m.max_sources);
     assert_string_equal(a->canonical, b->canonical);
 }
@@ -356,8 +357,34 @@ static void canonical_lists_every_parameter(void **state)
     assert_null(cJSON_GetObjectItemCaseSensitive(j, "gamma_per_s"));
     assert_int_equal(cJSON_GetObjectItemCaseSensitive(j, "max_sources")->valuedouble, 16);
     assert_int_equal(cJSON_GetObjectItemCaseSensitive(j, "max_features")->valuedouble, 4096);
-    assert_string_equal(cJSON_GetObjectItemCaseSensitive(j, "primary")->valuestring, "e");
+    /* No primary given: "auto" (the headline is chosen, learn/health.h). */
+    assert_string_equal(cJSON_GetObjectItemCaseSensitive(j, "primary")->valuestring, "auto");
+    assert_int_equal(s->m.primary_auto, 1);
     cJSON_Delete(j);
+    spec_free(s);
+
+    /* "auto" given is the same; a stored spec that names its primary keeps it. */
+    s = parse_ok("{'model':'m','dims':1,'gamma':1,'ranges':[[0,1]],'features':[{'basis':'raw'}],"
+                 "'estimators':[{'name':'e','kind':'td'},{'name':'f','kind':'td'}],"
+                 "'primary':'auto'}");
+    assert_int_equal(s->m.primary_auto, 1);
+    assert_int_equal(s->m.primary, 0);
+    spec_free(s);
+    s = parse_ok("{'model':'m','dims':1,'gamma':1,'ranges':[[0,1]],'features':[{'basis':'raw'}],"
+                 "'estimators':[{'name':'e','kind':'td'},{'name':'f','kind':'td'}],"
+                 "'primary':'f'}");
+    assert_int_equal(s->m.primary_auto, 0);
+    assert_int_equal(s->m.primary, 1);
+    j = cJSON_Parse(s->canonical);
+    assert_string_equal(cJSON_GetObjectItemCaseSensitive(j, "primary")->valuestring, "f");
+    cJSON_Delete(j);
+    spec_free(s);
+    /* An estimator named "auto" keeps the word's old meaning: that estimator. */
+    s = parse_ok("{'model':'m','dims':1,'gamma':1,'ranges':[[0,1]],'features':[{'basis':'raw'}],"
+                 "'estimators':[{'name':'e','kind':'td'},{'name':'auto','kind':'td'}],"
+                 "'primary':'auto'}");
+    assert_int_equal(s->m.primary_auto, 0);
+    assert_int_equal(s->m.primary, 1);
     spec_free(s);
 }
 
@@ -650,7 +677,8 @@ static const struct {
     {E("{'name':'a','kind':'replay','tol':false}"), WORTH_E_BAD_REQUEST,
      "estimators[0].tol must be a number"},
     /* primary, max_sources, max_features */
-    {REQ(ALL ",'primary':'zz'"), WORTH_E_BAD_PARAM, "primary: no estimator is named \"zz\""},
+    {REQ(ALL ",'primary':'zz'"), WORTH_E_BAD_PARAM,
+     "primary: no estimator is named \"zz\" (give a name or \"auto\")"},
     {REQ(ALL ",'primary':'A'"), WORTH_E_BAD_PARAM, "primary: no estimator is named \"A\""},
     {REQ(ALL ",'primary':0"), WORTH_E_BAD_REQUEST, "primary must be a string"},
     {REQ(ALL ",'max_sources':0"), WORTH_E_BAD_PARAM, "max_sources must be an integer 1..1024"},
