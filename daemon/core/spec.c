@@ -565,10 +565,10 @@ static char *canonical(const spec_t *s)
     if (dg) {
         bad |= spec_add_u64(dg, "horizon", s->diag.horizon);
         bad |= spec_add_u64(dg, "window", s->diag.window);
-        bad |= spec_add_double(dg, "drift_delta", s->diag.delta);
-        bad |= spec_add_double(dg, "drift_lambda", s->diag.lambda);
-        bad |= spec_add_u64(dg, "drift_burn_in", s->diag.burn_in);
-        bad |= cJSON_AddStringToObject(dg, "on_drift", s->diag.on_drift ? "checkpoint" : "none")
+        bad |= spec_add_double(dg, "drift_delta", s->diag.drift.delta);
+        bad |= spec_add_double(dg, "drift_lambda", s->diag.drift.lambda);
+        bad |= spec_add_u64(dg, "drift_burn_in", s->diag.drift.burn_in);
+        bad |= cJSON_AddStringToObject(dg, "on_drift", s->diag.drift.on_drift ? "checkpoint" : "none")
                    ? 0
                    : -1;
     }
@@ -628,21 +628,21 @@ static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
             else if (f->string[0] == 'w')
                 s->diag.window = (unsigned)u;
             else
-                s->diag.burn_in = (unsigned)u;
+                s->diag.drift.burn_in = (unsigned)u;
         } else if (strcmp(f->string, "drift_delta") == 0 ||
                    strcmp(f->string, "drift_lambda") == 0) {
             if ((rc = spec_get_double(f, path, &v, err, errlen)))
                 return rc;
             if (strcmp(f->string, "drift_delta") == 0)
-                s->diag.delta = v;
+                s->diag.drift.delta = v;
             else
-                s->diag.lambda = v;
+                s->diag.drift.lambda = v;
         } else if (strcmp(f->string, "on_drift") == 0) {
             if (!cJSON_IsString(f) ||
                 (strcmp(f->valuestring, "none") != 0 && strcmp(f->valuestring, "checkpoint") != 0))
                 return err_fail(err, errlen, WORTH_E_BAD_PARAM,
                                 "diagnostics.on_drift must be \"none\" or \"checkpoint\"");
-            s->diag.on_drift = strcmp(f->valuestring, "checkpoint") == 0;
+            s->diag.drift.on_drift = strcmp(f->valuestring, "checkpoint") == 0;
         } else {
             return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
                             "diagnostics: unknown field \"%.32s\"", f->string);

@@ -227,7 +227,7 @@ static void drift_event(struct learner *l, const diag_drift_t *dr)
     say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
              (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
     writer_drift(l->o.writer, l->q, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
-                 dr->alarms, model_diag_params(l->m)->on_drift, l->plant_t);
+                 dr->alarms, model_diag_params(l->m)->drift.on_drift, l->plant_t);
 }
 
 struct train_ctx {

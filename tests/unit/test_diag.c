@@ -159,10 +159,10 @@ static void bad_parameters(void **state)
     p.window = 0;
     assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
     diag_params_default(0.9, &p);
-    p.lambda = 0;
+    p.drift.lambda = 0;
     assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
     diag_params_default(0.9, &p);
-    p.burn_in = 1;
+    p.drift.burn_in = 1;
     assert_int_equal(diag_new(&p, 1, 1, &d, err, sizeof err), WORTH_E_BAD_PARAM);
     assert_null(d);
 }
