@@ -29,7 +29,9 @@ struct model;
 #define MODEL_DEFAULT_SOURCES 16
 /* Version of the byte format written by model_save (2: the diagnostics save each
  * source's front count). */
-#define MODEL_FORMAT_VERSION 2
+/* --- model state format: drift (3: the drift detector is a CUSUM, drift_save) --- */
+#define MODEL_FORMAT_VERSION 3
+/* --- end drift --- */
 /* Oldest format model_load still reads. */
 #define MODEL_FORMAT_OLDEST 1
 
