@@ -562,18 +562,7 @@ static char *canonical(const spec_t *s)
     bad |= cJSON_AddStringToObject(root, "primary", head) ? 0 : -1;
     bad |= spec_add_u64(root, "max_sources", m->max_sources);
     bad |= spec_add_u64(root, "max_features", m->feat.max_features);
-    cJSON *dg = cJSON_AddObjectToObject(root, "diagnostics");
-    bad |= dg ? 0 : -1;
-    if (dg) {
-        bad |= spec_add_u64(dg, "horizon", s->diag.horizon);
-        bad |= spec_add_u64(dg, "window", s->diag.window);
-        bad |= spec_add_double(dg, "drift_delta", s->diag.delta);
-        bad |= spec_add_double(dg, "drift_lambda", s->diag.lambda);
-        bad |= spec_add_u64(dg, "drift_burn_in", s->diag.burn_in);
-        bad |= cJSON_AddStringToObject(dg, "on_drift", s->diag.on_drift ? "checkpoint" : "none")
-                   ? 0
-                   : -1;
-    }
+    bad |= spec_print_diag(root, s);
 
     char *text = bad ? NULL : cJSON_PrintUnformatted(root);
     cJSON_Delete(root);
@@ -599,60 +588,6 @@ int spec_name_ok(const char *name)
 }
 
 /* Everything but the arrays; the top-level fields in the order of protocol.md. */
-/*
- * "diagnostics": {"horizon": H, "window": W, "drift_delta": d, "drift_lambda": l,
- * "drift_burn_in": B}, every field optional (diag.h gives the defaults); ranges
- * are checked by model_new.
- */
-static int parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen)
-{
-    diag_params_default(s->m.gamma, &s->diag);
-    if (!o)
-        return 0;
-    if (!cJSON_IsObject(o))
-        return err_fail(err, errlen, WORTH_E_BAD_REQUEST, "diagnostics must be an object");
-    int rc;
-    uint64_t u = 0;
-    double v = 0;
-    for (const cJSON *f = o->child; f; f = f->next) {
-        for (const cJSON *g = f->next; g; g = g->next)
-            if (strcmp(f->string, g->string) == 0)
-                return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
-                                "diagnostics: \"%s\" appears twice", g->string);
-        char path[64];
-        snprintf(path, sizeof path, "diagnostics.%.40s", f->string);
-        if (strcmp(f->string, "horizon") == 0 || strcmp(f->string, "window") == 0 ||
-            strcmp(f->string, "drift_burn_in") == 0) {
-            if ((rc = get_int(f, path, 0, 4294967295.0, &u, err, errlen)))
-                return rc;
-            if (f->string[0] == 'h')
-                s->diag.horizon = (unsigned)u;
-            else if (f->string[0] == 'w')
-                s->diag.window = (unsigned)u;
-            else
-                s->diag.burn_in = (unsigned)u;
-        } else if (strcmp(f->string, "drift_delta") == 0 ||
-                   strcmp(f->string, "drift_lambda") == 0) {
-            if ((rc = spec_get_double(f, path, &v, err, errlen)))
-                return rc;
-            if (strcmp(f->string, "drift_delta") == 0)
-                s->diag.delta = v;
-            else
-                s->diag.lambda = v;
-        } else if (strcmp(f->string, "on_drift") == 0) {
-            if (!cJSON_IsString(f) ||
-                (strcmp(f->valuestring, "none") != 0 && strcmp(f->valuestring, "checkpoint") != 0))
-                return err_fail(err, errlen, WORTH_E_BAD_PARAM,
-                                "diagnostics.on_drift must be \"none\" or \"checkpoint\"");
-            s->diag.on_drift = strcmp(f->valuestring, "checkpoint") == 0;
-        } else {
-            return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
-                            "diagnostics: unknown field \"%.32s\"", f->string);
-        }
-    }
-    return 0;
-}
-
 static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size_t errlen)
 {
     int rc;
@@ -751,7 +686,7 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
             return rc;
         s->m.max_sources = (size_t)u;
     }
-    return parse_diag(cJSON_GetObjectItemCaseSensitive(req, "diagnostics"), s, err, errlen);
+    return spec_parse_diag(cJSON_GetObjectItemCaseSensitive(req, "diagnostics"), s, err, errlen);
 }
 
 int spec_parse(const cJSON *req, spec_t **out, char *err, size_t errlen)
@@ -771,6 +706,10 @@ int spec_parse_within(const cJSON *req, size_t feat_limit, spec_t **out, char *e
     s->m.est = s->est;
     s->m.est_names = s->est_name_ptrs;
     s->m.diag = &s->diag;
+    for (size_t i = 0; i < s->meta.dims && i < FEAT_MAX_DIMS; i++) {
+        s->meta.lo[i] = s->lo ? s->lo[i] : -INFINITY;
+        s->meta.hi[i] = s->hi ? s->hi[i] : INFINITY;
+    }
     s->canonical = canonical(s);
     if (!s->canonical) {
         rc = err_fail(err, errlen, WORTH_E_NO_MEMORY, "out of memory printing the spec");

@@ -13,6 +13,7 @@
 #include <cjson/cJSON.h>
 #include <stddef.h>
 
+#include "learn/inputs.h"
 #include "learn/model.h"
 
 /* Longest dimension unit or reward unit, in bytes, without the NUL. */
@@ -32,6 +33,8 @@ typedef struct spec_meta_t {
     double period_s;                               /* the control period; 0 when not given */
     int reward_same; /* samples: r is what the step starting at it earns (else: ending at it) */
     double max_gap_s; /* samples further apart break the chain; INFINITY: none */
+    double lo[FEAT_MAX_DIMS], hi[FEAT_MAX_DIMS]; /* the declared ranges */
+    inputs_params_t inputs;                      /* the direct input checks ("diagnostics") */
 } spec_meta_t;
 
 /* Plain data, owned by the caller of spec_parse; free with spec_free. */

@@ -59,4 +59,8 @@ int spec_parse_plant(const cJSON *req, spec_t *s, char *err, size_t errlen);
 int spec_print_dims(cJSON *root, const spec_t *s);
 int spec_print_plant(cJSON *root, const spec_t *s);
 
+/* spec_diag.c: "diagnostics" (after the plant fields: it needs period_s); 0 or an error. */
+int spec_parse_diag(const cJSON *o, spec_t *s, char *err, size_t errlen);
+int spec_print_diag(cJSON *root, const spec_t *s);
+
 #endif /* WORTH_SPEC_IMPL_H */

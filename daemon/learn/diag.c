@@ -1,5 +1,5 @@
 /*
- * diag.c - realised-return checks and the drift alarm (see diag.h).
+ * diag.c - realised-return checks, and the home of the drift alarm (see diag.h).
  *
  * Owns, per source, a ring of the steps whose return is not yet known: each
  * estimator's prediction, the reward and the discount.  A continuing return
@@ -67,13 +67,8 @@ struct diag {
     struct stat *st;
     double spread_ew, spread_w;
     double ret_ewsq, ret_w; /* the realised returns' own mean square, over the window */
-    /* Page-Hinkley */
-    uint64_t step, k;      /* transitions seen; since the last (re)start */
-    double b_sum, b_sumsq; /* burn-in sums */
-    double mu, sd;
-    double up, up_min, dn, dn_max;
-    uint64_t up_min_at, dn_max_at;
-    uint64_t alarms, last_alarm, last_onset;
+    uint64_t step; /* transitions seen */
+    struct drift *drift;
 };
 
 void diag_params_default(double gamma, diag_params_t *p)
@@ -82,9 +77,7 @@ void diag_params_default(double gamma, diag_params_t *p)
     p->gamma = gamma;
     p->horizon = 0;
     p->window = 1000;
-    p->delta = 0.5;
-    p->lambda = 50.0;
-    p->burn_in = 500;
+    drift_params_default(&p->drift);
 }
 
 static unsigned auto_horizon(double gamma)
@@ -111,11 +104,9 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
                         MAX_HORIZON);
     if (p->window < 1)
         return err_fail(err, errlen, WORTH_E_BAD_PARAM, "diagnostics window must be >= 1");
-    if (!(p->delta >= 0) || !isfinite(p->delta) || !(p->lambda > 0) || !isfinite(p->lambda))
-        return err_fail(err, errlen, WORTH_E_BAD_PARAM,
-                        "drift delta must be >= 0 and lambda > 0, both finite");
-    if (p->burn_in < 2)
-        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "drift burn_in must be >= 2");
+    int rc = drift_check(&p->drift, err, errlen);
+    if (rc)
+        return rc;
     struct diag *d = mem_calloc(1, sizeof *d);
     d->p = *p;
     d->n_est = n_est;
@@ -126,19 +117,10 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
     d->keep = 1.0 - 1.0 / p->window;
     d->q = mem_calloc(sources, sizeof *d->q);
     d->st = mem_calloc(n_est, sizeof *d->st);
+    d->drift = drift_new(&p->drift);
     *out = d;
     diag_reset(d);
     return 0;
-}
-
-static void restart_drift(struct diag *d)
-{
-    d->k = 0;
-    d->b_sum = d->b_sumsq = 0;
-    d->mu = 0;
-    d->sd = 1;
-    d->up = d->up_min = d->dn = d->dn_max = 0;
-    d->up_min_at = d->dn_max_at = d->step;
 }
 
 void diag_reset(struct diag *d)
@@ -152,8 +134,7 @@ void diag_reset(struct diag *d)
     d->spread_ew = d->spread_w = 0;
     d->ret_ewsq = d->ret_w = 0;
     d->step = 0;
-    d->alarms = d->last_alarm = d->last_onset = 0;
-    restart_drift(d);
+    drift_reset(d->drift);
 }
 
 void diag_free(struct diag *d)
@@ -164,6 +145,7 @@ void diag_free(struct diag *d)
         mem_free(d->q[s].e);
     mem_free(d->q);
     mem_free(d->st);
+    drift_free(d->drift);
     mem_free(d);
 }
 
@@ -286,47 +268,6 @@ static void score(struct diag *d, const double *e, double G, const double *pred)
     }
 }
 
-static int drift(struct diag *d, double td)
-{
-    if (isnan(td))
-        return 0;
-    d->k++;
-    if (d->k <= d->p.burn_in) {
-        d->b_sum += td;
-        d->b_sumsq += td * td;
-        if (d->k == d->p.burn_in) {
-            double n = (double)d->k;
-            d->mu = d->b_sum / n;
-            double var = (d->b_sumsq - n * d->mu * d->mu) / (n - 1);
-            d->sd = sqrt(var > 0 ? var : 0);
-            double floor_sd = 1e-9 * (1.0 + fabs(d->mu));
-            if (d->sd < floor_sd)
-                d->sd = floor_sd;
-            d->up_min_at = d->dn_max_at = d->step;
-        }
-        return 0;
-    }
-    double z = (td - d->mu) / d->sd;
-    d->up += z - d->p.delta; /* rises when the error grows */
-    d->dn += z + d->p.delta; /* falls when it shrinks */
-    if (d->up < d->up_min) {
-        d->up_min = d->up;
-        d->up_min_at = d->step;
-    }
-    if (d->dn > d->dn_max) {
-        d->dn_max = d->dn;
-        d->dn_max_at = d->step;
-    }
-    int rise = d->up - d->up_min > d->p.lambda, fall = d->dn_max - d->dn > d->p.lambda;
-    if (!rise && !fall)
-        return 0;
-    d->alarms++;
-    d->last_alarm = d->step;
-    d->last_onset = (rise ? d->up_min_at : d->dn_max_at) + 1;
-    restart_drift(d);
-    return 1;
-}
-
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td)
 {
@@ -389,7 +330,7 @@ int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double
         q->count--;
         q->front--;
     }
-    return drift(d, td);
+    return drift_observe(d->drift, d->step, td);
 }
 
 const diag_params_t *diag_params(const struct diag *d)
@@ -432,12 +373,7 @@ double diag_returns_rms(const struct diag *d)
 
 void diag_drift(const struct diag *d, diag_drift_t *out)
 {
-    out->alarms = d->alarms;
-    out->last_alarm = d->last_alarm;
-    out->last_onset = d->last_onset;
-    out->armed = d->k > d->p.burn_in;
-    double a = d->up - d->up_min, b = d->dn_max - d->dn;
-    out->statistic = out->armed ? (a > b ? a : b) : 0.0;
+    drift_get(d->drift, out);
 }
 
 double diag_spread(const struct diag *d)
@@ -466,14 +402,7 @@ void diag_save(const struct diag *d, ser_w *w)
     }
     ser_put_f64(w, d->spread_ew);
     ser_put_f64(w, d->spread_w);
-    ser_put_u64(w, d->k);
-    double v[8] = {d->b_sum, d->b_sumsq, d->mu, d->sd, d->up, d->up_min, d->dn, d->dn_max};
-    ser_put_f64v(w, v, 8);
-    ser_put_u64(w, d->up_min_at);
-    ser_put_u64(w, d->dn_max_at);
-    ser_put_u64(w, d->alarms);
-    ser_put_u64(w, d->last_alarm);
-    ser_put_u64(w, d->last_onset);
+    drift_save(d->drift, w);
     /* Format 3: coverage and the error histogram. */
     for (size_t k = 0; k < d->n_est; k++) {
         const struct stat *s = &d->st[k];
@@ -537,22 +466,8 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
     }
     d->spread_ew = ser_get_f64(r);
     d->spread_w = ser_get_f64(r);
-    d->k = ser_get_u64(r);
-    double v[8];
-    ser_get_f64v(r, v, 8);
-    d->b_sum = v[0];
-    d->b_sumsq = v[1];
-    d->mu = v[2];
-    d->sd = v[3];
-    d->up = v[4];
-    d->up_min = v[5];
-    d->dn = v[6];
-    d->dn_max = v[7];
-    d->up_min_at = ser_get_u64(r);
-    d->dn_max_at = ser_get_u64(r);
-    d->alarms = ser_get_u64(r);
-    d->last_alarm = ser_get_u64(r);
-    d->last_onset = ser_get_u64(r);
+    if (drift_load(d->drift, r, version))
+        return -1;
     for (size_t k = 0; version >= 3 && k < d->n_est && !r->err; k++) {
         struct stat *s = &d->st[k];
         double c[6];

@@ -20,15 +20,8 @@
  * sample) is cover_95; inside V +- 2 RMS (what a Gaussian error would give),
  * cover_rms2.
  *
- * Drift: a two-sided Page-Hinkley test (Page 1954; Hinkley 1971) on the
- * primary estimator's TD error, standardised by the mean and sd of its first
- * `burn_in` values after each (re)start: it raises an alarm when the
- * cumulative deviation beyond `delta` (in sd units) exceeds `lambda`, reports
- * the step where the change began (the last extreme of the cumulative sum),
- * and starts again.  With the defaults, a shift of one sd in the reward of a
- * TD(0) model is detected within 400 steps, and in 20 seeded runs of 4000
- * steps before the shift there was no false alarm (tests/unit/test_diag.c;
- * seen: at most 152 steps).
+ * Drift: the diagnostics feed the primary estimator's TD error to the drift
+ * detector (drift.h), which they own and save.
  *
  * Owned by a model; updated on its learner thread; allocates a source's
  * buffer when the source is first seen, nothing per transition afterwards.
@@ -40,6 +33,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
+#include "learn/drift.h"
 #include "learn/ser.h"
 
 struct diag;
@@ -52,13 +46,10 @@ struct diag;
 
 /* Plain data: parameters (documented defaults in diag_params_default). */
 typedef struct diag_params_t {
-    double gamma;     /* the model's per-step discount (sets the default horizon) */
-    unsigned horizon; /* steps after which a continuing return counts as known; 0 = auto */
-    unsigned window;  /* length of the sliding window, in returns; 1000 */
-    double delta;     /* Page-Hinkley tolerance, in sd of the TD error; 0.5 */
-    double lambda;    /* Page-Hinkley threshold, in sd of the TD error; 50 */
-    unsigned burn_in; /* TD errors that set the reference mean and sd; 500 */
-    int on_drift;     /* 1: keep a "pre-drift" checkpoint at each alarm (the daemon does); 0 */
+    double gamma;         /* the model's per-step discount (sets the default horizon) */
+    unsigned horizon;     /* steps after which a continuing return counts as known; 0 = auto */
+    unsigned window;      /* length of the sliding window, in returns; 1000 */
+    drift_params_t drift; /* the drift detector (drift.h) */
 } diag_params_t;
 
 /* Plain data: one estimator's realised-return figures. */
@@ -77,15 +68,6 @@ typedef struct diag_est_t {
     double k95;        /* 95% quantile of |V - G| / RMS; NAN before DIAG_MIN_WEIGHT returns */
     double half95;     /* k95 * rms_window: the 95% interval is V +- half95 */
 } diag_est_t;
-
-/* Plain data: the drift detector. */
-typedef struct diag_drift_t {
-    uint64_t alarms;     /* alarms raised so far */
-    uint64_t last_alarm; /* step (1-based count of transitions) of the last alarm, 0 for none */
-    uint64_t last_onset; /* step where the last detected change began */
-    double statistic;    /* the larger of the two cumulative deviations now, in sd */
-    int armed;           /* 1 once the burn-in is over */
-} diag_drift_t;
 
 void diag_params_default(double gamma, diag_params_t *p);
 /*

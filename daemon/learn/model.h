@@ -30,9 +30,11 @@ struct model;
 #define MODEL_DEFAULT_SOURCES 16
 /* Version of the byte format written by model_save (2: the diagnostics save each
  * source's front count). */
-/* --- health: format 3 adds each pending step's sd, the coverage figures and the
- * error histogram to the diagnostics, and the headline's choice (health_save)
- * after them.  Formats 1 and 2 still load: no sd, no coverage, headline reset. --- */
+/* --- model state format 3 (one format for two changes made side by side): the drift
+ * detector is a CUSUM (drift_save, in place of the Page-Hinkley state); the diagnostics add
+ * each pending step's sd, the coverage figures and the error histogram; the headline's
+ * choice (health_save) follows them.  Formats 1 and 2 still load: the old detector's state
+ * is read and restarted as the CUSUM (drift_load), no sd, no coverage, headline reset. --- */
 #define MODEL_FORMAT_VERSION 3
 /* Oldest format model_load still reads. */
 #define MODEL_FORMAT_OLDEST 1

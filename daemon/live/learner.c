@@ -32,6 +32,7 @@
 #include <time.h>
 
 #include "core/queue.h"
+#include "live/alarms.h"
 #include "live/pairing.h"
 #include "store/db.h"
 #include "common/fail.h"
@@ -65,6 +66,8 @@ struct snap {
     double spread, returns_rms;
     double last_update;
     double plant_t;
+    size_t n_inputs;
+    learner_input_t inputs[LEARNER_INPUTS_MAX];
 };
 
 struct learner {
@@ -85,6 +88,8 @@ struct learner {
     uint64_t applied_seq, model_training, since_checkpoint;
     double plant_t;       /* the t of the last transition learnt that had one; NAN: none */
     uint64_t alarms_seen; /* drift alarms already reported */
+    uint64_t clears_seen; /* and their clearings */
+    struct inputs *in;    /* the direct input checks (made by learner_set_meta) */
     int tainted;          /* a replay after a rollback failed: the model is not the log's replay */
     size_t diverged_seen; /* estimators whose divergence has been reported */
     unsigned diverged_mask;  /* which (bit i: estimator i; MODEL_MAX_EST <= 32) */
@@ -178,6 +183,18 @@ static void publish(struct learner *l, double last_update)
     b->spread = diag_spread(dg);
     b->last_update = last_update;
     b->plant_t = l->plant_t;
+    b->n_inputs = 0;
+    if (l->in) {
+        inputs_active_t act[LEARNER_INPUTS_MAX];
+        b->n_inputs = inputs_list(l->in, act, LEARNER_INPUTS_MAX);
+        for (size_t i = 0; i < b->n_inputs && i < LEARNER_INPUTS_MAX; i++) {
+            learner_input_t *o = &b->inputs[i];
+            o->kind = (int)act[i].kind;
+            snprintf(o->src, sizeof o->src, "%s", inputs_source_name(l->in, act[i].src));
+            o->dim = act[i].dim;
+            o->since = act[i].since;
+        }
+    }
     pthread_mutex_lock(&l->snap_mu);
     l->front = 1 - l->front;
     pthread_mutex_unlock(&l->snap_mu);
@@ -228,21 +245,6 @@ static void checkpoint(struct learner *l, const char *label, uint64_t conn_id)
     writer_store_checkpoint(l->o.writer, l->q, l->applied_seq, l->model_training, l->plant_t,
                             (unsigned)model_diverged(l->m), label, blob, len, conn_id);
     l->since_checkpoint = 0;
-}
-
-/*
- * A drift alarm: logged, and recorded as an event.  The detector counts steps
- * from the model's start; the seqs given are those of the transitions at
- * those steps when no rollback intervened (the event keeps both).
- */
-static void drift_event(struct learner *l, const diag_drift_t *dr)
-{
-    uint64_t back = dr->last_alarm - dr->last_onset;
-    uint64_t onset_seq = l->applied_seq > back ? l->applied_seq - back : 0;
-    say_warn("model %s: drift alarm at seq %llu; the change began about seq %llu", l->name,
-             (unsigned long long)l->applied_seq, (unsigned long long)onset_seq);
-    writer_drift(l->o.writer, l->q, l->applied_seq, onset_seq, dr->last_alarm, dr->last_onset,
-                 dr->alarms, model_diag_params(l->m)->on_drift, l->plant_t);
 }
 
 struct train_ctx {
@@ -388,8 +390,20 @@ static void observed(void *ctx)
     diag_drift(model_diag(l->m), &dr);
     if (dr.alarms != l->alarms_seen) {
         l->alarms_seen = dr.alarms;
-        drift_event(l, &dr);
+        alarms_drift(l->o.writer, l->q, l->name, &dr, l->applied_seq,
+                     model_diag_params(l->m)->drift.on_drift, l->plant_t);
     }
+    if (dr.clears != l->clears_seen) {
+        l->clears_seen = dr.clears;
+        alarms_drift_cleared(l->o.writer, l->q, l->name, &dr, l->applied_seq, l->plant_t);
+    }
+}
+
+/* inputs_event_fn: an input check raised or cleared. */
+static void on_input(void *ctx, const inputs_event_t *ev)
+{
+    struct learner *l = ctx;
+    alarms_input(l->o.writer, l->q, l->name, &l->meta, ev);
 }
 
 /*
@@ -419,6 +433,10 @@ static void learn(struct learner *l, queue_rec_t *r)
     l->since_checkpoint++;
     if (!isnan(r->t_s))
         l->plant_t = r->t_s;
+    if (l->in) {
+        inputs_observe(l->in, r->src, r->t_s, r->v, on_input, l);
+        inputs_tick(l->in, l->plant_t, on_input, l);
+    }
     if (l->o.checkpoint_every && l->since_checkpoint >= l->o.checkpoint_every) {
         model_replay_flush(l->rp);
         checkpoint(l, NULL, 0);
@@ -613,6 +631,7 @@ struct learner *learner_new(const char *name, char *spec_json, struct model *m,
     diag_drift_t dr0;
     diag_drift(model_diag(m), &dr0);
     l->alarms_seen = dr0.alarms; /* alarms of a recovered model were reported before */
+    l->clears_seen = dr0.clears;
     divergence_seen(l);
     publish(l, 0); /* the initial (or recovered) weights answer until the first update */
     l->qwork = mem_calloc(model_work_size(m), sizeof(double));
@@ -648,6 +667,7 @@ void learner_free(struct learner *l)
     history_buf_free(l->hist);
     queue_free(l->q);
     pairing_free(l->pair);
+    inputs_free(l->in);
     mem_free(l->spec_json);
     model_free(l->m);
     mem_free(l);
@@ -681,6 +701,9 @@ int learner_set_meta(struct learner *l, const spec_meta_t *meta, sqlite3 *db, in
     CHECK(meta->dims == l->dims);
     l->meta = *meta;
     pairing_set_meta(l->pair, meta);
+    /* Before the first record: the queue's lock hands it to the learner thread. */
+    if (!l->in)
+        l->in = inputs_new(&meta->inputs, l->dims, meta->lo, meta->hi, l->max_src);
     return db ? pairing_load(l->pair, db, model_id, err, errlen) : 0;
 }
 
@@ -773,6 +796,8 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->horizon = diag_horizon(model_diag(l->m));
     out->last_update = s->last_update;
     out->plant_t = s->plant_t;
+    out->n_inputs = s->n_inputs;
+    memcpy(out->inputs, s->inputs, sizeof out->inputs);
     pthread_mutex_unlock(&l->snap_mu);
     out->received = queue_last_seq(l->q);
     out->queued = queue_depth(l->q);

@@ -29,6 +29,17 @@ struct pairing;
 struct queue;
 struct writer;
 
+/* Plain data: an input check raised now (learn/inputs.h). */
+typedef struct learner_input_t {
+    int kind;                     /* enum inputs_kind */
+    char src[MODEL_NAME_MAX + 1]; /* the source */
+    int dim;                      /* the dimension; -1 for silent */
+    double since;                 /* plant time the condition began */
+} learner_input_t;
+
+/* Most input checks a snapshot lists. */
+#define LEARNER_INPUTS_MAX 32
+
 /* Plain data: counters and per-estimator figures from the latest snapshot. */
 typedef struct learner_stats_t {
     uint64_t received; /* seq of the last accepted transition */
@@ -46,7 +57,9 @@ typedef struct learner_stats_t {
     uint64_t checkpoints;               /* valid checkpoints stored (as the writer last saw) */
     double newest_checkpoint_at;        /* created_at of the newest, 0 for none */
     double last_update;                 /* wall clock, seconds; 0 before the first update */
-    double plant_t; /* the t of the last transition learnt that had one; NAN: none */
+    double plant_t;  /* the t of the last transition learnt that had one; NAN: none */
+    size_t n_inputs; /* input checks raised now (the first LEARNER_INPUTS_MAX listed) */
+    learner_input_t inputs[LEARNER_INPUTS_MAX];
 } learner_stats_t;
 
 /* Plain data: how a learner starts. */

@@ -401,6 +401,45 @@ int do_value(struct req *rq)
     return PROTO_DONE;
 }
 
+/* The rest of stats' "drift" (its state now and its stated rate), then "inputs". */
+static void stats_alarms(jw_t *o, const learner_stats_t *st, const diag_params_t *dp,
+                         const spec_meta_t *meta)
+{
+    static const char *const kinds[3] = {"frozen", "out_of_range", "silent"};
+    const diag_drift_t *dr = &st->drift;
+    jw_fmt(o,
+           ",\"active\":%s,\"side\":\"%s\",\"clears\":%llu,\"last_clear_step\":%llu,"
+           "\"threshold\":",
+           dr->active ? "true" : "false", dr->side > 0 ? "up" : (dr->side < 0 ? "down" : ""),
+           (unsigned long long)dr->clears, (unsigned long long)dr->last_clear);
+    jw_num(o, dr->threshold);
+    jw_lit(o, ",\"k\":");
+    jw_num(o, dp->drift.k);
+    jw_fmt(o, ",\"batch\":%u,\"false_alarm_transitions\":", dp->drift.batch);
+    jw_num(o, dp->drift.arl0);
+    if (dp->drift.false_alarm_days > 0) {
+        jw_lit(o, ",\"false_alarm_days\":");
+        jw_num(o, dp->drift.false_alarm_days);
+    }
+    jw_fmt(o, "},\"inputs\":{\"raised\":%zu,\"checks\":[", st->n_inputs);
+    for (size_t i = 0; i < st->n_inputs && i < LEARNER_INPUTS_MAX; i++) {
+        const learner_input_t *c = &st->inputs[i];
+        jw_fmt(o, "%s{\"kind\":\"%s\",\"source\":", i ? "," : "", kinds[c->kind]);
+        jw_str(o, c->src);
+        if (c->dim >= 0) {
+            jw_fmt(o, ",\"dim_index\":%d", c->dim);
+            if (meta->named) {
+                jw_lit(o, ",\"dim\":");
+                jw_str(o, meta->names[c->dim]);
+            }
+        }
+        jw_lit(o, ",\"since_t\":");
+        jw_num(o, c->since);
+        jw_lit(o, "}");
+    }
+    jw_lit(o, "]}");
+}
+
 int do_stats(struct req *rq)
 {
     learner_stats_t st;
@@ -497,7 +536,7 @@ int do_stats(struct req *rq)
            st.horizon, (unsigned long long)st.drift.alarms, (unsigned long long)st.drift.last_alarm,
            (unsigned long long)st.drift.last_onset, st.drift.armed ? "true" : "false");
     jw_num(o, st.drift.statistic);
-    jw_lit(o, "}");
+    stats_alarms(o, &st, model_diag_params(m), learner_meta(l));
     reply_end(o, rq->c);
     return PROTO_DONE;
 }

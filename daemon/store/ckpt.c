@@ -184,7 +184,13 @@ void ckpt_job_list(struct writer *w, struct job *j)
 void ckpt_job_drift(struct writer *w, struct job *j)
 {
     int64_t pre = 0, model = queue_db_id(j->q);
-    if (j->id) { /* on_drift: copy the newest valid checkpoint before the onset, labelled */
+    /*
+     * on_drift: copy the newest valid checkpoint that has learnt nothing from the onset on
+     * (seq < onset_seq: its state covers transitions up to onset_seq - 1 at most), labelled.
+     * The pre-drift checkpoint is therefore provably no later than the onset; how much
+     * earlier depends on the automatic checkpoints' spacing (--checkpoint-every).
+     */
+    if (j->id) {
         sqlite3_stmt *st = NULL;
         if (sqlite3_prepare_v2(
                 w->db,
@@ -218,6 +224,17 @@ void ckpt_job_drift(struct writer *w, struct job *j)
                       (long long)pre);
     if (!isnan(j->plant_t))
         n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", j->plant_t);
+    /* The onset in plant time: the t of the onset's transition in the log, when it has one. */
+    sqlite3_stmt *ot = NULL;
+    if (sqlite3_prepare_v2(w->db, "SELECT t FROM transitions WHERE model = ?1 AND seq = ?2", -1,
+                           &ot, NULL) == SQLITE_OK) {
+        sqlite3_bind_int64(ot, 1, model);
+        sqlite3_bind_int64(ot, 2, (sqlite3_int64)j->a);
+        if (sqlite3_step(ot) == SQLITE_ROW && sqlite3_column_type(ot, 0) != SQLITE_NULL)
+            n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"onset_t\":%.17g",
+                          sqlite3_column_double(ot, 0));
+    }
+    sqlite3_finalize(ot);
     snprintf(detail + n, sizeof detail - (size_t)n, "}");
     events_insert(w, j->q, "drift", detail);
 }

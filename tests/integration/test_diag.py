@@ -4,7 +4,9 @@ Boyan's chain (Boyan 2002): with LSTD converged to the exact values V(s) = -2s, 
 realised-return RMS error equals the standard deviation of the return itself, which
 numpy computes exactly from the chain (per-state return variances by their recursion,
 weighted by the expected visits per episode). A reward shift fed over the socket
-raises a drift alarm, reported in stats and recorded as an event in the database.
+raises a drift alarm (a CUSUM whose threshold comes from the stated false-alarm
+interval, learn/drift.h), dated near the shift, reported in stats with its current state,
+recorded as an event in the database, and cleared once the estimator has caught up.
 """
 import sqlite3
 
@@ -74,7 +76,7 @@ def test_drift_alarm_in_stats_and_events(daemon):
           "ranges": [[0, 4]], "features": [{"basis": "rbf", "centers": 5, "width": 0.05}],
           "estimators": [{"name": "td", "kind": "td", "alpha": 0.02}]})
     rng = np.random.default_rng(7)
-    n, shift_at = 6000, 4000
+    n, shift_at = 12000, 4000
     t = np.arange(n)
     x, xn = (t % 5).astype(float), ((t + 1) % 5).astype(float)
     r = rng.normal(size=n) + (t >= shift_at) * 1.0
@@ -89,12 +91,21 @@ def test_drift_alarm_in_stats_and_events(daemon):
     assert c.recv(60)["ok"] is True
     st = c.wait_applied("shift", n)
     dr = st["drift"]
-    assert dr["alarms"] >= 1, st
-    assert shift_at < dr["last_alarm_step"] <= shift_at + 400 or dr["alarms"] > 1, dr
+    assert dr["alarms"] == 1, st
+    assert shift_at < dr["last_alarm_step"] <= shift_at + 400, dr
+    # the onset is the CUSUM's last zero: within two batches of the first shifted step
+    assert abs(dr["last_onset_step"] - (shift_at + 1)) <= 2 * dr["batch"], dr
+    # no period_s: the stated rate is in transitions, the default 10^6; h from Siegmund's
+    # approximation at ARL0 = 10^5 batches, k = 0.5 (about 10.4)
+    assert dr["false_alarm_transitions"] == 1e6 and dr["k"] == 0.5 and dr["batch"] == 10, dr
+    assert 10.0 < dr["threshold"] < 11.0, dr
+    # TD(0) catches up with the new reward (8000 steps later): the error is back, cleared
+    assert dr["active"] is False and dr["clears"] == 1 and dr["side"] == "up", dr
+    assert dr["last_clear_step"] > dr["last_alarm_step"], dr
     d.shutdown()
     db = sqlite3.connect(f"file:{d.db}?mode=ro", uri=True)
     try:
         kinds = [k for (k,) in db.execute("SELECT kind FROM events ORDER BY id")]
     finally:
         db.close()
-    assert "drift" in kinds, kinds
+    assert kinds.index("drift") < kinds.index("drift_cleared"), kinds

@@ -310,7 +310,17 @@ static void canonical_lists_every_parameter(void **state)
                                       "max_sources", "max_features", "diagnostics"};
     assert_int_equal(cJSON_GetArraySize(j), sizeof top / sizeof top[0]);
     const cJSON *dg = cJSON_GetObjectItemCaseSensitive(j, "diagnostics");
-    assert_int_equal(cJSON_GetArraySize(dg), 6); /* horizon, window, drift_*, on_drift */
+    /* horizon, window, false_alarm_transitions (no period_s here), drift_k, drift_batch,
+     * drift_burn_in, on_drift, and the four input checks' */
+    static const char *const dkeys[] = {
+        "horizon",       "window",         "false_alarm_transitions", "drift_k",
+        "drift_batch",   "drift_burn_in",  "on_drift",                "frozen_periods",
+        "frozen_tolerance", "out_of_range_periods", "silent_periods"};
+    assert_int_equal(cJSON_GetArraySize(dg), sizeof dkeys / sizeof dkeys[0]);
+    for (size_t i = 0; i < sizeof dkeys / sizeof dkeys[0]; i++)
+        assert_non_null(cJSON_GetObjectItemCaseSensitive(dg, dkeys[i]));
+    assert_true(cJSON_GetObjectItemCaseSensitive(dg, "false_alarm_transitions")->valuedouble ==
+                1e6);
     for (size_t i = 0; i < sizeof top / sizeof top[0]; i++)
         assert_non_null(cJSON_GetObjectItemCaseSensitive(j, top[i]));
     assert_string_equal(cJSON_GetObjectItemCaseSensitive(j, "primary")->valuestring, "rls");
