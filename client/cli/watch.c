@@ -18,6 +18,7 @@
 #include <unistd.h>
 
 #include "cli.h"
+#include "isotime.h"
 
 static double now_s(void)
 {
@@ -73,9 +74,37 @@ static int draw(struct cli *cli, const char *model, const struct mspec *ms, int 
     fmt_num(b, sizeof b, getnum(dr, "statistic"));
     fmt_num(c, sizeof c, getnum(dr, "last_alarm_step"));
     fmt_num(d, sizeof d, getnum(r, "spread"));
-    printf("drift alarms %s (last at step %s)   statistic %s   spread %s%s%s%s\n\n", a, c, b, d,
-           ms->reward_unit[0] ? " " : "", ms->reward_unit,
-           getnum(dr, "alarms") > 0 ? "   << DRIFT: consider a rollback" : "");
+    /* The banner says the state now: an alarm shows while it is active, and goes when it clears. */
+    const cJSON *act = cJSON_GetObjectItemCaseSensitive(dr, "active");
+    const cJSON *side = cJSON_GetObjectItemCaseSensitive(dr, "side");
+    char th[32];
+    fmt_num(th, sizeof th, getnum(dr, "threshold"));
+    printf("drift alarms %s (last at step %s)   statistic %s of %s   spread %s%s%s\n", a, c, b, th,
+           d, ms->reward_unit[0] ? " " : "", ms->reward_unit);
+    if (cJSON_IsTrue(act))
+        printf("<< DRIFT NOW (%s): the TD error moved; see 'worth events' for its onset and "
+               "consider a rollback to the pre-drift checkpoint\n",
+               cJSON_IsString(side) && side->valuestring[0] ? side->valuestring : "?");
+    const cJSON *in, *chk;
+    in = cJSON_GetObjectItemCaseSensitive(r, "inputs");
+    cJSON_ArrayForEach(chk, cJSON_GetObjectItemCaseSensitive(in, "checks"))
+    {
+        const cJSON *k = cJSON_GetObjectItemCaseSensitive(chk, "kind");
+        const cJSON *dim = cJSON_GetObjectItemCaseSensitive(chk, "dim");
+        const cJSON *di = cJSON_GetObjectItemCaseSensitive(chk, "dim_index");
+        const cJSON *src = cJSON_GetObjectItemCaseSensitive(chk, "source");
+        char since[40] = "?";
+        double st = getnum(chk, "since_t");
+        if (isfinite(st))
+            isotime_format(st, since, sizeof since);
+        printf("<< INPUT %s: ", cJSON_IsString(k) ? k->valuestring : "?");
+        if (cJSON_IsString(dim))
+            printf("%s ", dim->valuestring);
+        else if (cJSON_IsNumber(di))
+            printf("x%d ", (int)di->valuedouble);
+        printf("of source \"%s\" since %s\n", cJSON_IsString(src) ? src->valuestring : "", since);
+    }
+    fputc('\n', stdout);
     struct table *tb = table_new(9);
     if (tb) {
         char h[3][64];

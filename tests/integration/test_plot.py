@@ -236,3 +236,38 @@ def test_history_plot_in_plant_time_with_two_panels_and_marks(daemon, tmp_path):
     fails(run(d, "plot", "st", "--history", "--since", "yesterday", "--out", w), 2, "--since")
     fails(run(d, "plot", "st", "--since", "2025-12-02T03:00:00Z", "--x", "level", "--y",
               "demand", "--out", w), 2, "--history")
+
+
+def test_watch_banner_shows_the_drift_alarm_only_while_it_is_active(daemon):
+    """A unit shift in the reward at step 4000 (seeded): watch's banner says DRIFT NOW while
+    the alarm is active and no longer once it cleared (stats' drift.active)."""
+    import numpy as np
+    d = daemon()
+    c = d.client()
+    c.ok({"op": "model.create", "model": "shift", "dims": 1, "gamma": 0.9,
+          "ranges": [[0, 4]], "features": [{"basis": "rbf", "centers": 5, "width": 0.05}],
+          "estimators": [{"name": "td", "kind": "td", "alpha": 0.02}]})
+    rng = np.random.default_rng(7)
+    n, shift_at, mid = 12000, 4000, 4600
+    t = np.arange(n)
+    x, xn = (t % 5).astype(float), ((t + 1) % 5).astype(float)
+    r = rng.normal(size=n) + (t >= shift_at) * 1.0
+    rec = np.column_stack([x, r, xn, np.zeros(n)]).astype("<f8")
+
+    def feed(a, b):
+        c.send({"op": "observe.bulk", "model": "shift", "count": b - a})
+        c.send_raw(rec[a:b].tobytes())
+        assert c.recv(60)["ok"] is True
+        return c.wait_applied("shift", b)["drift"]
+
+    assert feed(0, shift_at)["active"] is False
+    p = ok(run(d, "watch", "shift", "--count", 1))
+    assert "DRIFT NOW" not in p.stdout, p.stdout
+    dr = feed(shift_at, mid)
+    assert dr["active"] is True and dr["alarms"] == 1, dr
+    p = ok(run(d, "watch", "shift", "--count", 1))
+    assert "<< DRIFT NOW (up)" in p.stdout, p.stdout
+    dr = feed(mid, n)
+    assert dr["active"] is False and dr["clears"] == 1, dr
+    p = ok(run(d, "watch", "shift", "--count", 1))
+    assert "DRIFT NOW" not in p.stdout and "drift alarms 1" in p.stdout, p.stdout
