@@ -19,12 +19,15 @@
  * reward's unit (EUR), so every table and picture says what it shows.  The
  * program creates the model, streams the simulated weeks as bulk frames of
  * samples, prints the values at three named situations, checkpoints,
- * streams a day with the demand sensor stuck, reports the drift alarm, rolls
- * back with the fault window excluded and checks that the values are
- * restored.  Given a file, it then writes the next day as a historian's
+ * streams a day with the demand sensor stuck and two sound days after it,
+ * reports the input check that saw the stuck sensor and the drift alarm
+ * (when it fired, and when it dates the change), rolls back to the
+ * pre-drift checkpoint re-learning the log with the fault's time window
+ * excluded, so the days after the fault are learnt again.  Given a file, it then writes the next day as a historian's
  * export (a wide CSV: ISO-8601 times in CET, one column per tag, a quality
  * flag) for `worth feed`.  Exit status 0 when all of that happened as
- * expected, 1 otherwise.
+ * expected (the frozen check within 10 minutes of the fault, the drift alarm's
+ * onset within 5% of the fault's length, the days after it re-learnt), 1 otherwise.
  */
 #include <math.h>
 #include <stdio.h>
@@ -47,6 +50,8 @@
 #define RESERVE_M   2.0    /* safety reserve level */
 #define PENALTY_EUR 2.0    /* per minute under the reserve */
 #define LEVEL_MAX   8.0
+#define FAULT_DAYS  2 /* days the demand sensor stays stuck (a weekend) */
+#define AFTER_DAYS  2 /* sound days after the fault */
 
 struct plant {
     double level, demand_noise, minute, last_r;
@@ -147,7 +152,7 @@ static const char SPEC[] =
     "{\"name\":\"lstd\",\"kind\":\"lstd\",\"ridge\":0.01,\"refit_every\":720},"
     "{\"name\":\"replay\",\"kind\":\"replay\",\"alpha\":0.002,\"capacity\":20000}],"
     "\"primary\":\"rls\","
-    "\"diagnostics\":{\"drift_burn_in\":1440,\"drift_lambda\":60,\"on_drift\":\"checkpoint\"}}";
+    "\"diagnostics\":{\"drift_burn_in\":1440,\"drift_batch\":60,\"false_alarm_days\":90,\"on_drift\":\"checkpoint\"}}";
 
 /* The three named situations: [level, demand, sin, cos, tariff] at an hour. */
 static void situation(int k, double *x, const char **name)
@@ -276,6 +281,45 @@ static double field(const char *json, const char *key)
     return p ? atof(p + strlen(key)) : NAN;
 }
 
+/* What the events say about the fault: the first input_frozen and drift from t0 on. */
+struct alarms {
+    double frozen_t, alarm_t, onset_t;
+    int64_t pre_drift;
+};
+
+/* 1 when the event at e ("kind":...) is of kind k. */
+static int is_kind(const char *e, const char *k)
+{
+    size_t n = strlen(k);
+    return strncmp(e + 8, k, n) == 0 && e[8 + n] == '"';
+}
+
+static int read_alarms(worth_client *c, double t0, struct alarms *a)
+{
+    const char *json;
+    a->frozen_t = a->alarm_t = a->onset_t = NAN;
+    a->pre_drift = 0;
+    if (worth_request(c, "{\"op\":\"events\",\"model\":\"reservoir\"}", &json))
+        return fail(c, "events");
+    for (const char *e = strstr(json, "\"kind\":"); e; e = strstr(e + 1, "\"kind\":")) {
+        const char *end = strstr(e, "}}");
+        double t = field(e, "\"t\":");
+        /* A transition's t is its first sample's: the one into the fault starts a period early. */
+        if (!end || !(t >= t0 - 60))
+            continue;
+        if (is_kind(e, "input_frozen") && isnan(a->frozen_t))
+            a->frozen_t = t;
+        if (is_kind(e, "drift") && isnan(a->alarm_t)) {
+            a->alarm_t = t;
+            a->onset_t = field(e, "\"onset_t\":");
+            const char *pd = strstr(e, "\"pre_drift_checkpoint\":");
+            if (pd && pd < end)
+                a->pre_drift = (int64_t)field(e, "\"pre_drift_checkpoint\":");
+        }
+    }
+    return 0;
+}
+
 int main(int argc, char **argv)
 {
     const char *sock = argc > 1 ? argv[1] : "./worthd.sock";
@@ -332,30 +376,53 @@ int main(int argc, char **argv)
     printf("\n4. checkpoint %lld \"commissioned\" at seq %llu\n", (long long)ck,
            (unsigned long long)ck_seq);
 
-    printf("5. one day with the demand sensor stuck at 0 m3/h: the controller thinks nobody draws\n"
-           "   water, lowers its bands, and the level sags under the reserve\n");
-    if (stream(c, &p, 1, 0.0, &seq) || settle(c, seq))
+    printf("5. %d days with the demand sensor stuck at 0 m3/h: the controller thinks nobody draws\n"
+           "   water, lowers its bands, and the level sags under the reserve; then %d sound days\n",
+           FAULT_DAYS, AFTER_DAYS);
+    double fault_t0 = T0 + 60 * p.minute;
+    uint64_t fault_seq0 = seq + 1;
+    if (stream(c, &p, FAULT_DAYS, 0.0, &seq) || settle(c, seq))
+        return 1;
+    double fault_t1 = T0 + 60 * p.minute; /* the first sound sample */
+    if (table(c, fault, "   values after the fault:"))
+        return 1;
+    uint64_t fault_seq1 = seq;
+    if (stream(c, &p, AFTER_DAYS, -1, &seq) || settle(c, seq))
         return 1;
     if (worth_stats(c, "reservoir", &json))
         return fail(c, "stats");
     double alarms = field(json, "\"alarms\":");
-    printf("   drift alarms during the fault day: %.0f (Page-Hinkley statistic now %.1f sd)\n",
-           alarms - alarms_before, field(json, "\"statistic\":"));
-    if (table(c, fault, "   values after the fault day:"))
+    printf("   drift alarms since the fault began: %.0f (CUSUM statistic now %.1f of threshold "
+           "%.1f; active: %s)\n",
+           alarms - alarms_before, field(json, "\"statistic\":"), field(json, "\"threshold\":"),
+           strstr(json, "\"active\":true") ? "yes" : "no");
+    struct alarms a;
+    if (read_alarms(c, fault_t0, &a))
         return 1;
+    double len_s = fault_t1 - fault_t0;
+    int frozen_ok = !isnan(a.frozen_t) && a.frozen_t - fault_t0 <= 10 * 60;
+    int onset_ok = !isnan(a.onset_t) && fabs(a.onset_t - fault_t0) <= 0.05 * len_s;
+    printf("   the frozen-input check on demand fired %.0f min after the fault began\n"
+           "   the drift alarm fired at the sample %.0f min into it and dates the change %+.0f min from "
+           "its start (%.1f%% of the fault's %.0f h)\n",
+           (a.frozen_t - fault_t0) / 60, (a.alarm_t + 60 - fault_t0) / 60, (a.onset_t - fault_t0) / 60,
+           100 * fabs(a.onset_t - fault_t0) / len_s, len_s / 3600);
 
+    int64_t back = a.pre_drift > 0 ? a.pre_drift : ck;
     uint64_t undone = 0, replayed = 0;
-    if (worth_rollback(c, "reservoir", ck, 1, 's', (double)ck_seq + 1, (double)seq, &undone,
-                       &replayed))
+    if (worth_rollback(c, "reservoir", back, 1, 't', fault_t0, fault_t1 - 1, &undone, &replayed))
         return fail(c, "rollback");
-    printf("\n6. rolled back to \"commissioned\", re-learning the log after it with the fault "
-           "window (seq %llu..%llu) excluded: %llu undone, %llu replayed\n",
-           (unsigned long long)ck_seq + 1, (unsigned long long)seq, (unsigned long long)undone,
-           (unsigned long long)replayed);
-    if (table(c, after, "   values restored:"))
+    printf("\n6. rolled back to checkpoint %lld (%s), re-learning the log after it with the fault's "
+           "time window excluded: %llu undone, %llu replayed\n",
+           (long long)back, a.pre_drift > 0 ? "pre-drift" : "commissioned",
+           (unsigned long long)undone, (unsigned long long)replayed);
+    if (table(c, after, "   values after the rollback:"))
         return 1;
-    int same = memcmp(before, after, sizeof before) == 0;
-    printf("   values after the rollback equal those before the fault: %s\n", same ? "yes" : "NO");
+    /* Everything after the fault (seq fault_seq1 + 1 .. seq) is learnt again. */
+    int relearnt = replayed >= seq - fault_seq1 && undone >= fault_seq1 - fault_seq0 + 1;
+    printf("   the %llu transitions after the fault were learnt again: %s\n",
+           (unsigned long long)(seq - fault_seq1), relearnt ? "yes" : "NO");
+    int same = relearnt && frozen_ok && onset_ok;
     worth_close(c);
     if (historian && write_historian(&p, historian) != 0)
         return 1;
