@@ -181,6 +181,22 @@ void ckpt_job_list(struct writer *w, struct job *j)
     jw_close(&jb);
 }
 
+/* The t of transition seq of model in the log; NAN when it has none or is not there. */
+static double log_t_at(struct writer *w, int64_t model, uint64_t seq)
+{
+    sqlite3_stmt *st = NULL;
+    double t = NAN;
+    if (sqlite3_prepare_v2(w->db, "SELECT t FROM transitions WHERE model = ?1 AND seq = ?2", -1,
+                           &st, NULL) == SQLITE_OK) {
+        sqlite3_bind_int64(st, 1, model);
+        sqlite3_bind_int64(st, 2, (sqlite3_int64)seq);
+        if (sqlite3_step(st) == SQLITE_ROW && sqlite3_column_type(st, 0) != SQLITE_NULL)
+            t = sqlite3_column_double(st, 0);
+    }
+    sqlite3_finalize(st);
+    return t;
+}
+
 void ckpt_job_drift(struct writer *w, struct job *j)
 {
     int64_t pre = 0, model = queue_db_id(j->q);
@@ -222,19 +238,18 @@ void ckpt_job_drift(struct writer *w, struct job *j)
     if (pre)
         n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"pre_drift_checkpoint\":%lld",
                       (long long)pre);
-    if (!isnan(j->plant_t))
-        n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", j->plant_t);
-    /* The onset in plant time: the t of the onset's transition in the log, when it has one. */
-    sqlite3_stmt *ot = NULL;
-    if (sqlite3_prepare_v2(w->db, "SELECT t FROM transitions WHERE model = ?1 AND seq = ?2", -1,
-                           &ot, NULL) == SQLITE_OK) {
-        sqlite3_bind_int64(ot, 1, model);
-        sqlite3_bind_int64(ot, 2, (sqlite3_int64)j->a);
-        if (sqlite3_step(ot) == SQLITE_ROW && sqlite3_column_type(ot, 0) != SQLITE_NULL)
-            n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"onset_t\":%.17g",
-                          sqlite3_column_double(ot, 0));
-    }
-    sqlite3_finalize(ot);
+    /*
+     * In plant time: the t of the alarm's and of the onset's transitions in the log, when
+     * they have one (the learner's own plant time may run ahead of the transition whose
+     * alarm it reports: the diagnostics take a chunk after it was pushed).
+     */
+    double ta = log_t_at(w, model, j->seq), to = log_t_at(w, model, j->a);
+    if (isnan(ta))
+        ta = j->plant_t;
+    if (!isnan(ta))
+        n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"t\":%.17g", ta);
+    if (!isnan(to))
+        n += snprintf(detail + n, sizeof detail - (size_t)n, ",\"onset_t\":%.17g", to);
     snprintf(detail + n, sizeof detail - (size_t)n, "}");
     events_insert(w, j->q, "drift", detail);
 }

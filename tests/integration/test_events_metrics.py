@@ -133,7 +133,9 @@ def check_event(e):
     assert abs(e["at"] - time.time()) < 600, f"event time is not now-ish: {e}"
     assert e["kind"] in ("create", "checkpoint", "rollback", "drift", "recovered", "quarantined",
                          "drop", "start", "stop", "commit_failed", "audit", "retention",
-                         "purge"), e
+                         "purge", "drift_cleared", "input_frozen", "input_frozen_cleared",
+                         "input_out_of_range", "input_out_of_range_cleared", "source_silent",
+                         "source_silent_cleared", "diverged"), e
     assert isinstance(e["detail"], dict), e
     if e["kind"] == "audit":
         assert {"op", "by", "role"} <= set(e["detail"]), e
