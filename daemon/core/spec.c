@@ -176,8 +176,8 @@ int spec_get_double(const cJSON *it, const char *path, double *out, char *err, s
 }
 
 /* An integral number in [lo, hi] (hi <= 2^53), else as get_double or bad_param. */
-static int get_int(const cJSON *it, const char *path, double lo, double hi, uint64_t *out,
-                   char *err, size_t errlen)
+int spec_get_int(const cJSON *it, const char *path, double lo, double hi, uint64_t *out, char *err,
+                 size_t errlen)
 {
     double v = 0;
     int rc = spec_get_double(it, path, &v, err, errlen);
@@ -217,13 +217,13 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
         memcpy(p, &d, sizeof d);
         return 0;
     case F_UINT:
-        if ((rc = get_int(it, path, f->lo, f->hi < 0 ? (double)dims : f->hi, &u, err, errlen)))
+        if ((rc = spec_get_int(it, path, f->lo, f->hi < 0 ? (double)dims : f->hi, &u, err, errlen)))
             return rc;
         unsigned uv = (unsigned)u;
         memcpy(p, &uv, sizeof uv);
         return 0;
     case F_U64:
-        if ((rc = get_int(it, path, f->lo, f->hi, &u, err, errlen)))
+        if ((rc = spec_get_int(it, path, f->lo, f->hi, &u, err, errlen)))
             return rc;
         memcpy(p, &u, sizeof u);
         return 0;
@@ -650,7 +650,7 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
     /* Read before features: it bounds the number of bases. */
     s->m.feat.max_features = FEAT_DEFAULT_MAX < feat_limit ? FEAT_DEFAULT_MAX : feat_limit;
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "max_features"))) {
-        if ((rc = get_int(it, "max_features", 1, FEAT_HARD_MAX, &u, err, errlen)))
+        if ((rc = spec_get_int(it, "max_features", 1, FEAT_HARD_MAX, &u, err, errlen)))
             return rc;
         if (u > feat_limit)
             return err_fail(err, errlen, WORTH_E_TOO_LARGE,
@@ -682,7 +682,7 @@ static int parse(const cJSON *req, size_t feat_limit, spec_t *s, char *err, size
 
     s->m.max_sources = MODEL_DEFAULT_SOURCES;
     if ((it = cJSON_GetObjectItemCaseSensitive(req, "max_sources"))) {
-        if ((rc = get_int(it, "max_sources", 1, EST_MAX_SOURCES, &u, err, errlen)))
+        if ((rc = spec_get_int(it, "max_sources", 1, EST_MAX_SOURCES, &u, err, errlen)))
             return rc;
         s->m.max_sources = (size_t)u;
     }

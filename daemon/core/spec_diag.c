@@ -21,19 +21,15 @@
 /* Plant days between false alarms when the model has a control period and states none. */
 #define DEFAULT_FALSE_ALARM_DAYS 90.0
 
-/* An integral number in [lo, hi], else bad_number or bad_param. */
+/* An integral number in [lo, hi] (spec_get_int), as an unsigned. */
 static int get_uint(const cJSON *f, const char *path, double lo, double hi, unsigned *out,
                     char *err, size_t errlen)
 {
-    double v = 0;
-    int rc = spec_get_double(f, path, &v, err, errlen);
-    if (rc)
-        return rc;
-    if (v != floor(v) || v < lo || v > hi)
-        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be an integer %.0f..%.0f", path,
-                        lo, hi);
-    *out = (unsigned)v;
-    return 0;
+    uint64_t v = 0;
+    int rc = spec_get_int(f, path, lo, hi, &v, err, errlen);
+    if (rc == 0)
+        *out = (unsigned)v;
+    return rc;
 }
 
 /* A finite number > 0 (and <= hi), else bad_number or bad_param. */

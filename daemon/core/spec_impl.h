@@ -40,21 +40,22 @@ struct field {
 /* At most SHOW_MAX bytes of a client's string, made printable, in buf (SHOW_MAX + 4 bytes). */
 const char *spec_show(const char *s, char *buf);
 /* bad_request naming the first member of obj not in the n fields of t. */
-int spec_check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path,
-                    char *err, size_t errlen);
+int spec_check_keys(const cJSON *obj, const struct field *t, size_t n, const char *path, char *err,
+                    size_t errlen);
 /* A finite number at path into *out, or bad_number / bad_request. */
 int spec_get_double(const cJSON *it, const char *path, double *out, char *err, size_t errlen);
+/* An integral number in [lo, hi] (hi <= 2^53) at path, else as spec_get_double or bad_param. */
+int spec_get_int(const cJSON *it, const char *path, double lo, double hi, uint64_t *out, char *err,
+                 size_t errlen);
 /* A string at path into *out (borrowed from the tree), or bad_request. */
-int spec_get_string(const cJSON *it, const char *path, const char **out, char *err,
-                    size_t errlen);
+int spec_get_string(const cJSON *it, const char *path, const char **out, char *err, size_t errlen);
 /* Adds v under key (key NULL: to an array) with the fewest digits that read back; 0 or -1. */
 int spec_add_double(cJSON *obj, const char *key, double v);
 /* Adds an integer under key; 0 or -1. */
 int spec_add_u64(cJSON *obj, const char *key, uint64_t v);
 
 /* spec_meta.c */
-int spec_parse_named_dims(const cJSON *req, const cJSON *arr, spec_t *s, char *err,
-                          size_t errlen);
+int spec_parse_named_dims(const cJSON *req, const cJSON *arr, spec_t *s, char *err, size_t errlen);
 int spec_parse_plant(const cJSON *req, spec_t *s, char *err, size_t errlen);
 int spec_print_dims(cJSON *root, const spec_t *s);
 int spec_print_plant(cJSON *root, const spec_t *s);
