@@ -133,11 +133,7 @@ static queue_rec_t *rec_at(struct learner *l, uint64_t k)
 /* Hands the history rows gathered to the writer, now that the estimators are whole. */
 static void hist_store(struct learner *l)
 {
-    est_stats_t st[MODEL_MAX_EST];
-    for (size_t i = 0; i < l->n_est; i++)
-        est_stats(model_est(l->m, i), &st[i]);
-    history_buf_fill(l->hist, st);
-    history_buf_flush(l->hist, l->o.writer, l->q, wall_s());
+    history_buf_store(l->hist, l->m, l->o.writer, l->q, wall_s());
 }
 
 double learner_history_width(const struct learner *l)
@@ -145,23 +141,10 @@ double learner_history_width(const struct learner *l)
     return l->meta.period_s > 0 ? HISTORY_PERIODS * l->meta.period_s : HISTORY_DEFAULT_S;
 }
 
-/*
- * Takes a history row when the transitions observed (in order, with their
- * diagnostics: model_replay's stage C) reach a new bucket; its realised-return
- * figures are those of this transition, its RMS TD error comes at the next
- * publish.
- */
+/* Takes a history row when the transitions observed (in order) reach a new bucket. */
 static void hist_take(struct learner *l, const queue_rec_t *r)
 {
-    if (!history_buf_due(l->hist, r->seq, r->t_s, learner_history_width(l)))
-        return;
-    double realised[MODEL_MAX_EST];
-    for (size_t i = 0; i < l->n_est; i++) {
-        diag_est_t de;
-        diag_est(model_diag(l->m), i, &de);
-        realised[i] = de.n ? de.rms_window : NAN;
-    }
-    history_buf_add(l->hist, r->seq, wall_s(), realised);
+    history_buf_take(l->hist, l->m, r->seq, r->t_s, learner_history_width(l), wall_s());
 }
 
 /* Fills the back snapshot from the model and swaps it to the front.  Learner thread. */

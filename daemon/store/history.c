@@ -13,6 +13,7 @@
 #include "common/say.h"
 #include "core/queue.h"
 #include "store/db.h"
+#include "learn/diag.h"
 #include "store/history.h"
 #include "store/wr.h"
 #include "worth/errors.h"
@@ -306,4 +307,28 @@ void history_buf_flush(struct history_buf *hb, struct writer *w, struct queue *q
     hb->n -= hb->filled;
     hb->filled = 0;
     hb->flushed = now;
+}
+
+void history_buf_take(struct history_buf *hb, const struct model *m, uint64_t seq, double t_s,
+                      double width_s, double now)
+{
+    if (!history_buf_due(hb, seq, t_s, width_s))
+        return;
+    double realised[MODEL_MAX_EST];
+    for (size_t i = 0; i < hb->n_est; i++) {
+        diag_est_t de;
+        diag_est(model_diag(m), i, &de);
+        realised[i] = de.n ? de.rms_window : NAN;
+    }
+    history_buf_add(hb, seq, now, realised);
+}
+
+void history_buf_store(struct history_buf *hb, const struct model *m, struct writer *w,
+                       struct queue *q, double now)
+{
+    est_stats_t st[MODEL_MAX_EST];
+    for (size_t i = 0; i < hb->n_est; i++)
+        est_stats(model_est(m, i), &st[i]);
+    history_buf_fill(hb, st);
+    history_buf_flush(hb, w, q, now);
 }

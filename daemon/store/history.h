@@ -74,6 +74,16 @@ int history_buf_ripe(const struct history_buf *hb, double now);
 /* Hands the rows (filled) to the writer for model q. */
 void history_buf_flush(struct history_buf *hb, struct writer *w, struct queue *q, double now);
 
+/*
+ * At the transition seq (its t: t_s) observed with its diagnostics (stage C):
+ * takes a row with the realised-return figures of m when a new bucket opens.
+ */
+void history_buf_take(struct history_buf *hb, const struct model *m, uint64_t seq, double t_s,
+                      double width_s, double now);
+/* Fills the rows with m's estimators' RMS TD error (m whole: flushed) and hands them over. */
+void history_buf_store(struct history_buf *hb, const struct model *m, struct writer *w,
+                       struct queue *q, double now);
+
 /* Stores n rows of model q with n_est estimators each (copied; any thread). */
 void writer_history_store(struct writer *w, struct queue *q, const history_row_t *rows, size_t n,
                           size_t n_est);
