@@ -2,7 +2,8 @@
  * options.c - the one table of worthd's options, and everything made from it
  * (options.h): the command-line parser, the config file's keys, --help,
  * --check-config, the sample config (--print-config) and the man page's
- * OPTIONS section (--print-man-options).
+ * OPTIONS section (--print-man-options); the defaults and those texts are in
+ * options_help.c.
  *
  * Main thread at start-up; options_reload on the loop thread (SIGHUP).  Each
  * row names its option (the config key is the same name), its argument, its
@@ -45,44 +46,13 @@
 
 /* Longest line of the config file. */
 #define LINE_MAX_BYTES 4096
-/* Column at which --help starts an option's text, and the width it wraps at. */
-#define HELP_COL   28
-#define HELP_WIDTH 100
 
-enum kind {
-    K_STR,   /* const char *: a path or address */
-    K_FLAG,  /* int 0/1; in the file: true, false, yes, no, 1, 0 */
-    K_SIZE,  /* size_t within [lo, hi], times scale */
-    K_U64,   /* uint64_t within [lo, hi] */
-    K_UINT,  /* unsigned within [lo, hi] */
-    K_DAYS,  /* double within [lo, hi] */
-    K_SYNC,  /* int sync_full: full or normal */
-    K_LEVEL, /* int log_level: error, warn, info, debug */
-    K_MODE,  /* unsigned file_mode: 0600 or 0640 */
-    K_ROLE,  /* int role: read, write, admin */
-    K_CMD,   /* command line only: no field */
-};
-
-/* Command-line-only options (K_CMD), by their index in `table`. */
-enum { C_CONFIG = 1, C_CHECK, C_PRINT_CONFIG, C_PRINT_MAN, C_HELP, C_VERSION };
-
-typedef struct opt_def {
-    const char *name; /* --NAME and the config key NAME */
-    const char *arg;  /* its argument's name, NULL for a flag */
-    enum kind kind;
-    size_t off;       /* offsetof(config_t, ...) */
-    uint64_t lo, hi;  /* bounds of a number (K_DAYS: whole days) */
-    uint64_t scale;   /* stored = given x scale (0: 1) */
-    int live;         /* a reload applies it */
-    int cmd;          /* K_CMD: which (C_...) */
-    const char *def;  /* the default in words, when it is not simply the value */
-    const char *help; /* sentences, without the default and the bounds */
-} opt_def_t;
+#include "options_impl.h"
 
 #define F(field) offsetof(config_t, field)
 
 /* clang-format off */
-static const opt_def_t table[] = {
+const opt_def_t opt_table[] = {
     /* where things are */
     {"socket", "PATH", K_STR, F(socket_path), 0, 0, 0, 0, 0,
      "$RUNTIME_DIRECTORY/worthd.sock when set, else ./worthd.sock",
@@ -193,22 +163,12 @@ static const opt_def_t table[] = {
     {"version", NULL, K_CMD, 0, 0, 0, 0, 0, C_VERSION, NULL, "Print the version."},
 };
 /* clang-format on */
-#define N_OPTS (sizeof table / sizeof table[0])
-
-struct options {
-    int argc;
-    char **argv;         /* borrowed: main's */
-    const char *file;    /* the config file read, or NULL */
-    int file_given;      /* --config named it (then it must exist) */
-    config_t *live;      /* the configuration running (options_load's cfg) */
-    struct roles *roles; /* live->roles */
-    char **pool;         /* every string live points to */
-    size_t n_pool, cap_pool;
-};
+#define N_OPTS (sizeof opt_table / sizeof opt_table[0])
+const size_t opt_count = N_OPTS;
 
 /* ---- values ------------------------------------------------------------------------------ */
 
-static char *pool_dup(struct options *o, const char *s, size_t len)
+char *opt_pool_dup(struct options *o, const char *s, size_t len)
 {
     if (o->n_pool == o->cap_pool) {
         o->cap_pool = o->cap_pool ? 2 * o->cap_pool : 32;
@@ -241,7 +201,7 @@ static int set_value(struct options *o, config_t *c, const opt_def_t *d, const c
 {
     switch (d->kind) {
     case K_STR:
-        *(const char **)at(c, d) = pool_dup(o, v, strlen(v));
+        *(const char **)at(c, d) = opt_pool_dup(o, v, strlen(v));
         return 0;
     case K_FLAG:
         if (!v || strcmp(v, "true") == 0 || strcmp(v, "yes") == 0 || strcmp(v, "1") == 0)
@@ -327,7 +287,7 @@ static int set_value(struct options *o, config_t *c, const opt_def_t *d, const c
 }
 
 /* Writes d's value in c as text (as a config file would hold it) into buf. */
-static void show_value(const config_t *c, const opt_def_t *d, char *buf, size_t len)
+void opt_show_value(const config_t *c, const opt_def_t *d, char *buf, size_t len)
 {
     switch (d->kind) {
     case K_STR: {
@@ -375,240 +335,9 @@ static void show_value(const config_t *c, const opt_def_t *d, char *buf, size_t 
 static int same_value(const config_t *a, const config_t *b, const opt_def_t *d)
 {
     char x[4200], y[4200];
-    show_value(a, d, x, sizeof x);
-    show_value(b, d, y, sizeof y);
+    opt_show_value(a, d, x, sizeof x);
+    opt_show_value(b, d, y, sizeof y);
     return strcmp(x, y) == 0;
-}
-
-/* ---- defaults ---------------------------------------------------------------------------- */
-
-/* The first directory of a systemd directory variable ("a:b" lists several), or NULL. */
-static const char *first_dir(const char *var, char *buf, size_t len)
-{
-    const char *v = getenv(var);
-    if (!v || !*v)
-        return NULL;
-    size_t n = strcspn(v, ":");
-    if (n == 0 || n >= len)
-        return NULL;
-    memcpy(buf, v, n);
-    buf[n] = 0;
-    return buf;
-}
-
-static void defaults(struct options *o, config_t *c)
-{
-    *c = (config_t){
-        .socket_path = "./worthd.sock",
-        .max_line = 1u << 20,
-        .max_batch = 65536,
-        .queue = 262144,
-        .max_models = 256,
-        .db_path = "./worthd.db",
-        .sync_full = 1,
-        .checkpoint_every = 100000,
-        .keep = 10,
-        .max_conns = 1024,
-        .send_timeout_s = 30,
-        .max_features = 65536,
-        .max_model_mb = 2048,
-        .max_buffer_mb = 256,
-        .auth_timeout_s = 10,
-        .max_unauthed = 64,
-        .unix_slots = 32,
-        .max_query_work = 64000000,
-        .file_mode = 0600,
-        .unix_role = ROLE_ADMIN,
-        .log_level = SAY_INFO,
-        .retain_every_s = 3600,
-    };
-    char dir[4096], path[4200];
-    if (first_dir("RUNTIME_DIRECTORY", dir, sizeof dir)) {
-        snprintf(path, sizeof path, "%s/worthd.sock", dir);
-        c->socket_path = pool_dup(o, path, strlen(path));
-    }
-    if (first_dir("STATE_DIRECTORY", dir, sizeof dir)) {
-        snprintf(path, sizeof path, "%s/worthd.db", dir);
-        c->db_path = pool_dup(o, path, strlen(path));
-    }
-    /* systemd's LoadCredential=token:...: the token file, when no other is given. */
-    if (first_dir("CREDENTIALS_DIRECTORY", dir, sizeof dir)) {
-        snprintf(path, sizeof path, "%s/token", dir);
-        if (access(path, R_OK) == 0)
-            c->token_file = pool_dup(o, path, strlen(path));
-    }
-}
-
-/* ---- help -------------------------------------------------------------------------------- */
-
-/* The default of d in words: its own text, or the value in the defaults. */
-static void default_text(struct options *o, const opt_def_t *d, char *buf, size_t len)
-{
-    if (d->def) {
-        snprintf(buf, len, "%s", d->def);
-        return;
-    }
-    config_t c;
-    defaults(o, &c);
-    show_value(&c, d, buf, len);
-}
-
-/* Bounds of a number in words ("256..1073741824"), or "". */
-static void bounds_text(const opt_def_t *d, char *buf, size_t len)
-{
-    buf[0] = 0;
-    if (d->kind == K_SIZE || d->kind == K_U64 || d->kind == K_UINT || d->kind == K_DAYS)
-        snprintf(buf, len, "%llu..%llu", (unsigned long long)d->lo, (unsigned long long)d->hi);
-}
-
-/* The whole text of an option: help, then "(BOUNDS; default DEF)". */
-static void full_help(struct options *o, const opt_def_t *d, char *buf, size_t len)
-{
-    char def[512], b[64];
-    bounds_text(d, b, sizeof b);
-    if (d->kind == K_CMD && !d->def) {
-        snprintf(buf, len, "%s", d->help);
-        return;
-    }
-    default_text(o, d, def, sizeof def);
-    snprintf(buf, len, "%s (%s%sdefault %s)%s", d->help, b, b[0] ? "; " : "", def,
-             d->live ? " [reloaded by SIGHUP]" : "");
-}
-
-/* Prints text wrapped at HELP_WIDTH, its lines after the first indented by HELP_COL. */
-static void wrap(FILE *f, const char *text, size_t col)
-{
-    size_t x = col;
-    for (const char *p = text; *p;) {
-        while (*p == ' ')
-            p++;
-        size_t w = strcspn(p, " ");
-        if (x > HELP_COL && x + 1 + w > HELP_WIDTH) {
-            fprintf(f, "\n%*s", HELP_COL, "");
-            x = HELP_COL;
-        } else if (x > col || (x == col && p != text && x > HELP_COL)) {
-            fputc(' ', f);
-            x++;
-        }
-        fwrite(p, 1, w, f);
-        x += w;
-        p += w;
-    }
-    fputc('\n', f);
-}
-
-static void print_help(struct options *o, FILE *f)
-{
-    fputs("usage: worthd [options]\n"
-          "\n"
-          "Learns the value of a running policy from the transitions a plant gateway\n"
-          "sends, and answers value queries (see schema/protocol.md, and worthd(8)).\n"
-          "Every option may also be a key of the config file (but those of the command line\n"
-          "only, from --config on); the command line overrides the file.\n"
-          "\n"
-          "options:\n",
-          f);
-    for (size_t i = 0; i < N_OPTS; i++) {
-        const opt_def_t *d = &table[i];
-        char head[80], text[2048];
-        snprintf(head, sizeof head, "  --%s%s%s", d->name, d->arg ? " " : "", d->arg ? d->arg : "");
-        full_help(o, d, text, sizeof text);
-        fputs(head, f);
-        size_t x = strlen(head);
-        if (x + 2 > HELP_COL) {
-            fprintf(f, "\n%*s", HELP_COL, "");
-            x = HELP_COL;
-        } else {
-            fprintf(f, "%*s", (int)(HELP_COL - x), "");
-            x = HELP_COL;
-        }
-        wrap(f, text, x);
-    }
-    fputs("\nSignals: TERM, INT and QUIT stop cleanly; HUP reloads what can change live (marked\n"
-          "above) and logs what needs a restart; USR1 logs a status line.\n"
-          "Exit status: 0 after a clean stop, 1 when worthd could not start, 2 for a bad\n"
-          "command line, 78 for a bad config file.\n"
-          "\n"
-          "Estimates are advisory: never use them in a safety function.\n",
-          f);
-}
-
-/* Writes s for roff: backslashes doubled, a leading dot or quote protected. */
-static void roff(FILE *f, const char *s)
-{
-    if (*s == '.' || *s == '\'')
-        fputs("\\&", f);
-    for (; *s; s++) {
-        if (*s == '\\')
-            fputs("\\e", f);
-        else if (*s == '-')
-            fputs("\\-", f);
-        else
-            fputc(*s, f);
-    }
-}
-
-static void print_man(struct options *o, FILE *f)
-{
-    for (size_t i = 0; i < N_OPTS; i++) {
-        const opt_def_t *d = &table[i];
-        char text[2048];
-        full_help(o, d, text, sizeof text);
-        fputs(".TP\n\\fB", f);
-        roff(f, "--");
-        roff(f, d->name);
-        fputs("\\fR", f);
-        if (d->arg) {
-            fputs(" \\fI", f);
-            roff(f, d->arg);
-            fputs("\\fR", f);
-        }
-        fputs("\n", f);
-        roff(f, text);
-        fputs("\n", f);
-    }
-}
-
-static void print_sample(struct options *o, FILE *f)
-{
-    fputs("# worthd.conf - worthd's configuration (worthd(8)).\n"
-          "#\n"
-          "# Lines \"key = value\"; the keys are worthd's long options.  Every key is shown\n"
-          "# here commented out, at its default.  Options on the command line override this\n"
-          "# file; `worthd --check-config` checks it; SIGHUP (systemctl reload worthd)\n"
-          "# applies the keys marked [reloaded by SIGHUP].\n",
-          f);
-    for (size_t i = 0; i < N_OPTS; i++) {
-        const opt_def_t *d = &table[i];
-        if (d->kind == K_CMD)
-            continue;
-        char text[2048], def[512];
-        full_help(o, d, text, sizeof text);
-        fputs("\n# ", f);
-        /* The comment wrapped like the help, every line a comment. */
-        size_t x = 2;
-        for (const char *p = text; *p;) {
-            while (*p == ' ')
-                p++;
-            size_t w = strcspn(p, " ");
-            if (x > 2 && x + 1 + w > 92) {
-                fputs("\n# ", f);
-                x = 2;
-            } else if (x > 2) {
-                fputc(' ', f);
-                x++;
-            }
-            fwrite(p, 1, w, f);
-            x += w;
-            p += w;
-        }
-        if (d->def)
-            fprintf(f, "\n#%s =\n", d->name);
-        else {
-            default_text(o, d, def, sizeof def);
-            fprintf(f, "\n#%s = %s\n", d->name, def);
-        }
-    }
 }
 
 /* ---- reading ----------------------------------------------------------------------------- */
@@ -616,8 +345,8 @@ static void print_sample(struct options *o, FILE *f)
 static const opt_def_t *find(const char *name)
 {
     for (size_t i = 0; i < N_OPTS; i++)
-        if (strcmp(table[i].name, name) == 0)
-            return &table[i];
+        if (strcmp(opt_table[i].name, name) == 0)
+            return &opt_table[i];
     return NULL;
 }
 
@@ -690,7 +419,7 @@ static int read_file(struct options *o, config_t *c, const char *path, struct re
             rc = -1;
             break;
         }
-        size_t i = (size_t)(d - table);
+        size_t i = (size_t)(d - opt_table);
         if (seen[i]) {
             snprintf(rd->err, sizeof rd->err, "%s:%u: \"%s\" is given twice", path, lineno, key);
             rc = -1;
@@ -718,8 +447,9 @@ static int read_file(struct options *o, config_t *c, const char *path, struct re
 static void longopts(struct option *lo)
 {
     for (size_t i = 0; i < N_OPTS; i++)
-        lo[i] = (struct option){table[i].name, table[i].arg ? required_argument : no_argument, NULL,
-                                (int)(1000 + i)};
+        lo[i] =
+            (struct option){opt_table[i].name, opt_table[i].arg ? required_argument : no_argument,
+                            NULL, (int)(1000 + i)};
     lo[N_OPTS] = (struct option){NULL, 0, NULL, 0};
 }
 
@@ -728,7 +458,7 @@ static void longopts(struct option *lo)
 static int code_for(const struct reading *rd, const char *name, int code)
 {
     const opt_def_t *d = find(name);
-    return d && rd->given[d - table] == 1 ? OPTIONS_EX_CONFIG : code;
+    return d && rd->given[d - opt_table] == 1 ? OPTIONS_EX_CONFIG : code;
 }
 
 /*
@@ -740,7 +470,7 @@ static int check_all(struct options *o, config_t *c, struct roles **roles, struc
     (void)o;
     const opt_def_t *slots = find("unix-slots"), *queue = find("queue");
     if (c->queue < c->max_batch) {
-        if (rd->given[queue - table]) {
+        if (rd->given[queue - opt_table]) {
             snprintf(rd->err, sizeof rd->err, "--queue (%zu) must be at least --max-batch (%zu)",
                      c->queue, c->max_batch);
             rd->code = code_for(rd, "queue", 2);
@@ -760,7 +490,7 @@ static int check_all(struct options *o, config_t *c, struct roles **roles, struc
             return -1;
         }
     }
-    if (!rd->given[slots - table] && c->unix_slots > c->max_conns / 4)
+    if (!rd->given[slots - opt_table] && c->unix_slots > c->max_conns / 4)
         c->unix_slots = c->max_conns / 4; /* the default never takes more than a quarter */
     if (c->unix_slots >= c->max_conns) {
         snprintf(rd->err, sizeof rd->err, "--unix-slots (%zu) must be less than --max-conns (%zu)",
@@ -835,14 +565,14 @@ static int read_all(struct options *o, config_t *c, struct roles **roles, struct
             /* An unknown option or a missing argument: pass 2 says which. */
             continue;
         }
-        const opt_def_t *d = &table[ch - 1000];
+        const opt_def_t *d = &opt_table[ch - 1000];
         if (d->kind == K_CMD) {
             rd->cmd[d->cmd] = 1;
             if (d->cmd == C_CONFIG)
                 rd->config = optarg;
         }
     }
-    defaults(o, c);
+    opt_defaults(o, c);
     const char *file = rd->config ? rd->config : DEFAULT_CONFIG;
     o->file_given = rd->config != NULL;
     o->file = NULL;
@@ -861,14 +591,14 @@ static int read_all(struct options *o, config_t *c, struct roles **roles, struct
         if (ch < 1000) {
             if (optopt >= 1000 && optopt < 1000 + (int)N_OPTS)
                 snprintf(rd->err, sizeof rd->err, "--%s needs a value (worthd --help)",
-                         table[optopt - 1000].name);
+                         opt_table[optopt - 1000].name);
             else
                 snprintf(rd->err, sizeof rd->err, "unknown option \"%.64s\" (worthd --help)",
                          o->argv[optind - 1]);
             rd->code = 2;
             return -1;
         }
-        const opt_def_t *d = &table[ch - 1000];
+        const opt_def_t *d = &opt_table[ch - 1000];
         if (d->kind == K_CMD)
             continue;
         char label[80];
@@ -895,11 +625,11 @@ static int read_all(struct options *o, config_t *c, struct roles **roles, struct
 static void print_effective(const config_t *c, FILE *f)
 {
     for (size_t i = 0; i < N_OPTS; i++) {
-        const opt_def_t *d = &table[i];
+        const opt_def_t *d = &opt_table[i];
         if (d->kind == K_CMD)
             continue;
         char v[4200];
-        show_value(c, d, v, sizeof v);
+        opt_show_value(c, d, v, sizeof v);
         fprintf(f, "%s = %s\n", d->name, v);
     }
 }
@@ -914,16 +644,16 @@ int options_load(int argc, char **argv, config_t *cfg, struct options **out)
     int rc = read_all(o, cfg, &o->roles, rd);
     int status = OPTIONS_RUN;
     if (rd->cmd[C_HELP] && rc == 0) {
-        print_help(o, stdout);
+        opt_print_help(o, stdout);
         status = 0;
     } else if (rd->cmd[C_VERSION] && rc == 0) {
         printf("worthd %s\n", WORTH_VERSION);
         status = 0;
     } else if (rd->cmd[C_PRINT_CONFIG] && rc == 0) {
-        print_sample(o, stdout);
+        opt_print_sample(o, stdout);
         status = 0;
     } else if (rd->cmd[C_PRINT_MAN] && rc == 0) {
-        print_man(o, stdout);
+        opt_print_man(o, stdout);
         status = 0;
     } else if (rc != 0) {
         fprintf(stderr, "worthd: %s\n", rd->err);
@@ -962,12 +692,12 @@ int options_reload(struct options *o)
     config_t *live = o->live;
     int applied = 0;
     for (size_t i = 0; i < N_OPTS; i++) {
-        const opt_def_t *d = &table[i];
+        const opt_def_t *d = &opt_table[i];
         if (d->kind == K_CMD || same_value(live, &fresh, d))
             continue;
         char was[4200], now[4200];
-        show_value(live, d, was, sizeof was);
-        show_value(&fresh, d, now, sizeof now);
+        opt_show_value(live, d, was, sizeof was);
+        opt_show_value(&fresh, d, now, sizeof now);
         if (!d->live) {
             say_warn("SIGHUP: %s changed (%s -> %s) but needs a restart; it stays %s until then",
                      d->name, was[0] ? was : "none", now[0] ? now : "none", was[0] ? was : "none");
