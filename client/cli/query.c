@@ -564,6 +564,24 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         table_print(t, stdout);
         table_free(t);
     }
+    /* Each estimator's own drift test; the model's alarm follows the headline's (drift.follows). */
+    t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
+    if (t) {
+        table_rowv(t, "DRIFT", "ARMED", "ACTIVE", "RAISED", "LAST_ONSET_STEP", "STATISTIC");
+        cJSON_ArrayForEach(e, ests)
+        {
+            const cJSON *dv = json_get(e, "drift");
+            char c[5][64];
+            static const char *const k5[5] = {"armed", "active", "raised", "last_onset_step",
+                                              "statistic"};
+            for (int k = 0; k < 5; k++)
+                fmt_json(c[k], sizeof c[k], json_get(dv, k5[k]));
+            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4]);
+        }
+        printf("\n");
+        table_print(t, stdout);
+        table_free(t);
+    }
     int said = 0;
     cJSON_ArrayForEach(e, ests)
     {

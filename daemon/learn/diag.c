@@ -57,6 +57,12 @@ struct stat {
     double hw, hs; /* stored total weight; the scale (hs 0 before the first return) */
 };
 
+/* The alarm as the model reports it (diag_drift): the followed detector's view. */
+struct alarm {
+    uint64_t alarms, clears, last_alarm, last_onset, last_clear;
+    int active, side;
+};
+
 struct diag {
     diag_params_t p;
     size_t n_est, nsrc, stride; /* stride: 2 n_est + 4; 2 n_est + 2 of them saved */
@@ -67,8 +73,13 @@ struct diag {
     struct stat *st;
     double spread_ew, spread_w;
     double ret_ewsq, ret_w; /* the realised returns' own mean square, over the window */
-    uint64_t step; /* transitions seen */
-    struct drift *drift;
+    uint64_t step;          /* transitions seen */
+    /* One drift detector per estimator, each on its own TD error; the alarm follows one of
+     * them (the headline's), `at`, and keeps its own counters so that a change of headline
+     * raises or clears it as the new headline's detector says. */
+    struct drift **drift;
+    size_t at, home; /* the detector followed; the one followed after a reset */
+    struct alarm al;
 };
 
 void diag_params_default(double gamma, diag_params_t *p)
@@ -117,7 +128,9 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
     d->keep = 1.0 - 1.0 / p->window;
     d->q = mem_calloc(sources, sizeof *d->q);
     d->st = mem_calloc(n_est, sizeof *d->st);
-    d->drift = drift_new(&p->drift);
+    d->drift = mem_calloc(n_est, sizeof *d->drift);
+    for (size_t k = 0; k < n_est; k++)
+        d->drift[k] = drift_new(&p->drift);
     *out = d;
     diag_reset(d);
     return 0;
@@ -134,7 +147,16 @@ void diag_reset(struct diag *d)
     d->spread_ew = d->spread_w = 0;
     d->ret_ewsq = d->ret_w = 0;
     d->step = 0;
-    drift_reset(d->drift);
+    for (size_t k = 0; k < d->n_est; k++)
+        drift_reset(d->drift[k]);
+    d->at = d->home;
+    memset(&d->al, 0, sizeof d->al);
+}
+
+void diag_drift_home(struct diag *d, size_t i)
+{
+    if (i < d->n_est)
+        d->home = d->at = i;
 }
 
 void diag_free(struct diag *d)
@@ -145,7 +167,9 @@ void diag_free(struct diag *d)
         mem_free(d->q[s].e);
     mem_free(d->q);
     mem_free(d->st);
-    drift_free(d->drift);
+    for (size_t k = 0; k < d->n_est; k++)
+        drift_free(d->drift[k]);
+    mem_free(d->drift);
     mem_free(d);
 }
 
@@ -271,11 +295,43 @@ static void score(struct diag *d, const double *e, double G, const double *pred)
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td)
 {
-    return diag_observe_sd(d, src, pred, NULL, r, g, terminal, td);
+    double tds[DIAG_MAX_EST];
+    for (size_t k = 0; k < d->n_est && k < DIAG_MAX_EST; k++)
+        tds[k] = k == d->at ? td : NAN;
+    return diag_observe_sd(d, src, pred, NULL, r, g, terminal, tds, d->at);
+}
+
+/* Every detector takes its estimator's TD error; the alarm then follows detector `head`: it is
+ * raised when that one is active and the alarm is not, cleared in the opposite case (whether
+ * the detector changed state or the headline changed detector).  Returns 1 raised, 2 cleared. */
+static int follow(struct diag *d, const double *td, size_t head)
+{
+    for (size_t k = 0; td && k < d->n_est; k++)
+        drift_observe(d->drift[k], d->step, td[k]);
+    if (head < d->n_est)
+        d->at = head;
+    diag_drift_t now;
+    drift_get(d->drift[d->at], &now);
+    struct alarm *a = &d->al;
+    if (now.active && !a->active) {
+        a->active = 1;
+        a->side = now.side;
+        a->alarms++;
+        a->last_alarm = d->step;
+        a->last_onset = now.last_onset;
+        return 1;
+    }
+    if (!now.active && a->active) {
+        a->active = 0;
+        a->clears++;
+        a->last_clear = d->step;
+        return 2;
+    }
+    return 0;
 }
 
 int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double *sd, double r,
-                    double g, int terminal, double td)
+                    double g, int terminal, const double *td, size_t head)
 {
     d->step++;
     double lo = INFINITY, hi = -INFINITY;
@@ -330,7 +386,7 @@ int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double
         q->count--;
         q->front--;
     }
-    return drift_observe(d->drift, d->step, td);
+    return follow(d, td, head);
 }
 
 const diag_params_t *diag_params(const struct diag *d)
@@ -373,7 +429,25 @@ double diag_returns_rms(const struct diag *d)
 
 void diag_drift(const struct diag *d, diag_drift_t *out)
 {
-    drift_get(d->drift, out);
+    drift_get(d->drift[d->at], out);
+    const struct alarm *a = &d->al;
+    out->alarms = a->alarms;
+    out->clears = a->clears;
+    out->last_alarm = a->last_alarm;
+    out->last_onset = a->last_onset;
+    out->last_clear = a->last_clear;
+    out->active = a->active;
+    out->side = a->side;
+}
+
+void diag_drift_est(const struct diag *d, size_t i, diag_drift_t *out)
+{
+    drift_get(d->drift[i < d->n_est ? i : d->at], out);
+}
+
+size_t diag_drift_followed(const struct diag *d)
+{
+    return d->at;
 }
 
 double diag_spread(const struct diag *d)
@@ -402,7 +476,7 @@ void diag_save(const struct diag *d, ser_w *w)
     }
     ser_put_f64(w, d->spread_ew);
     ser_put_f64(w, d->spread_w);
-    drift_save(d->drift, w);
+    drift_save(d->drift[0], w);
     /* Format 3: coverage and the error histogram. */
     for (size_t k = 0; k < d->n_est; k++) {
         const struct stat *s = &d->st[k];
@@ -414,6 +488,29 @@ void diag_save(const struct diag *d, ser_w *w)
     }
     ser_put_f64(w, d->ret_ewsq);
     ser_put_f64(w, d->ret_w);
+    /* Format 4: the other estimators' detectors, the one followed and the alarm's counters. */
+    for (size_t k = 1; k < d->n_est; k++)
+        drift_save(d->drift[k], w);
+    const struct alarm *a = &d->al;
+    uint64_t v[8] = {d->at,         a->alarms,     a->clears,           a->last_alarm,
+                     a->last_onset, a->last_clear, (uint64_t)a->active, (uint64_t)(a->side + 1)};
+    for (size_t i = 0; i < 8; i++)
+        ser_put_u64(w, v[i]);
+}
+
+/* Formats 1-3 kept one detector, the primary's: it was read into slot 0; it belongs to the
+ * home slot, the others start again, and the alarm takes its counters. */
+static int old_drift(struct diag *d, ser_r *r)
+{
+    struct drift *t = d->drift[0];
+    d->drift[0] = d->drift[d->home];
+    d->drift[d->home] = t;
+    d->at = d->home;
+    diag_drift_t o;
+    drift_get(t, &o);
+    d->al = (struct alarm){o.alarms,     o.clears, o.last_alarm, o.last_onset,
+                           o.last_clear, o.active, o.side};
+    return r->err ? -1 : 0;
 }
 
 int diag_load(struct diag *d, ser_r *r, unsigned version)
@@ -466,7 +563,7 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
     }
     d->spread_ew = ser_get_f64(r);
     d->spread_w = ser_get_f64(r);
-    if (drift_load(d->drift, r, version))
+    if (drift_load(d->drift[0], r, version))
         return -1;
     for (size_t k = 0; version >= 3 && k < d->n_est && !r->err; k++) {
         struct stat *s = &d->st[k];
@@ -481,5 +578,19 @@ int diag_load(struct diag *d, ser_r *r, unsigned version)
         d->ret_ewsq = ser_get_f64(r);
         d->ret_w = ser_get_f64(r);
     }
+    if (version < 4)
+        return old_drift(d, r);
+    for (size_t k = 1; k < d->n_est && !r->err; k++)
+        if (drift_load(d->drift[k], r, version))
+            return -1;
+    uint64_t v[8];
+    for (size_t i = 0; i < 8; i++)
+        v[i] = ser_get_u64(r);
+    struct alarm *a = &d->al;
+    if (v[0] >= d->n_est || v[7] > 2)
+        r->err = 1;
+    d->at = r->err ? d->home : (size_t)v[0];
+    a->alarms = v[1], a->clears = v[2], a->last_alarm = v[3], a->last_onset = v[4];
+    a->last_clear = v[5], a->active = v[6] != 0, a->side = r->err ? 0 : (int)v[7] - 1;
     return r->err ? -1 : 0;
 }

@@ -20,8 +20,12 @@
  * sample) is cover_95; inside V +- 2 RMS (what a Gaussian error would give),
  * cover_rms2.
  *
- * Drift: the diagnostics feed the primary estimator's TD error to the drift
- * detector (drift.h), which they own and save.
+ * Drift: every estimator has a drift detector (drift.h) on its own TD error,
+ * owned and saved here.  The model's drift alarm follows the detector of the
+ * headline estimator (health.h): it is raised when that detector is active
+ * and the alarm is not, and cleared in the opposite case, so a change of
+ * headline moves the alarm to a detector that has been warm all along
+ * instead of starting a new reference on another scale.
  *
  * Owned by a model; updated on its learner thread; allocates a source's
  * buffer when the source is first seen, nothing per transition afterwards.
@@ -34,6 +38,9 @@
 #include <stdint.h>
 
 #include "learn/drift.h"
+
+/* Most estimators a model has (model.h's MODEL_MAX_EST). */
+#define DIAG_MAX_EST 16
 #include "learn/ser.h"
 
 struct diag;
@@ -83,7 +90,7 @@ void diag_reset(struct diag *d);
 
 /*
  * One transition of source src: pred holds each estimator's V(x) before the
- * update, r and g the reward and discount, td the primary estimator's TD
+ * update, r and g the reward and discount, td the followed estimator's TD
  * error.  A NAN in pred marks an estimator that has diverged (est_last_value):
  * it is left out of the spread and its realised figures freeze; a NAN td
  * leaves the drift test alone.  Returns 1 when the drift alarm fired on this
@@ -91,15 +98,24 @@ void diag_reset(struct diag *d);
  */
 int diag_observe(struct diag *d, size_t src, const double *pred, double r, double g, int terminal,
                  double td);
-/* diag_observe, with sd[k] estimator k's own sd at x (NAN: none; sd NULL: none at all). */
+/* diag_observe, with sd[k] estimator k's own sd at x (NAN: none; sd NULL: none at all), td[k]
+ * estimator k's TD error (NAN: none; td NULL: none at all), and the drift alarm following the
+ * detector of estimator `head` (the headline before this transition). */
 int diag_observe_sd(struct diag *d, size_t src, const double *pred, const double *sd, double r,
-                    double g, int terminal, double td);
+                    double g, int terminal, const double *td, size_t head);
 
 /* Query */
 const diag_params_t *diag_params(const struct diag *d);
 unsigned diag_horizon(const struct diag *d);
 void diag_est(const struct diag *d, size_t i, diag_est_t *out);
+/* The drift alarm: the followed detector's statistic, the alarm's own counters and state. */
 void diag_drift(const struct diag *d, diag_drift_t *out);
+/* Estimator i's own detector (its counters are its own, not the alarm's). */
+void diag_drift_est(const struct diag *d, size_t i, diag_drift_t *out);
+/* The estimator whose detector the alarm follows now. */
+size_t diag_drift_followed(const struct diag *d);
+/* The estimator followed from the start and after a reset (the model's first headline). */
+void diag_drift_home(struct diag *d, size_t i);
 /* Running mean of the spread (max - min) of the predictions of the estimators not
  * diverged (steps where every one had diverged are left out). */
 double diag_spread(const struct diag *d);

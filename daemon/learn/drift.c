@@ -1,5 +1,5 @@
 /*
- * drift.c - the CUSUM drift alarm on the primary estimator's TD error (see drift.h).
+ * drift.c - the CUSUM drift alarm on one estimator's TD error (see drift.h).
  *
  * Owns only scalars: the batch being filled, the running reference (mean,
  * winsorised variance, lag-1 covariance of the batch means), the two sums

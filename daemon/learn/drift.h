@@ -1,7 +1,8 @@
 /*
  * drift.h - did the plant change?  A CUSUM alarm with a stated false-alarm rate.
  *
- * The statistic: the primary estimator's TD error, averaged over batches of
+ * The statistic: one estimator's TD error (diag.c runs one detector per
+ * estimator and follows the headline's), averaged over batches of
  * `batch` transitions (a batch mean is nearly normal and far less
  * autocorrelated than the errors it averages), standardised by a running
  * reference: its mean, a winsorised variance (deviations clipped at 4 sd, so

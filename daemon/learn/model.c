@@ -107,8 +107,10 @@ int model_new(const model_spec_t *spec, struct model **out, char *err, size_t er
         goto out_free_model;
     m->pred = mem_calloc(m->n_est, sizeof *m->pred);
     m->sd = mem_calloc(m->n_est, sizeof *m->sd);
+    m->td = mem_calloc(m->n_est, sizeof *m->td);
     m->st = mem_calloc(m->n_est, sizeof *m->st);
     m->health = health_new(m->n_est, m->n, spec->primary_auto, spec->primary, spec->est);
+    diag_drift_home(m->diag, health_headline(m->health));
     m->sources = mem_calloc(nsrc, sizeof *m->sources);
     m->phi = mem_calloc(m->n, sizeof *m->phi);
     m->phin = mem_calloc(m->n, sizeof *m->phin);
@@ -148,6 +150,7 @@ void model_free(struct model *m)
     health_free(m->health);
     mem_free(m->pred);
     mem_free(m->sd);
+    mem_free(m->td);
     mem_free(m->st);
     mem_free(m->sources);
     mem_free(m->phi);
@@ -259,10 +262,11 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
         /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it
          * (NAN once the estimator has diverged: the diagnostics then leave it out). */
         m->pred[i] = est_last_value(m->est[i]);
+        m->td[i] = est_last_td(m->est[i]);
         est_stats(m->est[i], &m->st[i]);
     }
-    double td = est_last_td(m->est[m->primary]);
-    diag_observe_sd(m->diag, (size_t)slot, m->pred, m->sd, t->r, g, t->terminal, td);
+    diag_observe_sd(m->diag, (size_t)slot, m->pred, m->sd, t->r, g, t->terminal, m->td,
+                    health_headline(m->health));
     health_update(m->health, m->st, m->diag);
     m->applied++;
     return 0;

@@ -25,7 +25,7 @@ struct model;
 /* Longest estimator or source name, in bytes, without the NUL. */
 #define MODEL_NAME_MAX 63
 /* Most estimators one model runs side by side. */
-#define MODEL_MAX_EST 16
+#define MODEL_MAX_EST DIAG_MAX_EST /* 16 */
 /* Source slots when the spec gives none. */
 #define MODEL_DEFAULT_SOURCES 16
 /* Version of the byte format written by model_save (2: the diagnostics save each
@@ -34,8 +34,10 @@ struct model;
  * detector is a CUSUM (drift_save, in place of the Page-Hinkley state); the diagnostics add
  * each pending step's sd, the coverage figures and the error histogram; the headline's
  * choice (health_save) follows them.  Formats 1 and 2 still load: the old detector's state
- * is read and restarted as the CUSUM (drift_load), no sd, no coverage, headline reset. --- */
-#define MODEL_FORMAT_VERSION 3
+ * is read and restarted as the CUSUM (drift_load), no sd, no coverage, headline reset.
+ * Format 4: every estimator has its drift detector, the alarm follows the headline's
+ * (diag.h); a format-3 detector is the primary's, the others start again. --- */
+#define MODEL_FORMAT_VERSION 4
 /* Oldest format model_load still reads. */
 #define MODEL_FORMAT_OLDEST 1
 

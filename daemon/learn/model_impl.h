@@ -27,6 +27,7 @@ struct model {
     double *phi, *phin, *work; /* learner workspaces */
     double *pred;              /* each estimator's V(x) before an update */
     double *sd;                /* and its own sd there (NAN: none) */
+    double *td;                /* and its TD error (the drift detectors') */
     est_stats_t *st;           /* and its counters after the update (health_update) */
     struct diag *diag;
     struct health *health; /* the verdicts and the headline */

@@ -65,7 +65,7 @@ struct chunk {
     double *pred;       /* cap x n_est: each estimator's V(x) before its update */
     double *sd;         /* cap x n_est: and its own sd there (NAN: none) */
     est_stats_t *st;    /* cap x n_est: and its counters after the update */
-    double *td;         /* cap: the primary estimator's TD error */
+    double *td;         /* cap x n_est: each estimator's TD error */
 };
 
 struct worker {
@@ -131,8 +131,7 @@ static void learn_chunk(struct model *m, struct chunk *c, const size_t *est, siz
             CHECK(rc == 0); /* stage A validated it */
             c->pred[t * ne + i] = est_last_value(e);
             est_stats(e, &c->st[t * ne + i]);
-            if (i == m->primary)
-                c->td[t] = est_last_td(e);
+            c->td[t * ne + i] = est_last_td(e);
         }
     }
 }
@@ -143,7 +142,7 @@ static void finish_chunk(struct model_replay *r, struct chunk *c)
     struct model *m = r->m;
     for (size_t t = 0; t < c->count; t++) {
         diag_observe_sd(m->diag, c->slot[t], c->pred + t * m->n_est, c->sd + t * m->n_est, c->r[t],
-                        c->g[t], c->term[t], c->td[t]);
+                        c->g[t], c->term[t], c->td + t * m->n_est, health_headline(m->health));
         health_update(m->health, c->st + t * m->n_est, m->diag);
         m->applied++;
         if (r->after)
@@ -224,7 +223,7 @@ static void chunk_init(struct chunk *c, size_t cap, size_t n, size_t n_est)
     c->pred = mem_alloc(cap * n_est * sizeof *c->pred);
     c->sd = mem_alloc(cap * n_est * sizeof *c->sd);
     c->st = mem_alloc(cap * n_est * sizeof *c->st);
-    c->td = mem_alloc(cap * sizeof *c->td);
+    c->td = mem_alloc(cap * n_est * sizeof *c->td);
 }
 
 static void chunk_free(struct chunk *c)

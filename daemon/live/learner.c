@@ -62,7 +62,8 @@ struct snap {
     diag_est_t realised[MODEL_MAX_EST];
     health_est_t health[MODEL_MAX_EST];
     health_head_t head;
-    diag_drift_t drift;
+    diag_drift_t drift, drift_est[MODEL_MAX_EST];
+    size_t drift_follows;
     double spread, returns_rms;
     double last_update;
     double plant_t;
@@ -159,7 +160,9 @@ static void publish(struct learner *l, double last_update)
         est_stats(model_est(l->m, i), &b->est[i]);
         diag_est(dg, i, &b->realised[i]);
         model_est_health(l->m, i, &b->health[i]);
+        diag_drift_est(dg, i, &b->drift_est[i]);
     }
+    b->drift_follows = diag_drift_followed(dg);
     model_head(l->m, &b->head);
     b->returns_rms = diag_returns_rms(dg);
     diag_drift(dg, &b->drift);
@@ -775,6 +778,8 @@ void learner_stats(struct learner *l, learner_stats_t *out)
     out->head = s->head;
     out->returns_rms = s->returns_rms;
     out->drift = s->drift;
+    memcpy(out->drift_est, s->drift_est, sizeof out->drift_est);
+    out->drift_follows = s->drift_follows;
     out->spread = s->spread;
     out->horizon = diag_horizon(model_diag(l->m));
     out->last_update = s->last_update;

@@ -51,12 +51,14 @@ typedef struct learner_stats_t {
     health_est_t health[MODEL_MAX_EST]; /* each estimator's verdict (learn/health.h) */
     health_head_t head;                 /* the headline estimator and why */
     double returns_rms;                 /* RMS of the realised returns over the window */
-    diag_drift_t drift;                 /* the drift detector */
-    double spread;                      /* running spread of the estimators' predictions */
-    unsigned horizon;                   /* steps after which a continuing return is known */
-    uint64_t checkpoints;               /* valid checkpoints stored (as the writer last saw) */
-    double newest_checkpoint_at;        /* created_at of the newest, 0 for none */
-    double last_update;                 /* wall clock, seconds; 0 before the first update */
+    diag_drift_t drift;                 /* the drift alarm (it follows the headline's detector) */
+    size_t drift_follows;               /* the estimator whose detector it follows */
+    diag_drift_t drift_est[MODEL_MAX_EST]; /* each estimator's own detector */
+    double spread;                         /* running spread of the estimators' predictions */
+    unsigned horizon;                      /* steps after which a continuing return is known */
+    uint64_t checkpoints;                  /* valid checkpoints stored (as the writer last saw) */
+    double newest_checkpoint_at;           /* created_at of the newest, 0 for none */
+    double last_update;                    /* wall clock, seconds; 0 before the first update */
     double plant_t;  /* the t of the last transition learnt that had one; NAN: none */
     size_t n_inputs; /* input checks raised now (the first LEARNER_INPUTS_MAX listed) */
     learner_input_t inputs[LEARNER_INPUTS_MAX];

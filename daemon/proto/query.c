@@ -518,6 +518,13 @@ int do_stats(struct req *rq)
         jw_num(o, d->k95);
         jw_lit(o, ",\"half95\":");
         jw_num(o, d->half95);
+        const diag_drift_t *de = &st.drift_est[i];
+        jw_fmt(o,
+               "},\"drift\":{\"armed\":%s,\"active\":%s,\"raised\":%llu,\"last_onset_step\":%llu,"
+               "\"statistic\":",
+               de->armed ? "true" : "false", de->active ? "true" : "false",
+               (unsigned long long)de->alarms, (unsigned long long)de->last_onset);
+        jw_num(o, de->statistic);
         jw_lit(o, "}}");
     }
     jw_lit(o, "},\"primary\":{\"name\":");
@@ -536,6 +543,8 @@ int do_stats(struct req *rq)
            st.horizon, (unsigned long long)st.drift.alarms, (unsigned long long)st.drift.last_alarm,
            (unsigned long long)st.drift.last_onset, st.drift.armed ? "true" : "false");
     jw_num(o, st.drift.statistic);
+    jw_lit(o, ",\"follows\":");
+    jw_str(o, model_est_name(m, st.drift_follows));
     stats_alarms(o, &st, model_diag_params(m), learner_meta(l));
     reply_end(o, rq->c);
     return PROTO_DONE;

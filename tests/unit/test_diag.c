@@ -355,6 +355,71 @@ static void nan_td_leaves_the_drift_test_alone(void **state)
     diag_free(d);
 }
 
+/*
+ * Two estimators, each with its detector on its own TD error: estimator 1's errors shift by
+ * 3 sd at step 3000, estimator 0's never do.  While the headline is 0 the alarm stays down
+ * (detector 1 alarms on its own); when the headline moves to 1 the alarm is raised on that
+ * step, dated at detector 1's onset; back on 0 it clears.  The saved state holds both
+ * detectors and the followed one: a reload saves the same bytes and follows the same.
+ */
+static void the_alarm_follows_the_headline(void **state)
+{
+    (void)state;
+    struct diag *d = make(0.9, 20, 2);
+    rng_t g;
+    rng_init(&g, 7);
+    double pred[2] = {0, 0};
+    int raised = 0, cleared = 0;
+    uint64_t raised_at = 0;
+    for (int t = 0; t < 6000; t++) {
+        double td[2] = {normal(&g), normal(&g) + (t >= 3000 ? 3.0 : 0.0)};
+        size_t head = t < 4000 ? 0 : (t < 5000 ? 1 : 0);
+        int rc = diag_observe_sd(d, 0, pred, NULL, 0.0, 0.9, 0, td, head);
+        if (t < 4000)
+            assert_int_equal(rc, 0); /* detector 1 alarms, the alarm does not: 0 leads */
+        if (rc == 1) {
+            raised++;
+            raised_at = (uint64_t)t + 1;
+        }
+        if (rc == 2) {
+            cleared++;
+            assert_int_equal(t, 5000); /* the step the headline moves back */
+        }
+        if (t == 3999) {
+            diag_drift_t own;
+            diag_drift_est(d, 1, &own);
+            assert_true(own.alarms >= 1 && own.active);
+            assert_int_equal(diag_drift_followed(d), 0);
+        }
+    }
+    assert_int_equal(raised, 1);
+    assert_int_equal(raised_at, 4001); /* the first step with headline 1 */
+    assert_int_equal(cleared, 1);
+    diag_drift_t dr;
+    diag_drift(d, &dr);
+    assert_int_equal(dr.alarms, 1);
+    assert_int_equal(dr.clears, 1);
+    assert_false(dr.active);
+    /* dated at detector 1's onset: within a few batches of the shift */
+    assert_true(dr.last_onset > 3000 - 10 && dr.last_onset <= 3000 + 50);
+    size_t len, len2;
+    uint8_t *buf = diag_bytes(d, &len);
+    struct diag *e = make(0.9, 20, 2);
+    ser_r rd = {buf, len, 0, 0};
+    assert_int_equal(diag_load(e, &rd, MODEL_FORMAT_VERSION), 0);
+    assert_int_equal(rd.pos, len);
+    uint8_t *buf2 = diag_bytes(e, &len2);
+    assert_int_equal(len, len2);
+    assert_memory_equal(buf, buf2, len);
+    diag_drift_t de;
+    diag_drift(e, &de);
+    assert_memory_equal(&dr, &de, sizeof dr);
+    free(buf);
+    free(buf2);
+    diag_free(d);
+    diag_free(e);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -366,6 +431,7 @@ int main(void)
         cmocka_unit_test(diverged_estimator_is_left_out),
         cmocka_unit_test(realised_figures_freeze_at_divergence),
         cmocka_unit_test(nan_td_leaves_the_drift_test_alone),
+        cmocka_unit_test(the_alarm_follows_the_headline),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }

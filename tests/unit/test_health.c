@@ -303,7 +303,7 @@ static void format_2_diagnostics_load(void **state)
     assert_int_equal(r.pos, w.len);
     /* The third step fills the window: the oldest return is 1 + .5 + .25 = 1.75. */
     double pred = 0.0, sd = 0.5;
-    diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.5, 0, 0.0);
+    diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.5, 0, NULL, 0);
     diag_est_t x;
     diag_est(d, 0, &x);
     assert_int_equal(x.n, 1);
@@ -328,7 +328,7 @@ static void coverage_on_uniform_errors(void **state)
         s = s * 6364136223846793005ull + 1442695040888963407ull;
         double u = (double)(s >> 11) / 9007199254740992.0 * 2.0 - 1.0;
         double pred = 1.0 + u, sd = 0.5;
-        diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.0, 0, 0.0);
+        diag_observe_sd(d, 0, &pred, &sd, 1.0, 0.0, 0, NULL, 0);
     }
     diag_est_t x;
     diag_est(d, 0, &x);
