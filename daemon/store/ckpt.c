@@ -207,18 +207,35 @@ void ckpt_job_drift(struct writer *w, struct job *j)
      * earlier depends on the automatic checkpoints' spacing (--checkpoint-every).
      */
     if (j->id) {
+        /* An alarm whose newest such checkpoint is already a pre-drift copy reuses it: a
+         * plant alarming again and again keeps one copy, not one per alarm. */
         sqlite3_stmt *st = NULL;
-        if (sqlite3_prepare_v2(
-                w->db,
-                "INSERT INTO checkpoints(model, seq, training, label, created_at, size, state,"
-                " diverged, plant_t) SELECT model, seq, training, 'pre-drift', ?1, size, state,"
-                " diverged, plant_t"
-                " FROM checkpoints"
-                " WHERE model = ?2 AND invalid = 0 AND seq < ?3 ORDER BY seq DESC, id DESC LIMIT 1",
-                -1, &st, NULL) == SQLITE_OK) {
+        int64_t src = 0;
+        int is_copy = 0;
+        if (sqlite3_prepare_v2(w->db,
+                               "SELECT id, label = 'pre-drift' FROM checkpoints WHERE model = ?1"
+                               " AND invalid = 0 AND seq < ?2 ORDER BY seq DESC, id DESC LIMIT 1",
+                               -1, &st, NULL) == SQLITE_OK) {
+            sqlite3_bind_int64(st, 1, model);
+            sqlite3_bind_int64(st, 2, (sqlite3_int64)j->a);
+            if (sqlite3_step(st) == SQLITE_ROW) {
+                src = sqlite3_column_int64(st, 0);
+                is_copy = sqlite3_column_int(st, 1);
+            }
+        }
+        sqlite3_finalize(st);
+        st = NULL;
+        if (src && is_copy) {
+            pre = src;
+        } else if (src &&
+                   sqlite3_prepare_v2(
+                       w->db,
+                       "INSERT INTO checkpoints(model, seq, training, label, created_at, size,"
+                       " state, diverged, plant_t) SELECT model, seq, training, 'pre-drift', ?1,"
+                       " size, state, diverged, plant_t FROM checkpoints WHERE id = ?2",
+                       -1, &st, NULL) == SQLITE_OK) {
             sqlite3_bind_double(st, 1, db_now());
-            sqlite3_bind_int64(st, 2, model);
-            sqlite3_bind_int64(st, 3, (sqlite3_int64)j->a);
+            sqlite3_bind_int64(st, 2, src);
             if (sqlite3_step(st) == SQLITE_DONE && sqlite3_changes(w->db) == 1)
                 pre = sqlite3_last_insert_rowid(w->db);
         }
