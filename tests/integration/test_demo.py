@@ -2,8 +2,10 @@
 
 demo/run is run exactly as the README writes it (from the repository root), with
 its output folder moved to a temporary one through $DEMO_DIR: it must exit 0,
-write two SVGs that parse, report a drift alarm during the fault day, and restore
-the values after the rollback. The README's other command, tests/run, is the one
+write two SVGs that parse, see the stuck sensor with the frozen check within 10
+minutes, date the drift alarm's onset within 5% of the fault's length, and re-learn
+the days after the fault in the rollback (test_drift_demo.py holds the same to the
+log and the events). The README's other command, tests/run, is the one
 .ci/run executes (running it from inside itself would never end): the test checks
 that both commands stand in the README exactly so, and that .ci/run calls it.
 """
@@ -37,9 +39,14 @@ def test_demo_run_as_written(tmp_path):
                        timeout=600)
     out = p.stdout
     assert p.returncode == 0, f"{out[-3000:]}\n{p.stderr[-3000:]}"
-    m = re.search(r"drift alarms during the fault day: (\d+)", out)
-    assert m and int(m.group(1)) >= 1, out
-    assert "values after the rollback equal those before the fault: yes" in out
+    m = re.search(r"drift alarms before the fault: (\d+) in \d+ sound days .*since it began: (\d+)",
+                  out)
+    assert m and int(m.group(1)) == 0 and int(m.group(2)) >= 1, out
+    m = re.search(r"the frozen-input check on demand fired (\d+) min after the fault began", out)
+    assert m and int(m.group(1)) <= 10, out
+    m = re.search(r"dates the change [+-]\d+ min from its start \(([\d.]+)% of the fault's", out)
+    assert m and float(m.group(1)) <= 5.0, out
+    assert re.search(r"the \d+ transitions after the fault were learnt again: yes", out), out
     assert "worthd stopped cleanly" in out
     # The headline is a healthy estimator, and the sd beside it is its own: only rls_td has
     # one, so for any other headline none is shown (no other estimator's sd is borrowed).
