@@ -286,9 +286,11 @@ static const struct cmd cmds[] = {
     {"watch", cmd_watch, "MODEL", "a refreshing view of the stats (q quits)",
      "worth watch MODEL [--every SECONDS] [--count N]",
      "A refreshing view of the model's stats: counters, the ingest rate since the\n"
-     "last refresh, and each estimator's figures with its health and the coverage\n"
-     "of its 95% interval (the headline marked *). On a terminal it redraws in\n"
-     "place; press q to quit. Elsewhere it prints one block per refresh.\n"
+     "last refresh, and each estimator's figures with its health, the coverage\n"
+     "of its 95% interval and its own drift statistic (\"!\" while its test is in\n"
+     "alarm; the banner shows the model's alarm, which follows the headline,\n"
+     "marked *). On a terminal it redraws in place; press q to quit. Elsewhere\n"
+     "it prints one block per refresh.\n"
      "\n"
      "options:\n"
      "  --every SECONDS  time between refreshes, 0.05..3600 (default 1)\n"

@@ -105,14 +105,14 @@ static int draw(struct cli *cli, const char *model, const struct mspec *ms, int 
         printf("of source \"%s\" since %s\n", cJSON_IsString(src) ? src->valuestring : "", since);
     }
     fputc('\n', stdout);
-    struct table *tb = table_new(9);
+    struct table *tb = table_new(10);
     if (tb) {
         char h[3][64];
         mspec_vlabel(ms, "td_rms", h[0], sizeof h[0]);
         mspec_vlabel(ms, "td_last", h[1], sizeof h[1]);
         mspec_vlabel(ms, "realised_rms", h[2], sizeof h[2]);
         table_rowv(tb, "estimator", "kind", "health", "updates", h[0], h[1], "guarded", h[2],
-                   "in_95%");
+                   "in_95%", "drift");
         const cJSON *est, *pn = cJSON_GetObjectItemCaseSensitive(
                               cJSON_GetObjectItemCaseSensitive(r, "primary"), "name");
         cJSON_ArrayForEach(est, cJSON_GetObjectItemCaseSensitive(r, "estimators"))
@@ -129,10 +129,17 @@ static int draw(struct cli *cli, const char *model, const struct mspec *ms, int 
                     getnum(cJSON_GetObjectItemCaseSensitive(est, "realised"), "rms_window"));
             fmt_num(cv, sizeof cv,
                     getnum(cJSON_GetObjectItemCaseSensitive(est, "coverage"), "interval95"));
+            /* Its own drift test: the statistic, "!" while it stands in alarm. */
+            const cJSON *dv = cJSON_GetObjectItemCaseSensitive(est, "drift");
+            char dr[72];
+            fmt_num(dr, sizeof dr - 2, getnum(dv, "statistic"));
+            if (cJSON_IsTrue(cJSON_GetObjectItemCaseSensitive(dv, "active")))
+                strcat(dr, " !");
             /* The headline is marked *: the estimator whose value the model answers. */
             int head = cJSON_IsString(pn) && strcmp(pn->valuestring, est->string) == 0;
             snprintf(nm, sizeof nm, "%.63s%s", est->string, head ? " *" : "");
-            table_rowv(tb, nm, f, cJSON_IsString(hl) ? hl->valuestring : "?", a, b, c, e, g, cv);
+            table_rowv(tb, nm, f, cJSON_IsString(hl) ? hl->valuestring : "?", a, b, c, e, g, cv,
+                       dr);
         }
         table_print(tb, stdout);
         table_free(tb);

@@ -115,3 +115,20 @@ def test_stuck_sensor_frozen_drift_onset_and_rollback(daemon, tmp_path):
     st = c.stats("reservoir")
     assert st["applied"] == last and st["queue"] == 0, st
     assert c.ok(probe)["estimators"] == before
+
+    # each estimator's own drift test, and which one the alarm follows, in stats and watch
+    sj = c.stats("reservoir")
+    assert sj["drift"]["follows"] == sj["primary"]["name"], sj["drift"]
+    for name, e in sj["estimators"].items():
+        assert {"armed", "active", "raised", "last_onset_step", "statistic"} <= set(e["drift"])
+        assert e["drift"]["armed"] is True and e["drift"]["raised"] >= 1, (name, e["drift"])
+    table = subprocess.run([cli, "--socket", d.sock, "stats", "reservoir"], capture_output=True,
+                           text=True, timeout=60).stdout
+    assert f"drift.follows                  {sj['primary']['name']}" in table, table
+    rows = table.split("\nDRIFT", 1)[1].splitlines()
+    assert rows[0].split() == ["ARMED", "ACTIVE", "RAISED", "LAST_ONSET_STEP", "STATISTIC"]
+    assert [r.split()[0] for r in rows[1:6]] == list(sj["estimators"]), rows
+    w = subprocess.run([cli, "--socket", d.sock, "watch", "reservoir", "--count", "1"],
+                       capture_output=True, text=True, timeout=60).stdout
+    head = next(ln for ln in w.splitlines() if ln.startswith("estimator"))
+    assert head.split()[-1] == "drift", w
