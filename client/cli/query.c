@@ -417,6 +417,33 @@ static int in_reward_unit(const char *key)
     return 0;
 }
 
+/* Prints a table of one object under each estimator: heads[0] names the table, heads[1..n]
+ * the columns, keys[0..n) the object's fields (n <= EST_TABLE_MAX). */
+#define EST_TABLE_MAX 8
+static void est_table(const cJSON *ests, const char *sub, const char *const *heads,
+                      const char *const *keys, int n)
+{
+    struct table *t = table_new((size_t)n + 1);
+    if (!t)
+        return;
+    table_row(t, heads);
+    const cJSON *e;
+    cJSON_ArrayForEach(e, ests)
+    {
+        const cJSON *o = json_get(e, sub);
+        char c[EST_TABLE_MAX][64];
+        const char *row[EST_TABLE_MAX + 1] = {e->string};
+        for (int k = 0; k < n && k < EST_TABLE_MAX; k++) {
+            fmt_json(c[k], sizeof c[k], json_get(o, keys[k]));
+            row[k + 1] = c[k];
+        }
+        table_row(t, row);
+    }
+    printf("\n");
+    table_print(t, stdout);
+    table_free(t);
+}
+
 int cmd_stats(struct cli *cli, int argc, char **argv)
 {
     cJSON *r = NULL;
@@ -523,64 +550,28 @@ int cmd_stats(struct cli *cli, int argc, char **argv)
         table_print(t, stdout);
         table_free(t);
     }
-    /* Realised returns: how each estimator's predictions compared with what happened. */
-    t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
-    if (t) {
-        char h[4][64];
+    if (cJSON_GetArraySize(ests)) {
+        /* Realised returns: how each estimator's predictions compared with what happened. */
+        char h[5][64];
         static const char *const hk[4] = {"BIAS", "RMS", "BIAS_WINDOW", "RMS_WINDOW"};
         for (int k = 0; k < 4; k++)
             mspec_vlabel(&ms, hk[k], h[k], sizeof h[k]);
-        table_rowv(t, "REALISED", "N", h[0], h[1], h[2], h[3]);
-        cJSON_ArrayForEach(e, ests)
-        {
-            const cJSON *re = json_get(e, "realised");
-            char c[5][64];
-            static const char *const k5[5] = {"n", "bias", "rms", "bias_window", "rms_window"};
-            for (int k = 0; k < 5; k++)
-                fmt_json(c[k], sizeof c[k], json_get(re, k5[k]));
-            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4]);
-        }
-        printf("\n");
-        table_print(t, stdout);
-        table_free(t);
-    }
-    /* Coverage: the share of realised returns inside V +- 1 and 2 own sd, +- 2 RMS and the
-     * reported 95% interval (V +- HALF95), over the window (schema/protocol.md). */
-    t = cJSON_GetArraySize(ests) ? table_new(7) : NULL;
-    if (t) {
-        char h[64];
-        mspec_vlabel(&ms, "HALF95", h, sizeof h);
-        table_rowv(t, "COVERAGE", "SD1", "SD2", "RMS2", "INTERVAL95", "K95", h);
-        cJSON_ArrayForEach(e, ests)
-        {
-            const cJSON *cv = json_get(e, "coverage");
-            char c[6][64];
-            static const char *const k6[6] = {"sd1", "sd2", "rms2", "interval95", "k95", "half95"};
-            for (int k = 0; k < 6; k++)
-                fmt_json(c[k], sizeof c[k], json_get(cv, k6[k]));
-            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4], c[5]);
-        }
-        printf("\n");
-        table_print(t, stdout);
-        table_free(t);
-    }
-    /* Each estimator's own drift test; the model's alarm follows the headline's (drift.follows). */
-    t = cJSON_GetArraySize(ests) ? table_new(6) : NULL;
-    if (t) {
-        table_rowv(t, "DRIFT", "ARMED", "ACTIVE", "RAISED", "LAST_ONSET_STEP", "STATISTIC");
-        cJSON_ArrayForEach(e, ests)
-        {
-            const cJSON *dv = json_get(e, "drift");
-            char c[5][64];
-            static const char *const k5[5] = {"armed", "active", "raised", "last_onset_step",
-                                              "statistic"};
-            for (int k = 0; k < 5; k++)
-                fmt_json(c[k], sizeof c[k], json_get(dv, k5[k]));
-            table_rowv(t, e->string, c[0], c[1], c[2], c[3], c[4]);
-        }
-        printf("\n");
-        table_print(t, stdout);
-        table_free(t);
+        const char *const rh[6] = {"REALISED", "N", h[0], h[1], h[2], h[3]};
+        static const char *const rk[5] = {"n", "bias", "rms", "bias_window", "rms_window"};
+        est_table(ests, "realised", rh, rk, 5);
+        /* Coverage: the share of realised returns inside V +- 1 and 2 own sd, +- 2 RMS and the
+         * reported 95% interval (V +- HALF95), over the window (schema/protocol.md). */
+        mspec_vlabel(&ms, "HALF95", h[4], sizeof h[4]);
+        const char *const ch[7] = {"COVERAGE", "SD1", "SD2", "RMS2", "INTERVAL95", "K95", h[4]};
+        static const char *const ck[6] = {"sd1", "sd2", "rms2", "interval95", "k95", "half95"};
+        est_table(ests, "coverage", ch, ck, 6);
+        /* Each estimator's own drift test; the model's alarm follows the headline's
+         * (drift.follows). */
+        static const char *const dh[6] = {"DRIFT",  "ARMED",           "ACTIVE",
+                                          "RAISED", "LAST_ONSET_STEP", "STATISTIC"};
+        static const char *const dk[5] = {"armed", "active", "raised", "last_onset_step",
+                                          "statistic"};
+        est_table(ests, "drift", dh, dk, 5);
     }
     int said = 0;
     cJSON_ArrayForEach(e, ests)
