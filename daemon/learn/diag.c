@@ -115,6 +115,9 @@ int diag_new(const diag_params_t *p, size_t n_est, size_t sources, struct diag *
                         MAX_HORIZON);
     if (p->window < 1)
         return err_fail(err, errlen, WORTH_E_BAD_PARAM, "diagnostics window must be >= 1");
+    if (n_est < 1 || n_est > DIAG_MAX_EST) /* diag_observe's TD errors are on the stack */
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "diagnostics take 1..%d estimators",
+                        DIAG_MAX_EST);
     int rc = drift_check(&p->drift, err, errlen);
     if (rc)
         return rc;
@@ -296,7 +299,7 @@ int diag_observe(struct diag *d, size_t src, const double *pred, double r, doubl
                  double td)
 {
     double tds[DIAG_MAX_EST];
-    for (size_t k = 0; k < d->n_est && k < DIAG_MAX_EST; k++)
+    for (size_t k = 0; k < d->n_est; k++)
         tds[k] = k == d->at ? td : NAN;
     return diag_observe_sd(d, src, pred, NULL, r, g, terminal, tds, d->at);
 }
