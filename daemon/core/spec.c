@@ -74,16 +74,19 @@ static const struct field basis_fields[] = {
 };
 #define NBASISF (sizeof basis_fields / sizeof basis_fields[0])
 
-#define EK(k)    (1u << (k))
-#define EOFF(m)  offsetof(est_params_t, m)
-#define EK_ALPHA (EK(EST_TD) | EK(EST_TD_N) | EK(EST_TD_LAMBDA) | EK(EST_MC) | EK(EST_REPLAY))
-#define EK_ALL   ((1u << EST_KIND_COUNT) - 1)
+#define EK(k)   (1u << (k))
+#define EOFF(m) offsetof(est_params_t, m)
+#define EK_NET  (EK(EST_MLP) | EK(EST_ENSEMBLE))
+#define EK_ALPHA                                                                                   \
+    (EK(EST_TD) | EK(EST_TD_N) | EK(EST_TD_LAMBDA) | EK(EST_MC) | EK(EST_REPLAY) | EK_NET)
+#define EK_BUF (EK(EST_REPLAY) | EK_NET)
+#define EK_ALL ((1u << EST_KIND_COUNT) - 1)
 /* Estimator fields in the order of protocol.md's table; init last. */
 static const struct field est_fields[] = {
     {"name", F_OTHER, 0, EK_ALL, 0, 0, 0},
     {"kind", F_OTHER, 0, EK_ALL, 0, 0, 0},
     {"alpha", F_DOUBLE, EOFF(alpha), EK_ALPHA, 0, 0, 0},
-    {"n", F_UINT, EOFF(nstep), EK(EST_TD_N), 0, 0, UINT_MAX},
+    {"n", F_UINT, EOFF(nstep), EK(EST_TD_N) | EK_NET, 0, 0, UINT_MAX},
     {"lambda", F_DOUBLE, EOFF(lambda), EK(EST_TD_LAMBDA) | EK(EST_RLS_TD) | EK(EST_LSTD), 0, 0, 0},
     {"horizon", F_UINT, EOFF(horizon), EK(EST_MC), 0, 0, UINT_MAX},
     {"max_episode", F_UINT, EOFF(max_episode), EK(EST_MC), 0, 0, UINT_MAX},
@@ -93,18 +96,24 @@ static const struct field est_fields[] = {
     {"guard", F_GUARD, EOFF(guard), EK(EST_RLS_TD), 0, 0, 0},
     {"trace_cap", F_DOUBLE, EOFF(trace_cap), EK(EST_RLS_TD), 0, 0, 0},
     {"refit_every", F_UINT, EOFF(refit_every), EK(EST_LSTD), 0, 0, UINT_MAX},
-    {"capacity", F_UINT, EOFF(capacity), EK(EST_REPLAY), 0, 0, UINT_MAX},
-    {"batch", F_UINT, EOFF(batch), EK(EST_REPLAY), 0, 0, UINT_MAX},
-    {"steps_per_obs", F_UINT, EOFF(steps_per_obs), EK(EST_REPLAY), 0, 0, UINT_MAX},
-    {"decay", F_DOUBLE, EOFF(decay), EK(EST_REPLAY), 0, 0, 0},
-    {"tol", F_DOUBLE, EOFF(tol), EK(EST_REPLAY), 0, 0, 0},
-    {"seed", F_U64, EOFF(seed), EK(EST_REPLAY), 0, 0, SEED_MAX},
+    {"capacity", F_UINT, EOFF(capacity), EK_BUF, 0, 0, UINT_MAX},
+    {"batch", F_UINT, EOFF(batch), EK_BUF, 0, 0, UINT_MAX},
+    {"steps_per_obs", F_UINT, EOFF(steps_per_obs), EK_BUF, 0, 0, UINT_MAX},
+    {"decay", F_DOUBLE, EOFF(decay), EK_BUF, 0, 0, 0},
+    {"tol", F_DOUBLE, EOFF(tol), EK_BUF, 0, 0, 0},
+    {"seed", F_U64, EOFF(seed), EK_BUF, 0, 0, SEED_MAX},
+    {"hidden", F_HIDDEN, EOFF(hidden), EK_NET, 0, 0, 0},
+    {"activation", F_ACT, EOFF(act), EK_NET, 0, 0, 0},
+    {"target_every", F_UINT, EOFF(target_every), EK_NET, 0, 0, UINT_MAX},
+    {"clip", F_DOUBLE, EOFF(clip), EK_NET, 0, 0, 0},
+    {"members", F_UINT, EOFF(members), EK(EST_ENSEMBLE), 0, 0, UINT_MAX},
     {"init", F_DOUBLE, EOFF(init), EK_ALL, 0, 0, 0},
 };
 #define NESTF (sizeof est_fields / sizeof est_fields[0])
 
-/* Guard names, indexed by enum est_guard. */
+/* Guard names, indexed by enum est_guard; activation names, by enum est_act. */
 static const char *const guard_names[] = {"regularise", "trace", "none"};
+static const char *const act_names[] = {"tanh", "relu"};
 
 /*
  * Copies at most SHOW_MAX bytes of a client's string into buf (SHOW_MAX + 4
@@ -239,6 +248,19 @@ static int get_param(const struct field *f, const cJSON *it, const char *path, s
         }
         return err_fail(err, errlen, WORTH_E_BAD_PARAM,
                         "%s must be \"regularise\", \"trace\" or \"none\"", path);
+    case F_ACT:
+        if ((rc = spec_get_string(it, path, &s, err, errlen)))
+            return rc;
+        for (size_t a = 0; a < sizeof act_names / sizeof act_names[0]; a++) {
+            if (strcmp(s, act_names[a]) == 0) {
+                enum est_act av = (enum est_act)a;
+                memcpy(p, &av, sizeof av);
+                return 0;
+            }
+        }
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be \"tanh\" or \"relu\"", path);
+    case F_HIDDEN:
+        return spec_get_hidden(it, path, (est_hidden_t *)(void *)p, err, errlen);
     case F_OTHER:
         break;
     }
@@ -476,6 +498,7 @@ static int add_params(cJSON *obj, const struct field *t, size_t n, size_t first,
         unsigned u;
         uint64_t q;
         enum est_guard g;
+        enum est_act a;
         switch (t[i].type) {
         case F_DOUBLE:
             memcpy(&d, p, sizeof d);
@@ -494,6 +517,20 @@ static int add_params(cJSON *obj, const struct field *t, size_t n, size_t first,
             CHECK((unsigned)g < sizeof guard_names / sizeof guard_names[0]);
             bad |= cJSON_AddStringToObject(obj, t[i].name, guard_names[g]) ? 0 : -1;
             break;
+        case F_ACT:
+            memcpy(&a, p, sizeof a);
+            CHECK((unsigned)a < sizeof act_names / sizeof act_names[0]);
+            bad |= cJSON_AddStringToObject(obj, t[i].name, act_names[a]) ? 0 : -1;
+            break;
+        case F_HIDDEN: {
+            est_hidden_t h;
+            memcpy(&h, p, sizeof h);
+            cJSON *arr = cJSON_AddArrayToObject(obj, t[i].name);
+            bad |= arr ? 0 : -1;
+            for (unsigned l = 0; arr && l < h.count && l < EST_MLP_MAX_LAYERS; l++)
+                bad |= spec_add_u64(arr, NULL, h.width[l]);
+            break;
+        }
         case F_OTHER:
             break;
         }

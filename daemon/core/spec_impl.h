@@ -24,7 +24,9 @@ enum ftype {
     F_DOUBLE, /* a finite double */
     F_UINT,   /* an integer that fits an unsigned */
     F_U64,    /* an integer 0..SEED_MAX into a uint64_t */
-    F_GUARD   /* "regularise", "trace" or "none" */
+    F_GUARD,  /* "regularise", "trace" or "none" */
+    F_ACT,    /* "tanh" or "relu" */
+    F_HIDDEN  /* an array of 1..EST_MLP_MAX_LAYERS layer widths into an est_hidden_t */
 };
 
 /* One field of an object: its JSON name and, for parameters, where it goes. */
@@ -49,6 +51,8 @@ int spec_get_int(const cJSON *it, const char *path, double lo, double hi, uint64
                  size_t errlen);
 /* A string at path into *out (borrowed from the tree), or bad_request. */
 int spec_get_string(const cJSON *it, const char *path, const char **out, char *err, size_t errlen);
+/* An array of hidden layer widths at path into *out (spec_meta.c), or bad_request / bad_param. */
+int spec_get_hidden(const cJSON *it, const char *path, est_hidden_t *out, char *err, size_t errlen);
 /* Adds v under key (key NULL: to an array) with the fewest digits that read back; 0 or -1. */
 int spec_add_double(cJSON *obj, const char *key, double v);
 /* Adds an integer under key; 0 or -1. */

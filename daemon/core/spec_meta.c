@@ -56,8 +56,9 @@ int spec_parse_named_dims(const cJSON *req, const cJSON *arr, spec_t *s, char *e
                         "dims must be a number, or an array of named dimensions {\"name\", "
                         "\"unit\", \"range\"}");
     if (cJSON_GetObjectItemCaseSensitive(req, "ranges"))
-        return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
-                        "named dims carry their own ranges: give \"range\" in each, not \"ranges\"");
+        return err_fail(
+            err, errlen, WORTH_E_BAD_REQUEST,
+            "named dims carry their own ranges: give \"range\" in each, not \"ranges\"");
     size_t dims = (size_t)n;
     s->meta.dims = dims;
     s->meta.named = 1;
@@ -75,7 +76,8 @@ int spec_parse_named_dims(const cJSON *req, const cJSON *arr, spec_t *s, char *e
             return rc;
         const char *name = NULL, *unit = NULL;
         snprintf(fp, sizeof fp, "%s.name", path);
-        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(it, "name"), fp, &name, err, errlen)))
+        if ((rc = spec_get_string(cJSON_GetObjectItemCaseSensitive(it, "name"), fp, &name, err,
+                                  errlen)))
             return rc;
         if (!spec_name_ok(name))
             return err_fail(err, errlen, WORTH_E_BAD_PARAM,
@@ -91,8 +93,8 @@ int spec_parse_named_dims(const cJSON *req, const cJSON *arr, spec_t *s, char *e
             if ((rc = spec_get_string(u, fp, &unit, err, errlen)))
                 return rc;
             if (!unit_ok(unit))
-                return err_fail(err, errlen, WORTH_E_BAD_PARAM,
-                                "%s must be 1..%d printable bytes", fp, SPEC_UNIT_MAX);
+                return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must be 1..%d printable bytes",
+                                fp, SPEC_UNIT_MAX);
             snprintf(s->meta.units[i], sizeof s->meta.units[i], "%s", unit);
         }
         const cJSON *range = cJSON_GetObjectItemCaseSensitive(it, "range");
@@ -162,7 +164,8 @@ int spec_parse_plant(const cJSON *req, spec_t *s, char *err, size_t errlen)
             if ((rc = spec_get_double(gp, "samples.max_gap_periods", &periods, err, errlen)))
                 return rc;
             if (!(periods > 0))
-                return err_fail(err, errlen, WORTH_E_BAD_PARAM, "samples.max_gap_periods must be > 0");
+                return err_fail(err, errlen, WORTH_E_BAD_PARAM,
+                                "samples.max_gap_periods must be > 0");
             if (!(s->meta.period_s > 0))
                 return err_fail(err, errlen, WORTH_E_BAD_PARAM,
                                 "samples.max_gap_periods needs period_s");
@@ -179,7 +182,6 @@ int spec_parse_plant(const cJSON *req, spec_t *s, char *err, size_t errlen)
         s->meta.max_gap_s = periods * s->meta.period_s;
     return 0;
 }
-
 
 /* Adds "dims" to root: the count, or the named dimensions with units and ranges. */
 int spec_print_dims(cJSON *root, const spec_t *s)
@@ -226,11 +228,37 @@ int spec_print_plant(cJSON *root, const spec_t *s)
         cJSON *sm = cJSON_AddObjectToObject(root, "samples");
         bad |= sm ? 0 : -1;
         if (sm) {
-            bad |= cJSON_AddStringToObject(sm, "reward", mt->reward_same ? "same" : "next") ? 0
-                                                                                           : -1;
+            bad |=
+                cJSON_AddStringToObject(sm, "reward", mt->reward_same ? "same" : "next") ? 0 : -1;
             if (isfinite(mt->max_gap_s))
                 bad |= spec_add_double(sm, "max_gap_s", mt->max_gap_s);
         }
     }
     return bad;
+}
+
+int spec_get_hidden(const cJSON *it, const char *path, est_hidden_t *out, char *err, size_t errlen)
+{
+    if (!cJSON_IsArray(it))
+        return err_fail(err, errlen, WORTH_E_BAD_REQUEST,
+                        "%s must be an array of layer widths, e.g. [32, 32]", path);
+    int n = cJSON_GetArraySize(it);
+    if (n < 1 || n > EST_MLP_MAX_LAYERS)
+        return err_fail(err, errlen, WORTH_E_BAD_PARAM, "%s must list 1..%d layer widths", path,
+                        EST_MLP_MAX_LAYERS);
+    est_hidden_t h = {(unsigned)n, {0}};
+    char ep[PATH_MAX_LEN + ELEM_MAX_LEN];
+    const cJSON *w;
+    unsigned i = 0;
+    cJSON_ArrayForEach(w, it)
+    {
+        uint64_t u = 0;
+        snprintf(ep, sizeof ep, "%s[%u]", path, i);
+        int rc = spec_get_int(w, ep, 1, EST_MLP_MAX_WIDTH, &u, err, errlen);
+        if (rc)
+            return rc;
+        h.width[i++] = (unsigned)u;
+    }
+    *out = h;
+    return 0;
 }

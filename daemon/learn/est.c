@@ -27,6 +27,7 @@
 #include <string.h>
 
 #include "learn/est_impl.h"
+#include "learn/mlpnet.h"
 #include "learn/ring.h"
 #include "common/fail.h"
 #include "common/mem.h"
@@ -41,12 +42,12 @@ enum { WHY_NONE, WHY_NONFINITE, WHY_BOUND, WHY_COUNT };
 static const char *const why_text[WHY_COUNT] = {NULL, EST_WHY_NONFINITE, EST_WHY_BOUND};
 
 static const char *const kind_names[EST_KIND_COUNT] = {
-    "td", "td_n", "td_lambda", "mc", "rls_td", "lstd", "replay",
+    "td", "td_n", "td_lambda", "mc", "rls_td", "lstd", "replay", "mlp", "ensemble",
 };
 
 static const struct est_ops *const kind_ops[EST_KIND_COUNT] = {
-    &est_td_ops,  &est_tdn_ops,  &est_tdlambda_ops, &est_mc_ops,
-    &est_rls_ops, &est_lstd_ops, &est_replay_ops,
+    &est_td_ops,   &est_tdn_ops,    &est_tdlambda_ops, &est_mc_ops,       &est_rls_ops,
+    &est_lstd_ops, &est_replay_ops, &est_mlp_ops,      &est_ensemble_ops,
 };
 
 const char *est_kind_name(enum est_kind kind)
@@ -84,6 +85,22 @@ void est_params_default(enum est_kind kind, est_params_t *p)
     p->decay = 0.0;
     p->tol = 1e-4;
     p->seed = 1;
+    p->hidden.count = 2;
+    for (int i = 0; i < EST_MLP_MAX_LAYERS; i++)
+        p->hidden.width[i] = i < 2 ? 32 : 0;
+    p->act = EST_ACT_TANH;
+    p->target_every = 0;
+    p->clip = 0.0;
+    p->members = kind == EST_ENSEMBLE ? 5 : 1;
+    if (kind == EST_MLP || kind == EST_ENSEMBLE) {
+        p->alpha = 0.001;
+        p->nstep = 1;
+    }
+}
+
+static int is_net(enum est_kind kind)
+{
+    return kind == EST_MLP || kind == EST_ENSEMBLE;
 }
 
 static int check_params(const est_params_t *p, size_t n, size_t sources, char *err, size_t len)
@@ -102,6 +119,8 @@ static int check_params(const est_params_t *p, size_t n, size_t sources, char *e
     case EST_TD_LAMBDA:
     case EST_MC:
     case EST_REPLAY:
+    case EST_MLP:
+    case EST_ENSEMBLE:
         if (!(p->alpha > 0) || !isfinite(p->alpha))
             return err_fail(err, len, WORTH_E_BAD_PARAM, "alpha must be a finite number > 0");
         break;
@@ -138,7 +157,12 @@ static int check_params(const est_params_t *p, size_t n, size_t sources, char *e
         if (p->refit_every < 1)
             return err_fail(err, len, WORTH_E_BAD_PARAM, "refit_every must be >= 1");
     }
-    if (p->kind == EST_REPLAY) {
+    if (is_net(p->kind)) {
+        int rc = mlp_check(p, n, err, len);
+        if (rc)
+            return rc;
+    }
+    if (p->kind == EST_REPLAY || is_net(p->kind)) {
         if (p->capacity < 1 || p->capacity > 100000000)
             return err_fail(err, len, WORTH_E_BAD_PARAM, "capacity must be 1..100000000");
         if (p->batch < 1 || p->batch > p->capacity)
@@ -188,10 +212,38 @@ double est_footprint(const est_params_t *p, size_t n, size_t sources)
     case EST_REPLAY: /* capacity records of phi and g*phi', r; gradient and start weights */
         state += (double)p->capacity * (2 * nn + 1) + 2 * nn;
         break;
+    case EST_MLP:
+    case EST_ENSEMBLE: { /* everything the networks hold; their weights in each snapshot too */
+        double nw = (double)mlp_weight_count(p, n);
+        state = mlp_footprint(p, n, sources) / d;
+        snap = nw + 1;
+        break;
+    }
     default:
         break;
     }
     return (state + 2 * snap) * d;
+}
+
+/* The weights of a fresh estimator: the kind's own start (a network's seeded draw), or init. */
+static void init_weights(struct est *e)
+{
+    if (e->ops->init_w) {
+        e->ops->init_w(e);
+        return;
+    }
+    for (size_t i = 0; i < e->nw; i++)
+        e->w[i] = e->p.init;
+}
+
+/* V(phi) under the weights w (e->w or a snapshot's), and the kind's sd when sd is not NULL. */
+static double value_at(const struct est *e, const double *w, const double *phi, double *sd)
+{
+    if (e->ops->value)
+        return e->ops->value(e, w, phi, sd);
+    if (sd)
+        *sd = NAN;
+    return est_dot(e->n, w, phi);
 }
 
 int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, char *err,
@@ -205,9 +257,9 @@ int est_new(const est_params_t *p, size_t n, size_t sources, struct est **out, c
     e->ops = kind_ops[p->kind];
     e->n = n;
     e->nsrc = sources;
-    e->w = mem_alloc(n * sizeof *e->w);
-    for (size_t i = 0; i < n; i++)
-        e->w[i] = p->init;
+    e->nw = is_net(p->kind) ? mlp_weight_count(p, n) : n;
+    e->w = mem_alloc(e->nw * sizeof *e->w);
+    init_weights(e);
     e->ops->init(e);
     *out = e;
     return 0;
@@ -224,8 +276,7 @@ void est_free(struct est *e)
 
 void est_reset(struct est *e)
 {
-    for (size_t i = 0; i < e->n; i++)
-        e->w[i] = e->p.init;
+    init_weights(e);
     e->updates = e->guarded = 0;
     e->td_last = e->td_ms = e->td_wsum = e->v_last = 0.0;
     e->r_max = 0.0;
@@ -285,7 +336,7 @@ int est_train_cancelled(const est_train_opts_t *o)
 /* Returns the reason e has diverged by (WHY_*), given v and vn of the last transition. */
 static int divergence(const struct est *e, double v, double vn)
 {
-    if (!finite_vec(e->w, e->n))
+    if (!finite_vec(e->w, e->nw))
         return WHY_NONFINITE;
     double bound = EST_DIVERGE_FACTOR * (e->r_max > 1.0 ? e->r_max : 1.0);
     if (!(fabs(v) <= bound) || !(fabs(vn) <= bound))
@@ -299,8 +350,7 @@ static void diverge(struct est *e, int why)
 {
     e->diverged = why;
     e->diverged_at = e->updates;
-    for (size_t i = 0; i < e->n; i++)
-        e->w[i] = e->p.init;
+    init_weights(e);
     e->ops->reset(e);
     e->v_last = NAN;
 }
@@ -322,8 +372,8 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
         return 0;
     }
 
-    double v = est_dot(e->n, e->w, phi);
-    double vn = terminal ? 0.0 : est_dot(e->n, e->w, phi_next);
+    double v = value_at(e, e->w, phi, NULL);
+    double vn = terminal ? 0.0 : value_at(e, e->w, phi_next, NULL);
     double delta = r + g * vn - v;
     e->guarded += (uint64_t)e->ops->observe(e, src, phi, r, terminal ? NULL : phi_next, g,
                                             terminal != 0, v, vn);
@@ -356,7 +406,7 @@ int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
     }
     int rc = e->ops->train(e, o, rep);
     /* A training computes no values of states, so only rule 1 applies here. */
-    if (!finite_vec(e->w, e->n)) {
+    if (!finite_vec(e->w, e->nw)) {
         diverge(e, WHY_NONFINITE);
         return WORTH_E_DIVERGED;
     }
@@ -366,7 +416,7 @@ int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep)
 
 double est_value(const struct est *e, const double *phi)
 {
-    return e->diverged ? NAN : est_dot(e->n, e->w, phi);
+    return e->diverged ? NAN : value_at(e, e->w, phi, NULL);
 }
 
 int est_sd(const struct est *e, const double *phi, double *sd)
@@ -400,6 +450,11 @@ const double *est_weights(const struct est *e)
     return e->w;
 }
 
+size_t est_weight_count(const struct est *e)
+{
+    return e->nw;
+}
+
 size_t est_features(const struct est *e)
 {
     return e->n;
@@ -427,33 +482,36 @@ void est_stats(const struct est *e, est_stats_t *out)
     }
 }
 
-/* Snapshot: w (n), the diverged flag (1 double, 0 or 1), then the kind's extra doubles. */
+/* Snapshot: w (nw), the diverged flag (1 double, 0 or 1), then the kind's extra doubles. */
 size_t est_snap_size(const struct est *e)
 {
-    return e->n + 1 + (e->ops->snap_size ? e->ops->snap_size(e) : 0);
+    return e->nw + 1 + (e->ops->snap_size ? e->ops->snap_size(e) : 0);
 }
 
 void est_snap(const struct est *e, double *out)
 {
-    memcpy(out, e->w, e->n * sizeof *out);
-    out[e->n] = e->diverged ? 1.0 : 0.0;
+    memcpy(out, e->w, e->nw * sizeof *out);
+    out[e->nw] = e->diverged ? 1.0 : 0.0;
     if (e->ops->snap)
-        e->ops->snap(e, out + e->n + 1);
+        e->ops->snap(e, out + e->nw + 1);
 }
 
 double est_snap_value(const struct est *e, const double *snap, const double *phi, double *sd)
 {
-    if (snap[e->n] != 0.0) {
+    if (snap[e->nw] != 0.0) {
         *sd = NAN;
         return NAN;
     }
-    *sd = e->ops->snap_sd ? e->ops->snap_sd(e, snap + e->n + 1, phi) : NAN;
+    if (e->ops->value)
+        return e->ops->value(e, snap, phi, sd);
+    *sd = e->ops->snap_sd ? e->ops->snap_sd(e, snap + e->nw + 1, phi) : NAN;
     return est_dot(e->n, snap, phi);
 }
 
 /* Parameters go into the header so that a checkpoint cannot be loaded into a differently
- * configured estimator. */
-static void put_params(ser_w *w, const est_params_t *p)
+ * configured estimator; those of the network kinds from format 3 on (a format 1 or 2 state
+ * holds none, and is compared without them). */
+static void put_params(ser_w *w, const est_params_t *p, unsigned version)
 {
     ser_put_f64(w, p->alpha);
     ser_put_f64(w, p->init);
@@ -473,6 +531,15 @@ static void put_params(ser_w *w, const est_params_t *p)
     ser_put_f64(w, p->decay);
     ser_put_f64(w, p->tol);
     ser_put_u64(w, p->seed);
+    if (version < 3)
+        return;
+    ser_put_u32(w, p->hidden.count);
+    for (int i = 0; i < EST_MLP_MAX_LAYERS; i++)
+        ser_put_u32(w, p->hidden.width[i]);
+    ser_put_u32(w, (uint32_t)p->act);
+    ser_put_u32(w, p->target_every);
+    ser_put_f64(w, p->clip);
+    ser_put_u32(w, p->members);
 }
 
 static void save_all(const struct est *e, ser_w *w)
@@ -483,7 +550,7 @@ static void save_all(const struct est *e, ser_w *w)
     ser_put_u32(w, 0);
     ser_put_u64(w, e->n);
     ser_put_u64(w, e->nsrc);
-    put_params(w, &e->p);
+    put_params(w, &e->p, EST_FORMAT_VERSION);
     ser_put_u64(w, e->updates);
     ser_put_u64(w, e->guarded);
     ser_put_f64(w, e->td_last);
@@ -492,7 +559,7 @@ static void save_all(const struct est *e, ser_w *w)
     ser_put_f64(w, e->r_max);
     ser_put_u32(w, (uint32_t)e->diverged);
     ser_put_u64(w, e->diverged_at);
-    ser_put_f64v(w, e->w, e->n);
+    ser_put_f64v(w, e->w, e->nw);
     e->ops->save(e, w);
 }
 
@@ -521,7 +588,7 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
     /* Compare the parameters byte for byte with ours. */
     uint8_t mine[256], theirs[256];
     ser_w pw = {mine, sizeof mine, 0};
-    put_params(&pw, &e->p);
+    put_params(&pw, &e->p, version);
     CHECK(ser_fits(&pw));
     ser_get_bytes(&r, theirs, pw.len);
     if (r.err)
@@ -544,7 +611,7 @@ static int load_body(struct est *e, const uint8_t *buf, size_t len, char *err, s
             return err_fail(err, errlen, WORTH_E_CORRUPT, "state has a bad divergence record");
         e->diverged = (int)why;
     }
-    ser_get_f64v(&r, e->w, e->n);
+    ser_get_f64v(&r, e->w, e->nw);
     e->ops->load(e, &r, version);
     if (r.err || r.pos != r.len)
         return err_fail(err, errlen, WORTH_E_CORRUPT, "state has the wrong length for its kind");

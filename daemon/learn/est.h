@@ -52,8 +52,9 @@
 struct est;
 
 /* Version of the byte format written by est_save (2: R_max and the divergence record; rls_td
- * its covariance resets).  Version 1 still loads, the new fields at their defaults. */
-#define EST_FORMAT_VERSION 2
+ * its covariance resets; 3: the network parameters of mlp and ensemble in the header).
+ * Versions 1 and 2 still load, the new fields at their defaults. */
+#define EST_FORMAT_VERSION 3
 /* Oldest format est_load still reads. */
 #define EST_FORMAT_OLDEST 1
 /* Divergence rule 2: a value beyond this many times max(1, R_max) means divergence. */
@@ -66,6 +67,11 @@ struct est;
 #define EST_WHY_P_RESET   "covariance reset"
 /* Most sources one estimator keeps separate state for. */
 #define EST_MAX_SOURCES 1024
+/* mlp, ensemble: most hidden layers, widest hidden layer, most members, most weights. */
+#define EST_MLP_MAX_LAYERS  4
+#define EST_MLP_MAX_WIDTH   1024
+#define EST_MLP_MAX_MEMBERS 32
+#define EST_MLP_MAX_WEIGHTS 10000000
 
 enum est_kind {
     EST_TD,        /* semi-gradient TD(0) */
@@ -75,6 +81,8 @@ enum est_kind {
     EST_RLS_TD,    /* RLS-TD(lambda), instrumental-variable form, forgetting factor */
     EST_LSTD,      /* batch LSTD(lambda) with ridge, LU solve */
     EST_REPLAY,    /* semi-gradient TD over mini-batches from a bounded replay buffer */
+    EST_MLP,       /* a feed-forward network trained by replay with Adam (nonlinear) */
+    EST_ENSEMBLE,  /* K such networks on bootstrap masks: value = mean, sd = spread */
     EST_KIND_COUNT
 };
 
@@ -84,16 +92,28 @@ enum est_guard {
     EST_GUARD_NONE        /* rls_td: plain exponential forgetting (winds up) */
 };
 
+enum est_act {
+    EST_ACT_TANH, /* mlp, ensemble: hidden units tanh(z); the default */
+    EST_ACT_RELU  /* mlp, ensemble: hidden units max(0, z) */
+};
+
+/* Plain data: the hidden layers of a network, input side first. */
+typedef struct est_hidden_t {
+    unsigned count;                     /* hidden layers, 1..EST_MLP_MAX_LAYERS; 2 */
+    unsigned width[EST_MLP_MAX_LAYERS]; /* units of each, 1..EST_MLP_MAX_WIDTH; 32 */
+} est_hidden_t;
+
 /*
  * Plain data: parameters of every kind; each kind reads its own fields.
  * est_params_default() fills the documented defaults.
  */
 typedef struct est_params_t {
     enum est_kind kind;
-    double alpha;           /* step size, > 0 (td, td_n, td_lambda, mc, replay); 0.01 */
+    double alpha;           /* step size, > 0 (td, td_n, td_lambda, mc, replay; 0.01), Adam's
+                               (mlp, ensemble; 0.001) */
     double init;            /* initial value of every weight; 0 */
     double lambda;          /* trace decay in [0,1] (td_lambda 0.9, rls_td 0, lstd 0) */
-    unsigned nstep;         /* td_n: steps n >= 1; 4 */
+    unsigned nstep;         /* td_n: steps n >= 1; 4; mlp, ensemble: n-step targets, 1 */
     unsigned horizon;       /* mc: 0 = episodic, else truncated return over H steps; 0 */
     unsigned max_episode;   /* mc episodic: buffered steps per source before truncating; 100000 */
     double forget;          /* rls_td: mu in (0,1]; lstd: decay of A and b in (0,1]; 1 */
@@ -107,7 +127,13 @@ typedef struct est_params_t {
     unsigned steps_per_obs; /* replay: background mini-batch steps per transition; 1 */
     double decay;           /* replay: alpha_k = alpha / (1 + k / decay); 0 = constant; 0 */
     double tol;             /* replay: converged when a pass changes |w| by < tol; 1e-4 */
-    uint64_t seed;          /* replay: RNG seed; 1 */
+    uint64_t seed;          /* replay, mlp, ensemble: RNG seed; 1 */
+    /* mlp and ensemble also read capacity, batch, steps_per_obs, decay, tol and seed. */
+    est_hidden_t hidden;   /* mlp, ensemble: hidden layers; {2, {32, 32}} */
+    enum est_act act;      /* mlp, ensemble: activation; EST_ACT_TANH */
+    unsigned target_every; /* mlp, ensemble: target network refreshed every K steps, 0 none; 0 */
+    double clip;           /* mlp, ensemble: gradient-norm clip, 0 = none; 0 */
+    unsigned members;      /* ensemble: networks K, 2..EST_MLP_MAX_MEMBERS; 5 (mlp: 1) */
 } est_params_t;
 
 /* An estimator's health, from its own numerical evidence. */
@@ -121,7 +147,7 @@ enum est_health {
 typedef struct est_stats_t {
     uint64_t updates;     /* transitions observed (while diverged too) */
     uint64_t guarded;     /* updates skipped or damped by a numerical guard */
-    uint64_t refits;      /* lstd: solves; replay: mini-batch steps */
+    uint64_t refits;      /* lstd: solves; replay, mlp, ensemble: mini-batch steps */
     double td_last;       /* last TD error r + g V(x') - V(x), weights before the update */
     double td_rms;        /* RMS TD error, exponentially weighted over ~1000 transitions */
     double trace_p;       /* rls_td: trace(P); otherwise 0 */
@@ -208,13 +234,15 @@ int est_train(struct est *e, const est_train_opts_t *o, est_train_t *rep);
 
 /* Query */
 
-/* Returns w . phi (phi: n doubles, borrowed); NAN when e has diverged. */
+/* Returns V(phi) (phi: n doubles, borrowed): w . phi, or the network's output (ensemble:
+ * the members' mean); NAN when e has diverged. */
 double est_value(const struct est *e, const double *phi);
 /*
- * Writes the standard deviation of the value at phi to *sd: rls_td only,
- * sqrt(s2 * phi'P phi) with s2 the running residual variance; NAN when
- * phi'P phi is not finite or negative (P is broken or indefinite), or when e
- * has diverged.  Returns 0 or WORTH_E_UNSUPPORTED.
+ * Writes the standard deviation of the value at phi to *sd: rls_td gives
+ * sqrt(s2 * phi'P phi) with s2 the running residual variance (NAN when
+ * phi'P phi is not finite or negative: P is broken or indefinite); ensemble the sample
+ * standard deviation of its members' values; NAN when e has diverged.  Returns 0 or
+ * WORTH_E_UNSUPPORTED.
  */
 int est_sd(const struct est *e, const double *phi, double *sd);
 /*
@@ -224,8 +252,11 @@ int est_sd(const struct est *e, const double *phi, double *sd);
  */
 double est_last_value(const struct est *e);
 double est_last_td(const struct est *e);
-/* Returns the n weights (borrowed, valid until the next update). */
+/* Returns the est_weight_count(e) weights (borrowed, valid until the next update): for the
+ * linear kinds the n weights of w . phi, for mlp and ensemble every network parameter
+ * (learn/mlpnet.h gives the layout). */
 const double *est_weights(const struct est *e);
+size_t est_weight_count(const struct est *e);
 size_t est_features(const struct est *e);
 const est_params_t *est_params(const struct est *e);
 void est_stats(const struct est *e, est_stats_t *out);
@@ -234,8 +265,8 @@ int est_diverged(const struct est *e);
 
 /* Published snapshots: what a query thread needs, copied out by the owner */
 
-/* Returns the doubles a value snapshot of e takes: w, the diverged flag, and for rls_td s2
- * and P. */
+/* Returns the doubles a value snapshot of e takes: the weights, the diverged flag, and for
+ * rls_td s2 and P. */
 size_t est_snap_size(const struct est *e);
 /* Writes e's value snapshot (est_snap_size doubles) into out (borrowed). */
 void est_snap(const struct est *e, double *out);

@@ -13,6 +13,15 @@
 #include "learn/ser.h"
 
 struct est_ops {
+    /* Optional: sets the initial weights (NULL: every weight is p.init).  Runs before init,
+     * and again on every reset and divergence. */
+    void (*init_w)(struct est *e);
+    /*
+     * Optional: the value at phi under the weights w (e->w, or a snapshot's copy), and the
+     * kind's sd there into *sd when sd is not NULL (NAN when it has none).  NULL: w . phi.
+     * Const and reentrant: it may run on a query thread while the owner updates e.
+     */
+    double (*value)(const struct est *e, const double *w, const double *phi, double *sd);
     /* Allocates and initialises the kind's state in e->k; e->w is already set. */
     void (*init)(struct est *e);
     void (*free)(struct est *e);
@@ -52,7 +61,8 @@ struct est {
     const struct est_ops *ops;
     size_t n;    /* features */
     size_t nsrc; /* source slots */
-    double *w;   /* n weights */
+    size_t nw;   /* weights: n, or the networks' parameters (mlp, ensemble) */
+    double *w;   /* nw weights */
     uint64_t updates;
     uint64_t guarded;
     double td_last;
@@ -66,7 +76,7 @@ struct est {
 };
 
 extern const struct est_ops est_td_ops, est_tdn_ops, est_tdlambda_ops, est_mc_ops, est_rls_ops,
-    est_lstd_ops, est_replay_ops;
+    est_lstd_ops, est_replay_ops, est_mlp_ops, est_ensemble_ops;
 
 /* Returns 1 when o asks the training to stop now (its cancel flag is set). */
 int est_train_cancelled(const est_train_opts_t *o);

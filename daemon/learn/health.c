@@ -95,7 +95,7 @@ static verdict_t own(const struct health *h, size_t i, const est_stats_t *s, con
         return (verdict_t){HEALTH_UNHEALTHY, R_SINGULAR, (double)h->guard_at[i], 0, 0};
     if (p->kind == EST_LSTD && st.refits == 0)
         return (verdict_t){HEALTH_WARMING, R_LSTD, (double)st.updates, p->refit_every, 0};
-    if (p->kind == EST_REPLAY && st.refits == 0)
+    if ((p->kind == EST_REPLAY || p->kind == EST_MLP || p->kind == EST_ENSEMBLE) && st.refits == 0)
         return (verdict_t){HEALTH_WARMING, R_REPLAY, 0, p->batch, 0};
     if (p->kind == EST_RLS_TD) {
         double need = 3.0 * (double)h->n;

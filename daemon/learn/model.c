@@ -231,8 +231,10 @@ long model_source_slot(struct model *m, const model_obs_t *t)
 
 void model_pred_sd(const struct est *e, const double *phi, double *sd)
 {
-    /* Only rls_td has an sd; asking the others would cost nothing but is skipped. */
-    if (est_params(e)->kind != EST_RLS_TD || est_sd(e, phi, sd) != 0)
+    /* Only rls_td and ensemble have an sd; asking the others would cost nothing but is
+     * skipped. */
+    enum est_kind k = est_params(e)->kind;
+    if ((k != EST_RLS_TD && k != EST_ENSEMBLE) || est_sd(e, phi, sd) != 0)
         *sd = NAN;
 }
 

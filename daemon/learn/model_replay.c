@@ -112,6 +112,11 @@ static double est_cost(const struct est *e, size_t n)
         return 2.0 * dn * dn + dn * dn * dn / (3.0 * p->refit_every);
     case EST_REPLAY:
         return 4.0 * dn * p->batch * p->steps_per_obs + 4.0 * dn;
+    case EST_MLP:
+    case EST_ENSEMBLE: { /* forward, target and backward passes of every member */
+        double w = (double)est_weight_count(e);
+        return 6.0 * w * p->batch * p->steps_per_obs + 4.0 * w;
+    }
     default:
         return 6.0 * dn;
     }

@@ -174,10 +174,10 @@ int do_train(struct req *rq)
     if (e < 0)
         return fail_done(rq, WORTH_E_BAD_PARAM, "model has no estimator \"%.64s\"", name);
     enum est_kind kind = est_params(model_est(m, (size_t)e))->kind;
-    if (kind != EST_REPLAY && kind != EST_LSTD)
+    if (kind != EST_REPLAY && kind != EST_LSTD && kind != EST_MLP && kind != EST_ENSEMBLE)
         return fail_done(rq, WORTH_E_UNSUPPORTED,
-                         "estimator \"%s\" (%s) does not train; replay and "
-                         "lstd do",
+                         "estimator \"%s\" (%s) does not train; replay, lstd, mlp and "
+                         "ensemble do",
                          name, est_kind_name(kind));
     double passes = 10;
     const cJSON *ps = field(rq->root, "passes");

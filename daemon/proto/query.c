@@ -489,7 +489,7 @@ int do_stats(struct req *rq)
         }
         if (kind == EST_LSTD)
             jw_fmt(o, ",\"refits\":%llu", (unsigned long long)e->refits);
-        if (kind == EST_REPLAY)
+        if (kind == EST_REPLAY || kind == EST_MLP || kind == EST_ENSEMBLE)
             jw_fmt(o, ",\"steps\":%llu", (unsigned long long)e->refits);
         jw_lit(o, ",\"last_update\":");
         jw_num(o, st.last_update);

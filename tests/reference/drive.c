@@ -16,6 +16,7 @@
 #include <errno.h>
 #include <inttypes.h>
 #include <limits.h>
+#include <math.h>
 #include <stdarg.h>
 #include <stddef.h>
 #include <stdio.h>
@@ -26,7 +27,7 @@
 #include "common/mem.h"
 #include "worth/errors.h"
 
-enum ptype { P_F64, P_UINT, P_U64, P_GUARD };
+enum ptype { P_F64, P_UINT, P_U64, P_GUARD, P_ACT, P_HIDDEN };
 
 #define KEY(name, type)                                                                            \
     {                                                                                              \
@@ -43,6 +44,8 @@ static const struct {
     KEY(trace_cap, P_F64), KEY(ridge, P_F64),    KEY(refit_every, P_UINT),
     KEY(capacity, P_UINT), KEY(batch, P_UINT),   KEY(steps_per_obs, P_UINT),
     KEY(decay, P_F64),     KEY(tol, P_F64),      KEY(seed, P_U64),
+    KEY(hidden, P_HIDDEN), KEY(act, P_ACT),      KEY(target_every, P_UINT),
+    KEY(clip, P_F64),      KEY(members, P_UINT),
 };
 
 static const char *const guards[] = {
@@ -69,7 +72,10 @@ static _Noreturn void usage(const char *fmt, ...)
                     "  KIND: td td_n td_lambda mc rls_td lstd replay; N: features >= 1\n"
                     "  keys: alpha init lambda nstep horizon max_episode forget delta\n"
                     "        guard=regularise|trace|none trace_cap ridge refit_every capacity\n"
-                    "        batch steps_per_obs decay tol seed\n"
+                    "        batch steps_per_obs decay tol seed hidden=W1,W2,..\n"
+                    "        act=tanh|relu target_every clip members\n"
+                    "  --train P: est_train with P passes at the end\n"
+                    "  --at FILE: print 'value sd' at each row of n float64 in FILE instead\n"
                     "  record: 2N+3 little-endian float64: phi[N] r phi_next[N] g terminal\n");
     exit(2);
 }
@@ -135,6 +141,27 @@ static int set_param(est_params_t *p, const char *arg)
                 return 0;
             *(unsigned *)field = (unsigned)u;
             return 1;
+        case P_ACT:
+            if (strcmp(val, "tanh") == 0 || strcmp(val, "relu") == 0) {
+                *(enum est_act *)field = val[0] == 't' ? EST_ACT_TANH : EST_ACT_RELU;
+                return 1;
+            }
+            return 0;
+        case P_HIDDEN: {
+            est_hidden_t *h = field;
+            memset(h, 0, sizeof *h);
+            for (const char *s = val; *s; h->count++) {
+                char *end;
+                unsigned long v = strtoul(s, &end, 10);
+                if (end == s || h->count == EST_MLP_MAX_LAYERS || v > UINT_MAX)
+                    return 0;
+                h->width[h->count] = (unsigned)v;
+                s = *end == ',' ? end + 1 : end;
+                if (*end && *end != ',')
+                    return 0;
+            }
+            return h->count > 0;
+        }
         case P_GUARD:
             for (size_t g = 0; g < sizeof guards / sizeof guards[0]; g++)
                 if (guards[g] && strcmp(val, guards[g]) == 0) {
@@ -167,9 +194,31 @@ static void print_weights(struct est *e, char sep)
             est_failed("est_train", rc, "");
     }
     const double *w = est_weights(e);
-    size_t n = est_features(e);
+    size_t n = est_weight_count(e);
     for (size_t i = 0; i < n; i++)
         printf("%.17g%c", w[i], i + 1 < n ? sep : '\n');
+}
+
+/* Prints "value sd" (sd NAN when the kind has none) at every row of n float64 in path. */
+static void print_values(struct est *e, const char *path, unsigned char *raw, double *x)
+{
+    size_t n = est_features(e);
+    FILE *f = fopen(path, "rb");
+    if (!f)
+        bad_input("cannot open %s", path);
+    size_t got;
+    while ((got = fread(raw, 1, n * 8, f)) > 0) {
+        if (got < n * 8)
+            bad_input("%s ends inside a row", path);
+        for (size_t i = 0; i < n; i++)
+            x[i] = le_f64(raw + 8 * i);
+        double sd = NAN;
+        double v = est_value(e, x);
+        if (est_sd(e, x, &sd) != 0)
+            sd = NAN;
+        printf("%.17g %.17g\n", v, sd);
+    }
+    fclose(f);
 }
 
 int main(int argc, char **argv)
@@ -179,7 +228,8 @@ int main(int argc, char **argv)
     int kind = est_kind_parse(argv[1]);
     if (kind < 0)
         usage("unknown estimator kind '%s'", argv[1]);
-    uint64_t n, every = 0;
+    uint64_t n, every = 0, train = 0;
+    const char *at = NULL;
     if (!parse_u64(argv[2], &n) || n < 1 || n > 100000)
         usage("N must be a feature count 1..100000, not '%s'", argv[2]);
     est_params_t p;
@@ -188,6 +238,13 @@ int main(int argc, char **argv)
         if (strcmp(argv[i], "--every") == 0) {
             if (i + 1 == argc || !parse_u64(argv[++i], &every) || every < 1)
                 usage("--every needs a record count K >= 1");
+        } else if (strcmp(argv[i], "--train") == 0) {
+            if (i + 1 == argc || !parse_u64(argv[++i], &train) || train < 1)
+                usage("--train needs a pass count P >= 1");
+        } else if (strcmp(argv[i], "--at") == 0) {
+            if (i + 1 == argc)
+                usage("--at needs a file");
+            at = argv[++i];
         } else if (!set_param(&p, argv[i])) {
             usage("bad parameter '%s'", argv[i]);
         }
@@ -222,7 +279,17 @@ int main(int argc, char **argv)
     }
     if (ferror(stdin))
         bad_input("cannot read stdin");
-    if (!every || count == 0 || count % every != 0)
+    if (train) {
+        est_train_t rep;
+        rc = est_train(e, &(est_train_opts_t){.passes = (unsigned)train}, &rep);
+        if (rc)
+            est_failed("est_train", rc, "");
+        fprintf(stderr, "train: passes=%u steps=%" PRIu64 " change=%.3g converged=%d\n", rep.passes,
+                rep.steps, rep.change, rep.converged);
+    }
+    if (at)
+        print_values(e, at, raw, x);
+    else if (!every || count == 0 || count % every != 0)
         print_weights(e, every ? ' ' : '\n');
 
     est_stats_t st;

@@ -328,10 +328,11 @@ static void names_and_optional_operations(void **state)
         struct est *e = make(k);
         double phi[N] = {1, 0, 0, 0, 0, 0}, sd = -1;
         int rc = est_sd(e, phi, &sd);
-        assert_int_equal(rc, k == EST_RLS_TD ? 0 : WORTH_E_UNSUPPORTED);
+        assert_int_equal(rc, (k == EST_RLS_TD || k == EST_ENSEMBLE) ? 0 : WORTH_E_UNSUPPORTED);
         est_train_t rep;
         rc = est_train(e, &(est_train_opts_t){.passes = 2}, &rep);
-        assert_int_equal(rc, (k == EST_LSTD || k == EST_REPLAY) ? 0 : WORTH_E_UNSUPPORTED);
+        int trains = k == EST_LSTD || k == EST_REPLAY || k == EST_MLP || k == EST_ENSEMBLE;
+        assert_int_equal(rc, trains ? 0 : WORTH_E_UNSUPPORTED);
         assert_int_equal(est_features(e), N);
         est_free(e);
     }

@@ -100,6 +100,13 @@ static void assert_same_params(const est_params_t *a, const est_params_t *b)
     assert_same_double(a->decay, b->decay);
     assert_same_double(a->tol, b->tol);
     assert_int_equal(a->seed, b->seed);
+    assert_int_equal(a->hidden.count, b->hidden.count);
+    for (int l = 0; l < EST_MLP_MAX_LAYERS; l++)
+        assert_int_equal(a->hidden.width[l], b->hidden.width[l]);
+    assert_int_equal(a->act, b->act);
+    assert_int_equal(a->target_every, b->target_every);
+    assert_same_double(a->clip, b->clip);
+    assert_int_equal(a->members, b->members);
 }
 
 static void assert_same_basis(const feat_basis_t *a, const feat_basis_t *b)
@@ -190,7 +197,10 @@ static const char FULL[] =
     "'trace_cap':1000},"
     "{'name':'lstd','kind':'lstd','ridge':0.001,'forget':0.999,'refit_every':50},"
     "{'name':'" N63 "','kind':'replay','alpha':0.1,'capacity':500,'batch':16,'steps_per_obs':2,"
-    "'decay':1000,'tol':1e-6,'seed':42}],"
+    "'decay':1000,'tol':1e-6,'seed':42},"
+    "{'name':'net','kind':'mlp','alpha':0.002,'n':2,'hidden':[16,8,4],'activation':'relu',"
+    "'target_every':50,'clip':5,'capacity':300,'batch':8,'seed':3},"
+    "{'name':'ens','kind':'ensemble','members':3,'hidden':[8],'capacity':200,'batch':4}],"
     "'primary':'rls','max_sources':8,'max_features':2000}";
 
 static void every_basis_and_kind(void **state)
@@ -221,8 +231,8 @@ static void every_basis_and_kind(void **state)
         assert_same_basis(&s->bases[i], &bases[i]);
     assert_int_equal(s->m.feat.max_features, 2000);
 
-    est_params_t p[7];
-    for (int k = 0; k < 7; k++)
+    est_params_t p[9];
+    for (int k = 0; k < 9; k++)
         est_params_default((enum est_kind)k, &p[k]);
     p[0].alpha = 0.05, p[0].init = 1.5;
     p[1].alpha = 0.02, p[1].nstep = 3;
@@ -233,9 +243,14 @@ static void every_basis_and_kind(void **state)
     p[5].ridge = 0.001, p[5].forget = 0.999, p[5].refit_every = 50;
     p[6].alpha = 0.1, p[6].capacity = 500, p[6].batch = 16, p[6].steps_per_obs = 2;
     p[6].decay = 1000, p[6].tol = 1e-6, p[6].seed = 42;
-    const char *names[7] = {"td", "tdn", "tdl", "mc", "rls", "lstd", N63};
-    assert_int_equal(s->m.n_est, 7);
-    for (int i = 0; i < 7; i++) {
+    p[7].alpha = 0.002, p[7].nstep = 2, p[7].hidden = (est_hidden_t){3, {16, 8, 4, 0}};
+    p[7].act = EST_ACT_RELU, p[7].target_every = 50, p[7].clip = 5, p[7].capacity = 300;
+    p[7].batch = 8, p[7].seed = 3;
+    p[8].members = 3, p[8].hidden = (est_hidden_t){1, {8, 0, 0, 0}}, p[8].capacity = 200;
+    p[8].batch = 4;
+    const char *names[9] = {"td", "tdn", "tdl", "mc", "rls", "lstd", N63, "net", "ens"};
+    assert_int_equal(s->m.n_est, 9);
+    for (int i = 0; i < 9; i++) {
         assert_string_equal(s->est_names[i], names[i]);
         assert_string_equal(s->m.est_names[i], names[i]);
         assert_same_params(&s->est[i], &p[i]);
@@ -283,7 +298,7 @@ static void estimator_defaults(void **state)
 static void canonical_lists_every_parameter(void **state)
 {
     (void)state;
-    static const char *const est_keys[EST_KIND_COUNT][10] = {
+    static const char *const est_keys[EST_KIND_COUNT][16] = {
         [EST_TD] = {"name", "kind", "alpha", "init"},
         [EST_TD_N] = {"name", "kind", "alpha", "n", "init"},
         [EST_TD_LAMBDA] = {"name", "kind", "alpha", "lambda", "init"},
@@ -292,6 +307,11 @@ static void canonical_lists_every_parameter(void **state)
         [EST_LSTD] = {"name", "kind", "lambda", "ridge", "forget", "refit_every", "init"},
         [EST_REPLAY] = {"name", "kind", "alpha", "capacity", "batch", "steps_per_obs", "decay",
                         "tol", "seed", "init"},
+        [EST_MLP] = {"name", "kind", "alpha", "n", "capacity", "batch", "steps_per_obs", "decay",
+                     "tol", "seed", "hidden", "activation", "target_every", "clip", "init"},
+        [EST_ENSEMBLE] = {"name", "kind", "alpha", "n", "capacity", "batch", "steps_per_obs",
+                          "decay", "tol", "seed", "hidden", "activation", "target_every", "clip",
+                          "members", "init"},
     };
     static const char *const basis_keys[6][4] = {
         {"basis"},
@@ -312,10 +332,17 @@ static void canonical_lists_every_parameter(void **state)
     const cJSON *dg = cJSON_GetObjectItemCaseSensitive(j, "diagnostics");
     /* horizon, window, false_alarm_transitions (no period_s here), drift_k, drift_batch,
      * drift_burn_in, on_drift, and the four input checks' */
-    static const char *const dkeys[] = {
-        "horizon",       "window",         "false_alarm_transitions", "drift_k",
-        "drift_batch",   "drift_burn_in",  "on_drift",                "frozen_periods",
-        "frozen_tolerance", "out_of_range_periods", "silent_periods"};
+    static const char *const dkeys[] = {"horizon",
+                                        "window",
+                                        "false_alarm_transitions",
+                                        "drift_k",
+                                        "drift_batch",
+                                        "drift_burn_in",
+                                        "on_drift",
+                                        "frozen_periods",
+                                        "frozen_tolerance",
+                                        "out_of_range_periods",
+                                        "silent_periods"};
     assert_int_equal(cJSON_GetArraySize(dg), sizeof dkeys / sizeof dkeys[0]);
     for (size_t i = 0; i < sizeof dkeys / sizeof dkeys[0]; i++)
         assert_non_null(cJSON_GetObjectItemCaseSensitive(dg, dkeys[i]));
@@ -330,7 +357,7 @@ static void canonical_lists_every_parameter(void **state)
     for (int k = 0; k < EST_KIND_COUNT; k++) {
         cJSON *e = cJSON_GetArrayItem(ests, k);
         int n = 0;
-        while (n < 10 && est_keys[k][n]) {
+        while (n < 16 && est_keys[k][n]) {
             if (!cJSON_GetObjectItemCaseSensitive(e, est_keys[k][n]))
                 print_error("kind %s lacks %s\n", est_kind_name((enum est_kind)k), est_keys[k][n]);
             assert_non_null(cJSON_GetObjectItemCaseSensitive(e, est_keys[k][n]));
@@ -686,6 +713,31 @@ static const struct {
     {E("{'name':'a','kind':'replay','seed':1.5}"), WORTH_E_BAD_PARAM, "estimators[0].seed"},
     {E("{'name':'a','kind':'replay','tol':false}"), WORTH_E_BAD_REQUEST,
      "estimators[0].tol must be a number"},
+    /* mlp and ensemble */
+    {E("{'name':'a','kind':'mlp','hidden':32}"), WORTH_E_BAD_REQUEST,
+     "estimators[0].hidden must be an array of layer widths"},
+    {E("{'name':'a','kind':'mlp','hidden':[]}"), WORTH_E_BAD_PARAM,
+     "estimators[0].hidden must list 1..4 layer widths"},
+    {E("{'name':'a','kind':'mlp','hidden':[8,8,8,8,8]}"), WORTH_E_BAD_PARAM,
+     "estimators[0].hidden must list 1..4 layer widths"},
+    {E("{'name':'a','kind':'mlp','hidden':[8,0]}"), WORTH_E_BAD_PARAM,
+     "estimators[0].hidden[1] must be an integer 1..1024"},
+    {E("{'name':'a','kind':'mlp','hidden':[2000]}"), WORTH_E_BAD_PARAM,
+     "estimators[0].hidden[0] must be an integer 1..1024"},
+    {E("{'name':'a','kind':'mlp','hidden':[8.5]}"), WORTH_E_BAD_PARAM,
+     "estimators[0].hidden[0] must be an integer"},
+    {E("{'name':'a','kind':'mlp','hidden':['8']}"), WORTH_E_BAD_NUMBER,
+     "estimators[0].hidden[0] must be a finite number"},
+    {E("{'name':'a','kind':'mlp','activation':'sigmoid'}"), WORTH_E_BAD_PARAM,
+     "estimators[0].activation must be \"tanh\" or \"relu\""},
+    {E("{'name':'a','kind':'mlp','activation':1}"), WORTH_E_BAD_REQUEST,
+     "estimators[0].activation must be a string"},
+    {E("{'name':'a','kind':'mlp','members':3}"), WORTH_E_BAD_REQUEST,
+     "field \"members\" does not apply to kind mlp"},
+    {E("{'name':'a','kind':'td','hidden':[4]}"), WORTH_E_BAD_REQUEST,
+     "field \"hidden\" does not apply to kind td"},
+    {E("{'name':'a','kind':'ensemble','members':-1}"), WORTH_E_BAD_PARAM,
+     "estimators[0].members must be an integer"},
     /* primary, max_sources, max_features */
     {REQ(ALL ",'primary':'zz'"), WORTH_E_BAD_PARAM,
      "primary: no estimator is named \"zz\" (give a name or \"auto\")"},
