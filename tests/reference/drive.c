@@ -2,14 +2,16 @@
  * drive.c - test driver: feeds binary transitions to one estimator and prints its weights.
  *
  * For tests only (test_numpy_ref.py compares what it prints with numpy); not part of worthd.
- *   drive KIND N [key=value ...] [--every K]
+ *   drive KIND N [key=value ...] [--every K] [--train P] [--at FILE]
  * builds an estimator of kind KIND (est_kind_parse) over N features, with the est_params_t
  * fields named by the keys set over est_params_default.  stdin holds records of 2N+3
  * little-endian float64: phi[N], r, phi_next[N], g, terminal (0 or 1); each goes to
  * est_observe on source 0.  lstd is refitted with est_train before weights are printed.
- * Output: the N weights, one per line, "%.17g"; with --every K instead one line of N
- * space-separated weights after every K records, and a last line for the final weights when
- * the record count is 0 or not a multiple of K.  stderr gets one line of est_stats.
+ * Output: the weights (est_weight_count), one per line, "%.17g"; with --every K instead
+ * one line of space-separated weights after every K records, and a last line for the final
+ * weights when the record count is 0 or not a multiple of K.  --train P runs est_train with
+ * P passes after the last record; --at FILE prints "value sd" at each row of N float64 in
+ * FILE instead of the weights.  stderr gets one line of est_stats.
  * Exit status: 0 ok, 2 bad usage or malformed input, 1 when an est_* call fails.
  */
 #include <ctype.h>
@@ -199,10 +201,17 @@ static void print_weights(struct est *e, char sep)
         printf("%.17g%c", w[i], i + 1 < n ? sep : '\n');
 }
 
-/* Prints "value sd" (sd NAN when the kind has none) at every row of n float64 in path. */
+/* Refits lstd, then prints "value sd" (sd NAN when the kind has none) at every row of n
+ * float64 in path. */
 static void print_values(struct est *e, const char *path, unsigned char *raw, double *x)
 {
     size_t n = est_features(e);
+    if (est_params(e)->kind == EST_LSTD) {
+        est_train_t rep;
+        int rc = est_train(e, &(est_train_opts_t){.passes = 1}, &rep);
+        if (rc)
+            est_failed("est_train", rc, "");
+    }
     FILE *f = fopen(path, "rb");
     if (!f)
         bad_input("cannot open %s", path);

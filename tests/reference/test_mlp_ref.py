@@ -7,6 +7,10 @@ with the step-size schedule, the target network and the bootstrap masks.  The C 
 (tests/reference/drive.c, $WORTH_DRIVE) runs worthd's estimator on the same transitions; the
 weights must agree to 1e-9 relative.  Run with Debian's /usr/bin/python3.
 """
+import itertools
+import os
+import subprocess
+
 import numpy as np
 import pytest
 
@@ -188,3 +192,141 @@ def test_weights_match_numpy(case):
     print(f"{case}: {len(w)} weights after {ref.steps} steps, relative error {err:.3g}, "
           f"largest per-weight relative error {worst:.3g}")
     assert err <= 1e-9, (err, worst)
+
+
+# ---- a chain whose true value is nonlinear in the state ----
+#
+# Our own plant: a level p on S = 1001 grid points of [0, 1] moves each step by a jump drawn
+# uniformly from -20..20 grid points (clipped at the ends); the reward is 1 while p > 0.7,
+# gamma 0.95.  The plant reports four sensors x = p + e, e a fresh zero-sum offset (each
+# component uniform in +-0.15 before centring), so p = mean(x) and the chain is Markov in x:
+# its true value V(mean(x)) is a smoothed step along the diagonal of the 4-D state, solved
+# exactly on the grid by numpy.linalg.solve of (I - gamma P) V = R.
+
+S, JUMP, GAMMA_C, DIMS, OFF = 1001, 20, 0.95, 4, 0.15
+LEVEL = np.linspace(0, 1, S)
+REWARD = (LEVEL > 0.7).astype(float)
+
+
+def chain_values():
+    P = np.zeros((S, S))
+    for s in range(S):
+        for k in range(-JUMP, JUMP + 1):
+            P[s, min(max(s + k, 0), S - 1)] += 1.0 / (2 * JUMP + 1)
+    return np.linalg.solve(np.eye(S) - GAMMA_C * P, REWARD)  # reference: numpy.linalg.solve
+
+
+def sensors(rng, s):
+    u = rng.uniform(-OFF, OFF, size=(len(s), DIMS))
+    return (LEVEL[s][:, None] + u - u.mean(axis=1, keepdims=True) + OFF) / (1 + 2 * OFF)
+
+
+def chain_data(seed, m):
+    """m transitions of one trajectory, the states normalised to [0, 1]^4 as worthd would."""
+    rng = np.random.default_rng(seed)
+    s = np.empty(m + 1, dtype=int)
+    s[0] = S // 2
+    jumps = rng.integers(-JUMP, JUMP + 1, size=m)
+    for t in range(m):
+        s[t + 1] = min(max(s[t] + jumps[t], 0), S - 1)
+    Z = sensors(rng, s)
+    return s, Z, REWARD[s[:-1]]
+
+
+def poly(Z, deg):
+    cols = [np.ones(len(Z))]
+    for d in range(1, deg + 1):
+        for c in itertools.combinations_with_replacement(range(DIMS), d):
+            cols.append(np.prod(Z[:, list(c)], axis=1))
+    return np.column_stack(cols)
+
+
+def fourier(Z, order, couple=DIMS):
+    ks = [k for k in itertools.product(range(order + 1), repeat=DIMS)
+          if sum(1 for v in k if v) <= couple]
+    return np.cos(np.pi * Z @ np.array(ks).T)
+
+
+def rbf(Z, per_dim, width):
+    cs = np.array(list(itertools.product(np.linspace(0, 1, per_dim), repeat=DIMS)))
+    return np.exp(-((Z[:, None, :] - cs[None]) ** 2).sum(-1) / (2 * width * width))
+
+
+# Linear bases of at most 200 features on the four normalised sensors.
+BASES = {
+    "poly degree 3": lambda Z: poly(Z, 3),
+    "poly degree 5": lambda Z: poly(Z, 5),
+    "fourier order 2": lambda Z: fourier(Z, 2),
+    "fourier order 5, pairs": lambda Z: fourier(Z, 5, couple=2),
+    "fourier order 49, one dim per term": lambda Z: fourier(Z, 49, couple=1),
+    "rbf 3 per dim, width 0.25": lambda Z: rbf(Z, 3, 0.25),
+    "rbf 3 per dim, width 0.5": lambda Z: rbf(Z, 3, 0.5),
+}
+
+
+def run_at(kind, n, phi, r, phin, query, tmp_path, **params):
+    """Values and sds of worthd's estimator (drive --at) at the query rows."""
+    qf = tmp_path / f"query-{kind}.f8"
+    qf.write_bytes(np.ascontiguousarray(query, dtype="<f8").tobytes())
+    m = len(r)
+    rec = np.column_stack([phi, r, phin, np.full(m, GAMMA_C), np.zeros(m)])
+    args = [os.environ["WORTH_DRIVE"], kind, str(n)]
+    args += [f"{k}={v}" for k, v in params.items()] + ["--at", str(qf)]
+    p = subprocess.run(args, input=rec.astype("<f8").tobytes(), capture_output=True, timeout=240)
+    assert p.returncode == 0, p.stderr.decode()
+    out = np.array([[float(v) for v in line.split()] for line in p.stdout.decode().splitlines()])
+    return out[:, 0], out[:, 1]
+
+
+NET = dict(hidden="16,16", alpha=0.003, batch=64, capacity=20000, steps_per_obs=2, decay=20000.0,
+           nstep=4, seed=1)
+
+
+def test_mlp_beats_the_best_linear_estimator_on_the_chain(tmp_path):
+    V = chain_values()
+    s, Z, r = chain_data(1, 12000)
+    rng = np.random.default_rng(2)
+    qs = rng.integers(0, S, size=2000)  # the trajectory's stationary law is uniform here
+    Q, Vq = sensors(rng, qs), V[qs]
+    lin = {}
+    for name, basis in BASES.items():
+        F, FQ = basis(Z), basis(Q)
+        assert F.shape[1] <= 200, (name, F.shape)
+        v, _ = run_at("lstd", F.shape[1], F[:-1], r, F[1:], FQ, tmp_path, ridge=1e-6,
+                      refit_every=10**7)
+        lin[name] = (F.shape[1], float(np.sqrt(np.mean((v - Vq) ** 2))))
+    v, _ = run_at("mlp", DIMS, Z[:-1], r, Z[1:], Q, tmp_path, **NET)
+    mlp = float(np.sqrt(np.mean((v - Vq) ** 2)))
+    best = min(lin, key=lambda k: lin[k][1])
+    for name, (n, e) in lin.items():
+        print(f"lstd, {name} ({n} features): RMS value error {e:.4f}")
+    print(f"mlp 4-16-16-1 tanh on the 4 sensors: RMS value error {mlp:.4f}; best linear "
+          f"{best} ({lin[best][0]} features) {lin[best][1]:.4f}; ratio {mlp / lin[best][1]:.3f}"
+          f"; true values 0..{V.max():.2f}")
+    # reference: numpy.linalg.solve of the chain's Bellman equation (chain_values)
+    assert mlp <= 0.5 * lin[best][1], (mlp, lin)
+
+
+def test_ensemble_spread_is_larger_where_data_are_sparse(tmp_path):
+    # The same chain, with 19 in 20 of the transitions from levels above 0.75 left out: the
+    # data are dense on [0, 0.75] and sparse above.
+    # Each transition starts from a uniform level (a plant visited at random times).
+    rng = np.random.default_rng(4)
+    s = rng.integers(0, S, size=8000)
+    sn = np.clip(s + rng.integers(-JUMP, JUMP + 1, size=len(s)), 0, S - 1)
+    keep = (LEVEL[s] <= 0.75) | (rng.random(len(s)) < 0.05)
+    s, sn = s[keep], sn[keep]
+    phi, phin, r = sensors(rng, s), sensors(rng, sn), REWARD[s]
+    dense_q = rng.integers(int(0.1 * S), int(0.6 * S), size=300)
+    sparse_q = rng.integers(int(0.85 * S), S, size=300)
+    Q = np.vstack([sensors(rng, dense_q), sensors(rng, sparse_q)])
+    params = dict(NET, members=4, steps_per_obs=1)
+    v, sd = run_at("ensemble", DIMS, phi, r, phin, Q, tmp_path, **params)
+    assert np.all(np.isfinite(sd)) and np.all(sd >= 0)
+    dense, sparse = sd[:300].mean(), sd[300:].mean()
+    frac = (LEVEL[s] > 0.75).mean()
+    print(f"ensemble of 4 on {keep.sum()} transitions ({100 * frac:.1f}% above level 0.75): "
+          f"mean sd {dense:.4f} at levels 0.1..0.6 (dense), {sparse:.4f} at 0.85..1 (sparse), "
+          f"ratio {sparse / dense:.2f}")
+    # A constant sd would give a ratio of 1.
+    assert sparse > 2.0 * dense, (sparse, dense)
