@@ -90,15 +90,20 @@ static double answered(const learner_stats_t *st, const double *vals, size_t i)
 /*
  * The work of answering one state, in multiply-adds: the features (about F per
  * input dimension for the costliest bases), a dot product per estimator, and
- * for each rls_td estimator its sd, phi'P phi, F^2.  An upper bound: sparse
+ * for each rls_td estimator its sd, phi'P phi, F^2, and for mlp and ensemble
+ * a forward pass, about one multiply-add per weight.  An upper bound: sparse
  * bases cost less.
  */
 static double state_work(const struct model *m)
 {
     double f = (double)model_features(m), w = f * (double)(model_dims(m) + model_n_est(m));
-    for (size_t i = 0; i < model_n_est(m); i++)
-        if (est_params(model_est(m, i))->kind == EST_RLS_TD)
+    for (size_t i = 0; i < model_n_est(m); i++) {
+        enum est_kind k = est_params(model_est(m, i))->kind;
+        if (k == EST_RLS_TD)
             w += f * f;
+        else if (k == EST_MLP || k == EST_ENSEMBLE)
+            w += (double)est_weight_count(model_est(m, i));
+    }
     return w;
 }
 

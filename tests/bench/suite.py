@@ -9,6 +9,9 @@ Parts (select with --parts, default all):
   kernels   in-process ns per update and per value for each estimator kind at
             n = 16, 64, 256, 1024, and RLS-TD beside the OpenBLAS reference
             (dgemv + dgemv + dger on the same P) in the same process.
+  nets      mlp and ensemble (5 members) at 8 inputs / 32-32 and 64 / 128-128:
+            transitions/s through est_observe, ns per training step and its
+            ratio to the bare dgemm/dgemv calls of the same shapes.
   ingest    transitions/s over the Unix socket into a model with 8 state
             dimensions and 65 features (bias + Fourier order 8, uncoupled),
             estimators td + rls_td + replay: single observe lines, batches of
@@ -260,6 +263,19 @@ def part_kernels(a, run):
             ref = fig.get(f"kernel openblas_rls update n={row['n']} [ns]")
             if ref:
                 fig[f"kernel rls_td / openblas n={row['n']} [ratio]"] = row["update_ns"] / ref
+    return fig
+
+
+def part_nets(a, run):
+    out = subprocess.run([os.path.join(a.build, "tests", "bench", "nets"), "-t",
+                          str(0.1 if a.quick else 0.5)], check=True, capture_output=True,
+                         text=True).stdout
+    fig = {}
+    for row in (json.loads(l) for l in out.splitlines() if l.strip()):
+        tag = f"{row['kind']} n={row['n']} hidden={row['hidden']}"
+        fig[f"net {tag} observe [transitions/s]"] = row["obs_per_s"]
+        fig[f"net {tag} step [ns]"] = row["step_ns"]
+        fig[f"net {tag} step / dgemm bound [ratio]"] = row["ratio"]
     return fig
 
 
@@ -586,7 +602,7 @@ def part_baseline(a, run):
     return fig
 
 
-PARTS = {"kernels": part_kernels, "ingest": part_ingest, "query": part_query,
+PARTS = {"kernels": part_kernels, "nets": part_nets, "ingest": part_ingest, "query": part_query,
          "recovery": part_recovery, "scale": part_scale, "baseline": part_baseline}
 
 # ---------------------------------------------------------------------------
