@@ -25,6 +25,7 @@
 
 #include "core/arena.h"
 #include "store/db.h"
+#include "store/logsql.h"
 #include "common/mem.h"
 #include "common/say.h"
 #include "core/spec.h"
@@ -81,19 +82,7 @@ static int watch_replay(void *ctx)
 /* Transitions of model id after seq that a replay learns (for its progress). */
 static uint64_t replay_total(sqlite3 *db, int64_t id, uint64_t after)
 {
-    sqlite3_stmt *st = NULL;
-    uint64_t n = 0;
-    if (sqlite3_prepare_v2(db,
-                           "SELECT count(*) FROM transitions WHERE model = ?1 AND seq > ?2"
-                           " AND rolled_back = 0",
-                           -1, &st, NULL) == SQLITE_OK) {
-        sqlite3_bind_int64(st, 1, id);
-        sqlite3_bind_int64(st, 2, (sqlite3_int64)after);
-        if (sqlite3_step(st) == SQLITE_ROW)
-            n = (uint64_t)sqlite3_column_int64(st, 0);
-    }
-    sqlite3_finalize(st);
-    return n;
+    return logsql_count_live(db, id, after);
 }
 
 /* What became of one model (recover_one). */
@@ -128,10 +117,12 @@ static void quarantine(sqlite3 *db, int64_t id, const char *name, uint64_t seq, 
                        const char *fix, const recover_sink_t *sink, struct writer *w)
 {
     const char *file = sqlite3_db_filename(db, "main");
-    char row[128];
+    char row[320];
     if (seq)
         snprintf(row, sizeof row,
-                 "correct or delete the damaged row (transitions: model = %lld, seq = %llu)",
+                 "correct or delete the damaged transition (model = %lld, seq = %llu: its row of "
+                 "transitions, or its record in the log_blocks row whose first_seq..last_seq "
+                 "hold it, schema/README.md)",
                  (long long)id, (unsigned long long)seq);
     if (name) {
         say_error(
@@ -241,8 +232,8 @@ static int recover_one(sqlite3 *db, int64_t id, const char *name, const char *sp
                        why, sizeof why);
     if (rc == 0 && wt)
         wt->sink->progress(wt->sink->ctx, name, wt->index, wt->n, wt->total, wt->total);
-    if (rc == 0 && (max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM transitions WHERE model = ?", id,
-                           &last_seq) != 0 ||
+    uint64_t first_seq = 0;
+    if (rc == 0 && (logsql_bounds(db, id, &first_seq, &last_seq) != 0 ||
                     max_of(db, "SELECT COALESCE(MAX(seq), 0) FROM checkpoints WHERE model = ?", id,
                            &cp_seq) != 0 ||
                     max_of(db, "SELECT COALESCE(MAX(ordinal), 0) FROM trainings WHERE model = ?",
@@ -351,8 +342,8 @@ int recover_models(sqlite3 *db, const recover_sink_t *sink, struct writer *w, ev
             break;
         }
         out = recover_one(db, id, name, specd ? (const char *)sqlite3_column_text(st, 2) : NULL,
-                          sink, w, post, wake, ctx, stop_asked, actx,
-                          sink->progress ? &wt : NULL, err, errlen);
+                          sink, w, post, wake, ctx, stop_asked, actx, sink->progress ? &wt : NULL,
+                          err, errlen);
         wt.index++;
         if (out == R_STOP || out == R_ABANDONED)
             break;

@@ -28,6 +28,7 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
+#include "store/logsql.h"
 #include "store/wr.h"
 #include "worth/errors.h"
 
@@ -181,22 +182,6 @@ void ckpt_job_list(struct writer *w, struct job *j)
     jw_close(&jb);
 }
 
-/* The t of transition seq of model in the log; NAN when it has none or is not there. */
-static double log_t_at(struct writer *w, int64_t model, uint64_t seq)
-{
-    sqlite3_stmt *st = NULL;
-    double t = NAN;
-    if (sqlite3_prepare_v2(w->db, "SELECT t FROM transitions WHERE model = ?1 AND seq = ?2", -1,
-                           &st, NULL) == SQLITE_OK) {
-        sqlite3_bind_int64(st, 1, model);
-        sqlite3_bind_int64(st, 2, (sqlite3_int64)seq);
-        if (sqlite3_step(st) == SQLITE_ROW && sqlite3_column_type(st, 0) != SQLITE_NULL)
-            t = sqlite3_column_double(st, 0);
-    }
-    sqlite3_finalize(st);
-    return t;
-}
-
 void ckpt_job_drift(struct writer *w, struct job *j)
 {
     int64_t pre = 0, model = queue_db_id(j->q);
@@ -260,7 +245,8 @@ void ckpt_job_drift(struct writer *w, struct job *j)
      * they have one (the learner's own plant time may run ahead of the transition whose
      * alarm it reports: the diagnostics take a chunk after it was pushed).
      */
-    double ta = log_t_at(w, model, j->seq), to = log_t_at(w, model, j->a);
+    size_t dims = queue_dims(j->q);
+    double ta = logsql_t_at(w->db, model, dims, j->seq), to = logsql_t_at(w->db, model, dims, j->a);
     if (isnan(ta))
         ta = j->plant_t;
     if (!isnan(ta))

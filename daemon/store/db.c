@@ -34,6 +34,7 @@
 #include "common/fail.h"
 #include "common/mem.h"
 #include "common/say.h"
+#include "store/logsql.h"
 #include "worth/errors.h"
 
 double db_now(void)
@@ -330,68 +331,6 @@ static const char *col_kind(sqlite3_stmt *st, int col, char *buf, size_t len)
     }
 }
 
-static int is_number(sqlite3_stmt *st, int col)
-{
-    int t = sqlite3_column_type(st, col);
-    return t == SQLITE_INTEGER || t == SQLITE_FLOAT;
-}
-
-/* A vector column holds exactly d float64 (a BLOB of 8d bytes); copies it into v. */
-static int read_vec(sqlite3_stmt *st, int col, size_t d, double *v)
-{
-    if (sqlite3_column_type(st, col) != SQLITE_BLOB)
-        return -1;
-    const void *b = sqlite3_column_blob(st, col);
-    if (!b || (size_t)sqlite3_column_bytes(st, col) != d * sizeof(double))
-        return -1;
-    memcpy(v, b, d * sizeof(double));
-    return 0;
-}
-
-/*
- * Reads the transitions row at st (seq, source, x, r, x_next, terminal, dt) into o, x and xn
- * (d doubles each).  Every column's type is checked before its value is used: a damaged row
- * (NULL or TEXT where a number or a BLOB belongs, a vector of the wrong length, terminal other
- * than 0 or 1) must never reach the model, nor hand a NULL pointer to memcpy.  Returns 0, or
- * -1 with why (the values themselves are then checked by model_check).
- */
-static int read_row(sqlite3_stmt *st, size_t d, double *x, double *xn, model_obs_t *o, char *why,
-                    size_t len)
-{
-    char k[48];
-    if (sqlite3_column_type(st, 5) != SQLITE_INTEGER ||
-        (sqlite3_column_int64(st, 5) != 0 && sqlite3_column_int64(st, 5) != 1))
-        return err_fail(why, len, -1, "terminal is %s, not 0 or 1", col_kind(st, 5, k, sizeof k));
-    int terminal = sqlite3_column_int(st, 5);
-    if (read_vec(st, 2, d, x) != 0)
-        return err_fail(why, len, -1, "x is %s, not %zu float64 (a BLOB of %zu bytes)",
-                        col_kind(st, 2, k, sizeof k), d, d * sizeof(double));
-    if (!terminal && read_vec(st, 4, d, xn) != 0)
-        return err_fail(why, len, -1, "x_next is %s, not %zu float64 (a BLOB of %zu bytes)",
-                        col_kind(st, 4, k, sizeof k), d, d * sizeof(double));
-    if (terminal && sqlite3_column_type(st, 4) != SQLITE_NULL && read_vec(st, 4, d, xn) != 0)
-        return err_fail(why, len, -1, "x_next of a terminal transition is %s, not NULL",
-                        col_kind(st, 4, k, sizeof k));
-    if (!is_number(st, 3))
-        return err_fail(why, len, -1, "r is %s, not a number", col_kind(st, 3, k, sizeof k));
-    if (sqlite3_column_type(st, 1) != SQLITE_TEXT || !sqlite3_column_text(st, 1))
-        return err_fail(why, len, -1, "source is %s, not text", col_kind(st, 1, k, sizeof k));
-    if (sqlite3_column_type(st, 6) != SQLITE_NULL && !is_number(st, 6))
-        return err_fail(why, len, -1, "dt is %s, not a number or NULL",
-                        col_kind(st, 6, k, sizeof k));
-    *o = (model_obs_t){
-        .x = x,
-        .x_len = d,
-        .r = sqlite3_column_double(st, 3),
-        .x_next = terminal ? NULL : xn,
-        .x_next_len = d,
-        .terminal = terminal,
-        .source = (const char *)sqlite3_column_text(st, 1),
-        .dt_s = sqlite3_column_type(st, 6) == SQLITE_NULL ? NAN : sqlite3_column_double(st, 6),
-    };
-    return 0;
-}
-
 /*
  * Runs the logged training at tr (ordinal, after_seq, estimator, passes) on m, after checking
  * its columns.  Returns 0, or -1 with why when the row is damaged (nothing is run).
@@ -448,7 +387,8 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
               uint64_t *replayed, uint64_t *last_training, uint64_t *bad_seq, db_abandon_fn abandon,
               void *actx, char *err, size_t errlen)
 {
-    sqlite3_stmt *tr = NULL, *tx = NULL;
+    sqlite3_stmt *tr = NULL;
+    struct logit *it = NULL;
     struct model_replay *rp = NULL;
     int code = 0;
     uint64_t seq = from->seq, unused;
@@ -458,8 +398,6 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
     *bad_seq = 0;
     *replayed = 0;
     *last_training = from->training;
-    size_t d = model_dims(m);
-    double x[FEAT_MAX_DIMS], xn[FEAT_MAX_DIMS];
     /* upto beyond INT64_MAX reads as "everything" */
     sqlite3_int64 hi = upto > (uint64_t)INT64_MAX ? INT64_MAX : (sqlite3_int64)upto;
 
@@ -468,20 +406,13 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
                            " WHERE model = ?1 AND ordinal > ?2 AND after_seq <= ?3"
                            " AND rolled_back = 0 ORDER BY ordinal",
                            -1, &tr, NULL) != SQLITE_OK ||
-        sqlite3_prepare_v2(db,
-                           "SELECT seq, source, x, r, x_next, terminal, dt, t FROM transitions"
-                           " WHERE model = ?1 AND seq > ?2 AND seq <= ?3 AND rolled_back = 0"
-                           " ORDER BY seq",
-                           -1, &tx, NULL) != SQLITE_OK) {
+        logit_open(db, model_id, model_dims(m), from->seq, (uint64_t)hi, &it) != 0) {
         code = err_fail(err, errlen, db_error_code(db), "%s", sqlite3_errmsg(db));
         goto out;
     }
     sqlite3_bind_int64(tr, 1, model_id);
     sqlite3_bind_int64(tr, 2, (sqlite3_int64)from->training);
     sqlite3_bind_int64(tr, 3, hi);
-    sqlite3_bind_int64(tx, 1, model_id);
-    sqlite3_bind_int64(tx, 2, (sqlite3_int64)from->seq);
-    sqlite3_bind_int64(tx, 3, hi);
 
     /*
      * The estimators learn on worker threads while this thread reads the log
@@ -491,14 +422,11 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
      */
     rp = model_replay_new(m, 0, 0);
     int trc = sqlite3_step(tr), xrc;
-    while ((xrc = sqlite3_step(tx)) == SQLITE_ROW) {
-        if (sqlite3_column_type(tx, 0) != SQLITE_INTEGER) {
-            code = err_fail(err, errlen, WORTH_E_DAMAGED,
-                            "the transition after seq %llu has a seq that is not an integer",
-                            (unsigned long long)seq);
-            goto out;
-        }
-        seq = (uint64_t)sqlite3_column_int64(tx, 0);
+    logit_row_t row;
+    while ((xrc = logit_next(it, &row, bad_seq, why, sizeof why)) == 1) {
+        if (row.rolled_back)
+            continue;
+        seq = row.seq;
         if (abandon && *replayed % DB_ABANDON_EVERY == DB_ABANDON_EVERY - 1 && abandon(actx)) {
             code = err_fail(err, errlen, WORTH_E_CANCELLED,
                             "replay given up at seq %llu: worthd is stopping",
@@ -518,27 +446,24 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
             *last_training = (uint64_t)sqlite3_column_int64(tr, 0);
             trc = sqlite3_step(tr);
         }
-        model_obs_t o;
-        if (read_row(tx, d, x, xn, &o, why, sizeof why) != 0) {
-            *bad_seq = seq;
-            code = err_fail(err, errlen, WORTH_E_DAMAGED, "transition %llu is damaged: %s",
-                            (unsigned long long)seq, why);
-            goto out;
-        }
         if (!rp)
             rp = model_replay_new(m, 0, 0);
-        if (model_replay_push(rp, &o, why, sizeof why) != 0) {
+        if (model_replay_push(rp, &row.o, why, sizeof why) != 0) {
             *bad_seq = seq;
             code = err_fail(err, errlen, WORTH_E_DAMAGED, "transition %llu is damaged: %s",
                             (unsigned long long)seq, why);
             goto out;
         }
         (*replayed)++;
-        if (sqlite3_column_type(tx, 7) == SQLITE_FLOAT ||
-            sqlite3_column_type(tx, 7) == SQLITE_INTEGER)
-            from->plant_t = sqlite3_column_double(tx, 7);
+        if (!isnan(row.t))
+            from->plant_t = row.t;
     }
-    if (xrc != SQLITE_DONE) {
+    if (xrc == -1) {
+        code = err_fail(err, errlen, WORTH_E_DAMAGED, "transition %llu is damaged: %s",
+                        (unsigned long long)*bad_seq, why);
+        goto out;
+    }
+    if (xrc != 0) {
         code = step_failed(db, seq, err, errlen);
         goto out;
     }
@@ -557,6 +482,6 @@ int db_replay(sqlite3 *db, int64_t model_id, struct model *m, db_start_t *from, 
 out:
     model_replay_end(rp); /* learns what was pushed before a failure */
     sqlite3_finalize(tr);
-    sqlite3_finalize(tx);
+    logit_close(it);
     return code;
 }

@@ -36,6 +36,7 @@
 #include "store/backup.h"
 #include "store/db.h"
 #include "store/fileguard.h"
+#include "store/logsql.h"
 #include "store/wr.h"
 #include "worth/errors.h"
 
@@ -87,48 +88,29 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
         say_error("model %s: %s", queue_name(q), p->err);
         return 0;
     }
-    if (p->replay && p->by_t) {
-        /* Transitions without t cannot be in a window of t: they are counted, not excluded. */
-        if (sqlite3_prepare_v2(w->db,
-                               "SELECT COUNT(*) FROM transitions WHERE model = ? AND seq > ?"
-                               " AND seq <= ? AND rolled_back = 0 AND t IS NULL",
-                               -1, &st, NULL) != SQLITE_OK)
-            return -1;
-        sqlite3_bind_int64(st, 1, model);
-        sqlite3_bind_int64(st, 2, (sqlite3_int64)p->cp_seq);
-        sqlite3_bind_int64(st, 3, (sqlite3_int64)r->seq);
-        rc = sqlite3_step(st);
-        p->untimed = rc == SQLITE_ROW ? (uint64_t)sqlite3_column_int64(st, 0) : 0;
-        sqlite3_finalize(st);
-        if (rc != SQLITE_ROW)
-            return -1;
-    }
+    /* A savepoint: a damaged block met while choosing by t leaves nothing marked. */
+    if (wr_exec(w, "SAVEPOINT log_rollback") != 0)
+        return -1;
     int64_t ev = events_insert(w, q, "rollback", "{}");
     if (ev <= 0)
         return -1;
-    const char *sql_tx =
-        p->replay
-            ? (p->by_t ? "UPDATE transitions SET rolled_back = ?1 WHERE model = ?2 AND seq > ?3"
-                         " AND seq <= ?4 AND rolled_back = 0 AND t >= ?5 AND t <= ?6"
-                       : "UPDATE transitions SET rolled_back = ?1 WHERE model = ?2 AND seq > ?3"
-                         " AND seq <= ?4 AND rolled_back = 0 AND seq >= ?5 AND seq <= ?6")
-            : "UPDATE transitions SET rolled_back = ?1 WHERE model = ?2 AND seq > ?3"
-              " AND seq <= ?4 AND rolled_back = 0";
-    if (sqlite3_prepare_v2(w->db, sql_tx, -1, &st, NULL) != SQLITE_OK)
-        return -1;
-    sqlite3_bind_int64(st, 1, ev);
-    sqlite3_bind_int64(st, 2, model);
-    sqlite3_bind_int64(st, 3, (sqlite3_int64)p->cp_seq);
-    sqlite3_bind_int64(st, 4, (sqlite3_int64)r->seq);
-    if (p->replay) {
-        sqlite3_bind_double(st, 5, p->lo);
-        sqlite3_bind_double(st, 6, p->hi);
+    /* Transitions without t cannot be in a window of t: they are counted, not excluded. */
+    int mode = !p->replay ? LOGSQL_UNDO_ALL : p->by_t ? LOGSQL_UNDO_TIMES : LOGSQL_UNDO_SEQS;
+    rc = logsql_undo(w->db, model, queue_dims(q), p->cp_seq, r->seq, mode, p->lo, p->hi, ev,
+                     &p->undone, &p->untimed);
+    if (rc == -2) {
+        wr_exec(w, "ROLLBACK TO log_rollback");
+        wr_exec(w, "RELEASE log_rollback");
+        p->rc = WORTH_E_DAMAGED;
+        snprintf(p->err, sizeof p->err,
+                 "the log of model %s after checkpoint %lld holds a damaged block, so the "
+                 "window of t cannot be chosen; nothing rolled back",
+                 queue_name(q), (long long)p->checkpoint);
+        say_error("model %s: %s", queue_name(q), p->err);
+        return 0;
     }
-    rc = sqlite3_step(st);
-    sqlite3_finalize(st);
-    if (rc != SQLITE_DONE)
+    if (rc != 0 || wr_exec(w, "RELEASE log_rollback") != 0)
         return -1;
-    p->undone = (uint64_t)sqlite3_changes(w->db);
     if (!p->replay) {
         if (sqlite3_prepare_v2(w->db,
                                "UPDATE trainings SET rolled_back = ?1 WHERE model = ?2"
@@ -158,17 +140,7 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
         return -1;
     /* Plant time: "t", the newest logged transition's before the rollback (where it happened
      * on the plant's clock); "to_t", the checkpoint's. */
-    double at_t = NAN;
-    if (sqlite3_prepare_v2(w->db,
-                           "SELECT t FROM transitions WHERE model = ?1 AND seq < ?2 AND t IS NOT"
-                           " NULL ORDER BY seq DESC LIMIT 1",
-                           -1, &st, NULL) != SQLITE_OK)
-        return -1;
-    sqlite3_bind_int64(st, 1, model);
-    sqlite3_bind_int64(st, 2, (sqlite3_int64)r->seq);
-    if (sqlite3_step(st) == SQLITE_ROW)
-        at_t = sqlite3_column_double(st, 0);
-    sqlite3_finalize(st);
+    double at_t = logsql_last_t(w->db, model, queue_dims(q), r->seq);
     char detail[320], times[96] = "";
     int nt = 0;
     if (!isnan(at_t))
@@ -192,33 +164,43 @@ static int log_mark_rollback(struct writer *w, struct queue *q, queue_rec_t *r)
     return rc == SQLITE_DONE ? 0 : -1;
 }
 
+/* Stores the block being built (for q), if it holds any record; 0 or -1. */
+static int log_flush_block(struct writer *w, struct queue *q)
+{
+    if (!w->enc.n)
+        return 0;
+    logblk_enc_finish(&w->enc);
+    int rc = logsql_put_block(w->ins_blk, queue_db_id(q), &w->enc);
+    logblk_enc_reset(&w->enc, w->enc.dims);
+    return rc;
+}
+
 static int log_write_record(struct writer *w, struct queue *q, queue_rec_t *r)
 {
     sqlite3_stmt *st;
     size_t d = queue_dims(q);
+    if (r->type != QREC_OBS && log_flush_block(w, q) != 0)
+        return -1;
     switch (r->type) {
-    case QREC_OBS:
-        st = w->ins_tx;
-        sqlite3_reset(st);
-        sqlite3_bind_int64(st, 1, queue_db_id(q));
-        sqlite3_bind_int64(st, 2, (sqlite3_int64)r->seq);
-        if (isnan(r->t_s))
-            sqlite3_bind_null(st, 3);
-        else
-            sqlite3_bind_double(st, 3, r->t_s);
-        sqlite3_bind_text(st, 4, r->src, -1, SQLITE_STATIC);
-        sqlite3_bind_blob(st, 5, r->v, (int)(d * sizeof(double)), SQLITE_STATIC);
-        sqlite3_bind_double(st, 6, r->r);
-        if (r->terminal)
-            sqlite3_bind_null(st, 7);
-        else
-            sqlite3_bind_blob(st, 7, r->v + d, (int)(d * sizeof(double)), SQLITE_STATIC);
-        sqlite3_bind_int(st, 8, (int)r->terminal);
-        if (isnan(r->dt_s))
-            sqlite3_bind_null(st, 9);
-        else
-            sqlite3_bind_double(st, 9, r->dt_s);
-        return sqlite3_step(st) == SQLITE_DONE ? 0 : -1;
+    case QREC_OBS: {
+        /* Into the model's open block: a row per run of up to LOGBLK_MAX transitions. */
+        logblk_rec_t b = {.seq = r->seq,
+                          .r = r->r,
+                          .t = r->t_s,
+                          .dt = r->dt_s,
+                          .terminal = (int)r->terminal,
+                          .src = r->src,
+                          .x = r->v,
+                          .xn = r->v + d};
+        if (!w->enc.n)
+            logblk_enc_reset(&w->enc, d);
+        if (logblk_enc_add(&w->enc, &b) == 0)
+            return 0;
+        if (log_flush_block(w, q) != 0)
+            return -1;
+        logblk_enc_reset(&w->enc, d);
+        return logblk_enc_add(&w->enc, &b);
+    }
     case QREC_TRAIN:
         st = w->ins_tr;
         sqlite3_reset(st);
@@ -342,6 +324,8 @@ int log_write_group(struct writer *w)
         }
         for (uint64_t k = f; k < t && ok; k++)
             ok = log_write_record(w, w->models[i], queue_rec(w->models[i], k)) == 0;
+        ok = ok && log_flush_block(w, w->models[i]) == 0;
+        logblk_enc_reset(&w->enc, w->enc.dims); /* a failed group leaves nothing behind */
         w->upto[i] = t;
         taken += t - f;
         budget = t - f >= budget ? 0 : budget - (t - f);

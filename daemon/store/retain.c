@@ -47,6 +47,7 @@
 #include "common/say.h"
 #include "core/queue.h"
 #include "store/db.h"
+#include "store/logsql.h"
 #include "store/wr.h"
 #include "worth/errors.h"
 
@@ -162,33 +163,23 @@ static uint64_t give_back(struct writer *w)
     return before > after ? before - after : 0;
 }
 
-/* Deletes model's transitions with seq in (lo, hi], CHUNK a transaction, the log written
- * between them.  Returns the rows deleted, or -1. */
-static int64_t delete_transitions(struct writer *w, int64_t model, int64_t lo, int64_t hi)
+/* Deletes model's transitions with seq in (lo, hi], CHUNK seqs a transaction, the log written
+ * between them (logsql_delete: rows and blocks; dims the model's, 0 when whole blocks go).
+ * Returns the transitions deleted, or -1. */
+static int64_t delete_transitions(struct writer *w, int64_t model, size_t dims, int64_t lo,
+                                  int64_t hi)
 {
-    sqlite3_stmt *st = NULL;
-    if (sqlite3_prepare_v2(w->db,
-                           "DELETE FROM transitions WHERE model = ?1 AND seq > ?2 AND seq <= ?3",
-                           -1, &st, NULL) != SQLITE_OK)
-        return -1;
-    int64_t n = 0;
+    int64_t n = 0, chunk = dims ? CHUNK : hi - lo; /* without dims no block may be cut */
     for (int64_t a = lo; a < hi;) {
-        int64_t b = hi - a > CHUNK ? a + CHUNK : hi;
-        sqlite3_bind_int64(st, 1, model);
-        sqlite3_bind_int64(st, 2, a);
-        sqlite3_bind_int64(st, 3, b);
-        int rc = sqlite3_step(st);
-        sqlite3_reset(st);
-        if (rc != SQLITE_DONE) {
-            sqlite3_finalize(st);
+        int64_t b = hi - a > chunk ? a + chunk : hi;
+        int64_t d = logsql_delete(w->db, model, dims, (uint64_t)a, (uint64_t)b, &w->enc);
+        if (d < 0)
             return -1;
-        }
-        n += sqlite3_changes(w->db);
+        n += d;
         a = b;
         while (log_write_group(w))
             ;
     }
-    sqlite3_finalize(st);
     return n;
 }
 
@@ -273,8 +264,10 @@ static int plan_and_trim(struct writer *w, int64_t model, struct policy *p)
     sqlite3 *db = w->db;
     const int64_t none = INT64_MAX;
     int64_t last = 0, cut = none, v = 0;
-    if (one_i64(db, "SELECT MAX(seq) FROM transitions WHERE model = ?1", model, 0, &last) < 0)
+    uint64_t lo_seq = 0, hi_seq = 0;
+    if (logsql_bounds(db, model, &lo_seq, &hi_seq) != 0)
         return -1;
+    last = (int64_t)hi_seq;
     if (p->transitions)
         cut = last > (int64_t)p->transitions ? last - (int64_t)p->transitions : 0;
     if (p->days > 0) {
@@ -384,12 +377,10 @@ static int retain_model(struct writer *w, struct queue *q, struct policy *p, cha
     p->ran = 1;
     p->last_run = db_now();
     ckpt_refresh_info(w, q);
-    int64_t lowest = 0;
-    if (p->floor > 0 &&
-        one_i64(w->db, "SELECT MIN(seq) FROM transitions WHERE model = ?1", model, 0, &lowest) ==
-            1 &&
-        lowest <= p->floor) {
-        p->del_tx = delete_transitions(w, model, lowest - 1, p->floor);
+    uint64_t lowest = 0, highest = 0;
+    if (p->floor > 0 && logsql_bounds(w->db, model, &lowest, &highest) == 0 && lowest > 0 &&
+        (int64_t)lowest <= p->floor) {
+        p->del_tx = delete_transitions(w, model, queue_dims(q), (int64_t)lowest - 1, p->floor);
         if (p->del_tx < 0) {
             snprintf(why, len, "%s", sqlite3_errmsg(w->db));
             return -1;
@@ -524,7 +515,8 @@ static void run_purge(struct writer *w, struct ops_job *oj, uint64_t conn_id)
     size_t nt = 0;
     if (sqlite3_prepare_v2(w->db,
                            "SELECT m.name FROM sqlite_master m WHERE m.type = 'table'"
-                           " AND m.name NOT IN ('models', 'events') AND m.name NOT LIKE 'sqlite_%'"
+                           " AND m.name NOT IN ('models', 'events', 'log_blocks', 'log_undone')"
+                           " AND m.name NOT LIKE 'sqlite_%'"
                            " AND EXISTS (SELECT 1 FROM pragma_table_info(m.name) WHERE name ="
                            " 'model') ORDER BY m.name",
                            -1, &st, NULL) == SQLITE_OK) {
@@ -537,12 +529,11 @@ static void run_purge(struct writer *w, struct ops_job *oj, uint64_t conn_id)
     for (size_t k = 0; k < n && ok; k++) {
         for (size_t t = 0; t < nt && ok; t++) {
             if (strcmp(tables[t], "transitions") == 0) {
-                int64_t lo = 0, hi = 0;
-                if (one_i64(w->db, "SELECT MIN(seq) FROM transitions WHERE model = ?1", ids[k], 0,
-                            &lo) == 1 &&
-                    one_i64(w->db, "SELECT MAX(seq) FROM transitions WHERE model = ?1", ids[k], 0,
-                            &hi) == 1) {
-                    int64_t d = delete_transitions(w, ids[k], lo - 1, hi);
+                /* The whole log, rows and blocks (log_blocks, log_undone: logsql.c). */
+                uint64_t lo = 0, hi = 0;
+                ok = logsql_bounds(w->db, ids[k], &lo, &hi) == 0;
+                if (ok && lo > 0) {
+                    int64_t d = delete_transitions(w, ids[k], 0, (int64_t)lo - 1, (int64_t)hi);
                     ok = d >= 0;
                     counts[t] += d > 0 ? d : 0;
                 }
@@ -639,12 +630,8 @@ static void run_status(struct writer *w, struct ops_job *oj, uint64_t conn_id)
         jw_str(&jb, w->lost_why[0] ? w->lost_why : "no database");
     }
     jw_lit(&jb, "},\"models\":[");
-    sqlite3_stmt *last = NULL, *pol = NULL;
+    sqlite3_stmt *pol = NULL;
     if (w->db) {
-        sqlite3_prepare_v2(w->db,
-                           "SELECT seq, t FROM transitions WHERE model = ? ORDER BY seq DESC"
-                           " LIMIT 1",
-                           -1, &last, NULL);
         sqlite3_prepare_v2(w->db,
                            "SELECT days, transitions, log_floor, last_run FROM retention"
                            " WHERE model = ?",
@@ -655,15 +642,16 @@ static void run_status(struct writer *w, struct ops_job *oj, uint64_t conn_id)
             oj->models[i].db_id = queue_db_id(oj->models[i].q);
         jw_lit(&jb, i ? ",{" : "{");
         jw_lit(&jb, oj->models[i].json + 1); /* without its leading comma */
-        if (last && oj->models[i].db_id) {
-            sqlite3_bind_int64(last, 1, oj->models[i].db_id);
-            if (sqlite3_step(last) == SQLITE_ROW) {
-                jw_fmt(&jb, ",\"last_logged\":{\"seq\":%lld,\"t\":",
-                       (long long)sqlite3_column_int64(last, 0));
-                if (sqlite3_column_type(last, 1) == SQLITE_NULL) {
+        uint64_t lo = 0, hi = 0;
+        if (w->db && oj->models[i].db_id) {
+            if (logsql_bounds(w->db, oj->models[i].db_id, &lo, &hi) == 0 && hi > 0) {
+                /* A quarantined model (no queue) has its dims unread: its t shows as null. */
+                size_t dims = oj->models[i].q ? queue_dims(oj->models[i].q) : 0;
+                double t = logsql_t_at(w->db, oj->models[i].db_id, dims, hi);
+                jw_fmt(&jb, ",\"last_logged\":{\"seq\":%llu,\"t\":", (unsigned long long)hi);
+                if (isnan(t)) {
                     jw_lit(&jb, "null,\"plant_age_s\":null}");
                 } else {
-                    double t = sqlite3_column_double(last, 1);
                     jw_num(&jb, t);
                     jw_lit(&jb, ",\"plant_age_s\":");
                     jw_num(&jb, now - t);
@@ -672,7 +660,6 @@ static void run_status(struct writer *w, struct ops_job *oj, uint64_t conn_id)
             } else {
                 jw_lit(&jb, ",\"last_logged\":null");
             }
-            sqlite3_reset(last);
         }
         if (pol && oj->models[i].db_id) {
             sqlite3_bind_int64(pol, 1, oj->models[i].db_id);
@@ -693,7 +680,6 @@ static void run_status(struct writer *w, struct ops_job *oj, uint64_t conn_id)
         }
         jw_lit(&jb, "}");
     }
-    sqlite3_finalize(last);
     sqlite3_finalize(pol);
     jw_lit(&jb, "]");
     post_text(w, NULL, conn_id, &jb);

@@ -12,6 +12,7 @@
 #include <string.h>
 
 #include "common/mem.h"
+#include "store/logsql.h"
 void wr_reply(struct writer *w, struct queue *q, uint64_t conn_id, int rc, const char *fmt, ...)
 {
     if (!conn_id)
@@ -43,13 +44,12 @@ struct job *wr_job(enum job_kind kind, struct queue *q, uint64_t conn_id)
 int wr_prepare(struct writer *w)
 {
     static const char *const sql[3] = {
-        "INSERT INTO transitions(model, seq, t, source, x, r, x_next, terminal, dt)"
-        " VALUES(?,?,?,?,?,?,?,?,?)",
+        LOGSQL_INSERT_BLOCK,
         "INSERT INTO trainings(model, ordinal, after_seq, estimator, passes) VALUES(?,?,?,?,?)",
         "INSERT INTO sources(model, source, t, x, r, terminal, pseq) VALUES(?,?,?,?,?,?,?)"
         " ON CONFLICT(model, source) DO UPDATE SET t = excluded.t, x = excluded.x,"
         " r = excluded.r, terminal = excluded.terminal, pseq = excluded.pseq"};
-    sqlite3_stmt **out[3] = {&w->ins_tx, &w->ins_tr, &w->ins_src};
+    sqlite3_stmt **out[3] = {&w->ins_blk, &w->ins_tr, &w->ins_src};
     for (int i = 0; i < 3; i++)
         if (sqlite3_prepare_v3(w->db, sql[i], -1, SQLITE_PREPARE_PERSISTENT, out[i], NULL) !=
             SQLITE_OK) {
@@ -61,8 +61,8 @@ int wr_prepare(struct writer *w)
 
 void wr_finalize(struct writer *w)
 {
-    sqlite3_finalize(w->ins_tx);
+    sqlite3_finalize(w->ins_blk);
     sqlite3_finalize(w->ins_tr);
     sqlite3_finalize(w->ins_src);
-    w->ins_tx = w->ins_tr = w->ins_src = NULL;
+    w->ins_blk = w->ins_tr = w->ins_src = NULL;
 }

@@ -13,6 +13,7 @@
 
 #include "core/event.h"
 #include "store/fileguard.h"
+#include "store/logblk.h"
 #include "store/writer.h"
 
 struct queue;
@@ -43,8 +44,8 @@ struct job {
     double since;     /* J_EVENTS */
     double plant_t;   /* J_CHECKPOINT, J_DRIFT: the plant's t then, NAN when unknown */
     int64_t id;
-    unsigned diverged;     /* J_CHECKPOINT */
-    struct job_done *done; /* set: the poster waits for the job (J_CUT) */
+    unsigned diverged;                           /* J_CHECKPOINT */
+    struct job_done *done;                       /* set: the poster waits for the job (J_CUT) */
     void (*fn)(struct writer *w, struct job *j); /* J_OPS: runs it, frees arg */
     void *arg;                                   /* J_OPS: the job's own data */
     struct job *next;
@@ -68,7 +69,8 @@ struct writer {
     struct queue **models;
     size_t n, cap;
     uint64_t *from, *upto; /* per model: records [from, upto) taken into the open transaction */
-    sqlite3_stmt *ins_tx, *ins_tr, *ins_src;
+    sqlite3_stmt *ins_blk, *ins_tr, *ins_src;
+    logblk_enc_t enc; /* the block being built (log.c); sized for FEAT_MAX_DIMS */
     /* Commit-latency histogram (under mu). */
     uint64_t hist[WRITER_HIST_N], hist_count;
     double hist_sum;

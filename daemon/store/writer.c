@@ -27,6 +27,7 @@
 #include "common/mem.h"
 #include "core/event.h"
 #include "core/queue.h"
+#include "learn/feat.h"
 #include "common/say.h"
 #include "store/backup.h"
 #include "store/db.h"
@@ -303,6 +304,7 @@ struct writer *writer_new(sqlite3 *db, const writer_opts_t *o, event_post_fn pos
     pthread_mutex_init(&w->mu, NULL);
     pthread_cond_init(&w->cond, NULL);
     CHECK(wr_prepare(w) == 0);
+    logblk_enc_init(&w->enc, FEAT_MAX_DIMS);
     const char *file = sqlite3_db_filename(db, "main");
     if (file && *file && fileguard_init(&w->guard, file) == 0)
         w->guarded = 1;
@@ -337,6 +339,7 @@ void writer_free(struct writer *w)
     mem_free(w->models);
     mem_free(w->from);
     mem_free(w->upto);
+    logblk_enc_free(&w->enc);
     mem_free(w);
 }
 

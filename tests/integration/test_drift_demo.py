@@ -17,6 +17,7 @@ import subprocess
 import pytest
 
 from test_events_metrics import checkpoints, events
+import logdb
 
 PERIOD = 60.0          # one-minute samples (the model's period_s)
 DAYS = 5
@@ -31,8 +32,8 @@ def fault_window(db_path):
     window the demo excludes, transitions after it) from the log."""
     db = sqlite3.connect(f"file:{db_path}?mode=ro", uri=True)
     try:
-        rows = db.execute("SELECT t, x, x_next FROM transitions WHERE model = "
-                          "(SELECT id FROM models WHERE name = 'reservoir') ORDER BY seq").fetchall()
+        (mid,) = db.execute("SELECT id FROM models WHERE name = 'reservoir'").fetchone()
+        rows = [(r[1], r[3], r[5]) for r in logdb.rows(db, mid)]
     finally:
         db.close()
     demand = [(t, struct.unpack("<5d", x)[1], struct.unpack("<5d", xn)[1]) for t, x, xn in rows]

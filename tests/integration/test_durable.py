@@ -28,6 +28,7 @@ import numpy as np
 import pytest
 
 from conftest import Client, is_closed_error
+import logdb
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 SCHEMA_DIR = os.path.join(HERE, "..", "..", "schema")
@@ -170,9 +171,7 @@ def log_rows(path, name, after=0):
     db = ro(path)
     try:
         mid = model_id(db, name)
-        rows = db.execute("SELECT seq, t, source, x, r, x_next, terminal, dt, rolled_back "
-                          "FROM transitions WHERE model = ? AND seq > ? ORDER BY seq",
-                          (mid, after)).fetchall()
+        rows = logdb.rows(db, mid, after)
     finally:
         db.close()
     out = []
@@ -940,8 +939,7 @@ def test_kill9_during_rollback_replay(daemon, tmp_path):
                 "exclude": {"seq": [20, 30]}})
         deadline = time.monotonic() + 20
         for _ in range(20_000):
-            if db.execute("SELECT count(*) FROM transitions WHERE model = ? AND rolled_back != 0",
-                          (mid,)).fetchone()[0] or time.monotonic() > deadline:
+            if logdb.undone_count(db, mid) or time.monotonic() > deadline:
                 break
             time.sleep(0.001)
     finally:
@@ -951,11 +949,8 @@ def test_kill9_during_rollback_replay(daemon, tmp_path):
     print(f"rollback {'answered' if answered else 'not yet answered'} at the crash")
     db = ro(d.db)
     try:
-        marked = [r[0] for r in db.execute(
-            "SELECT seq FROM transitions WHERE model = ? AND rolled_back != 0 ORDER BY seq",
-            (mid,))]
-        assert db.execute("SELECT count(*), max(seq) FROM transitions WHERE model = ?",
-                          (mid,)).fetchone() == (total, total)
+        marked = logdb.undone_seqs(db, mid)
+        assert logdb.count_max(db, mid) == (total, total)
     finally:
         db.close()
     assert marked == list(range(20, 31)), marked[:20]
@@ -1209,8 +1204,7 @@ def test_backup(daemon, tmp_path):
         try:
             assert db.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
             assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
-            n = {name: db.execute("SELECT count(*) FROM transitions WHERE model = ?",
-                                  (model_id(db, name),)).fetchone()[0] for name in ("a", "b")}
+            n = {name: logdb.count(db, model_id(db, name)) for name in ("a", "b")}
             assert n == {"a": expect_a, "b": expect_b}, n
             labels = [r[0] for r in db.execute("SELECT label FROM checkpoints")]
             assert "bk" in labels, labels
@@ -1268,8 +1262,7 @@ def test_backup_onto_the_live_database_loses_nothing(daemon, tmp_path):
     try:
         assert db.execute("PRAGMA integrity_check").fetchall() == [("ok",)], \
             "the database is damaged after a backup onto its own path"
-        assert db.execute("SELECT count(*), max(seq) FROM transitions").fetchone() == \
-            (1 + bulks * n, 1 + bulks * n)
+        assert logdb.count_max(db) == (1 + bulks * n, 1 + bulks * n)
     finally:
         db.close()
 
@@ -1316,8 +1309,7 @@ def test_backup_during_ingest(daemon, tmp_path):
     db = ro(path, immutable=True)
     try:
         assert db.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
-        seqs = [r[0] for r in db.execute("SELECT seq FROM transitions WHERE model = ? "
-                                         "ORDER BY seq", (model_id(db, "m"),))]
+        seqs = logdb.seqs(db, model_id(db, "m"))
     finally:
         db.close()
     print(f"acknowledged {low} before the backup, {high - 10} after; the copy has {len(seqs)}")
@@ -1348,7 +1340,7 @@ def test_schema(daemon):
     want, want_idx = table_shape(ref)
     ref.close()
     assert set(want) == {"models", "transitions", "trainings", "checkpoints", "events",
-                         "sources", "retention", "history"}
+                         "sources", "retention", "history", "log_blocks", "log_undone"}
     db = ro(d.db)
     try:
         assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
@@ -1427,9 +1419,7 @@ def test_events(daemon):
         assert db.execute("SELECT dropped_at FROM models WHERE id = ?",
                           (sid,)).fetchone()[0] is not None
         ev = db.execute("SELECT id, model, kind, detail, at FROM events ORDER BY id").fetchall()
-        rb_marks = {r[0] for r in db.execute(
-            "SELECT DISTINCT rolled_back FROM transitions WHERE model = ? AND rolled_back != 0",
-            (mid,))}
+        rb_marks = logdb.rollback_ids(db, mid)
     finally:
         db.close()
     kinds = [(model, kind) for _, model, kind, _, _ in ev]

@@ -18,9 +18,12 @@ Helpers come from conftest.py and test_durable.py; every loop is bounded in coun
 import json
 import re
 import sqlite3
+import struct
+import zlib
 
 import pytest
 
+import logdb
 from test_durable import PROBES, feed, model_id, snapshot, spec, transitions
 from test_events_metrics import events, scrape, series, wait_listening
 
@@ -58,35 +61,38 @@ def without_not_null(db, table, column, change):
 
 
 def damage_row(path, model, seq, kind):
-    """Damages transition seq of model in place: kind names how."""
+    """Damages transition seq of model in place, in its block of the log (logdb.py, the layout
+    of daemon/store/logblk.h): kind names how."""
     db = rw(path)
     try:
         mid = model_id(db, model)
-        where = "WHERE model = ? AND seq = ?"
-        (terminal,) = db.execute(f"SELECT terminal FROM transitions {where}",
-                                 (mid, seq)).fetchone()
-        assert terminal == 0, "the damaged row must be a non-terminal one"
-        if kind == "x-short":    # a BLOB of one double for a model of two
-            db.execute(f"UPDATE transitions SET x = substr(x, 1, 8) {where}", (mid, seq))
-        elif kind == "x-text":   # 16 bytes, as long as two doubles, but TEXT
-            db.execute(f"UPDATE transitions SET x = 'sixteen bytes!!!' {where}", (mid, seq))
-        elif kind == "r-null":
-            without_not_null(db, "transitions", "r", lambda db: db.execute(
-                f"UPDATE transitions SET r = NULL {where}", (mid, seq)))
-        elif kind == "r-text":
-            db.execute(f"UPDATE transitions SET r = 'minus one' {where}", (mid, seq))
-        elif kind == "terminal-7":
-            db.execute(f"UPDATE transitions SET terminal = 7 {where}", (mid, seq))
-        elif kind == "source-blob":
-            db.execute(f"UPDATE transitions SET source = x'00ff' {where}", (mid, seq))
-        elif kind == "x_next-null":
-            db.execute(f"UPDATE transitions SET x_next = NULL {where}", (mid, seq))
+        first, data, rec = logdb.record(db, mid, seq)
+        assert rec["terminal"] == 0, "the damaged row must be a non-terminal one"
+        data, o, n = bytearray(data), rec["offset"], rec["length"]
+
+        def crc_again():  # damage the CRC-32 does not catch: the record's own checks must
+            data[o:o + 4] = struct.pack("<I", zlib.crc32(bytes(data[o + 4:o + n])))
+
+        if kind == "x-flip":      # one bit of its last stored double: the CRC-32 fails
+            data[o + n - 1] ^= 0x40
+        elif kind == "crc":       # the CRC-32 itself
+            data[o] ^= 0x01
+        elif kind == "flags":     # a flag no layout defines
+            data[o + 4] |= 0x80
+        elif kind == "r-nan":     # a reward that is no number, with a CRC-32 that matches
+            data[o + 5:o + 13] = struct.pack("<d", float("nan"))
+            crc_again()
+        elif kind == "terminal-next":  # terminal, yet its x_next is the next record's x
+            data[o + 4] |= 0x01 | 0x10
+            crc_again()
+        elif kind == "truncated":  # the block ends half way through the record
+            del data[o + n // 2:]
         else:
             raise AssertionError(kind)
+        db.execute("UPDATE log_blocks SET data = ? WHERE model = ? AND first_seq = ?",
+                   (bytes(data), mid, first))
         db.commit()
-        (typ,) = db.execute(f"SELECT typeof(x) || typeof(r) || typeof(terminal) FROM transitions "
-                            f"{where}", (mid, seq)).fetchone()
-        print(f"damaged transition {seq} of {model} ({kind}): x, r, terminal are {typ}")
+        print(f"damaged transition {seq} of {model} ({kind}) in the block from seq {first}")
     finally:
         db.close()
 
@@ -226,9 +232,9 @@ def drop_and_create_again(d):
     return d
 
 
-KINDS = ["x-short", "x-text", "r-null", "r-text", "terminal-7", "source-blob", "x_next-null"]
+KINDS = ["x-flip", "crc", "flags", "r-nan", "terminal-next", "truncated"]
 CASES = [pytest.param(k, "stop", id=f"{k}-stop") for k in KINDS] + \
-        [pytest.param(k, "kill9", id=f"{k}-kill9") for k in ("x-short", "r-null", "terminal-7")]
+        [pytest.param(k, "kill9", id=f"{k}-kill9") for k in ("x-flip", "r-nan", "truncated")]
 
 
 @pytest.mark.parametrize("kind,how", CASES)
@@ -312,7 +318,7 @@ def test_damage_before_the_newest_checkpoint_is_seen_by_a_replay(daemon):
     c.wait_applied("a", 120)
     before = snapshot(c, "a")
     d.shutdown()
-    damage_row(d.db, "a", 30, "x-text")
+    damage_row(d.db, "a", 30, "x-flip")
     d = d.restart()
     assert " error " not in d.stderr and "is quarantined" not in d.stderr, d.tail()
     c = d.client()
@@ -320,7 +326,7 @@ def test_damage_before_the_newest_checkpoint_is_seen_by_a_replay(daemon):
     assert snapshot(c, "a") == before
     err = c.err({"op": "rollback", "model": "a", "checkpoint": cp["checkpoint"], "replay": True,
                  "exclude": {"seq": [100, 101]}}, "damaged")
-    assert "transition 30 is damaged: x is TEXT" in err["message"], err
+    assert "transition 30 is damaged: its record fails its CRC-32" in err["message"], err
 
 
 def test_corrupt_page_of_one_model_quarantines_it(daemon):
@@ -340,13 +346,23 @@ def test_corrupt_page_of_one_model_quarantines_it(daemon):
     try:
         assert db.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0] == 0
         (page,) = db.execute("PRAGMA page_size").fetchone()
-        leaves = [n for (n,) in db.execute(
-            "SELECT pageno FROM dbstat WHERE name = 'transitions' AND pagetype = 'leaf'"
-            " ORDER BY path")]
+        # The log's blocks are larger than a page: each is a cell whose data runs on in a
+        # chain of overflow pages.  The first page of a chain says where the next is; zeroed,
+        # the chain ends before the data does, which SQLite reports as corrupt.
+        chains = {}
+        for pageno, path in db.execute(
+                "SELECT pageno, path FROM dbstat WHERE name = 'log_blocks'"
+                " AND pagetype = 'overflow' ORDER BY path"):
+            chains.setdefault(path.split("+")[0], []).append(pageno)
+        mid_a = model_id(db, "a")
+        (a_blocks,) = db.execute("SELECT count(*) FROM log_blocks WHERE model = ?",
+                                 (mid_a,)).fetchone()
     finally:
         db.close()
-    assert len(leaves) >= 20, leaves
-    victim = leaves[len(leaves) // 3]  # in the middle of a's 3000 rows, far from b's 80
+    # cells in rowid order, the order blocks were written: a's first, then b's
+    a_chains = [p for p in list(chains.values())[:a_blocks] if len(p) >= 2]
+    assert len(a_chains) >= 2, chains
+    victim = a_chains[len(a_chains) // 2][0]  # inside a's 3000 transitions, far from b's 80
     with open(d.db, "r+b") as f:
         f.seek((victim - 1) * page)
         f.write(bytes(page))

@@ -19,6 +19,7 @@ import struct
 import pytest
 
 from conftest import Client
+import logdb
 
 PERIOD = 60.0
 T0 = 1764633600.0  # 2025-12-02T00:00:00Z
@@ -52,10 +53,9 @@ def logged(db, model="st"):
     """The model's transitions as logged: (seq, t, source, x, r, x_next, terminal, dt)."""
     con = sqlite3.connect(f"file:{db}?mode=ro", uri=True)
     try:
-        rows = con.execute(
-            "SELECT seq, t, source, x, r, x_next, terminal, dt FROM transitions"
-            " WHERE model = (SELECT id FROM models WHERE name = ? AND dropped_at IS NULL)"
-            " ORDER BY seq", (model,)).fetchall()
+        (mid,) = con.execute("SELECT id FROM models WHERE name = ? AND dropped_at IS NULL",
+                             (model,)).fetchone()
+        rows = [r[:8] for r in logdb.rows(con, mid)]
     finally:
         con.close()
     vec = lambda b: None if b is None else list(struct.unpack(f"<{len(b) // 8}d", b))
