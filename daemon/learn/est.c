@@ -279,6 +279,7 @@ void est_reset(struct est *e)
     init_weights(e);
     e->updates = e->guarded = 0;
     e->td_last = e->td_ms = e->td_wsum = e->v_last = 0.0;
+    e->sd_last = NAN;
     e->r_max = 0.0;
     e->diverged = WHY_NONE;
     e->diverged_at = 0;
@@ -375,6 +376,7 @@ int est_observe(struct est *e, size_t src, const double *phi, double r, const do
     double v = value_at(e, e->w, phi, NULL);
     double vn = terminal ? 0.0 : value_at(e, e->w, phi_next, NULL);
     double delta = r + g * vn - v;
+    e->sd_last = NAN;
     e->guarded += (uint64_t)e->ops->observe(e, src, phi, r, terminal ? NULL : phi_next, g,
                                             terminal != 0, v, vn);
     e->updates++;
@@ -433,6 +435,11 @@ int est_sd(const struct est *e, const double *phi, double *sd)
 double est_last_value(const struct est *e)
 {
     return e->diverged ? NAN : e->v_last;
+}
+
+double est_last_sd(const struct est *e)
+{
+    return e->sd_last;
 }
 
 double est_last_td(const struct est *e)

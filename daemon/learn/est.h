@@ -252,6 +252,9 @@ int est_sd(const struct est *e, const double *phi, double *sd);
  */
 double est_last_value(const struct est *e);
 double est_last_td(const struct est *e);
+/* The sd of V(x) before the last update, where the estimator gave one while it learnt (rls_td);
+ * NAN otherwise. */
+double est_last_sd(const struct est *e);
 /* Returns the est_weight_count(e) weights (borrowed, valid until the next update): for the
  * linear kinds the n weights of w . phi, for mlp and ensemble every network parameter
  * (learn/mlpnet.h gives the layout). */

@@ -67,6 +67,7 @@ struct est {
     uint64_t guarded;
     double td_last;
     double v_last;        /* V(x) of the last transition, weights before its update */
+    double sd_last;       /* its sd then, from estimators that give one while they learn; NAN */
     double td_ms;         /* exponentially weighted mean square of the TD error */
     double td_wsum;       /* its weight sum, for the start-up bias correction */
     double r_max;         /* largest |r| seen (the divergence bound's scale) */

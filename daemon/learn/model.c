@@ -231,11 +231,17 @@ long model_source_slot(struct model *m, const model_obs_t *t)
 
 void model_pred_sd(const struct est *e, const double *phi, double *sd)
 {
-    /* Only rls_td and ensemble have an sd; asking the others would cost nothing but is
-     * skipped. */
+    /* Only rls_td and ensemble have an sd.  rls_td gives its own while it learns (the pass
+     * over P it makes anyway): model_learnt_sd reads it after the update. */
     enum est_kind k = est_params(e)->kind;
-    if ((k != EST_RLS_TD && k != EST_ENSEMBLE) || est_sd(e, phi, sd) != 0)
+    if (k != EST_ENSEMBLE || est_sd(e, phi, sd) != 0)
         *sd = NAN;
+}
+
+void model_learnt_sd(const struct est *e, double *sd)
+{
+    if (est_params(e)->kind == EST_RLS_TD)
+        *sd = est_last_sd(e);
 }
 
 double model_discount(const struct model *m, const model_obs_t *t)
@@ -261,6 +267,7 @@ int model_observe(struct model *m, const model_obs_t *t, char *err, size_t errle
         rc = est_observe(m->est[i], (size_t)slot, m->phi, t->r, t->terminal ? NULL : m->phin, g,
                          t->terminal);
         CHECK(rc == 0); /* everything was validated above */
+        model_learnt_sd(m->est[i], &m->sd[i]);
         /* The prediction the diagnostics score: V(x) before this update, as est_observe saw it
          * (NAN once the estimator has diverged: the diagnostics then leave it out). */
         m->pred[i] = est_last_value(m->est[i]);

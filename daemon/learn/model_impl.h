@@ -40,5 +40,7 @@ long model_source_slot(struct model *m, const model_obs_t *t);
 double model_discount(const struct model *m, const model_obs_t *t);
 /* Writes estimator e's own sd at phi (weights before the update) to *sd, NAN when it has none. */
 void model_pred_sd(const struct est *e, const double *phi, double *sd);
+/* After est_observe: the sd the estimator gave while it learnt, where it gives one (rls_td). */
+void model_learnt_sd(const struct est *e, double *sd);
 
 #endif /* WORTH_MODEL_IMPL_H */

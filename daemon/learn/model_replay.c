@@ -134,6 +134,7 @@ static void learn_chunk(struct model *m, struct chunk *c, const size_t *est, siz
             int rc = est_observe(e, c->slot[t], c->phi + t * n, c->r[t],
                                  c->term[t] ? NULL : c->phin + t * n, c->g[t], c->term[t]);
             CHECK(rc == 0); /* stage A validated it */
+            model_learnt_sd(e, &c->sd[t * ne + i]);
             c->pred[t * ne + i] = est_last_value(e);
             est_stats(e, &c->st[t * ne + i]);
             c->td[t * ne + i] = est_last_td(e);

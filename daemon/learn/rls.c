@@ -242,6 +242,28 @@ KERNEL static void downdate(size_t n, double *P, const double *k, const double *
     }
 }
 
+/*
+ * sd from a residual variance s2 and a row-major P: sqrt(s2 * phi'P phi), or
+ * NAN when phi'P phi is negative or not finite.
+ */
+static double sd_of(size_t n, double s2, const double *P, const double *phi)
+{
+    double q = 0.0;
+    for (size_t i = 0; i < n; i++) {
+        if (phi[i] == 0.0)
+            continue;
+        q += phi[i] * est_dot(n, P + i * n, phi);
+    }
+    if (!(q >= 0.0) || !isfinite(q))
+        return NAN;
+    return sqrt(s2 * q);
+}
+
+static double s2_of(const struct rls *m)
+{
+    return m->s2_w > 0 ? m->s2_sum / m->s2_w : 0.0;
+}
+
 static int rls_observe(struct est *e, size_t src, const double *phi, double r, const double *phin,
                        double g, int terminal, double v, double vn)
 {
@@ -261,7 +283,20 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
         guarded = mu_t != mu;
     }
 
+    /*
+     * The sd of V(x) before this update, which the diagnostics score: with z = phi (lambda 0,
+     * or the first step of an episode) phi'P phi is phi . (P z) from the pass over P that the
+     * update makes anyway; otherwise it takes a pass of its own.
+     */
+    double s2 = s2_of(m);
+    int z_is_phi = memcmp(s->z, phi, n * sizeof *phi) == 0;
+    if (!z_is_phi)
+        e->sd_last = sd_of(n, s2, m->P, phi);
     products(n, m->P, s->z, m->d, m->pz, m->u);
+    if (z_is_phi) {
+        double q = est_dot(n, phi, m->pz);
+        e->sd_last = q >= 0.0 && isfinite(q) ? sqrt(s2 * q) : NAN;
+    }
     double den = mu_t + est_dot(n, m->d, m->pz);
     double err = r - (v - g * vn); /* r - d'w: the TD error under the current weights */
     if (!(fabs(den) > 1e-6 * mu_t) || !isfinite(den)) {
@@ -290,28 +325,6 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
 
     est_trace_end(s, n, g, terminal);
     return guarded;
-}
-
-/*
- * sd from a residual variance s2 and a row-major P: sqrt(s2 * phi'P phi), or
- * NAN when phi'P phi is negative or not finite.
- */
-static double sd_of(size_t n, double s2, const double *P, const double *phi)
-{
-    double q = 0.0;
-    for (size_t i = 0; i < n; i++) {
-        if (phi[i] == 0.0)
-            continue;
-        q += phi[i] * est_dot(n, P + i * n, phi);
-    }
-    if (!(q >= 0.0) || !isfinite(q))
-        return NAN;
-    return sqrt(s2 * q);
-}
-
-static double s2_of(const struct rls *m)
-{
-    return m->s2_w > 0 ? m->s2_sum / m->s2_w : 0.0;
 }
 
 static int rls_sd(const struct est *e, const double *phi, double *sd)

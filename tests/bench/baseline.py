@@ -8,9 +8,10 @@ sends to worthd), parses each with json, evaluates the same 65 features
 forgetting) with numpy, gamma 0.99: the defaults of worthd's td and rls_td.
 Prints one JSON line: transitions/s over the whole loop (reading the file
 included) and each estimator's value at the probe states, which the suite
-compares with worthd's.
+compares with worthd's.  ORDER, when given, is the Fourier order (default 8:
+65 features at 8 dimensions; order 11 at 4 dimensions gives 45).
 
-Usage: baseline.py LINES.jsonl '[[x...], ...]'
+Usage: baseline.py LINES.jsonl '[[x...], ...]' [ORDER]
 """
 import json
 import sys
@@ -30,7 +31,12 @@ def features(x):
 
 
 def main():
+    global ORDER
     path, probe = sys.argv[1], json.loads(sys.argv[2])
+    if len(sys.argv) > 3:
+        ORDER = int(sys.argv[3])
+        if ORDER < 1:
+            raise SystemExit("baseline.py: ORDER must be at least 1")
     n = 1 + ORDER * len(probe[0])
     w_td = np.zeros(n)
     w_rls = np.zeros(n)
