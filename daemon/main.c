@@ -9,10 +9,12 @@
  * learner.  Sets the umask from --file-mode before anything is created.
  */
 #include <signal.h>
+#include <stdlib.h>
 #include <sys/resource.h>
 #include <sys/stat.h>
 
 #include "common/say.h"
+#include "learn/rlsk.h"
 #include "options.h"
 #include "worthd.h"
 
@@ -80,7 +82,16 @@ int main(int argc, char **argv)
     signal(SIGUSR1, SIG_IGN);
     signal(SIGUSR2, SIG_IGN);
     openblas_set_num_threads(1);
-    say_info("worthd %s starting", WORTH_VERSION);
+    /* A pinned RLS-TD kernel this CPU cannot run is refused, like a bad option (exit 2). */
+    const char *pin = getenv("WORTH_RLS_KERNEL");
+    if (pin && *pin && !rlsk_named(pin)) {
+        say_error("WORTH_RLS_KERNEL=%s: not a kernel this build runs on this CPU (portable, avx2 "
+                  "with FMA, avx512); unset it to let worthd choose",
+                  pin);
+        options_free(opts);
+        return 2;
+    }
+    say_info("worthd %s starting (RLS-TD kernels: %s)", WORTH_VERSION, rlsk()->name);
     raise_nofile(o.max_conns);
     int status = worthd_run(&o, reload, opts);
     options_free(opts);

@@ -9,7 +9,8 @@
  * and w0 = 0 the weights equal ridge LSTD(lambda) with eps = 1/delta after
  * every step, and they converge to the TD fixed point, not to the
  * Bellman-residual minimiser.  P is not symmetric: it is stored in full,
- * row-major, and updated with dgemv, dgemv (transposed) and dger.
+ * row-major, and updated by two fused passes over it (rlsk.h: P z with P'd,
+ * then P - k d'P), the maths of dgemv, dgemv (transposed) and dger.
  *
  * Guards.
  * 1. Wind-up.  With mu < 1, directions of P that the data does not excite grow
@@ -72,40 +73,49 @@
 #include <cblas.h>
 #include <float.h>
 #include <math.h>
+#include <stdint.h>
 #include <string.h>
 
 #include "learn/est_impl.h"
+#include "learn/rlsk.h"
 #include "common/mem.h"
 
 struct rls {
-    double *P;           /* n x n, row-major */
+    double *P;           /* n x n, row-major, row i at P + i * ld */
     double *pz, *u, *d;  /* workspaces, n each */
+    size_t ld;           /* RLSK_LD(n): rows and workspaces start on 64 bytes */
+    void *block;         /* the allocation P and the workspaces are carved from */
     double cap;          /* trace cap of the guard */
     double s2_sum, s2_w; /* running residual variance: sum of mu-weighted e^2 and weights */
     uint64_t reg_i;      /* regularised guard: next coordinate to regularise */
     uint64_t p_resets;   /* re-regularisations of P (guard 3) */
     uint64_t p_reset_at; /* e->updates of the last one */
     struct est_trace *s; /* nsrc */
+    const rlsk_t *k;     /* the O(n^2) kernels (rlsk.h) */
 };
 
 static void init_p(struct est *e, struct rls *m)
 {
     size_t n = e->n;
-    memset(m->P, 0, n * n * sizeof *m->P);
+    memset(m->P, 0, n * m->ld * sizeof *m->P);
     for (size_t i = 0; i < n; i++)
-        m->P[i * n + i] = e->p.delta;
+        m->P[i * m->ld + i] = e->p.delta;
 }
 
 static void rls_init(struct est *e)
 {
     size_t n = e->n;
     struct rls *m = mem_calloc(1, sizeof *m);
-    m->P = mem_alloc(n * n * sizeof *m->P);
-    m->pz = mem_calloc(n, sizeof *m->pz);
-    m->u = mem_calloc(n, sizeof *m->u);
-    m->d = mem_calloc(n, sizeof *m->d);
+    /* One block: P (n rows of ld), then pz, u and d (ld each), from a 64-byte boundary. */
+    size_t ld = m->ld = RLSK_LD(n);
+    m->block = mem_calloc((n + 3) * ld + 8, sizeof(double));
+    m->P = (double *)(((uintptr_t)m->block + 63) & ~(uintptr_t)63);
+    m->pz = m->P + n * ld;
+    m->u = m->pz + ld;
+    m->d = m->u + ld;
     m->cap = e->p.trace_cap > 0 ? e->p.trace_cap : (double)n * e->p.delta;
     m->s = mem_calloc(e->nsrc, sizeof *m->s);
+    m->k = rlsk();
     e->k = m;
     init_p(e, m);
 }
@@ -124,19 +134,16 @@ static void rls_free(struct est *e)
 {
     rls_reset(e);
     struct rls *m = e->k;
-    mem_free(m->P);
-    mem_free(m->pz);
-    mem_free(m->u);
-    mem_free(m->d);
+    mem_free(m->block);
     mem_free(m->s);
     mem_free(m);
 }
 
-static double trace(const double *P, size_t n)
+static double trace(const double *P, size_t n, size_t ld)
 {
     double t = 0.0;
     for (size_t i = 0; i < n; i++)
-        t += P[i * n + i];
+        t += P[i * ld + i];
     return t;
 }
 
@@ -147,112 +154,30 @@ static double trace(const double *P, size_t n)
 static int regularise(struct est *e, struct rls *m)
 {
     size_t n = e->n, i = (size_t)(m->reg_i++ % n);
-    int ni = (int)n;
+    int ni = (int)n, ld = (int)m->ld;
     double c = (double)n * (1.0 - e->p.forget) / e->p.delta;
-    double den = 1.0 + c * m->P[i * n + i];
+    double den = 1.0 + c * m->P[i * m->ld + i];
     if (!(fabs(den) > 1e-6) || !isfinite(den))
         return 1;
-    cblas_dcopy(ni, m->P + i, ni, m->pz, 1);   /* column i */
-    cblas_dcopy(ni, m->P + i * n, 1, m->u, 1); /* row i */
+    cblas_dcopy(ni, m->P + i, ld, m->pz, 1);       /* column i */
+    cblas_dcopy(ni, m->P + i * m->ld, 1, m->u, 1); /* row i */
     double gain = c / den;
     est_axpy(n, gain * (e->p.init - e->w[i]), m->pz, e->w);
-    cblas_dger(CblasRowMajor, ni, ni, -gain, m->pz, 1, m->u, 1, m->P, ni);
+    cblas_dger(CblasRowMajor, ni, ni, -gain, m->pz, 1, m->u, 1, m->P, ld);
     return 0;
-}
-
-/*
- * The fused kernel: one pass over P (row-major) gives both pz = P z and
- * u = P' d, where dgemv twice would read P twice.  The simd pragma lets the
- * compiler vectorise the row dot product (a reduction), which plain -O2 may
- * not reorder; the order is fixed per build, so results stay deterministic.
- */
-/*
- * x86-64: build the two O(n^2) kernels twice, for AVX2+FMA and for the
- * baseline, and let the loader pick (GCC's target_clones, an ifunc): Debian
- * builds for the baseline, but these loops are where RLS-TD spends its time.
- */
-#if defined(__x86_64__) && defined(__GNUC__) && !defined(__clang__)
-#define KERNEL __attribute__((target_clones("arch=x86-64-v3", "default")))
-#else
-#define KERNEL
-#endif
-
-KERNEL static void products(size_t n, const double *P, const double *z, const double *d, double *pz,
-                            double *u)
-{
-    memset(u, 0, n * sizeof *u);
-    size_t i = 0;
-    /*
-     * Four rows at a time: each element of u and z is loaded once per four
-     * rows instead of once per row, so the loop does eight multiply-adds per
-     * load and store of u rather than two.
-     */
-    for (; i + 4 <= n; i += 4) {
-        const double *r0 = P + i * n, *r1 = r0 + n, *r2 = r1 + n, *r3 = r2 + n;
-        double a0 = 0.0, a1 = 0.0, a2 = 0.0, a3 = 0.0;
-        double d0 = d[i], d1 = d[i + 1], d2 = d[i + 2], d3 = d[i + 3];
-#pragma omp simd reduction(+ : a0, a1, a2, a3)
-        for (size_t j = 0; j < n; j++) {
-            double zj = z[j];
-            a0 += r0[j] * zj;
-            a1 += r1[j] * zj;
-            a2 += r2[j] * zj;
-            a3 += r3[j] * zj;
-            u[j] += (d0 * r0[j] + d1 * r1[j]) + (d2 * r2[j] + d3 * r3[j]);
-        }
-        pz[i] = a0;
-        pz[i + 1] = a1;
-        pz[i + 2] = a2;
-        pz[i + 3] = a3;
-    }
-    for (; i < n; i++) {
-        const double *row = P + i * n;
-        double acc = 0.0, di = d[i];
-#pragma omp simd reduction(+ : acc)
-        for (size_t j = 0; j < n; j++) {
-            acc += row[j] * z[j];
-            u[j] += di * row[j];
-        }
-        pz[i] = acc;
-    }
-}
-
-/* P = (P - k u') * inv_mu in one pass (dscal and dger would take two). */
-KERNEL static void downdate(size_t n, double *P, const double *k, const double *u, double inv_mu)
-{
-    /*
-     * mu = 1 (no forgetting, the default) skips the scaling.  Same bits: x * 1.0
-     * is x, and this file is built without floating-point contraction (ISO C
-     * mode), so both forms round the same two operations.
-     */
-    if (inv_mu == 1.0) {
-        for (size_t i = 0; i < n; i++) {
-            double *row = P + i * n, ki = k[i];
-#pragma omp simd
-            for (size_t j = 0; j < n; j++)
-                row[j] -= ki * u[j];
-        }
-        return;
-    }
-    for (size_t i = 0; i < n; i++) {
-        double *row = P + i * n, ki = k[i] * inv_mu;
-#pragma omp simd
-        for (size_t j = 0; j < n; j++)
-            row[j] = row[j] * inv_mu - ki * u[j];
-    }
 }
 
 /*
  * sd from a residual variance s2 and a row-major P: sqrt(s2 * phi'P phi), or
  * NAN when phi'P phi is negative or not finite.
  */
-static double sd_of(size_t n, double s2, const double *P, const double *phi)
+static double sd_of(size_t n, size_t ld, double s2, const double *P, const double *phi)
 {
     double q = 0.0;
     for (size_t i = 0; i < n; i++) {
         if (phi[i] == 0.0)
             continue;
-        q += phi[i] * est_dot(n, P + i * n, phi);
+        q += phi[i] * est_dot(n, P + i * ld, phi);
     }
     if (!(q >= 0.0) || !isfinite(q))
         return NAN;
@@ -278,7 +203,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
 
     double mu_t = mu;
     if (e->p.guard == EST_GUARD_TRACE && mu < 1.0) {
-        double q = trace(m->P, n) / m->cap;
+        double q = trace(m->P, n, m->ld) / m->cap;
         mu_t = q > 1.0 ? 1.0 : (q > mu ? q : mu);
         guarded = mu_t != mu;
     }
@@ -291,8 +216,8 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     double s2 = s2_of(m);
     int z_is_phi = memcmp(s->z, phi, n * sizeof *phi) == 0;
     if (!z_is_phi)
-        e->sd_last = sd_of(n, s2, m->P, phi);
-    products(n, m->P, s->z, m->d, m->pz, m->u);
+        e->sd_last = sd_of(n, m->ld, s2, m->P, phi);
+    m->k->products(n, m->ld, m->P, s->z, m->d, m->pz, m->u);
     if (z_is_phi) {
         double q = est_dot(n, phi, m->pz);
         e->sd_last = q >= 0.0 && isfinite(q) ? sqrt(s2 * q) : NAN;
@@ -305,7 +230,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
         for (size_t i = 0; i < n; i++)
             m->pz[i] /= den; /* pz is now the gain k */
         est_axpy(n, err, m->pz, e->w);
-        downdate(n, m->P, m->pz, m->u, 1.0 / mu_t);
+        m->k->downdate(n, m->ld, m->P, m->pz, m->u, 1.0 / mu_t);
     }
     if (e->p.guard == EST_GUARD_REGULARISE && mu < 1.0)
         guarded |= regularise(e, m);
@@ -315,7 +240,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     /* Guard 3: a wound-up or overflowed diagonal sends P back to its prior. */
     double ceil_p = e->p.delta / DBL_EPSILON;
     for (size_t i = 0; i < n; i++) {
-        if (!(fabs(m->P[i * n + i]) <= ceil_p)) {
+        if (!(fabs(m->P[i * m->ld + i]) <= ceil_p)) {
             init_p(e, m);
             m->p_resets++;
             m->p_reset_at = e->updates + 1; /* est.c counts this update after us */
@@ -330,7 +255,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
 static int rls_sd(const struct est *e, const double *phi, double *sd)
 {
     const struct rls *m = e->k;
-    *sd = sd_of(e->n, s2_of(m), m->P, phi);
+    *sd = sd_of(e->n, m->ld, s2_of(m), m->P, phi);
     return 0;
 }
 
@@ -344,18 +269,19 @@ static void rls_snap(const struct est *e, double *out)
 {
     const struct rls *m = e->k;
     out[0] = s2_of(m);
-    memcpy(out + 1, m->P, e->n * e->n * sizeof *out);
+    for (size_t i = 0; i < e->n; i++) /* packed: n x n */
+        memcpy(out + 1 + i * e->n, m->P + i * m->ld, e->n * sizeof *out);
 }
 
 static double rls_snap_sd(const struct est *e, const double *extra, const double *phi)
 {
-    return sd_of(e->n, extra[0], extra + 1, phi);
+    return sd_of(e->n, e->n, extra[0], extra + 1, phi);
 }
 
 static void rls_stats(const struct est *e, est_stats_t *st)
 {
     const struct rls *m = e->k;
-    st->trace_p = trace(m->P, e->n);
+    st->trace_p = trace(m->P, e->n, m->ld);
     st->p_resets = m->p_resets;
     if (m->p_resets && e->updates - m->p_reset_at < (uint64_t)EST_RLS_RESET_WINDOW * e->n) {
         st->health = EST_HEALTH_UNHEALTHY;
@@ -366,7 +292,8 @@ static void rls_stats(const struct est *e, est_stats_t *st)
 static void rls_save(const struct est *e, ser_w *w)
 {
     const struct rls *m = e->k;
-    ser_put_f64v(w, m->P, e->n * e->n);
+    for (size_t i = 0; i < e->n; i++) /* packed: n x n */
+        ser_put_f64v(w, m->P + i * m->ld, e->n);
     ser_put_f64(w, m->s2_sum);
     ser_put_f64(w, m->s2_w);
     ser_put_u64(w, m->reg_i);
@@ -378,7 +305,8 @@ static void rls_save(const struct est *e, ser_w *w)
 static void rls_load(struct est *e, ser_r *r, unsigned version)
 {
     struct rls *m = e->k;
-    ser_get_f64v(r, m->P, e->n * e->n);
+    for (size_t i = 0; i < e->n; i++)
+        ser_get_f64v(r, m->P + i * m->ld, e->n);
     m->s2_sum = ser_get_f64(r);
     m->s2_w = ser_get_f64(r);
     m->reg_i = ser_get_u64(r);

@@ -304,7 +304,14 @@ def run_ingest(a, m, worthd, which, root):
             d.kill9()
         shutil.rmtree(d.dir, ignore_errors=True)
     want = m["inproc_values"]
-    if set(got) != set(want) or not all(same_bits(got[k], want[k]) for k in want):
+    # NEW is the build inproc comes from: the same bits.  OLD may round in another order (its
+    # RLS-TD kernels differ), so it must only agree to within rounding.
+    if which == "NEW":
+        same = set(got) == set(want) and all(same_bits(got[k], want[k]) for k in want)
+    else:
+        same = set(got) == set(want) and all(
+            abs(got[k] - want[k]) <= 1e-9 * max(1.0, abs(want[k])) for k in want)
+    if not same:
         fail(f"{m['label']}: {which} worthd learnt other values than model_observe in process: "
              f"at x = [0.3]*{m['dims']} worthd {got}, inproc {want}")
     return m["n"] / dt
