@@ -136,6 +136,8 @@ double model_footprint(const model_spec_t *spec, size_t n)
         diag_params_default(spec->gamma, &dp);
     bytes += diag_footprint(&dp, spec->n_est, nsrc);
     bytes += (double)nsrc * (MODEL_NAME_MAX + 1);
+    /* The learner's replay (its ring of chunks) lives as long as the model. */
+    bytes += model_replay_footprint(spec->feat.dims, n, spec->n_est);
     return bytes;
 }
 

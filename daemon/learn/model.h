@@ -123,16 +123,19 @@ int model_train(struct model *m, size_t i, const est_train_opts_t *o, est_train_
  * every transition in order, and the diagnostics are fed in order after the
  * estimators, so the result is bit-identical to model_observe on each
  * transition.  The pushing thread validates and evaluates features for one
- * chunk while the workers learn the previous one.
+ * chunk while the workers learn the ones before it (a ring of a few chunks).
  *
  * Between model_replay_new and model_replay_end the model belongs to the
  * replay: no other model_* call until model_replay_flush or _end returns
  * (they wait for every pushed transition).  threads is the number of
- * workers; 0 picks one per core up to one per estimator, or none when the
+ * workers; 0 picks one per core up to one per estimator, fewer while one
+ * would carry under a quarter of the busiest one's load, or none when the
  * estimators are too cheap to gain from threads (then every transition is
  * learnt on the pushing thread when its chunk is full or flushed).
  */
 struct model_replay;
+/* The most bytes a replay of a model of dims inputs, n features and n_est estimators holds. */
+double model_replay_footprint(size_t dims, size_t n, size_t n_est);
 /* Returns a replay of m (owned; end it with model_replay_end).  Each worker
  * thread adds nice (0..19) to its own nice value when it starts, so that a
  * latency-sensitive thread of the caller's wins the CPU from learning. */
@@ -146,7 +149,8 @@ int model_replay_push(struct model_replay *r, const model_obs_t *t, char *err, s
 /*
  * Called on the pushing thread once per pushed transition, in push order,
  * right after the diagnostics took it (diag state exact for that
- * transition; the estimators may be up to one chunk further on).
+ * transition; the estimators may be some chunks further on, so it must not
+ * read them).
  */
 typedef void (*model_replay_fn)(void *ctx);
 /* Sets r's callback (NULL for none); ctx is borrowed. */

@@ -713,11 +713,28 @@ static void save_load_continues_identically(void **state)
     model_free(b);
 }
 
+/* A replay's callback: counts its calls, each after the diagnostics took exactly that many. */
+struct after_count {
+    struct model *m;
+    uint64_t calls, out_of_order;
+};
+
+static void count_after(void *ctx)
+{
+    struct after_count *a = ctx;
+    model_counts_t cn;
+    model_counts(a->m, &cn);
+    a->calls++;
+    a->out_of_order += cn.applied != a->calls;
+}
+
 /*
  * model_replay learns on worker threads, yet must give model_observe's bits:
  * every kind of estimator, two sources, terminals, per-second discounts, and
- * more transitions than a chunk holds, for 0 (auto), 1, 2 and 5 workers.  A
- * refused transition ends the replay with everything before it learnt.
+ * more transitions than its ring of chunks holds, for 0 (auto), 1, 2 and 5
+ * workers, with a flush on the way (everything pushed learnt when it
+ * returns).  The callback runs once per transition, in order.  A refused
+ * transition ends the replay with everything before it learnt.
  */
 static void replay_equals_observe(void **state)
 {
@@ -749,7 +766,13 @@ static void replay_equals_observe(void **state)
     for (size_t c = 0; c < sizeof threads / sizeof threads[0]; c++) {
         struct model *m = build(&fx.spec);
         struct model_replay *r = model_replay_new(m, threads[c], 0);
+        struct after_count ac = {.m = m};
+        model_replay_set_after(r, count_after, &ac);
         for (int i = 0; i < k; i++) {
+            if (i == 1001) {
+                model_replay_flush(r);
+                assert_int_equal(ac.calls, 1001);
+            }
             double x[2] = {sin(0.37 * i), 5.0 + 4.0 * cos(0.21 * i)};
             double xn[2] = {sin(0.37 * (i + 1)), 5.0 + 4.0 * cos(0.21 * (i + 1))};
             model_obs_t t = obs(x, x[0] - 0.1 * x[1], xn, i % 17 == 16, i % 3 ? "unit-a" : NULL);
@@ -759,6 +782,8 @@ static void replay_equals_observe(void **state)
             assert_int_equal(model_replay_push(r, &t, err, sizeof err), 0);
         }
         model_replay_end(r);
+        assert_int_equal(ac.calls, k);
+        assert_int_equal(ac.out_of_order, 0);
         assert_state(m, buf, len);
 
         /* A bad transition: refused, the ones before it learnt. */
@@ -983,8 +1008,8 @@ static void footprint_is_checked_before_building(void **state)
     std_fixture(&fx);
     size_t n = 10; /* bias + 3x3 rbf */
     double all = model_footprint(&fx.spec, n);
-    /* Dropping the rls_td estimator removes exactly its share (P, and P in two snapshots) and
-     * its column in the diagnostics' return buffers. */
+    /* Dropping the rls_td estimator removes exactly its share (P, and P in two snapshots), its
+     * column in the diagnostics' return buffers and its results in the replay's chunks. */
     fx.spec.n_est = 1;
     fx.spec.primary = 0;
     double td_only = model_footprint(&fx.spec, n);
@@ -993,7 +1018,12 @@ static void footprint_is_checked_before_building(void **state)
     diag_params_default(0.9, &dp);
     double diag_col = diag_footprint(&dp, 2, 3) - diag_footprint(&dp, 1, 3);
     assert_true(diag_col > 0);
-    assert_near(all - td_only, rls + diag_col, 1e-6);
+    size_t dims = fx.spec.feat.dims;
+    double replay_col = model_replay_footprint(dims, n, 2) - model_replay_footprint(dims, n, 1);
+    assert_true(replay_col > 0);
+    assert_near(all - td_only, rls + diag_col + replay_col, 1e-6);
+    /* The replay's ring of chunks is counted, and holds at least two chunks' features. */
+    assert_true(model_replay_footprint(dims, n, 1) >= 2.0 * 16 * 2 * n * sizeof(double));
     assert_true(rls >= 3.0 * n * n * sizeof(double));
     /* A 8192-feature rls_td holds three 512 MiB matrices. */
     assert_true(est_footprint(&fx.est[1], 8192, 1) >= 3.0 * 8192 * 8192 * 8);
