@@ -6,13 +6,14 @@
  *   the loop fills slots at head (queue_slot, queue_commit);
  *   the writer appends [durable, head) to the log and, after COMMIT, advances
  *   durable (queue_pending, queue_set_durable);
- *   the learner applies [tail, durable) (queue_take, queue_release).
+ *   the learner takes [taken, durable) to apply (queue_take) and releases
+ *   what it has applied (queue_release), which may lag what it took.
  * So a record is applied only once it is in the log.  It must never drop a
  * committed record, nor let the producer overwrite one not yet released.
  *
  * Invariants.
- * 1. tail <= durable <= head, each only grows, head - tail <= cap; all three
- *    change under mu.
+ * 1. tail <= taken <= durable <= head, each only grows, head - tail <= cap;
+ *    all four change under mu.
  * 2. Slots in [tail, head) are written by nobody; the loop writes only beyond
  *    head, the writer only rewrites a record's type to QREC_DEAD (and a
  *    rollback's plan) before advancing durable past it.
@@ -36,7 +37,7 @@ struct queue {
     pthread_cond_t cond;
     unsigned char *ring;
     size_t cap, stride;
-    uint64_t head, durable, tail; /* invariant 1 */
+    uint64_t head, durable, taken, tail; /* invariant 1 */
     int stop, discard, want_space;
     int unpaired;          /* under mu: a commit of sources failed; see queue_mark_unpaired */
     atomic_int cut;        /* invariant 4 */
@@ -200,21 +201,32 @@ void queue_rollback_done(struct queue *q)
 int queue_take(struct queue *q, size_t max, uint64_t *from, uint64_t *to)
 {
     pthread_mutex_lock(&q->mu);
-    while (q->durable == q->tail && !(q->stop && (q->discard || q->head == q->tail)))
+    while (q->durable == q->taken && !(q->stop && (q->discard || q->head == q->taken)))
         pthread_cond_wait(&q->cond, &q->mu);
-    int more = !(q->stop && (q->discard || q->head == q->tail));
-    *from = q->tail;
+    int more = !(q->stop && (q->discard || q->head == q->taken));
+    *from = q->taken;
     *to = more ? q->durable : q->head;
-    pthread_mutex_unlock(&q->mu);
     if (more && *to - *from > max)
         *to = *from + max;
+    if (more)
+        q->taken = *to;
+    pthread_mutex_unlock(&q->mu);
     return more;
+}
+
+int queue_idle(struct queue *q)
+{
+    pthread_mutex_lock(&q->mu);
+    int idle = q->durable == q->taken;
+    pthread_mutex_unlock(&q->mu);
+    return idle;
 }
 
 int queue_release(struct queue *q, uint64_t to, int *empty)
 {
     pthread_mutex_lock(&q->mu);
-    q->tail = to;
+    if (to > q->tail && to <= q->taken)
+        q->tail = to;
     *empty = q->durable == q->tail;
     int wake = q->want_space;
     q->want_space = 0;

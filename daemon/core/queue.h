@@ -144,15 +144,19 @@ void queue_rollback_gone(struct queue *q);
 /* Consumer side [learner] */
 
 /*
- * Waits until durable records are there or the queue is stopped.  Returns 1
- * with [*from, *to) to apply (at most max of them), or 0 when stopped and
- * nothing more is to be applied: then [*from, *to) are the records left
- * (discarded, or never durable), for their requests' replies.
+ * Waits until durable records not yet taken are there or the queue is
+ * stopped.  Returns 1 with [*from, *to) taken, to apply (at most max of
+ * them), or 0 when stopped and nothing more is to be applied: then
+ * [*from, *to) are the records left (discarded, or never durable), for their
+ * requests' replies.
  */
 int queue_take(struct queue *q, size_t max, uint64_t *from, uint64_t *to);
+/* 1 when every durable record has been taken. */
+int queue_idle(struct queue *q);
 /*
- * The records before `to` are applied.  Returns 1 when the producer asked
- * for space (it is to be woken), and *empty = 1 when nothing durable waits.
+ * The records before `to` (at most those taken) are applied: their slots may
+ * be filled again.  Returns 1 when the producer asked for space (it is to be
+ * woken), and *empty = 1 when nothing durable waits to be applied.
  */
 int queue_release(struct queue *q, uint64_t to, int *empty);
 /* A rollback taken from the queue has been applied: it no longer cuts. */

@@ -9,12 +9,12 @@
  * state, and never drop an accepted record.
  *
  * The learner thread pushes observations through a model_replay: it checks
- * them and evaluates features while the estimators learn the previous chunk
- * on worker threads (one per core, when the estimators are costly enough to
- * gain from it), and it takes each one's drift alarm in order.  The replay is
- * flushed before anything else touches the model (a checkpoint, a training,
- * a rollback, publishing), so the model is then exactly what learning each
- * record alone would have made.
+ * them and evaluates features while the estimators learn earlier chunks on
+ * worker threads (when the estimators are costly enough to gain from it), and
+ * it takes each one's drift alarm in order; a record's slot is released once
+ * it is learnt.  The replay is flushed before anything else touches the model
+ * (a checkpoint, a training, a rollback, publishing), so the model is then
+ * exactly what learning each record alone would have made.
  *
  * Invariant: the front snapshot is read only under snap_mu; the swap is
  * under snap_mu.
@@ -51,8 +51,9 @@
 
 /* Records handled between two looks at the queue's lock. */
 #define CHUNK 256
-/* Publish at most this often while the queue is busy (it always publishes when it empties). */
-#define PUBLISH_NS 1000000
+/* Publish at most this often while busy (always when the queue empties); each first waits
+ * until the replay has learnt everything pushed, idling its workers for a moment. */
+#define PUBLISH_NS 10000000
 
 struct snap {
     double *data; /* model_snap */
@@ -100,7 +101,6 @@ struct learner {
     /* Snapshots (invariant 4). */
     pthread_mutex_t snap_mu;
     struct snap snaps[2];
-    /* History rows not yet handed to the writer, and the bucket of the last row taken. */
     struct history_buf *hist; /* history rows not yet stored (store/history.h) */
     int front;
     double *qwork; /* loop-thread query workspace */
@@ -190,9 +190,8 @@ static void publish(struct learner *l, double last_update)
 }
 
 /* Posts a reply for conn_id: rc 0 with text the fields after "ok":true, else the message. */
-static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, ...)
-    __attribute__((format(printf, 4, 5)));
-static void reply(struct learner *l, uint64_t conn_id, int rc, const char *fmt, ...)
+__attribute__((format(printf, 4, 5))) static void reply(struct learner *l, uint64_t conn_id, int rc,
+                                                        const char *fmt, ...)
 {
     char buf[512];
     va_list ap;
@@ -392,11 +391,8 @@ static void on_input(void *ctx, const inputs_event_t *ev)
     alarms_input(l->o.writer, l->q, l->name, &l->meta, ev);
 }
 
-/*
- * Hands an observation to the model's replay (its estimators learn on
- * worker threads; observed() runs for it later, in order).  A checkpoint due
- * after it waits until everything pushed has been learnt.
- */
+/* Hands an observation to the model's replay (learnt on worker threads; observed() runs for
+ * it later, in order).  A checkpoint due after it waits until all pushed is learnt. */
 static void learn(struct learner *l, queue_rec_t *r)
 {
     model_obs_t o = {
@@ -509,7 +505,7 @@ static void *run(void *arg)
     (void)setpriority(PRIO_PROCESS, 0, getpriority(PRIO_PROCESS, 0) + LEARN_NICE);
     uint64_t last_pub = mono_ns();
     double last_update = 0;
-    int dirty = 0;
+    int dirty = 0, flushed = 1;
     for (;;) {
         uint64_t from, to;
         if (!queue_take(l->q, CHUNK, &from, &to)) {
@@ -532,9 +528,11 @@ static void *run(void *arg)
         /*
          * Observations are pushed to the replay; anything else first waits
          * until every observation before it has been learnt.  The model is
-         * whole again (flushed) before it is published.
+         * whole again (flushed) before it is published.  The callbacks walk the
+         * queue from cb_k, still in the last round while it has some in flight.
          */
-        l->cb_k = from;
+        if (flushed)
+            l->cb_k = from;
         for (uint64_t k = from; k < to; k++) {
             queue_rec_t *r = rec_at(l, k);
             if (r->type == QREC_OBS) {
@@ -547,14 +545,23 @@ static void *run(void *arg)
             l->cb_k = k + 1;
             apply(l, r);
         }
-        model_replay_flush(l->rp);
-        report_divergence(l);
+        /*
+         * Caught up, or a snapshot due: flush, then publish.  Else chunks stay in flight across
+         * rounds and only the records learnt (callbacks run: before cb_k) are released.
+         */
+        uint64_t now = mono_ns(), done = l->cb_k;
+        int due = queue_idle(l->q) || now - last_pub >= PUBLISH_NS;
+        if (due) {
+            model_replay_flush(l->rp);
+            report_divergence(l);
+            done = to;
+        }
+        flushed = due;
         last_update = wall_s();
         dirty = 1;
 
-        int empty = 0, wake = queue_release(l->q, to, &empty);
-        uint64_t now = mono_ns();
-        if (empty || now - last_pub >= PUBLISH_NS) {
+        int empty = 0, wake = queue_release(l->q, done, &empty);
+        if (due) {
             publish(l, last_update);
             last_pub = now;
             dirty = 0;

@@ -6,7 +6,7 @@
  * thread fills the queue (through learner_commit, which also keeps the
  * source table's mirror in the pairing, live/pairing.h), the writer thread logs it, and the learner
  * thread applies what is durable, in order, and publishes a snapshot of every estimator's weights
- * (and what sd needs) at most every millisecond and whenever its queue runs dry.  Queries take the
+ * (and what sd needs) at most every 10 ms and whenever its queue runs dry.  Queries take the
  * snapshot under a short lock and never wait for a batch.
  *
  * Thread rules: [loop] functions are for the loop thread only; the callbacks
