@@ -85,8 +85,8 @@ int main(int argc, char **argv)
     /* A pinned RLS-TD kernel this CPU cannot run is refused, like a bad option (exit 2). */
     const char *pin = getenv("WORTH_RLS_KERNEL");
     if (pin && *pin && !rlsk_named(pin)) {
-        say_error("WORTH_RLS_KERNEL=%s: not a kernel this build runs on this CPU (portable, avx2 "
-                  "with FMA, avx512); unset it to let worthd choose",
+        say_error("WORTH_RLS_KERNEL=%s: not a kernel this build runs on this CPU (portable, "
+                  "compat, avx512); unset it to let worthd choose",
                   pin);
         options_free(opts);
         return 2;

@@ -109,10 +109,12 @@ static verdict_t own(const struct health *h, size_t i, const est_stats_t *s, con
     return v;
 }
 
-/* Every estimator's verdict into v (n_est of them), the comparison with the best included. */
-static void judge(const struct health *h, const est_stats_t *st, const struct diag *d, verdict_t *v)
+/* Every estimator's verdict into v (n_est of them), the comparison with the best included;
+ * r gets their realised errors (diag_est), when not NULL. */
+static void judge(const struct health *h, const est_stats_t *st, const struct diag *d, verdict_t *v,
+                  diag_est_t *r_out)
 {
-    diag_est_t r[HEALTH_MAX_EST];
+    diag_est_t mine[HEALTH_MAX_EST], *r = r_out ? r_out : mine;
     size_t best = h->n_est;
     for (size_t i = 0; i < h->n_est; i++) {
         diag_est(d, i, &r[i]);
@@ -151,14 +153,12 @@ void health_update(struct health *h, const est_stats_t *st, const struct diag *d
     if (!h->automatic)
         return;
     verdict_t v[HEALTH_MAX_EST];
-    judge(h, st, d, v);
-    diag_est_t r[HEALTH_MAX_EST];
+    diag_est_t r[HEALTH_MAX_EST]; /* once per transition: judge's, not computed again */
+    judge(h, st, d, v, r);
     size_t best = h->n_est;
-    for (size_t i = 0; i < h->n_est; i++) {
-        diag_est(d, i, &r[i]);
+    for (size_t i = 0; i < h->n_est; i++)
         if (v[i].state == HEALTH_OK && (best == h->n_est || r[i].rms_window < r[best].rms_window))
             best = i;
-    }
     if (best == h->n_est) { /* none is ok: stay, unless it has no estimate and another has */
         h->challenger = h->n_est;
         h->lead = 0;
@@ -222,7 +222,7 @@ void health_est(const struct health *h, size_t i, const est_stats_t *st, const s
                 const char *const *names, health_est_t *out)
 {
     verdict_t v[HEALTH_MAX_EST];
-    judge(h, st, d, v);
+    judge(h, st, d, v, NULL);
     const verdict_t *x = &v[i];
     out->state = x->state;
     out->estimate = has_estimate(x);
@@ -281,7 +281,7 @@ void health_head(const struct health *h, const est_stats_t *st, const struct dia
                  const char *const *names, health_head_t *out)
 {
     verdict_t v[HEALTH_MAX_EST];
-    judge(h, st, d, v);
+    judge(h, st, d, v, NULL);
     out->index = h->head;
     out->automatic = h->automatic;
     out->switches = h->switches;

@@ -81,8 +81,20 @@
 #include "common/mem.h"
 
 struct rls {
-    double *P;           /* n x n, row-major, row i at P + i * ld */
-    double *pz, *u, *d;  /* workspaces, n each */
+    double *P;          /* n x n, row-major, row i at P + i * ld */
+    double *pz, *u, *d; /* workspaces, n each */
+    /*
+     * The last step's downdate, not yet applied (pend): P stands for
+     * (P - kp up') * pend_inv.  The next step applies it in the same pass as
+     * its own products (rlsk fused), which halves the passes over P; every
+     * other reader of P settles it first.  Guard 3 and the trace read the
+     * diagonal it would leave (dg, pend_trace), so what anyone sees is the
+     * eager update's, bit for bit.  Only when no wind-up guard acts between
+     * steps (forget 1, or guard none).
+     */
+    double *kp, *up, *dg;
+    int pend;
+    double pend_inv, pend_trace;
     size_t ld;           /* RLSK_LD(n): rows and workspaces start on 64 bytes */
     void *block;         /* the allocation P and the workspaces are carved from */
     double cap;          /* trace cap of the guard */
@@ -97,6 +109,7 @@ struct rls {
 static void init_p(struct est *e, struct rls *m)
 {
     size_t n = e->n;
+    m->pend = 0;
     memset(m->P, 0, n * m->ld * sizeof *m->P);
     for (size_t i = 0; i < n; i++)
         m->P[i * m->ld + i] = e->p.delta;
@@ -106,13 +119,16 @@ static void rls_init(struct est *e)
 {
     size_t n = e->n;
     struct rls *m = mem_calloc(1, sizeof *m);
-    /* One block: P (n rows of ld), then pz, u and d (ld each), from a 64-byte boundary. */
+    /* One block: P (n rows of ld), then pz, u, d, kp, up, dg (ld each), from a 64-byte boundary. */
     size_t ld = m->ld = RLSK_LD(n);
-    m->block = mem_calloc((n + 3) * ld + 8, sizeof(double));
+    m->block = mem_calloc((n + 6) * ld + 8, sizeof(double));
     m->P = (double *)(((uintptr_t)m->block + 63) & ~(uintptr_t)63);
     m->pz = m->P + n * ld;
     m->u = m->pz + ld;
     m->d = m->u + ld;
+    m->kp = m->d + ld;
+    m->up = m->kp + ld;
+    m->dg = m->up + ld;
     m->cap = e->p.trace_cap > 0 ? e->p.trace_cap : (double)n * e->p.delta;
     m->s = mem_calloc(e->nsrc, sizeof *m->s);
     m->k = rlsk();
@@ -145,6 +161,22 @@ static double trace(const double *P, size_t n, size_t ld)
     for (size_t i = 0; i < n; i++)
         t += P[i * ld + i];
     return t;
+}
+
+/* Applies the pending downdate, if any: P is then what it stands for. */
+static void settle(const struct est *e)
+{
+    struct rls *m = e->k; /* the value of P does not change, only its representation */
+    if (!m->pend)
+        return;
+    m->k->downdate(e->n, m->ld, m->P, m->kp, m->up, m->pend_inv);
+    m->pend = 0;
+}
+
+/* 1 when the downdate may wait for the next step: no wind-up guard acts between steps. */
+static int lazy(const struct est *e)
+{
+    return !(e->p.forget < 1.0 && e->p.guard != EST_GUARD_NONE);
 }
 
 /*
@@ -215,9 +247,16 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
      */
     double s2 = s2_of(m);
     int z_is_phi = memcmp(s->z, phi, n * sizeof *phi) == 0;
-    if (!z_is_phi)
+    if (!z_is_phi) {
+        settle(e);
         e->sd_last = sd_of(n, m->ld, s2, m->P, phi);
-    m->k->products(n, m->ld, m->P, s->z, m->d, m->pz, m->u);
+    }
+    if (m->pend) { /* the last step's downdate, in the pass of this step's products */
+        m->k->fused(n, m->ld, m->P, m->kp, m->up, m->pend_inv, s->z, m->d, m->pz, m->u);
+        m->pend = 0;
+    } else {
+        m->k->products(n, m->ld, m->P, s->z, m->d, m->pz, m->u);
+    }
     if (z_is_phi) {
         double q = est_dot(n, phi, m->pz);
         e->sd_last = q >= 0.0 && isfinite(q) ? sqrt(s2 * q) : NAN;
@@ -230,7 +269,18 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
         for (size_t i = 0; i < n; i++)
             m->pz[i] /= den; /* pz is now the gain k */
         est_axpy(n, err, m->pz, e->w);
-        m->k->downdate(n, m->ld, m->P, m->pz, m->u, 1.0 / mu_t);
+        if (lazy(e)) { /* kept for the next step: the gain and u swap with kp and up */
+            double *t = m->kp;
+            m->kp = m->pz;
+            m->pz = t;
+            t = m->up;
+            m->up = m->u;
+            m->u = t;
+            m->pend = 1;
+            m->pend_inv = 1.0 / mu_t;
+        } else {
+            m->k->downdate(n, m->ld, m->P, m->pz, m->u, 1.0 / mu_t);
+        }
     }
     if (e->p.guard == EST_GUARD_REGULARISE && mu < 1.0)
         guarded |= regularise(e, m);
@@ -239,8 +289,18 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
 
     /* Guard 3: a wound-up or overflowed diagonal sends P back to its prior. */
     double ceil_p = e->p.delta / DBL_EPSILON;
+    if (m->pend) {
+        m->k->diag(n, m->ld, m->P, m->kp, m->up, m->pend_inv, m->dg);
+        double t = 0.0;
+        for (size_t i = 0; i < n; i++)
+            t += m->dg[i]; /* trace()'s order */
+        m->pend_trace = t;
+    } else {
+        for (size_t i = 0; i < n; i++)
+            m->dg[i] = m->P[i * m->ld + i];
+    }
     for (size_t i = 0; i < n; i++) {
-        if (!(fabs(m->P[i * m->ld + i]) <= ceil_p)) {
+        if (!(fabs(m->dg[i]) <= ceil_p)) {
             init_p(e, m);
             m->p_resets++;
             m->p_reset_at = e->updates + 1; /* est.c counts this update after us */
@@ -255,6 +315,7 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
 static int rls_sd(const struct est *e, const double *phi, double *sd)
 {
     const struct rls *m = e->k;
+    settle(e);
     *sd = sd_of(e->n, m->ld, s2_of(m), m->P, phi);
     return 0;
 }
@@ -268,6 +329,7 @@ static size_t rls_snap_size(const struct est *e)
 static void rls_snap(const struct est *e, double *out)
 {
     const struct rls *m = e->k;
+    settle(e);
     out[0] = s2_of(m);
     for (size_t i = 0; i < e->n; i++) /* packed: n x n */
         memcpy(out + 1 + i * e->n, m->P + i * m->ld, e->n * sizeof *out);
@@ -281,7 +343,7 @@ static double rls_snap_sd(const struct est *e, const double *extra, const double
 static void rls_stats(const struct est *e, est_stats_t *st)
 {
     const struct rls *m = e->k;
-    st->trace_p = trace(m->P, e->n, m->ld);
+    st->trace_p = m->pend ? m->pend_trace : trace(m->P, e->n, m->ld);
     st->p_resets = m->p_resets;
     if (m->p_resets && e->updates - m->p_reset_at < (uint64_t)EST_RLS_RESET_WINDOW * e->n) {
         st->health = EST_HEALTH_UNHEALTHY;
@@ -292,6 +354,7 @@ static void rls_stats(const struct est *e, est_stats_t *st)
 static void rls_save(const struct est *e, ser_w *w)
 {
     const struct rls *m = e->k;
+    settle(e);
     for (size_t i = 0; i < e->n; i++) /* packed: n x n */
         ser_put_f64v(w, m->P + i * m->ld, e->n);
     ser_put_f64(w, m->s2_sum);
@@ -305,6 +368,7 @@ static void rls_save(const struct est *e, ser_w *w)
 static void rls_load(struct est *e, ser_r *r, unsigned version)
 {
     struct rls *m = e->k;
+    m->pend = 0;
     for (size_t i = 0; i < e->n; i++)
         ser_get_f64v(r, m->P + i * m->ld, e->n);
     m->s2_sum = ser_get_f64(r);

@@ -1,15 +1,18 @@
 /*
- * rlsk.c - RLS-TD's two O(n^2) kernels, portable C and, on x86-64, AVX2+FMA
- * and AVX-512 intrinsics; the variant is chosen once per process (rlsk.h).
+ * rlsk.c - RLS-TD's two O(n^2) kernels: plain C, and on x86-64 AVX-512
+ * intrinsics; the variant is chosen once per process (rlsk.h).
  *
- * The portable variant is plain C that the compiler vectorises for the
+ * The plain C is built twice: "portable", vectorised by the compiler for the
  * baseline of its target (SSE2 on x86-64: the same bits on every x86-64
- * host).  The intrinsic variants fix their order of additions in the code
- * (four rows of P at a time, one accumulator per row, a fixed horizontal sum)
- * and fuse each multiply-add, which halves the instructions of the portable
- * form; AVX-512 halves them again.  All of P stays in the level-1 cache up to
- * n = 70 or so (n^2 doubles), so the loops are bound by arithmetic, not
- * memory, and the instruction count is what matters.
+ * host), and "compat", built as the builds of schema 5 built it (GCC's
+ * target_clones: AVX2 where the CPU has it), which is what an AVX2 host
+ * without AVX-512 runs.  The AVX-512 variant fixes its order of additions in
+ * the code (four rows of P at a time, one accumulator per row, a fixed
+ * horizontal sum), fuses each multiply-add, and fuses a step's downdate with
+ * the next step's products in one pass over P (rls.c defers the downdate for
+ * it).  An AVX2 version of these intrinsics, measured in worthd's ingest at
+ * 65 features on this project's machine, ran no faster than compat (551-575k
+ * against 536-568k transitions/s) and was dropped; avx512 ran 710-750k.
  */
 #include "learn/rlsk.h"
 
@@ -17,81 +20,36 @@
 #include <stdlib.h>
 #include <string.h>
 
-/* ---- portable ---------------------------------------------------------------- */
+/* ---- portable, and the kernels of the builds before rlsk.c ---------------- */
 
 /*
- * One pass over P (row-major) gives both pz = P z and u = P' d, where dgemv
- * twice would read P twice.  The simd pragma lets the compiler vectorise the
- * row dot product (a reduction), which plain -O2 may not reorder; the order is
- * fixed per build, so results stay deterministic.
+ * "portable": plain C for the baseline of the target, the same bits on every
+ * x86-64 host.  "compat": the same C built as the builds of schema 5 built
+ * it, twice (AVX2 and the baseline, the loader picking one: GCC's
+ * target_clones), so a host recovers a database those builds wrote to the
+ * very bits they had.
  */
-static void products_portable(size_t n, size_t ld, const double *P, const double *z,
-                              const double *d, double *pz, double *u)
-{
-    memset(u, 0, n * sizeof *u);
-    size_t i = 0;
-    /*
-     * Four rows at a time: each element of u and z is loaded once per four
-     * rows instead of once per row, so the loop does eight multiply-adds per
-     * load and store of u rather than two.
-     */
-    for (; i + 4 <= n; i += 4) {
-        const double *r0 = P + i * ld, *r1 = r0 + ld, *r2 = r1 + ld, *r3 = r2 + ld;
-        double a0 = 0.0, a1 = 0.0, a2 = 0.0, a3 = 0.0;
-        double d0 = d[i], d1 = d[i + 1], d2 = d[i + 2], d3 = d[i + 3];
-#pragma omp simd reduction(+ : a0, a1, a2, a3)
-        for (size_t j = 0; j < n; j++) {
-            double zj = z[j];
-            a0 += r0[j] * zj;
-            a1 += r1[j] * zj;
-            a2 += r2[j] * zj;
-            a3 += r3[j] * zj;
-            u[j] += (d0 * r0[j] + d1 * r1[j]) + (d2 * r2[j] + d3 * r3[j]);
-        }
-        pz[i] = a0;
-        pz[i + 1] = a1;
-        pz[i + 2] = a2;
-        pz[i + 3] = a3;
-    }
-    for (; i < n; i++) {
-        const double *row = P + i * ld;
-        double acc = 0.0, di = d[i];
-#pragma omp simd reduction(+ : acc)
-        for (size_t j = 0; j < n; j++) {
-            acc += row[j] * z[j];
-            u[j] += di * row[j];
-        }
-        pz[i] = acc;
-    }
-}
+#define NAME(x) x##_portable
+#define ATTR
+#include "learn/rlsk_plain.h"
+#undef NAME
+#undef ATTR
 
-/* P = (P - k u') * inv_mu in one pass (dscal and dger would take two). */
-static void downdate_portable(size_t n, size_t ld, double *P, const double *k, const double *u,
-                              double inv_mu)
-{
-    /*
-     * mu = 1 (no forgetting, the default) skips the scaling.  Same bits: x * 1.0
-     * is x, and this file is built without floating-point contraction (ISO C
-     * mode), so both forms round the same two operations.
-     */
-    if (inv_mu == 1.0) {
-        for (size_t i = 0; i < n; i++) {
-            double *row = P + i * ld, ki = k[i];
-#pragma omp simd
-            for (size_t j = 0; j < n; j++)
-                row[j] -= ki * u[j];
-        }
-        return;
-    }
-    for (size_t i = 0; i < n; i++) {
-        double *row = P + i * ld, ki = k[i] * inv_mu;
-#pragma omp simd
-        for (size_t j = 0; j < n; j++)
-            row[j] = row[j] * inv_mu - ki * u[j];
-    }
-}
+#if defined(__x86_64__) && defined(__GNUC__) && !defined(__clang__)
+#define NAME(x) x##_compat
+#define ATTR    __attribute__((target_clones("arch=x86-64-v3", "default")))
+#include "learn/rlsk_plain.h"
+#undef NAME
+#undef ATTR
+#define HAVE_COMPAT 1
+#endif
 
-static const rlsk_t PORTABLE = {"portable", products_portable, downdate_portable};
+static const rlsk_t PORTABLE = {"portable", products_portable, downdate_portable, fused_portable,
+                                diag_portable};
+#ifdef HAVE_COMPAT
+static const rlsk_t COMPAT = {"compat", products_compat, downdate_compat, fused_compat,
+                              diag_compat};
+#endif
 
 /* ---- x86-64 intrinsics -------------------------------------------------------- */
 
@@ -99,111 +57,7 @@ static const rlsk_t PORTABLE = {"portable", products_portable, downdate_portable
 #include <immintrin.h>
 #define HAVE_X86 1
 
-#define AVX2   __attribute__((target("avx2,fma")))
 #define AVX512 __attribute__((target("avx512f,fma")))
-
-/* Lanes 0..rem-1 of a 4-lane mask (rem in 1..3). */
-AVX2 static __m256i mask4(size_t rem)
-{
-    static const long long lanes[8] = {-1, -1, -1, -1, 0, 0, 0, 0};
-    return _mm256_loadu_si256((const __m256i *)(lanes + 4 - rem));
-}
-
-/* a0 + a1 + a2 + a3 as ((a0 + a2) + (a1 + a3)): a fixed order. */
-AVX2 static double hsum4(__m256d a)
-{
-    __m128d s = _mm_add_pd(_mm256_castpd256_pd128(a), _mm256_extractf128_pd(a, 1));
-    return _mm_cvtsd_f64(_mm_add_sd(s, _mm_unpackhi_pd(s, s)));
-}
-
-AVX2 static void products_avx2(size_t n, size_t ld, const double *P, const double *z,
-                               const double *d, double *pz, double *u)
-{
-    memset(u, 0, n * sizeof *u);
-    size_t full = n & ~(size_t)3, rem = n & 3, i = 0;
-    __m256i m = rem ? mask4(rem) : _mm256_setzero_si256();
-    for (; i + 4 <= n; i += 4) {
-        const double *r0 = P + i * ld, *r1 = r0 + ld, *r2 = r1 + ld, *r3 = r2 + ld;
-        __m256d a0 = _mm256_setzero_pd(), a1 = a0, a2 = a0, a3 = a0;
-        __m256d d0 = _mm256_set1_pd(d[i]), d1 = _mm256_set1_pd(d[i + 1]);
-        __m256d d2 = _mm256_set1_pd(d[i + 2]), d3 = _mm256_set1_pd(d[i + 3]);
-        size_t j = 0;
-        for (; j < full; j += 4) {
-            __m256d zj = _mm256_loadu_pd(z + j), uj = _mm256_loadu_pd(u + j);
-            __m256d x0 = _mm256_loadu_pd(r0 + j), x1 = _mm256_loadu_pd(r1 + j);
-            __m256d x2 = _mm256_loadu_pd(r2 + j), x3 = _mm256_loadu_pd(r3 + j);
-            a0 = _mm256_fmadd_pd(x0, zj, a0);
-            a1 = _mm256_fmadd_pd(x1, zj, a1);
-            a2 = _mm256_fmadd_pd(x2, zj, a2);
-            a3 = _mm256_fmadd_pd(x3, zj, a3);
-            uj = _mm256_fmadd_pd(d0, x0, uj);
-            uj = _mm256_fmadd_pd(d1, x1, uj);
-            uj = _mm256_fmadd_pd(d2, x2, uj);
-            uj = _mm256_fmadd_pd(d3, x3, uj);
-            _mm256_storeu_pd(u + j, uj);
-        }
-        if (rem) {
-            __m256d zj = _mm256_maskload_pd(z + j, m), uj = _mm256_maskload_pd(u + j, m);
-            __m256d x0 = _mm256_maskload_pd(r0 + j, m), x1 = _mm256_maskload_pd(r1 + j, m);
-            __m256d x2 = _mm256_maskload_pd(r2 + j, m), x3 = _mm256_maskload_pd(r3 + j, m);
-            a0 = _mm256_fmadd_pd(x0, zj, a0);
-            a1 = _mm256_fmadd_pd(x1, zj, a1);
-            a2 = _mm256_fmadd_pd(x2, zj, a2);
-            a3 = _mm256_fmadd_pd(x3, zj, a3);
-            uj = _mm256_fmadd_pd(d0, x0, uj);
-            uj = _mm256_fmadd_pd(d1, x1, uj);
-            uj = _mm256_fmadd_pd(d2, x2, uj);
-            uj = _mm256_fmadd_pd(d3, x3, uj);
-            _mm256_maskstore_pd(u + j, m, uj);
-        }
-        pz[i] = hsum4(a0);
-        pz[i + 1] = hsum4(a1);
-        pz[i + 2] = hsum4(a2);
-        pz[i + 3] = hsum4(a3);
-    }
-    for (; i < n; i++) {
-        const double *row = P + i * ld;
-        __m256d a = _mm256_setzero_pd(), di = _mm256_set1_pd(d[i]);
-        size_t j = 0;
-        for (; j < full; j += 4) {
-            __m256d x = _mm256_loadu_pd(row + j);
-            a = _mm256_fmadd_pd(x, _mm256_loadu_pd(z + j), a);
-            _mm256_storeu_pd(u + j, _mm256_fmadd_pd(di, x, _mm256_loadu_pd(u + j)));
-        }
-        if (rem) {
-            __m256d x = _mm256_maskload_pd(row + j, m);
-            a = _mm256_fmadd_pd(x, _mm256_maskload_pd(z + j, m), a);
-            _mm256_maskstore_pd(u + j, m, _mm256_fmadd_pd(di, x, _mm256_maskload_pd(u + j, m)));
-        }
-        pz[i] = hsum4(a);
-    }
-}
-
-AVX2 static void downdate_avx2(size_t n, size_t ld, double *P, const double *k, const double *u,
-                               double inv_mu)
-{
-    size_t full = n & ~(size_t)3, rem = n & 3;
-    __m256i m = rem ? mask4(rem) : _mm256_setzero_si256();
-    __m256d s = _mm256_set1_pd(inv_mu);
-    int scale = inv_mu != 1.0;
-    for (size_t i = 0; i < n; i++) {
-        double *row = P + i * ld;
-        __m256d ki = _mm256_set1_pd(scale ? k[i] * inv_mu : k[i]);
-        size_t j = 0;
-        for (; j < full; j += 4) {
-            __m256d x = _mm256_loadu_pd(row + j);
-            if (scale)
-                x = _mm256_mul_pd(x, s);
-            _mm256_storeu_pd(row + j, _mm256_fnmadd_pd(ki, _mm256_loadu_pd(u + j), x));
-        }
-        if (rem) {
-            __m256d x = _mm256_maskload_pd(row + j, m);
-            if (scale)
-                x = _mm256_mul_pd(x, s);
-            _mm256_maskstore_pd(row + j, m, _mm256_fnmadd_pd(ki, _mm256_maskload_pd(u + j, m), x));
-        }
-    }
-}
 
 /* a0 + ... + a7 in a fixed order: halves added twice, then the last pair. */
 AVX512 static double hsum8(__m512d a)
@@ -211,70 +65,6 @@ AVX512 static double hsum8(__m512d a)
     __m256d h = _mm256_add_pd(_mm512_castpd512_pd256(a), _mm512_extractf64x4_pd(a, 1));
     __m128d s = _mm_add_pd(_mm256_castpd256_pd128(h), _mm256_extractf128_pd(h, 1));
     return _mm_cvtsd_f64(_mm_add_sd(s, _mm_unpackhi_pd(s, s)));
-}
-
-AVX512 static void products_avx512(size_t n, size_t ld, const double *P, const double *z,
-                                   const double *d, double *pz, double *u)
-{
-    memset(u, 0, n * sizeof *u);
-    size_t full = n & ~(size_t)7, i = 0;
-    __mmask8 m = (__mmask8)((1u << (n & 7)) - 1);
-    for (; i + 4 <= n; i += 4) {
-        const double *r0 = P + i * ld, *r1 = r0 + ld, *r2 = r1 + ld, *r3 = r2 + ld;
-        __m512d a0 = _mm512_setzero_pd(), a1 = a0, a2 = a0, a3 = a0;
-        __m512d d0 = _mm512_set1_pd(d[i]), d1 = _mm512_set1_pd(d[i + 1]);
-        __m512d d2 = _mm512_set1_pd(d[i + 2]), d3 = _mm512_set1_pd(d[i + 3]);
-        size_t j = 0;
-        for (; j < full; j += 8) {
-            __m512d zj = _mm512_loadu_pd(z + j), uj = _mm512_loadu_pd(u + j);
-            __m512d x0 = _mm512_loadu_pd(r0 + j), x1 = _mm512_loadu_pd(r1 + j);
-            __m512d x2 = _mm512_loadu_pd(r2 + j), x3 = _mm512_loadu_pd(r3 + j);
-            a0 = _mm512_fmadd_pd(x0, zj, a0);
-            a1 = _mm512_fmadd_pd(x1, zj, a1);
-            a2 = _mm512_fmadd_pd(x2, zj, a2);
-            a3 = _mm512_fmadd_pd(x3, zj, a3);
-            uj = _mm512_fmadd_pd(d0, x0, uj);
-            uj = _mm512_fmadd_pd(d1, x1, uj);
-            uj = _mm512_fmadd_pd(d2, x2, uj);
-            uj = _mm512_fmadd_pd(d3, x3, uj);
-            _mm512_storeu_pd(u + j, uj);
-        }
-        if (m) {
-            __m512d zj = _mm512_maskz_loadu_pd(m, z + j), uj = _mm512_maskz_loadu_pd(m, u + j);
-            __m512d x0 = _mm512_maskz_loadu_pd(m, r0 + j), x1 = _mm512_maskz_loadu_pd(m, r1 + j);
-            __m512d x2 = _mm512_maskz_loadu_pd(m, r2 + j), x3 = _mm512_maskz_loadu_pd(m, r3 + j);
-            a0 = _mm512_fmadd_pd(x0, zj, a0);
-            a1 = _mm512_fmadd_pd(x1, zj, a1);
-            a2 = _mm512_fmadd_pd(x2, zj, a2);
-            a3 = _mm512_fmadd_pd(x3, zj, a3);
-            uj = _mm512_fmadd_pd(d0, x0, uj);
-            uj = _mm512_fmadd_pd(d1, x1, uj);
-            uj = _mm512_fmadd_pd(d2, x2, uj);
-            uj = _mm512_fmadd_pd(d3, x3, uj);
-            _mm512_mask_storeu_pd(u + j, m, uj);
-        }
-        pz[i] = hsum8(a0);
-        pz[i + 1] = hsum8(a1);
-        pz[i + 2] = hsum8(a2);
-        pz[i + 3] = hsum8(a3);
-    }
-    for (; i < n; i++) {
-        const double *row = P + i * ld;
-        __m512d a = _mm512_setzero_pd(), di = _mm512_set1_pd(d[i]);
-        size_t j = 0;
-        for (; j < full; j += 8) {
-            __m512d x = _mm512_loadu_pd(row + j);
-            a = _mm512_fmadd_pd(x, _mm512_loadu_pd(z + j), a);
-            _mm512_storeu_pd(u + j, _mm512_fmadd_pd(di, x, _mm512_loadu_pd(u + j)));
-        }
-        if (m) {
-            __m512d x = _mm512_maskz_loadu_pd(m, row + j);
-            a = _mm512_fmadd_pd(x, _mm512_maskz_loadu_pd(m, z + j), a);
-            _mm512_mask_storeu_pd(u + j, m,
-                                  _mm512_fmadd_pd(di, x, _mm512_maskz_loadu_pd(m, u + j)));
-        }
-        pz[i] = hsum8(a);
-    }
 }
 
 AVX512 static void downdate_avx512(size_t n, size_t ld, double *P, const double *k, const double *u,
@@ -304,8 +94,108 @@ AVX512 static void downdate_avx512(size_t n, size_t ld, double *P, const double 
     }
 }
 
-static const rlsk_t AVX2_FMA = {"avx2", products_avx2, downdate_avx2};
-static const rlsk_t AVX512F = {"avx512", products_avx512, downdate_avx512};
+/* Each entry as downdate_avx512 rounds it: x = p (* inv_mu), then x - k u fused. */
+AVX512 static void diag_avx512(size_t n, size_t ld, const double *P, const double *k,
+                               const double *u, double inv_mu, double *out)
+{
+    int scale = inv_mu != 1.0;
+    for (size_t i = 0; i < n; i++) {
+        double x = scale ? P[i * ld + i] * inv_mu : P[i * ld + i];
+        double ki = scale ? k[i] * inv_mu : k[i];
+        out[i] = __builtin_fma(-ki, u[i], x);
+    }
+}
+
+/*
+ * One pass over P: with down, each row is first downdated, P = (P - k u')
+ * * inv_mu as downdate_avx512 rounds it, and stored; then, while in
+ * registers, multiplied into pz = P z and u2 = P'd, four rows at a time,
+ * columns in order, one accumulator per row and a fixed horizontal sum.  So
+ * fused (down) has the bits of downdate_avx512 then products (not down).
+ */
+AVX512 static inline __attribute__((always_inline)) void
+pass_avx512(size_t n, size_t ld, double *P, const double *k, const double *u, double inv_mu,
+            const double *z, const double *d, double *pz, double *u2, int down)
+{
+    memset(u2, 0, n * sizeof *u2);
+    size_t full = n & ~(size_t)7, end = full + ((n & 7) ? 8 : 0), i = 0;
+    __mmask8 tail = (__mmask8)((1u << (n & 7)) - 1);
+    __m512d s = _mm512_set1_pd(inv_mu);
+    int scale = inv_mu != 1.0;
+#define KI(i) _mm512_set1_pd(!down ? 0.0 : scale ? k[i] * inv_mu : k[i])
+#define ROW(r, kk, j, m)                                                                           \
+    (!down ? _mm512_maskz_loadu_pd(m, r + j)                                                       \
+     : scale                                                                                       \
+         ? _mm512_fnmadd_pd(kk, _mm512_maskz_loadu_pd(m, u + j),                                   \
+                            _mm512_mul_pd(_mm512_maskz_loadu_pd(m, r + j), s))                     \
+         : _mm512_fnmadd_pd(kk, _mm512_maskz_loadu_pd(m, u + j), _mm512_maskz_loadu_pd(m, r + j)))
+    for (; i + 4 <= n; i += 4) {
+        double *r0 = P + i * ld, *r1 = r0 + ld, *r2 = r1 + ld, *r3 = r2 + ld;
+        __m512d a0 = _mm512_setzero_pd(), a1 = a0, a2 = a0, a3 = a0;
+        __m512d k0 = KI(i), k1 = KI(i + 1), k2 = KI(i + 2), k3 = KI(i + 3);
+        __m512d d0 = _mm512_set1_pd(d[i]), d1 = _mm512_set1_pd(d[i + 1]);
+        __m512d d2 = _mm512_set1_pd(d[i + 2]), d3 = _mm512_set1_pd(d[i + 3]);
+        for (size_t j = 0; j < end; j += 8) {
+            __mmask8 m = j < full ? (__mmask8)0xff : tail;
+            __m512d zj = _mm512_maskz_loadu_pd(m, z + j);
+            __m512d x0 = ROW(r0, k0, j, m), x1 = ROW(r1, k1, j, m);
+            __m512d x2 = ROW(r2, k2, j, m), x3 = ROW(r3, k3, j, m);
+            if (down) {
+                _mm512_mask_storeu_pd(r0 + j, m, x0);
+                _mm512_mask_storeu_pd(r1 + j, m, x1);
+                _mm512_mask_storeu_pd(r2 + j, m, x2);
+                _mm512_mask_storeu_pd(r3 + j, m, x3);
+            }
+            a0 = _mm512_fmadd_pd(x0, zj, a0);
+            a1 = _mm512_fmadd_pd(x1, zj, a1);
+            a2 = _mm512_fmadd_pd(x2, zj, a2);
+            a3 = _mm512_fmadd_pd(x3, zj, a3);
+            __m512d vj = _mm512_maskz_loadu_pd(m, u2 + j);
+            vj = _mm512_fmadd_pd(d0, x0, vj);
+            vj = _mm512_fmadd_pd(d1, x1, vj);
+            vj = _mm512_fmadd_pd(d2, x2, vj);
+            vj = _mm512_fmadd_pd(d3, x3, vj);
+            _mm512_mask_storeu_pd(u2 + j, m, vj);
+        }
+        pz[i] = hsum8(a0);
+        pz[i + 1] = hsum8(a1);
+        pz[i + 2] = hsum8(a2);
+        pz[i + 3] = hsum8(a3);
+    }
+    for (; i < n; i++) {
+        double *row = P + i * ld;
+        __m512d a = _mm512_setzero_pd(), di = _mm512_set1_pd(d[i]), ki = KI(i);
+        for (size_t j = 0; j < end; j += 8) {
+            __mmask8 m = j < full ? (__mmask8)0xff : tail;
+            __m512d x = ROW(row, ki, j, m);
+            if (down)
+                _mm512_mask_storeu_pd(row + j, m, x);
+            a = _mm512_fmadd_pd(x, _mm512_maskz_loadu_pd(m, z + j), a);
+            _mm512_mask_storeu_pd(u2 + j, m,
+                                  _mm512_fmadd_pd(di, x, _mm512_maskz_loadu_pd(m, u2 + j)));
+        }
+        pz[i] = hsum8(a);
+    }
+#undef ROW
+#undef KI
+}
+
+AVX512 static void products_avx512(size_t n, size_t ld, const double *P, const double *z,
+                                   const double *d, double *pz, double *u)
+{
+    /* Not down: P is only read (the cast is for pass_avx512's signature). */
+    pass_avx512(n, ld, (double *)P, NULL, NULL, 1.0, z, d, pz, u, 0);
+}
+
+AVX512 static void fused_avx512(size_t n, size_t ld, double *P, const double *k, const double *u,
+                                double inv_mu, const double *z, const double *d, double *pz,
+                                double *u2)
+{
+    pass_avx512(n, ld, P, k, u, inv_mu, z, d, pz, u2, 1);
+}
+
+static const rlsk_t AVX512F = {"avx512", products_avx512, downdate_avx512, fused_avx512,
+                               diag_avx512};
 #endif
 
 /* ---- choice ------------------------------------------------------------------- */
@@ -316,10 +206,12 @@ const rlsk_t *rlsk_named(const char *name)
         return NULL;
     if (strcmp(name, PORTABLE.name) == 0)
         return &PORTABLE;
+#ifdef HAVE_COMPAT
+    if (strcmp(name, COMPAT.name) == 0)
+        return &COMPAT;
+#endif
 #ifdef HAVE_X86
     __builtin_cpu_init();
-    if (strcmp(name, AVX2_FMA.name) == 0)
-        return __builtin_cpu_supports("avx2") && __builtin_cpu_supports("fma") ? &AVX2_FMA : NULL;
     if (strcmp(name, AVX512F.name) == 0)
         return __builtin_cpu_supports("avx512f") ? &AVX512F : NULL;
 #endif
@@ -336,7 +228,7 @@ static void choose(void)
     if (chosen)
         return;
     /* Unpinned (or pinned to what this CPU cannot run, which worthd refuses at start): the best. */
-    if (!(chosen = rlsk_named("avx512")) && !(chosen = rlsk_named("avx2")))
+    if (!(chosen = rlsk_named("avx512")) && !(chosen = rlsk_named("compat")))
         chosen = &PORTABLE;
 }
 

@@ -3,8 +3,9 @@
  * computes P z, P'd and P - k u' (with and without the 1/mu scaling) to
  * within rounding of a plain double loop over the same numbers, at sizes that
  * leave every kind of vector tail (n mod 8 from 0 to 7); touches nothing
- * outside the n x n part of a padded P; gives the same bits twice; and a
- * WORTH_RLS_KERNEL naming no variant is refused by rlsk_named.
+ * outside the n x n part of a padded P; fuses the downdate with the next
+ * products and reads the diagonal it leaves bit for bit; gives the same bits
+ * twice; and a WORTH_RLS_KERNEL naming no variant is refused by rlsk_named.
  */
 #include "testutil.h"
 
@@ -15,7 +16,7 @@
 #include "learn/rlsk.h"
 #include "learn/rng.h"
 
-static const char *const NAMES[] = {"portable", "avx2", "avx512"};
+static const char *const NAMES[] = {"portable", "compat", "avx512"};
 static const size_t SIZES[] = {1, 2, 3, 4, 5, 6, 7, 8, 9, 15, 16, 17, 45, 65, 100};
 #define PAD (-12345.0) /* what the padding of each row holds; a kernel must leave it */
 
@@ -61,74 +62,118 @@ static void close_to(double got, double want, double scale)
         fail_msg("got %.17g, want %.17g (tolerance %.3g)", got, want, tol);
 }
 
-static void products_agree(void **state)
+/* One case: variant K at size n, inv_mu 1 or not; a.P, a.z, a.d, a.k and a.u are filled. */
+typedef void (*case_fn)(const rlsk_t *K, struct mats *a, double inv_mu);
+
+/* Runs check on every variant this CPU runs, every size, with and without forgetting. */
+static void each_case(case_fn check, uint64_t seed)
 {
-    (void)state;
+    const double inv_mu[] = {1.0, 1.0 / 0.97};
     int ran = 0;
     for (size_t v = 0; v < sizeof NAMES / sizeof *NAMES; v++) {
         const rlsk_t *K = rlsk_named(NAMES[v]);
         if (!K)
             continue; /* this CPU cannot run it */
         ran++;
-        for (size_t s = 0; s < sizeof SIZES / sizeof *SIZES; s++) {
-            struct mats a;
-            size_t n = SIZES[s];
-            fill(&a, n, 100 + n);
-            double *pz = malloc(n * sizeof *pz);
-            K->products(n, a.ld, a.P, a.z, a.d, pz, a.u);
-            for (size_t i = 0; i < n; i++) {
-                double want = 0, scale = 0;
-                for (size_t j = 0; j < n; j++) {
-                    want += a.P[i * a.ld + j] * a.z[j];
-                    scale += fabs(a.P[i * a.ld + j] * a.z[j]);
-                }
-                close_to(pz[i], want, scale);
-                double wu = 0, su = 0; /* column i of P against d */
-                for (size_t j = 0; j < n; j++) {
-                    wu += a.P[j * a.ld + i] * a.d[j];
-                    su += fabs(a.P[j * a.ld + i] * a.d[j]);
-                }
-                close_to(a.u[i], wu, su);
+        for (size_t s = 0; s < sizeof SIZES / sizeof *SIZES; s++)
+            for (size_t m = 0; m < 2; m++) {
+                struct mats a;
+                fill(&a, SIZES[s], seed + SIZES[s]);
+                for (size_t j = 0; j < a.n; j++)
+                    a.u[j] = a.d[j] * 1e-2;
+                check(K, &a, inv_mu[m]);
+                drop(&a);
             }
-            free(pz);
-            drop(&a);
-        }
     }
     assert_true(ran >= 1); /* portable runs everywhere */
+}
+
+static void check_products(const rlsk_t *K, struct mats *a, double inv_mu)
+{
+    (void)inv_mu;
+    size_t n = a->n, ld = a->ld;
+    double *pz = malloc(n * sizeof *pz);
+    K->products(n, ld, a->P, a->z, a->d, pz, a->u);
+    for (size_t i = 0; i < n; i++) {
+        double want = 0, scale = 0;
+        for (size_t j = 0; j < n; j++) {
+            want += a->P[i * ld + j] * a->z[j];
+            scale += fabs(a->P[i * ld + j] * a->z[j]);
+        }
+        close_to(pz[i], want, scale);
+        double wu = 0, su = 0; /* column i of P against d */
+        for (size_t j = 0; j < n; j++) {
+            wu += a->P[j * ld + i] * a->d[j];
+            su += fabs(a->P[j * ld + i] * a->d[j]);
+        }
+        close_to(a->u[i], wu, su);
+    }
+    free(pz);
+}
+
+static void products_agree(void **state)
+{
+    (void)state;
+    each_case(check_products, 100);
+}
+
+static void check_downdate(const rlsk_t *K, struct mats *a, double inv_mu)
+{
+    size_t n = a->n, ld = a->ld;
+    double *before = malloc(n * ld * sizeof *before);
+    memcpy(before, a->P, n * ld * sizeof *before);
+    K->downdate(n, ld, a->P, a->k, a->u, inv_mu);
+    for (size_t i = 0; i < n; i++) {
+        for (size_t j = 0; j < n; j++) {
+            double b = before[i * ld + j], t = a->k[i] * inv_mu * a->u[j];
+            close_to(a->P[i * ld + j], b * inv_mu - t, fabs(b * inv_mu) + fabs(t));
+        }
+        for (size_t j = n; j < ld; j++)
+            assert_true(a->P[i * ld + j] == PAD);
+    }
+    free(before);
 }
 
 static void downdate_agrees_and_keeps_padding(void **state)
 {
     (void)state;
-    const double inv_mu[] = {1.0, 1.0 / 0.97};
-    for (size_t v = 0; v < sizeof NAMES / sizeof *NAMES; v++) {
-        const rlsk_t *K = rlsk_named(NAMES[v]);
-        if (!K)
-            continue;
-        for (size_t s = 0; s < sizeof SIZES / sizeof *SIZES; s++) {
-            for (size_t m = 0; m < 2; m++) {
-                struct mats a;
-                size_t n = SIZES[s];
-                fill(&a, n, 200 + n);
-                for (size_t j = 0; j < n; j++)
-                    a.u[j] = a.d[j] * 3.0;
-                double *before = malloc(n * a.ld * sizeof *before);
-                memcpy(before, a.P, n * a.ld * sizeof *before);
-                K->downdate(n, a.ld, a.P, a.k, a.u, inv_mu[m]);
-                for (size_t i = 0; i < n; i++) {
-                    for (size_t j = 0; j < n; j++) {
-                        double b = before[i * a.ld + j], t = a.k[i] * inv_mu[m] * a.u[j];
-                        close_to(a.P[i * a.ld + j], b * inv_mu[m] - t,
-                                 fabs(b * inv_mu[m]) + fabs(t));
-                    }
-                    for (size_t j = n; j < a.ld; j++)
-                        assert_true(a.P[i * a.ld + j] == PAD);
-                }
-                free(before);
-                drop(&a);
-            }
-        }
-    }
+    each_case(check_downdate, 200);
+}
+
+/*
+ * fused is downdate then products, bit for bit, and diag is the diagonal downdate leaves, bit
+ * for bit: rls.c's deferred downdate rests on both.
+ */
+static void check_fused(const rlsk_t *K, struct mats *a, double inv_mu)
+{
+    size_t n = a->n, ld = a->ld;
+    double *P2 = aligned_alloc(64, n * ld * sizeof(double) + 64);
+    memcpy(P2, a->P, n * ld * sizeof *P2);
+    double *pa = malloc(n * sizeof *pa), *pb = malloc(n * sizeof *pb);
+    double *ua = aligned_alloc(64, ld * sizeof(double) + 64);
+    double *ub = aligned_alloc(64, ld * sizeof(double) + 64);
+    double *dg = malloc(n * sizeof *dg);
+    K->diag(n, ld, a->P, a->k, a->u, inv_mu, dg);
+    K->downdate(n, ld, a->P, a->k, a->u, inv_mu);
+    K->products(n, ld, a->P, a->z, a->d, pa, ua);
+    K->fused(n, ld, P2, a->k, a->u, inv_mu, a->z, a->d, pb, ub);
+    assert_memory_equal(a->P, P2, n * ld * sizeof(double)); /* padding too */
+    assert_memory_equal(pa, pb, n * sizeof *pa);
+    assert_memory_equal(ua, ub, n * sizeof *ua);
+    for (size_t i = 0; i < n; i++)
+        assert_memory_equal(&dg[i], &a->P[i * ld + i], sizeof *dg);
+    free(P2);
+    free(pa);
+    free(pb);
+    free(ua);
+    free(ub);
+    free(dg);
+}
+
+static void fused_and_diag_are_exact(void **state)
+{
+    (void)state;
+    each_case(check_fused, 300);
 }
 
 /* The same inputs give the same bits: no variant depends on anything but its arguments. */
@@ -176,6 +221,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(products_agree),
         cmocka_unit_test(downdate_agrees_and_keeps_padding),
+        cmocka_unit_test(fused_and_diag_are_exact),
         cmocka_unit_test(same_bits_twice),
         cmocka_unit_test(names),
     };
