@@ -2,13 +2,15 @@
  * ser.c - byte encoding for checkpoints of estimator state.
  *
  * Runs on whichever thread saves or restores an estimator; touches only the
- * buffers it is given.  The checksum is zlib's crc32 rather than a home-made
- * one.
+ * buffers it is given.  The checksum is CRC-32 (the one of zlib and gzip),
+ * from libdeflate rather than a home-made one: on the log's records of some
+ * 80 bytes it takes 5 ns where zlib's crc32 took 100 (measured on this
+ * project's machine), and the writer computes one per transition.
  */
 #include "learn/ser.h"
 
+#include <libdeflate.h>
 #include <string.h>
-#include <zlib.h>
 
 static void put(ser_w *w, const void *p, size_t n)
 {
@@ -113,13 +115,5 @@ void ser_get_bytes(ser_r *r, void *p, size_t n)
 
 uint32_t ser_crc32(const void *p, size_t n)
 {
-    uLong c = crc32(0L, Z_NULL, 0);
-    const Bytef *b = p;
-    while (n > 0) {
-        uInt chunk = n > 0x40000000u ? 0x40000000u : (uInt)n;
-        c = crc32(c, b, chunk);
-        b += chunk;
-        n -= chunk;
-    }
-    return (uint32_t)c;
+    return libdeflate_crc32(0, p, n);
 }

@@ -3,6 +3,8 @@
  */
 #include "testutil.h"
 
+#include <zlib.h>
+
 #include "learn/rng.h"
 #include "learn/ser.h"
 #include "worth/errors.h"
@@ -54,6 +56,24 @@ static void crc32_check_value(void **state)
     /* The CRC-32 check value of "123456789" is 0xCBF43926 (zlib; Python's zlib.crc32
      * gives the same). */
     assert_int_equal(ser_crc32("123456789", 9), 0xCBF43926u);
+}
+
+/* libdeflate's CRC-32 is zlib's on every length from 0 to 300 and on long buffers, from every
+ * alignment (zlib's crc32 as the reference). */
+static void crc32_is_zlibs(void **state)
+{
+    (void)state;
+    static unsigned char b[70000];
+    rng_t g;
+    rng_init(&g, 99);
+    for (size_t i = 0; i < sizeof b; i++)
+        b[i] = (unsigned char)rng_next(&g);
+    for (size_t off = 0; off < 8; off++) {
+        for (size_t n = 0; n <= 300; n++)
+            assert_int_equal(ser_crc32(b + off, n), (uint32_t)crc32(0L, b + off, (uInt)n));
+        size_t n = sizeof b - off;
+        assert_int_equal(ser_crc32(b + off, n), (uint32_t)crc32(0L, b + off, (uInt)n));
+    }
 }
 
 static void rng_is_seeded_and_uniform(void **state)
@@ -118,8 +138,8 @@ int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(roundtrip_is_bit_exact),    cmocka_unit_test(counting_writer_sizes),
-        cmocka_unit_test(crc32_check_value),         cmocka_unit_test(rng_is_seeded_and_uniform),
-        cmocka_unit_test(error_table_is_consistent),
+        cmocka_unit_test(crc32_check_value),         cmocka_unit_test(crc32_is_zlibs),
+        cmocka_unit_test(rng_is_seeded_and_uniform), cmocka_unit_test(error_table_is_consistent),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
