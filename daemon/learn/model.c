@@ -123,6 +123,13 @@ out_free_model:
     return rc;
 }
 
+double model_replay_footprint(size_t dims, size_t n, size_t n_est)
+{
+    /* The ring, last_x and last_phi, and the replay's own struct and workers (under 4 KiB). */
+    return (double)replay_ring_of(n, n_est) * replay_chunk_bytes(replay_cap_of(n), n, n_est) +
+           (double)(dims + n) * sizeof(double) + 4096.0;
+}
+
 double model_footprint(const model_spec_t *spec, size_t n)
 {
     size_t nsrc = spec->max_sources ? spec->max_sources : MODEL_DEFAULT_SOURCES;

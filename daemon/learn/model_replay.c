@@ -33,24 +33,6 @@
 #include "common/mem.h"
 #include "learn/model_impl.h"
 
-/* Bytes of features a chunk holds at most (phi and phi' of every transition). */
-#define CHUNK_BYTES (1u << 20)
-/* Most transitions a chunk holds: small enough to pipeline a learner's blocks of records. */
-#define CHUNK_MAX 128
-/*
- * Chunks in the ring: the pusher may hand out all but one ahead of the one it
- * fills, so a worker that finishes one finds the next waiting instead of
- * sleeping until the pusher wakes, runs stage C and hands it over (two
- * wake-ups per chunk, some tens of microseconds each on a virtual machine),
- * and short stalls of either side (the pusher yields the CPU to the loop and
- * the writer) do not stop the other.  As many chunks as RING_BYTES hold,
- * RING_MIN to RING_MAX of them: 15 at 65 features, 2 from about 500 on.
- * Measured at 65 features, 2 cores: 4 chunks 580k transitions/s of durable
- * ingest, 8 chunks 650k, 16 chunks 700k.
- */
-#define RING_BYTES (2u << 20)
-#define RING_MIN   2
-#define RING_MAX   16
 /*
  * Rough flops per transition below which worker threads cost more than they
  * save (a hand-over is some microseconds): td alone at any n the daemon
@@ -102,6 +84,10 @@ struct model_replay {
     model_replay_fn after; /* stage C callback, or NULL */
     void *after_ctx;
 };
+
+/* model_replay_footprint (model.c) allows 4 KiB for the struct and its workers. */
+_Static_assert(sizeof(struct model_replay) + MODEL_MAX_EST * sizeof(struct worker) <= 4096,
+               "model_replay_footprint's allowance");
 
 /* Rough flops per transition of estimator e, to balance the workers. */
 static double est_cost(const struct est *e, size_t n)
@@ -261,33 +247,6 @@ static void chunk_free(struct chunk *c)
     mem_free(c->td);
 }
 
-/* Transitions a chunk holds at n features. */
-static size_t cap_of(size_t n)
-{
-    size_t cap = CHUNK_BYTES / (2 * sizeof(double) * n);
-    return cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
-}
-
-/* Bytes of one chunk (chunk_init's allocations). */
-static double chunk_bytes(size_t cap, size_t n, size_t n_est)
-{
-    return (double)cap * ((2.0 * (double)n + 2.0) * sizeof(double) + sizeof(int) + sizeof(size_t) +
-                          (double)n_est * (3.0 * sizeof(double) + sizeof(est_stats_t)));
-}
-
-/* Chunks in the ring at n features (RING_BYTES). */
-static size_t ring_of(size_t n, size_t n_est)
-{
-    double k = RING_BYTES / chunk_bytes(cap_of(n), n, n_est);
-    return k < RING_MIN ? RING_MIN : k > RING_MAX ? RING_MAX : (size_t)k;
-}
-
-double model_replay_footprint(size_t dims, size_t n, size_t n_est)
-{
-    return (double)ring_of(n, n_est) * chunk_bytes(cap_of(n), n, n_est) +
-           (double)(dims + n) * sizeof(double) + sizeof(struct model_replay);
-}
-
 struct model_replay *model_replay_new(struct model *m, unsigned threads, int nice)
 {
     struct model_replay *r = mem_calloc(1, sizeof *r);
@@ -295,7 +254,7 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads, int nic
     r->nice = nice;
     r->last_x = mem_alloc(m->dims * sizeof *r->last_x);
     r->last_phi = mem_alloc(m->n * sizeof *r->last_phi);
-    r->cap = cap_of(m->n);
+    r->cap = replay_cap_of(m->n);
     for (size_t i = 0; i < m->n_est; i++)
         r->all[i] = i;
 
@@ -314,7 +273,7 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads, int nic
         want = m->n_est;
     r->n_workers = want;
     /* Without workers every chunk is learnt as soon as it is full: one is enough. */
-    r->ring = want ? ring_of(m->n, m->n_est) : 1;
+    r->ring = want ? replay_ring_of(m->n, m->n_est) : 1;
     r->ch = mem_calloc(r->ring, sizeof *r->ch);
     r->left = mem_calloc(r->ring, sizeof *r->left);
     for (size_t i = 0; i < r->ring; i++)
