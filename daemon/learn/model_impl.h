@@ -45,28 +45,28 @@ void model_learnt_sd(const struct est *e, double *sd);
 
 /* Sizes of model_replay.c's chunks and ring; model.c counts them in model_footprint. */
 /* Bytes of features a chunk holds at most (phi and phi' of every transition). */
-#define CHUNK_BYTES (1u << 20)
+#define REPLAY_CHUNK_BYTES (1u << 20)
 /* Most transitions a chunk holds: small enough to pipeline a learner's blocks of records. */
-#define CHUNK_MAX 128
+#define REPLAY_CHUNK_MAX 128
 /*
  * Chunks in the ring: the pusher may hand out all but one ahead of the one it
  * fills, so a worker that finishes one finds the next waiting instead of
  * sleeping until the pusher wakes, runs stage C and hands it over (two
  * wake-ups per chunk, some tens of microseconds each on a virtual machine),
  * and short stalls of either side (the pusher yields the CPU to the loop and
- * the writer) do not stop the other.  As many chunks as RING_BYTES hold,
- * RING_MIN to RING_MAX of them: 15 at 65 features, 2 from about 500 on.
- * Measured at 65 features, 2 cores: 4 chunks 580k transitions/s of durable
+ * the writer) do not stop the other.  As many chunks as REPLAY_RING_BYTES
+ * hold, REPLAY_RING_MIN to REPLAY_RING_MAX of them: 15 at 65 features, 2 from
+ * about 500 on.  Measured at 65 features, 2 cores: 4 chunks 580k transitions/s of durable
  * ingest, 8 chunks 650k, 16 chunks 700k.
  */
-#define RING_BYTES (2u << 20)
-#define RING_MIN   2
-#define RING_MAX   16
+#define REPLAY_RING_BYTES (2u << 20)
+#define REPLAY_RING_MIN   2
+#define REPLAY_RING_MAX   16
 /* Transitions a replay chunk holds at n features. */
 static inline size_t replay_cap_of(size_t n)
 {
-    size_t cap = CHUNK_BYTES / (2 * sizeof(double) * n);
-    return cap < 16 ? 16 : cap > CHUNK_MAX ? CHUNK_MAX : cap;
+    size_t cap = REPLAY_CHUNK_BYTES / (2 * sizeof(double) * n);
+    return cap < 16 ? 16 : cap > REPLAY_CHUNK_MAX ? REPLAY_CHUNK_MAX : cap;
 }
 
 /* Bytes of one chunk (model_replay.c's chunk_init). */
@@ -76,11 +76,13 @@ static inline double replay_chunk_bytes(size_t cap, size_t n, size_t n_est)
                           (double)n_est * (3.0 * sizeof(double) + sizeof(est_stats_t)));
 }
 
-/* Chunks in a replay's ring at n features (RING_BYTES). */
+/* Chunks in a replay's ring at n features (REPLAY_RING_BYTES). */
 static inline size_t replay_ring_of(size_t n, size_t n_est)
 {
-    double k = RING_BYTES / replay_chunk_bytes(replay_cap_of(n), n, n_est);
-    return k < RING_MIN ? RING_MIN : k > RING_MAX ? RING_MAX : (size_t)k;
+    double k = REPLAY_RING_BYTES / replay_chunk_bytes(replay_cap_of(n), n, n_est);
+    return k < REPLAY_RING_MIN   ? REPLAY_RING_MIN
+           : k > REPLAY_RING_MAX ? REPLAY_RING_MAX
+                                 : (size_t)k;
 }
 
 #endif /* WORTH_MODEL_IMPL_H */

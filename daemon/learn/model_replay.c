@@ -12,10 +12,10 @@
  * (C) on the pushing thread, the diagnostics and the counters in order.  The
  * chunks form a ring: while the workers run B on the chunks handed out, the
  * pusher runs A on the next, and C on a chunk once the workers are done with
- * it and before it is filled again.  Stage A touches only the source table, the feature workspace
- * and clipped; B only its estimators; C only the diagnostics and applied: the
- * stages share no mutable state but the chunks, whose hand-over goes through
- * the mutex.
+ * it and before it is filled again.  Stage A touches only the source table,
+ * the feature workspace and clipped; B only its estimators; C only the
+ * diagnostics and applied: the stages share no mutable state but the chunks,
+ * whose hand-over goes through the mutex.
  *
  * It must never let two threads touch one estimator, learn a transition out
  * of order or before model_check passed it, or allocate per transition
@@ -258,9 +258,9 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads, int nic
     for (size_t i = 0; i < m->n_est; i++)
         r->all[i] = i;
 
-    double load[MODEL_MAX_EST] = {0}, cost[MODEL_MAX_EST], total = 0;
-    int taken[MODEL_MAX_EST] = {0};
-    size_t to_of[MODEL_MAX_EST] = {0};
+    double load[MODEL_MAX_EST], cost[MODEL_MAX_EST], total = 0;
+    int taken[MODEL_MAX_EST];
+    size_t to_of[MODEL_MAX_EST]; /* each estimator's worker; all three set per try below */
     for (size_t i = 0; i < m->n_est; i++)
         total += cost[i] = est_cost(m->est[i], m->n);
     size_t want = threads;
@@ -271,7 +271,6 @@ struct model_replay *model_replay_new(struct model *m, unsigned threads, int nic
     }
     if (want > m->n_est)
         want = m->n_est;
-    r->n_workers = want;
     /* Without workers every chunk is learnt as soon as it is full: one is enough. */
     r->ring = want ? replay_ring_of(m->n, m->n_est) : 1;
     r->ch = mem_calloc(r->ring, sizeof *r->ch);

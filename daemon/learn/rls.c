@@ -88,13 +88,13 @@ struct rls {
      * (P - kp up') * pend_inv.  The next step applies it in the same pass as
      * its own products (rlsk fused), which halves the passes over P; every
      * other reader of P settles it first.  Guard 3 and the trace read the
-     * diagonal it would leave (dg, pend_trace), so what anyone sees is the
+     * diagonal it would leave (dg), so what anyone sees is the
      * eager update's, bit for bit.  Only when no wind-up guard acts between
      * steps (forget 1, or guard none).
      */
     double *kp, *up, *dg;
     int pend;
-    double pend_inv, pend_trace;
+    double pend_inv;
     size_t ld;           /* RLSK_LD(n): rows and workspaces start on 64 bytes */
     void *block;         /* the allocation P and the workspaces are carved from */
     double cap;          /* trace cap of the guard */
@@ -291,10 +291,6 @@ static int rls_observe(struct est *e, size_t src, const double *phi, double r, c
     double ceil_p = e->p.delta / DBL_EPSILON;
     if (m->pend) {
         m->k->diag(n, m->ld, m->P, m->kp, m->up, m->pend_inv, m->dg);
-        double t = 0.0;
-        for (size_t i = 0; i < n; i++)
-            t += m->dg[i]; /* trace()'s order */
-        m->pend_trace = t;
     } else {
         for (size_t i = 0; i < n; i++)
             m->dg[i] = m->P[i * m->ld + i];
@@ -343,7 +339,9 @@ static double rls_snap_sd(const struct est *e, const double *extra, const double
 static void rls_stats(const struct est *e, est_stats_t *st)
 {
     const struct rls *m = e->k;
-    st->trace_p = m->pend ? m->pend_trace : trace(m->P, e->n, m->ld);
+    /* Pending: the diagonal the downdate will leave, summed in trace()'s order (ld 0: dg is
+     * a plain vector). */
+    st->trace_p = m->pend ? trace(m->dg, e->n, 0) : trace(m->P, e->n, m->ld);
     st->p_resets = m->p_resets;
     if (m->p_resets && e->updates - m->p_reset_at < (uint64_t)EST_RLS_RESET_WINDOW * e->n) {
         st->health = EST_HEALTH_UNHEALTHY;

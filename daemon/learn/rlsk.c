@@ -67,29 +67,40 @@ AVX512 static double hsum8(__m512d a)
     return _mm_cvtsd_f64(_mm_add_sd(s, _mm_unpackhi_pd(s, s)));
 }
 
+/*
+ * Columns j..j+7 (lanes m) of a row downdated: x = row (* inv_mu when scale),
+ * then x - ki u with one rounding; ki is k_i (* inv_mu when scale).  The one
+ * form of the downdate's arithmetic, for downdate_avx512 and the fused pass.
+ */
+AVX512 static inline __attribute__((always_inline)) __m512d
+down8(const double *row, const double *u, size_t j, __mmask8 m, __m512d ki, __m512d s, int scale)
+{
+    __m512d x = _mm512_maskz_loadu_pd(m, row + j);
+    if (scale)
+        x = _mm512_mul_pd(x, s);
+    return _mm512_fnmadd_pd(ki, _mm512_maskz_loadu_pd(m, u + j), x);
+}
+
+/* Lanes of columns j..j+7 inside a row of n: all, or the tail's. */
+AVX512 static inline __attribute__((always_inline)) __mmask8 lanes(size_t j, size_t n)
+{
+    return n - j >= 8 ? (__mmask8)0xff : (__mmask8)((1u << (n - j)) - 1);
+}
+
+/* The gain's entry i as the downdate applies it: k_i (* inv_mu when scale). */
+#define KI(i) _mm512_set1_pd(scale ? k[i] * inv_mu : k[i])
+
 AVX512 static void downdate_avx512(size_t n, size_t ld, double *P, const double *k, const double *u,
                                    double inv_mu)
 {
-    size_t full = n & ~(size_t)7;
-    __mmask8 m = (__mmask8)((1u << (n & 7)) - 1);
     __m512d s = _mm512_set1_pd(inv_mu);
     int scale = inv_mu != 1.0;
     for (size_t i = 0; i < n; i++) {
         double *row = P + i * ld;
-        __m512d ki = _mm512_set1_pd(scale ? k[i] * inv_mu : k[i]);
-        size_t j = 0;
-        for (; j < full; j += 8) {
-            __m512d x = _mm512_loadu_pd(row + j);
-            if (scale)
-                x = _mm512_mul_pd(x, s);
-            _mm512_storeu_pd(row + j, _mm512_fnmadd_pd(ki, _mm512_loadu_pd(u + j), x));
-        }
-        if (m) {
-            __m512d x = _mm512_maskz_loadu_pd(m, row + j);
-            if (scale)
-                x = _mm512_mul_pd(x, s);
-            _mm512_mask_storeu_pd(row + j, m,
-                                  _mm512_fnmadd_pd(ki, _mm512_maskz_loadu_pd(m, u + j), x));
+        __m512d ki = KI(i);
+        for (size_t j = 0; j < n; j += 8) {
+            __mmask8 m = lanes(j, n);
+            _mm512_mask_storeu_pd(row + j, m, down8(row, u, j, m, ki, s, scale));
         }
     }
 }
@@ -118,25 +129,20 @@ pass_avx512(size_t n, size_t ld, double *P, const double *k, const double *u, do
             const double *z, const double *d, double *pz, double *u2, int down)
 {
     memset(u2, 0, n * sizeof *u2);
-    size_t full = n & ~(size_t)7, end = full + ((n & 7) ? 8 : 0), i = 0;
-    __mmask8 tail = (__mmask8)((1u << (n & 7)) - 1);
+    size_t i = 0;
     __m512d s = _mm512_set1_pd(inv_mu);
     int scale = inv_mu != 1.0;
-#define KI(i) _mm512_set1_pd(!down ? 0.0 : scale ? k[i] * inv_mu : k[i])
-#define ROW(r, kk, j, m)                                                                           \
-    (!down ? _mm512_maskz_loadu_pd(m, r + j)                                                       \
-     : scale                                                                                       \
-         ? _mm512_fnmadd_pd(kk, _mm512_maskz_loadu_pd(m, u + j),                                   \
-                            _mm512_mul_pd(_mm512_maskz_loadu_pd(m, r + j), s))                     \
-         : _mm512_fnmadd_pd(kk, _mm512_maskz_loadu_pd(m, u + j), _mm512_maskz_loadu_pd(m, r + j)))
+    /* A row's columns j..j+7: downdated (down) or as they stand. */
+#define ROW(r, kk, j, m) (down ? down8(r, u, j, m, kk, s, scale) : _mm512_maskz_loadu_pd(m, r + j))
+#define KD(i)            (down ? KI(i) : s) /* k (and u) are NULL when not down: never read then */
     for (; i + 4 <= n; i += 4) {
         double *r0 = P + i * ld, *r1 = r0 + ld, *r2 = r1 + ld, *r3 = r2 + ld;
         __m512d a0 = _mm512_setzero_pd(), a1 = a0, a2 = a0, a3 = a0;
-        __m512d k0 = KI(i), k1 = KI(i + 1), k2 = KI(i + 2), k3 = KI(i + 3);
+        __m512d k0 = KD(i), k1 = KD(i + 1), k2 = KD(i + 2), k3 = KD(i + 3);
         __m512d d0 = _mm512_set1_pd(d[i]), d1 = _mm512_set1_pd(d[i + 1]);
         __m512d d2 = _mm512_set1_pd(d[i + 2]), d3 = _mm512_set1_pd(d[i + 3]);
-        for (size_t j = 0; j < end; j += 8) {
-            __mmask8 m = j < full ? (__mmask8)0xff : tail;
+        for (size_t j = 0; j < n; j += 8) {
+            __mmask8 m = lanes(j, n);
             __m512d zj = _mm512_maskz_loadu_pd(m, z + j);
             __m512d x0 = ROW(r0, k0, j, m), x1 = ROW(r1, k1, j, m);
             __m512d x2 = ROW(r2, k2, j, m), x3 = ROW(r3, k3, j, m);
@@ -164,9 +170,9 @@ pass_avx512(size_t n, size_t ld, double *P, const double *k, const double *u, do
     }
     for (; i < n; i++) {
         double *row = P + i * ld;
-        __m512d a = _mm512_setzero_pd(), di = _mm512_set1_pd(d[i]), ki = KI(i);
-        for (size_t j = 0; j < end; j += 8) {
-            __mmask8 m = j < full ? (__mmask8)0xff : tail;
+        __m512d a = _mm512_setzero_pd(), di = _mm512_set1_pd(d[i]), ki = KD(i);
+        for (size_t j = 0; j < n; j += 8) {
+            __mmask8 m = lanes(j, n);
             __m512d x = ROW(row, ki, j, m);
             if (down)
                 _mm512_mask_storeu_pd(row + j, m, x);
@@ -176,9 +182,10 @@ pass_avx512(size_t n, size_t ld, double *P, const double *k, const double *u, do
         }
         pz[i] = hsum8(a);
     }
+#undef KD
 #undef ROW
-#undef KI
 }
+#undef KI
 
 AVX512 static void products_avx512(size_t n, size_t ld, const double *P, const double *z,
                                    const double *d, double *pz, double *u)
