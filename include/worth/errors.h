@@ -57,7 +57,9 @@ extern "C" {
     X(AUTH_TIMEOUT, -32, "auth_timeout",                                                           \
       "no authentication within the deadline; connection closed")                                  \
     X(OUT_OF_ORDER, -33, "out_of_order", "samples of a source go back in time within one request") \
-    X(FORBIDDEN, -34, "forbidden", "the connection's role does not allow this request")
+    X(FORBIDDEN, -34, "forbidden", "the connection's role does not allow this request")          \
+    X(NO_OWNER, -35, "no_owner",                                                                   \
+      "no fleet node owns the model's shard now (a takeover is under way); retry later")
 
 enum worth_err {
 #define WORTH_ERR_ENUM(name, val, wire, msg) WORTH_E_##name = (val),
