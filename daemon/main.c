@@ -13,7 +13,12 @@
 #include <sys/resource.h>
 #include <sys/stat.h>
 
+#include <string.h>
+
 #include "common/say.h"
+#ifdef WORTH_FLEET
+#include "fleet/fleet.h"
+#endif
 #include "learn/rlsk.h"
 #include "options.h"
 #include "worthd.h"
@@ -65,6 +70,13 @@ int main(int argc, char **argv)
     config_t o;
     struct options *opts = NULL;
     say_detect_journal(); /* journald's priority prefixes when stderr is the journal */
+#ifdef WORTH_FLEET
+    /* `worthd fleet ...`: a node of a fleet on NATS JetStream; the single node is untouched. */
+    if (argc > 1 && strcmp(argv[1], "fleet") == 0) {
+        openblas_set_num_threads(1);
+        return fleet_main(argc - 1, argv + 1);
+    }
+#endif
     int rc = options_load(argc, argv, &o, &opts);
     if (rc != OPTIONS_RUN)
         return rc;
