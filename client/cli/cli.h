@@ -191,6 +191,8 @@ int cmd_drop(struct cli *cli, int argc, char **argv);
 int cmd_show(struct cli *cli, int argc, char **argv);
 /* feed.c */
 int cmd_feed(struct cli *cli, int argc, char **argv);
+/* fleet.c (built with libnats only) */
+int cmd_fleet(struct cli *cli, int argc, char **argv);
 /* query.c */
 int cmd_value(struct cli *cli, int argc, char **argv);
 int cmd_stats(struct cli *cli, int argc, char **argv);

@@ -361,6 +361,44 @@ static const struct cmd cmds[] = {
      "examples:\n"
      "  worth retention station-1 --days 90 --run\n"
      "  worth retention --run\n"},
+#ifdef WORTH_FLEET
+    {"fleet", cmd_fleet, "SUBCOMMAND ...", "a fleet of worthd nodes on NATS JetStream",
+     "worth fleet [--nats URLS] [--via NODE] status\n"
+     "       worth fleet [--nats URLS] create MODEL SPEC.json|-\n"
+     "       worth fleet [--nats URLS] feed MODEL FILE|- [--id NAME]\n"
+     "       worth fleet [--nats URLS] [--via NODE] value MODEL X1 X2 ...\n"
+     "       worth fleet [--nats URLS] [--via NODE] ask MODEL JSON\n"
+     "       worth fleet [--nats URLS] dump [MODEL]\n"
+     "       worth fleet [--nats URLS] rollback MODEL --exclude-seq LO:HI|--exclude-t T0/T1 ...",
+     "Talks to a fleet of `worthd fleet` nodes through NATS (doc/fleet.md), not to a\n"
+     "worthd socket.  --nats (default $WORTH_NATS) names the servers, comma-separated.\n"
+     "\n"
+     "  status   every shard's owner, the stream sequence it has reached and its lag\n"
+     "           (messages not yet learnt); the live nodes\n"
+     "  create   checks the spec (a model.create request's fields, as `worth create`\n"
+     "           takes them) with the shard's owner, puts it in the stream and waits\n"
+     "           until the owner has built the model\n"
+     "  feed     one JSON transition a line ({\"x\":[..],\"r\":..,\"x_next\":[..]}, or\n"
+     "           {\"batch\":[...]}) into the stream; every message carries the id\n"
+     "           NAME-LINE (--id, default host-pid-time), so feeding a file again with\n"
+     "           the same --id within 2 minutes stores nothing twice.  Exits 0 only when\n"
+     "           the stream acknowledged every line\n"
+     "  value    the values of a state, from the model's owner\n"
+     "  ask      any question (value, stats, state, check, checkpoint), the answer as is\n"
+     "  dump     the model's messages (without MODEL: every model's) in stream order,\n"
+     "           one JSON line each: {\"seq\",\"model\",\"msg\"} (\"raw\", a string, for a\n"
+     "           message that is not JSON)\n"
+     "  rollback re-learns the model from the stream without the windows given (stream\n"
+     "           sequences, as dump shows them, or plant times of the transitions' \"t\");\n"
+     "           the windows are in the stream, so every later takeover keeps them\n"
+     "  --via NODE  ask through that node, which forwards to the owner\n"
+     "\n"
+     "examples:\n"
+     "  worth fleet --nats nats://127.0.0.1:4222 create pump-1 pump.json\n"
+     "  worth fleet feed pump-1 transitions.jsonl --id gw-7\n"
+     "  worth fleet --via node-b value pump-1 4.2 180\n"
+     "  worth fleet rollback pump-1 --exclude-t 2026-03-01T00:00Z/2026-03-04T00:00Z\n"},
+#endif
     {"help", cmd_help, "[COMMAND]", "this text, or a command's",
      "worth help [COMMAND]",
      "The global usage, or a command's options and an example.\n"

@@ -96,6 +96,7 @@ got=$(bash -c '. "$1"; COMP_WORDS=(worth ro); COMP_CWORD=1; _worth; echo "${COMP
 got=$(bash -c '. "$1"; COMP_WORDS=(worth drop --p); COMP_CWORD=2; _worth; echo "${COMPREPLY[*]}"' _ "$comp")
 [ "$got" = "--purge" ] || fail "completing 'worth drop --p' gave '$got', not --purge"
 [ -s "$root/share/doc/worth/protocol.md" ] || fail "the protocol is not installed"
+[ -s "$root/share/doc/worth/fleet.md" ] || fail "the fleet mode's design is not installed"
 conf="$root/etc/worthd/worthd.conf"
 [ -s "$conf" ] || fail "no sample config"
 "$root/sbin/worthd" --config "$conf" --check-config >/dev/null || fail "worthd --check-config refuses the sample config"
