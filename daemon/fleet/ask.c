@@ -23,6 +23,8 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "common/jw.h"
+#include "common/mem.h"
 #include "fleet/fleet_impl.h"
 #include "worth/errors.h"
 
@@ -274,12 +276,96 @@ static void ask_check(struct node *nd, const char *reply, const struct shard *s,
     cJSON *o = cJSON_CreateObject();
     cJSON_AddTrueToObject(o, "ok");
     cJSON_AddStringToObject(o, "model", model);
-    cJSON_AddBoolToObject(o, "exists", shard_find((struct shard *)s, model) != NULL);
+    cJSON_AddBoolToObject(o, "exists", fmodel_find((struct shard *)s, model) != NULL);
     send_obj(nd, reply, o);
+}
+
+/* The node's own figures (worth.node.<node>): Prometheus text for {"op":"metrics"}, else
+ * JSON.  Lag is the owner's last figure: messages of the shard not yet fetched. */
+static void answer_node(struct node *nd, natsMsg *msg)
+{
+    const char *reply = natsMsg_GetReply(msg);
+    cJSON *req = cJSON_ParseWithLength(natsMsg_GetData(msg), (size_t)natsMsg_GetDataLength(msg));
+    const cJSON *op = cJSON_GetObjectItemCaseSensitive(req, "op");
+    int text = cJSON_IsString(op) && strcmp(op->valuestring, "metrics") == 0;
+    if (!text && !(cJSON_IsString(op) && strcmp(op->valuestring, "status") == 0)) {
+        ask_error(nd->nc, reply, WORTH_E_UNKNOWN_OP, "a node answers \"metrics\" and \"status\"");
+        cJSON_Delete(req);
+        return;
+    }
+    cJSON_Delete(req);
+    jw_t j;
+    jw_init(&j);
+    const char *n = nd->o.node;
+    if (text) {
+        jw_fmt(&j,
+               "# HELP worth_fleet_nodes_alive Nodes whose heartbeat moved within a lease time.\n"
+               "# TYPE worth_fleet_nodes_alive gauge\n"
+               "worth_fleet_nodes_alive{node=\"%s\"} %u\n"
+               "# HELP worth_fleet_shards_owned Shards this node owns.\n"
+               "# TYPE worth_fleet_shards_owned gauge\n"
+               "worth_fleet_shards_owned{node=\"%s\"} %d\n",
+               n, nd->nodes_alive, n, nd->owned);
+        static const char *const heads[] = {
+            "worth_fleet_consumer_lag Messages of the shard not yet fetched by its owner.\n"
+            "# TYPE worth_fleet_consumer_lag gauge",
+            "worth_fleet_stream_seq Newest stream sequence the shard has applied.\n"
+            "# TYPE worth_fleet_stream_seq gauge",
+            "worth_fleet_checkpoint_seq Stream sequence the shard's newest checkpoint covers.\n"
+            "# TYPE worth_fleet_checkpoint_seq gauge",
+            "worth_fleet_models Models of the shard.\n# TYPE worth_fleet_models gauge",
+            "worth_fleet_applied_total Transitions the shard's models learnt.\n"
+            "# TYPE worth_fleet_applied_total counter",
+            "worth_fleet_rejected_total Messages or transitions the shard's models refused.\n"
+            "# TYPE worth_fleet_rejected_total counter",
+        };
+        for (size_t k = 0; k < sizeof heads / sizeof heads[0]; k++) {
+            jw_fmt(&j, "# HELP %s\n", heads[k]);
+            size_t nl = strcspn(heads[k], " ");
+            for (unsigned p = 0; p < nd->o.shards; p++) {
+                const struct shard *s = &nd->sh[p];
+                if (!s->owned)
+                    continue;
+                uint64_t applied = 0, rejected = 0;
+                for (size_t i = 0; i < s->n_models; i++) {
+                    applied += s->models[i].applied;
+                    rejected += s->models[i].rejected;
+                }
+                uint64_t v[] = {s->pending, s->seq, s->ck_seq, s->n_models, applied, rejected};
+                jw_fmt(&j, "%.*s{node=\"%s\",shard=\"%u\"} %" PRIu64 "\n", (int)nl, heads[k], n, p,
+                       v[k]);
+            }
+        }
+    } else {
+        jw_fmt(&j, "{\"ok\":true,\"node\":\"%s\",\"nodes_alive\":%u,\"shards\":[", n,
+               nd->nodes_alive);
+        int first = 1;
+        for (unsigned p = 0; p < nd->o.shards; p++) {
+            const struct shard *s = &nd->sh[p];
+            if (!s->owned)
+                continue;
+            jw_fmt(&j,
+                   "%s{\"shard\":%u,\"lag\":%" PRIu64 ",\"seq\":%" PRIu64
+                   ",\"checkpoint_seq\":%" PRIu64 ",\"models\":%zu}",
+                   first ? "" : ",", p, s->pending, s->seq, s->ck_seq, s->n_models);
+            first = 0;
+        }
+        jw_lit(&j, "]}");
+    }
+    char *out = jw_take(&j);
+    if (out && reply && *reply)
+        natsConnection_PublishString(nd->nc, reply, out);
+    mem_free(out);
+    jw_close(&j);
 }
 
 void ask_answer(struct node *nd, natsMsg *msg)
 {
+    if (strncmp(natsMsg_GetSubject(msg), "worth.node.", 11) == 0) {
+        answer_node(nd, msg);
+        natsMsg_Destroy(msg);
+        return;
+    }
     const char *reply = natsMsg_GetReply(msg);
     const char *subj = natsMsg_GetSubject(msg);
     const char *model = model_of(subj);
@@ -287,7 +373,7 @@ void ask_answer(struct node *nd, natsMsg *msg)
     struct shard *s = p < nd->o.shards ? &nd->sh[p] : NULL;
     cJSON *req = cJSON_ParseWithLength(natsMsg_GetData(msg), (size_t)natsMsg_GetDataLength(msg));
     const cJSON *op = cJSON_GetObjectItemCaseSensitive(req, "op");
-    struct fmodel *f = s && model ? shard_find(s, model) : NULL;
+    struct fmodel *f = s && model ? fmodel_find(s, model) : NULL;
     if (!s || !s->owned || !model)
         ask_error(nd->nc, reply, WORTH_E_NO_OWNER, "node %s does not own shard %u now; retry",
                   nd->o.node, p);

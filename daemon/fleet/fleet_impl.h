@@ -100,9 +100,10 @@ struct node {
     kvStore *lease, *ckpt;
     struct shard *sh;
     struct askq q;
-    natsSubscription *via; /* worth.via.<node>.> : questions forwarded to the owner */
-    int owned;             /* shards owned */
-    unsigned nodes_alive;  /* nodes whose heartbeat moved within a lease time */
+    natsSubscription *via;  /* worth.via.<node>.> : questions forwarded to the owner */
+    natsSubscription *self; /* worth.node.<node>: the node's own figures (ask.c) */
+    int owned;              /* shards owned */
+    unsigned nodes_alive;   /* nodes whose heartbeat moved within a lease time */
     /* observed heartbeats of the other nodes */
     struct {
         char id[64];
@@ -133,13 +134,23 @@ void shard_close(struct node *nd, struct shard *s, int delete_consumer);
 int shard_pump(struct node *nd, struct shard *s);
 /* Stores a checkpoint of s (every model, and the sequence it covers).  Returns 0 or -1. */
 int shard_checkpoint(struct node *nd, struct shard *s);
-/* Returns the model name of s, or NULL. */
-struct fmodel *shard_find(struct shard *s, const char *name);
+
+/* models.c */
+/* Returns the model of s named name, or NULL. */
+struct fmodel *fmodel_find(struct shard *s, const char *name);
+/* Builds a model from a parsed spec into a new slot of s.  Takes sp.  Returns the slot, or
+ * NULL (err filled). */
+struct fmodel *fmodel_add(struct shard *s, spec_t *sp, char *err, size_t errlen);
+void fmodel_free(struct fmodel *f);
+/* Applies a model.create at seq: builds the model (f must be NULL: a second create is
+ * counted against the model as rejected). */
+void fmodel_create(struct shard *s, struct fmodel *f, const char *name, const cJSON *root,
+                   uint64_t seq);
 /* Learns the transitions of one message (an object, or {"batch":[...]}) at stream sequence
  * seq into f, leaving out what f's windows exclude; counts applied, rejected, excluded. */
-void shard_apply_body(struct node *nd, struct fmodel *f, const cJSON *root, uint64_t seq);
+void fmodel_learn(struct node *nd, struct fmodel *f, const cJSON *root, uint64_t seq);
 /* Builds f's model afresh from its spec (counts to 0).  Returns 0 or -1 (f unchanged). */
-int shard_rebuild(struct fmodel *f);
+int fmodel_rebuild(struct fmodel *f);
 
 /* relearn.c */
 /*

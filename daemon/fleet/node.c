@@ -259,6 +259,9 @@ static int setup(struct node *nd)
     snprintf(via, sizeof via, "worth.via.%s.>", nd->o.node);
     if (natsConnection_Subscribe(&nd->via, nd->nc, via, ask_forward, nd) != NATS_OK)
         return -1;
+    snprintf(via, sizeof via, "worth.node.%s", nd->o.node);
+    if (natsConnection_Subscribe(&nd->self, nd->nc, via, ask_queue, nd) != NATS_OK)
+        return -1;
     return 0;
 }
 
@@ -575,10 +578,12 @@ int fleet_main(int argc, char **argv)
         run(nd);
         rc = 0;
     }
-    if (nd->via) {
-        natsSubscription_Unsubscribe(nd->via);
-        natsSubscription_Destroy(nd->via);
-    }
+    natsSubscription *subs[] = {nd->via, nd->self};
+    for (size_t i = 0; i < 2; i++)
+        if (subs[i]) {
+            natsSubscription_Unsubscribe(subs[i]);
+            natsSubscription_Destroy(subs[i]);
+        }
     kvStore_Destroy(nd->lease);
     kvStore_Destroy(nd->ckpt);
     jsCtx_Destroy(nd->js);
@@ -589,7 +594,7 @@ int fleet_main(int argc, char **argv)
         nd->q.head = (nd->q.head + 1) % FLEET_ASKS;
         nd->q.n--;
     }
-    nats_Close();
+    nats_CloseAndWait(5000); /* the library's threads end before exit: no use after free */
     pthread_mutex_destroy(&nd->q.mu);
     pthread_cond_destroy(&nd->q.cv);
     free(nd->sh);

@@ -113,7 +113,7 @@ static int replay(struct node *nd, struct shard *s, struct fmodel *f, uint64_t s
                                                 (size_t)natsMsg_GetDataLength(list.Msgs[i]));
             const cJSON *op = cJSON_GetObjectItemCaseSensitive(root, "op");
             if (!op) /* transitions; a second create or an earlier rollback: superseded */
-                shard_apply_body(nd, f, root, q);
+                fmodel_learn(nd, f, root, q);
             else if (!cJSON_IsString(op) || (strcmp(op->valuestring, "model.create") != 0 &&
                                              strcmp(op->valuestring, "model.rollback") != 0))
                 f->rejected++;
@@ -147,7 +147,7 @@ void relearn_apply(struct node *nd, struct shard *s, struct fmodel *f, const cJS
     /* Keep the model as it is until the re-learning has succeeded. */
     struct fmodel keep = *f;
     f->m = NULL;
-    if (shard_rebuild(f) != 0) {
+    if (fmodel_rebuild(f) != 0) {
         *f = keep;
         f->rejected++;
         return;
