@@ -369,7 +369,8 @@ static const struct cmd cmds[] = {
      "       worth fleet [--nats URLS] [--via NODE] value MODEL X1 X2 ...\n"
      "       worth fleet [--nats URLS] [--via NODE] ask MODEL JSON\n"
      "       worth fleet [--nats URLS] dump [MODEL]\n"
-     "       worth fleet [--nats URLS] rollback MODEL --exclude-seq LO:HI|--exclude-t T0/T1 ...",
+     "       worth fleet [--nats URLS] rollback MODEL --exclude-seq LO:HI|--exclude-t T0/T1 ...\n"
+     "       worth fleet [--nats URLS] [--json] metrics NODE",
      "Talks to a fleet of `worthd fleet` nodes through NATS (doc/fleet.md), not to a\n"
      "worthd socket.  --nats (default $WORTH_NATS) names the servers, comma-separated.\n"
      "\n"
@@ -391,6 +392,9 @@ static const struct cmd cmds[] = {
      "  rollback re-learns the model from the stream without the windows given (stream\n"
      "           sequences, as dump shows them, or plant times of the transitions' \"t\");\n"
      "           the windows are in the stream, so every later takeover keeps them\n"
+     "  metrics  a node's figures in Prometheus's text format (--json: as JSON): shards\n"
+     "           owned, and per shard the consumer lag, the stream sequence applied,\n"
+     "           the checkpoint's, models, transitions applied and refused\n"
      "  --via NODE  ask through that node, which forwards to the owner\n"
      "\n"
      "examples:\n"

@@ -27,6 +27,8 @@
 struct feed {
     pthread_mutex_t mu;
     uint64_t acked;
+    uint64_t published; /* taken by js_PublishMsgAsync */
+    uint64_t answered;  /* of those, handed back: on_ack, or the pending list */
     natsMsg **retry;
     size_t n_retry, cap_retry;
 };
@@ -37,6 +39,7 @@ static void on_ack(jsCtx *js, natsMsg *msg, jsPubAck *pa, jsPubAckErr *pae, void
     (void)pae;
     struct feed *fd = closure;
     pthread_mutex_lock(&fd->mu);
+    fd->answered++;
     if (pa) {
         fd->acked++;
         natsMsg_Destroy(msg);
@@ -72,12 +75,15 @@ static size_t settle(struct fleet *f, struct feed *fd, uint64_t *retried)
 {
     jsPubOptions po;
     jsPubOptions_Init(&po);
-    po.MaxWait = f->timeout_ms;
+    /* Acknowledgements come in milliseconds; none for 3 s means the stream is electing a
+     * leader (a server went): what is still pending is published again, one by one. */
+    po.MaxWait = f->timeout_ms < 3000 ? f->timeout_ms : 3000;
     if (js_PublishAsyncComplete(f->js, &po) != NATS_OK) {
         natsMsgList pend = {0};
         if (js_PublishAsyncGetPendingList(&pend, f->js) == NATS_OK) {
             pthread_mutex_lock(&fd->mu);
             for (int i = 0; i < pend.Count; i++) {
+                fd->answered++;
                 if (fd->n_retry < fd->cap_retry) {
                     fd->retry[fd->n_retry++] = pend.Msgs[i];
                     pend.Msgs[i] = NULL;
@@ -86,6 +92,17 @@ static size_t settle(struct fleet *f, struct feed *fd, uint64_t *retried)
             pthread_mutex_unlock(&fd->mu);
             natsMsgList_Destroy(&pend);
         }
+    }
+    /* Complete returns once nothing is pending, which can be before the last on_ack has
+     * run: wait (1 s at most) until every message has come back, so none is left in the
+     * library's queue when the connection closes. */
+    for (int64_t end = fleet_mono_ms() + 1000;;) {
+        pthread_mutex_lock(&fd->mu);
+        int all = fd->answered >= fd->published;
+        pthread_mutex_unlock(&fd->mu);
+        if (all || fleet_mono_ms() > end)
+            break;
+        usleep(1000);
     }
     pthread_mutex_lock(&fd->mu);
     size_t n = fd->n_retry;
@@ -136,15 +153,18 @@ int fleet_feed(struct fleet *f, int argc, char **argv)
     /* An unknown model is refused here; without an owner to ask (a takeover), the stream
      * still takes the lines: it is the durable log, and the owner-to-be learns them. */
     cJSON *ans = NULL;
+    int timeout = f->timeout_ms;
+    f->timeout_ms = timeout < 2000 ? timeout : 2000; /* the check only: the stream decides */
     if ((ex = ask_quiet(f, model, "{\"op\":\"stats\"}", &ans)) == EXIT_OK)
         ex = answer_ok(ans);
     else if (ex == EXIT_NO_OWNER) {
         fprintf(stderr,
-                "worth: fleet feed: no node owns %s's shard now; the stream takes the "
-                "lines and its next owner learns them\n",
+                "worth: fleet feed: no node answers for %s now (a takeover?); the stream "
+                "takes the lines and the shard's owner learns them\n",
                 model);
         ex = EXIT_OK;
     }
+    f->timeout_ms = timeout;
     cJSON_Delete(ans);
     if (ex != EXIT_OK) {
         fleet_close(f);
@@ -190,14 +210,17 @@ int fleet_feed(struct fleet *f, int argc, char **argv)
         }
         natsMsg *m = NULL;
         snprintf(msgid, sizeof msgid, "%s-%" PRIu64, id, lineno);
+        pthread_mutex_lock(&fd.mu); /* counted first: on_ack may run before the call returns */
+        fd.published++;
+        pthread_mutex_unlock(&fd.mu);
         if (natsMsg_Create(&m, subj, NULL, line, (int)n) != NATS_OK ||
             natsMsgHeader_Set(m, "Nats-Msg-Id", msgid) != NATS_OK ||
             js_PublishMsgAsync(js, &m, NULL) != NATS_OK) {
-            if (m) { /* not taken: publish it in the settling pass */
-                pthread_mutex_lock(&fd.mu);
+            pthread_mutex_lock(&fd.mu);
+            fd.answered++; /* not taken: no on_ack will come */
+            if (m)         /* publish it in the settling pass */
                 fd.retry[fd.n_retry++] = m;
-                pthread_mutex_unlock(&fd.mu);
-            }
+            pthread_mutex_unlock(&fd.mu);
         }
         sent++;
         if (++in_window == FEED_WINDOW) {

@@ -1,7 +1,8 @@
 /*
  * fleet_impl.h - what fleet.c (`worth fleet` and its questions) and fleet_feed.c
- * (`worth fleet feed`) share: the connection to NATS and the asking.  Internal to
- * the CLI; built only with libnats.
+ * (`worth fleet feed`) share: the connection to NATS and the asking (fleet_nats.c).
+ * Internal to the CLI; built only with libnats.  fleet.c -> fleet_feed.c ->
+ * fleet_nats.c, and fleet.c -> fleet_nats.c.
  */
 #ifndef WORTH_CLI_FLEET_IMPL_H
 #define WORTH_CLI_FLEET_IMPL_H
@@ -31,7 +32,7 @@ void fleet_close(struct fleet *f);
 /* Sends req (a JSON text) about model; *out gets the parsed answer (owned).  Returns an exit
  * code; the error is printed unless it is the answer's own. */
 int fleet_ask(struct fleet *f, const char *model, const char *req, cJSON **out);
-/* fleet_ask, but EXIT_NO_OWNER, unprinted, when no node answers. */
+/* fleet_ask, but EXIT_NO_OWNER, unprinted, when no node answers (now, or in f's timeout). */
 int ask_quiet(struct fleet *f, const char *model, const char *req, cJSON **out);
 /* EXIT_OK when ans says ok, else prints "worth: CODE: message" and returns EXIT_SERVER. */
 int answer_ok(const cJSON *ans);
