@@ -135,39 +135,39 @@ def fleet_run(args, tmp, k, paths, per_model):
 
 
 def single_run(args, tmp, paths, per_model):
-    d = tempfile.mkdtemp(dir=tmp, prefix="single-")
-    sock = os.path.join(d, "w.sock")
-    log = open(os.path.join(d, "worthd.log"), "ab")
-    p = subprocess.Popen([args.worthd, "--socket", sock, "--db", os.path.join(d, "w.db")],
-                         stderr=log)
-    try:
-        end = time.monotonic() + 30
-        while not os.path.exists(sock) and time.monotonic() < end:
-            time.sleep(0.05)
-        s = socket.socket(socket.AF_UNIX)
-        s.connect(sock)
-        f = s.makefile("rw")
+    """Each workload into a fresh worthd on SQLite (durable log), by `worth feed` (bulk frames
+    for plain transitions), four producers as for the fleet."""
+    out = {}
+    for name, files in paths.items():
+        d = tempfile.mkdtemp(dir=tmp, prefix=f"single-{name}-")
+        sock = os.path.join(d, "w.sock")
+        log = open(os.path.join(d, "worthd.log"), "ab")
+        p = subprocess.Popen([args.worthd, "--socket", sock, "--db", os.path.join(d, "w.db")],
+                             stderr=log)
+        try:
+            end = time.monotonic() + 30
+            while not os.path.exists(sock) and time.monotonic() < end:
+                time.sleep(0.05)
+            s = socket.socket(socket.AF_UNIX)
+            s.connect(sock)
+            f = s.makefile("rw")
 
-        def call(o):
-            f.write(json.dumps(o) + "\n")
-            f.flush()
-            r = json.loads(f.readline())
-            assert r.get("ok"), r
-            return r
+            def call(o):
+                f.write(json.dumps(o) + "\n")
+                f.flush()
+                r = json.loads(f.readline())
+                assert r.get("ok"), r
+                return r
 
-        for m in MODELS:
-            call({"op": "model.create", "model": m, **SPEC})
-        out = {}
-        cli = [args.cli, "--socket", sock]
-        done = {m: 0 for m in MODELS}
-        for name, files in paths.items():
+            for m in MODELS:
+                call({"op": "model.create", "model": m, **SPEC})
+            cli = [args.cli, "--socket", sock]
             t0 = time.monotonic()
             producers(lambda m: subprocess.run(cli + ["feed", m, files[m]], check=True,
                                                capture_output=True, timeout=900))
             for m in MODELS:
-                done[m] += per_model[name]
                 end = time.monotonic() + 900
-                while call({"op": "stats", "model": m})["applied"] < done[m]:
+                while call({"op": "stats", "model": m})["applied"] < per_model[name]:
                     assert time.monotonic() < end
                     time.sleep(0.02)
             t = time.monotonic() - t0
@@ -175,11 +175,11 @@ def single_run(args, tmp, paths, per_model):
             out[name] = {"transitions": n, "applied_s": round(t, 3), "rate": round(n / t)}
             print(f"  single node on SQLite, {name}: {n} transitions in {t:.2f} s = "
                   f"{n / t:,.0f}/s", flush=True)
-        s.close()
-        return out
-    finally:
-        p.terminate()
-        p.wait(timeout=60)
+            s.close()
+        finally:
+            p.terminate()
+            p.wait(timeout=60)
+    return out
 
 
 def main():

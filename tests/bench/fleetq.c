@@ -62,6 +62,6 @@ int main(int argc, char **argv)
     free(t);
     natsConnection_Destroy(nc);
     natsOptions_Destroy(o);
-    nats_Close();
+    nats_CloseAndWait(5000); /* the library's threads end before exit: no use after free */
     return t && ok == n ? 0 : 1;
 }
