@@ -26,6 +26,7 @@ typedef struct fleet_opts_t {
     uint64_t ckpt_every; /* checkpoint a shard after this many messages ... */
     int64_t ckpt_ms;     /* ... or this long after the last, when it learnt any */
     int quiet;           /* log warnings and errors only */
+    const char *metrics; /* HOST:PORT for GET /metrics over HTTP, or NULL */
 } fleet_opts_t;
 
 /* Runs `worthd fleet ARGS`: parses argv (argv[0] is "fleet") and runs the node until

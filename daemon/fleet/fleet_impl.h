@@ -14,6 +14,7 @@
 
 #include <cjson/cJSON.h>
 #include <nats/nats.h>
+#include <netinet/in.h>
 #include <pthread.h>
 #include <stdint.h>
 #include <time.h>
@@ -112,6 +113,10 @@ struct node {
     } peers[64];
     size_t n_peers;
     uint64_t hb_rev;
+    /* --metrics (http.c) */
+    int http_fd; /* -1 when off */
+    _Atomic int http_stop;
+    pthread_t http_thread;
     /* per-transition scratch (no allocation per transition besides nats.c's and cJSON's) */
     double x[FEAT_MAX_DIMS], xn[FEAT_MAX_DIMS];
 };
@@ -123,6 +128,15 @@ static inline int64_t fleet_now_ms(void)
     clock_gettime(CLOCK_MONOTONIC, &ts);
     return (int64_t)ts.tv_sec * 1000 + ts.tv_nsec / 1000000;
 }
+
+/* http.c */
+/* Reads a numeric IPv4 HOST:PORT into sa; 0 or -1. */
+int fleet_http_parse(const char *hostport, struct sockaddr_in *sa);
+/* Listens on hostport (numeric IPv4 HOST:PORT) and serves GET /metrics on a thread of its
+ * own.  Returns 0 or -1 (logged). */
+int fleet_http_start(struct node *nd, const char *hostport);
+/* Stops that thread (before the connection is destroyed: it asks through it). */
+void fleet_http_stop(struct node *nd);
 
 /* shard.c */
 /* Takes shard s over: restores its newest checkpoint and subscribes from the sequence after

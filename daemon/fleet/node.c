@@ -46,7 +46,8 @@ static void on_stop(int sig)
 
 static const char usage[] =
     "usage: worthd fleet --nats URLS [--node NAME] [--shards N] [--replicas R]\n"
-    "                    [--lease-ms MS] [--checkpoint-every N] [--checkpoint-ms MS] [--quiet]\n"
+    "                    [--lease-ms MS] [--checkpoint-every N] [--checkpoint-ms MS]\n"
+    "                    [--metrics HOST:PORT] [--quiet]\n"
     "\n"
     "Runs worthd as one node of a fleet on NATS JetStream (doc/fleet.md).\n"
     "\n"
@@ -60,6 +61,7 @@ static const char usage[] =
     "                         (default 3000, 300..600000)\n"
     "  --checkpoint-every N   checkpoint a shard after N messages (default 100000)\n"
     "  --checkpoint-ms MS     ... or MS after the last one when it learnt any (default 5000)\n"
+    "  --metrics HOST:PORT    serve GET /metrics (Prometheus text) there; numeric IPv4\n"
     "  --quiet                log warnings and errors only\n";
 
 static int name_ok(const char *s)
@@ -99,6 +101,7 @@ static int parse(int argc, char **argv, fleet_opts_t *o)
         {"lease-ms", required_argument, 0, 'l'},
         {"checkpoint-every", required_argument, 0, 'c'},
         {"checkpoint-ms", required_argument, 0, 'C'},
+        {"metrics", required_argument, 0, 'm'},
         {"quiet", no_argument, 0, 'q'},
         {"help", no_argument, 0, 'h'},
         {0, 0, 0, 0},
@@ -155,6 +158,18 @@ static int parse(int argc, char **argv, fleet_opts_t *o)
                 return 2;
             o->ckpt_ms = v;
             break;
+        case 'm': {
+            struct sockaddr_in sa;
+            if (fleet_http_parse(optarg, &sa) != 0) {
+                fprintf(stderr,
+                        "worthd fleet: bad_param: --metrics \"%s\": give HOST:PORT, HOST a "
+                        "numeric IPv4 address (127.0.0.1:9465)\n",
+                        optarg);
+                return 2;
+            }
+            o->metrics = optarg;
+            break;
+        }
         case 'q':
             o->quiet = 1;
             break;
@@ -572,12 +587,14 @@ int fleet_main(int argc, char **argv)
     sigaction(SIGTERM, &sa, NULL);
     signal(SIGPIPE, SIG_IGN);
     rc = 1;
-    if (setup(nd) == 0) {
+    nd->http_fd = -1;
+    if (setup(nd) == 0 && (!nd->o.metrics || fleet_http_start(nd, nd->o.metrics) == 0)) {
         say_info("fleet: node %s on %s, %u shards, lease %" PRId64 " ms", nd->o.node, nd->o.urls,
                  nd->o.shards, nd->o.lease_ms);
         run(nd);
         rc = 0;
     }
+    fleet_http_stop(nd);
     natsSubscription *subs[] = {nd->via, nd->self};
     for (size_t i = 0; i < 2; i++)
         if (subs[i]) {

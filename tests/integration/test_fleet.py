@@ -16,6 +16,8 @@ import sqlite3
 import subprocess
 import threading
 import time
+import urllib.error
+import urllib.request
 
 import pytest
 
@@ -40,10 +42,15 @@ def fleet(tmp_path_factory):
     worthd = os.environ["WORTH_DAEMON"]
     args = ["--replicas", "3", "--lease-ms", str(LEASE_MS), "--shards", str(SHARDS),
             "--checkpoint-every", "500", "--checkpoint-ms", "1000"]
-    nodes = {n: Node(worthd, cl.urls(), n, d, args) for n in ("a", "b", "c")}
+    mports = dict(zip("abc", free_ports(3)))
+
+    def args_of(n):  # each node's metrics on a loopback port of its own
+        return args + ["--metrics", f"127.0.0.1:{mports[n]}"]
+
+    nodes = {n: Node(worthd, cl.urls(), n, d, args_of(n)) for n in ("a", "b", "c")}
     fl = Fleet(os.environ["WORTH_CLI"], cl.urls())
-    ctx = {"cluster": cl, "nodes": nodes, "fleet": fl, "worthd": worthd, "args": args,
-           "dir": d}
+    ctx = {"cluster": cl, "nodes": nodes, "fleet": fl, "worthd": worthd, "args_of": args_of,
+           "dir": d, "metrics_ports": mports}
     try:
         fl.wait_owned(set(nodes), timeout=60)
         yield ctx
@@ -183,7 +190,7 @@ def test_kill9_worthd_node_takeover_exactly_once_bit_identical(fleet, daemon, tm
     phase("states compared")
     # The killed node comes back and takes a fair share again; nothing relearnt twice.
     nodes[victim] = Node(fleet["worthd"], fleet["cluster"].urls(), victim, fleet["dir"],
-                         fleet["args"])
+                         fleet["args_of"](victim))
     end = time.monotonic() + 30
     while time.monotonic() < end:
         owners = [s.get("node") for s in fl.status()["shards"]]
@@ -264,6 +271,18 @@ def test_mqtt_device_through_gateway(fleet):
     assert f'worth_fleet_consumer_lag{{node="{owner}",shard="{shard}"}} 0' in text, text
     owned = json.loads(fl.run("--json", "metrics", owner).stdout)
     assert shard in [s["shard"] for s in owned["shards"]], owned
+    # The same over HTTP, for Prometheus to scrape (worthd fleet --metrics).
+    url = f"http://127.0.0.1:{fleet['metrics_ports'][owner]}"
+    with urllib.request.urlopen(url + "/metrics", timeout=10) as r:
+        assert r.status == 200 and r.headers["Content-Type"].startswith("text/plain")
+        scraped = r.read().decode()
+    p = subprocess.run(["promtool", "check", "metrics"], input=scraped, capture_output=True,
+                       text=True, timeout=30)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert f'worth_fleet_consumer_lag{{node="{owner}",shard="{shard}"}} 0' in scraped, scraped
+    with pytest.raises(urllib.error.HTTPError) as e:
+        urllib.request.urlopen(url + "/other", timeout=10)
+    assert e.value.code == 404
 
 
 def test_mosquitto_bridge_from_contrib(fleet):
@@ -356,7 +375,7 @@ def test_rollback_excludes_windows_and_survives_takeover(fleet, daemon, tmp_path
     assert r["node"] != owner and r["applied"] == 249, r
     assert got == ref2["rb-1"]
     nodes[owner] = Node(fleet["worthd"], fleet["cluster"].urls(), owner, fleet["dir"],
-                        fleet["args"])
+                        fleet["args_of"](owner))
     # Bad windows are refused with bad_param, and nothing changes.
     r = fl.ask("rb-1", {"op": "rollback", "exclude": [{"seq": [5, 2]}]}, check=False)
     assert r["error"]["code"] == "bad_param", r
