@@ -61,9 +61,7 @@ static int publish_sync(struct fleet *f, natsMsg *m, int64_t deadline)
         jsPubAck_Destroy(pa);
         if (st == NATS_OK)
             return 0;
-        struct timespec ts;
-        clock_gettime(CLOCK_MONOTONIC, &ts);
-        if ((int64_t)ts.tv_sec * 1000 + ts.tv_nsec / 1000000 > deadline)
+        if (fleet_mono_ms() > deadline)
             return -1;
         usleep(100 * 1000);
     }

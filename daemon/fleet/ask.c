@@ -70,24 +70,12 @@ void ask_queue(natsConnection *nc, natsSubscription *sub, natsMsg *msg, void *cl
     pthread_mutex_unlock(&nd->q.mu);
 }
 
-/* The token after the third dot of subj (the model of worth.q.<p>.<m>, worth.via.<n>.<m>). */
-static const char *model_of(const char *subj)
-{
-    const char *p = subj;
-    for (int dots = 0; dots < 3 && p; dots++) {
-        p = strchr(p, '.');
-        if (p)
-            p++;
-    }
-    return p;
-}
-
 void ask_forward(natsConnection *nc, natsSubscription *sub, natsMsg *msg, void *closure)
 {
     (void)sub;
     struct node *nd = closure;
     const char *reply = natsMsg_GetReply(msg);
-    const char *model = model_of(natsMsg_GetSubject(msg));
+    const char *model = fleet_subject_model(natsMsg_GetSubject(msg));
     if (!model || !spec_name_ok(model) || strchr(model, '.')) {
         ask_error(nc, reply, WORTH_E_BAD_REQUEST, "no model name in subject %s",
                   natsMsg_GetSubject(msg));
@@ -368,7 +356,7 @@ void ask_answer(struct node *nd, natsMsg *msg)
     }
     const char *reply = natsMsg_GetReply(msg);
     const char *subj = natsMsg_GetSubject(msg);
-    const char *model = model_of(subj);
+    const char *model = fleet_subject_model(subj);
     unsigned p = (unsigned)strtoul(subj + strlen("worth.q."), NULL, 10);
     struct shard *s = p < nd->o.shards ? &nd->sh[p] : NULL;
     cJSON *req = cJSON_ParseWithLength(natsMsg_GetData(msg), (size_t)natsMsg_GetDataLength(msg));

@@ -17,6 +17,7 @@
 #include <netinet/in.h>
 #include <pthread.h>
 #include <stdint.h>
+#include <string.h>
 #include <time.h>
 
 #include "core/spec.h"
@@ -120,6 +121,19 @@ struct node {
     /* per-transition scratch (no allocation per transition besides nats.c's and cJSON's) */
     double x[FEAT_MAX_DIMS], xn[FEAT_MAX_DIMS];
 };
+
+/* The token after the third dot of subj, or NULL: the model of worth.t.<shard>.<model>,
+ * worth.q.<shard>.<model> and worth.via.<node>.<model>. */
+static inline const char *fleet_subject_model(const char *subj)
+{
+    const char *p = subj;
+    for (int dots = 0; dots < 3 && p; dots++) {
+        p = strchr(p, '.');
+        if (p)
+            p++;
+    }
+    return p;
+}
 
 /* Monotonic milliseconds. */
 static inline int64_t fleet_now_ms(void)

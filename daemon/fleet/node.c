@@ -328,6 +328,31 @@ static int lease_val(const struct node *nd, char *buf, size_t cap)
     return snprintf(buf, cap, "{\"node\":\"%s\"}", nd->o.node);
 }
 
+/* The key of shard p's lease. */
+static void lease_key(char *key, size_t cap, unsigned p)
+{
+    snprintf(key, cap, "s%u", p);
+}
+
+/*
+ * Renews s's lease by the compare-and-set on the revision this node wrote last.  Returns
+ * NATS_OK (s's revision and renewal time moved on) or the failure; a failed compare-and-set
+ * (someone wrote the lease since) leaves nats_GetLastError saying "wrong last sequence".
+ */
+static natsStatus renew_one(struct node *nd, struct shard *s, const char *val, int vl)
+{
+    char key[32];
+    lease_key(key, sizeof key, s->id);
+    int64_t sent = fleet_now_ms();
+    uint64_t rev = 0;
+    natsStatus st = kvStore_Update(&rev, nd->lease, key, val, vl, s->lease_rev);
+    if (st == NATS_OK) {
+        s->lease_rev = rev;
+        s->renewed_ms = sent;
+    }
+    return st;
+}
+
 static void take(struct node *nd, struct shard *s, uint64_t rev, int64_t sent)
 {
     s->owned = 1;
@@ -335,7 +360,7 @@ static void take(struct node *nd, struct shard *s, uint64_t rev, int64_t sent)
     s->renewed_ms = sent;
     if (shard_open(nd, s) != 0) {
         char key[32];
-        snprintf(key, sizeof key, "s%u", s->id);
+        lease_key(key, sizeof key, s->id);
         kvStore_UpdateString(NULL, nd->lease, key, FREE_LEASE, rev);
         s->owned = 0;
         return;
@@ -351,11 +376,11 @@ static void drop(struct node *nd, struct shard *s, const char *why)
     nd->owned--;
 }
 
-/* Hands s back: checkpoint, close, delete the lease. */
+/* Hands s back: checkpoint, close, and the lease written free. */
 static void release(struct node *nd, struct shard *s)
 {
     char key[32];
-    snprintf(key, sizeof key, "s%u", s->id);
+    lease_key(key, sizeof key, s->id);
     shard_checkpoint(nd, s);
     uint64_t rev = s->lease_rev;
     shard_close(nd, s, 1);
@@ -371,19 +396,9 @@ static void renew(struct node *nd, const char *val, int vl)
 {
     for (unsigned p = 0; p < nd->o.shards && !stopping; p++) {
         struct shard *s = &nd->sh[p];
-        if (!s->owned)
-            continue;
-        char key[32];
-        snprintf(key, sizeof key, "s%u", p);
-        int64_t sent = fleet_now_ms();
-        uint64_t rev = 0;
-        natsStatus st = kvStore_Update(&rev, nd->lease, key, val, vl, s->lease_rev);
-        if (st == NATS_OK) {
-            s->lease_rev = rev;
-            s->renewed_ms = sent;
-        } else if (nats_GetLastError(NULL) && strstr(nats_GetLastError(NULL), "wrong last")) {
+        if (s->owned && renew_one(nd, s, val, vl) != NATS_OK && nats_GetLastError(NULL) &&
+            strstr(nats_GetLastError(NULL), "wrong last"))
             drop(nd, s, "the lease was taken over");
-        }
     }
 }
 
@@ -403,7 +418,7 @@ static void lease_tick(struct node *nd, int64_t now)
         if (s->owned)
             continue;
         char key[32];
-        snprintf(key, sizeof key, "s%u", p);
+        lease_key(key, sizeof key, p);
         int64_t sent = fleet_now_ms();
         kvEntry *e = NULL;
         natsStatus st = kvStore_Get(&e, nd->lease, key);
@@ -463,18 +478,9 @@ static void lease_guard(struct node *nd)
     int vl = lease_val(nd, val, sizeof val);
     for (unsigned p = 0; p < nd->o.shards; p++) {
         struct shard *s = &nd->sh[p];
-        if (!s->owned || fleet_now_ms() - s->renewed_ms <= nd->o.lease_ms * 9 / 10)
-            continue;
-        char key[32];
-        snprintf(key, sizeof key, "s%u", p);
-        int64_t sent = fleet_now_ms();
-        uint64_t rev = 0;
-        if (kvStore_Update(&rev, nd->lease, key, val, vl, s->lease_rev) == NATS_OK) {
-            s->lease_rev = rev;
-            s->renewed_ms = sent;
-        } else {
+        if (s->owned && fleet_now_ms() - s->renewed_ms > nd->o.lease_ms * 9 / 10 &&
+            renew_one(nd, s, val, vl) != NATS_OK)
             drop(nd, s, "no renewal within the lease time");
-        }
     }
 }
 

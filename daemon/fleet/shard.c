@@ -43,12 +43,7 @@
 static void apply_msg(struct node *nd, struct shard *s, const char *subj, const char *data, int len,
                       uint64_t seq)
 {
-    const char *name = subj;
-    for (int dots = 0; dots < 3 && name; dots++) {
-        name = strchr(name, '.');
-        if (name)
-            name++;
-    }
+    const char *name = fleet_subject_model(subj);
     if (!name || !spec_name_ok(name))
         return;
     struct fmodel *f = fmodel_find(s, name);
@@ -158,9 +153,8 @@ static size_t ck_encode(const struct shard *s, uint8_t *buf, size_t cap)
 /* Restores s's models from a checkpoint; returns 0 or -1 (err filled; s left empty). */
 static int ck_decode(struct shard *s, const uint8_t *buf, size_t len, char *err, size_t errlen)
 {
-    if (len < 28 ||
-        ser_crc32(buf, len - 4) != (buf[len - 4] | (uint32_t)buf[len - 3] << 8 |
-                                    (uint32_t)buf[len - 2] << 16 | (uint32_t)buf[len - 1] << 24)) {
+    ser_r tail = {buf, len, len >= 4 ? len - 4 : 0, 0};
+    if (len < 28 || ser_crc32(buf, len - 4) != ser_get_u32(&tail)) {
         snprintf(err, errlen, "checkpoint fails its CRC-32");
         return -1;
     }
